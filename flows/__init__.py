@@ -1,0 +1,1 @@
+"""Prefect flows and the command line: the imperative shell around `pipeline`."""
