@@ -1,0 +1,89 @@
+"""Reads the controlled documents under ``specs/`` (adapter: file I/O and SHA-256)."""
+
+from __future__ import annotations
+
+import hashlib
+import os
+from dataclasses import dataclass
+from pathlib import Path
+
+import yaml
+
+from pipeline.errors import SpecificationError
+from pipeline.specs import KineticMethod, ProteinMethod, Specification, parse_method, parse_specification
+
+REPO_ROOT = Path(__file__).resolve().parents[1]
+
+
+def specs_dir() -> Path:
+    return Path(os.environ.get("LOTGATE_SPECS_DIR", REPO_ROOT / "specs"))
+
+
+def schemas_dir() -> Path:
+    return Path(os.environ.get("LOTGATE_SCHEMAS_DIR", REPO_ROOT / "schemas"))
+
+
+def sha256_file(path: Path) -> str:
+    digest = hashlib.sha256()
+    with open(path, "rb") as handle:
+        for block in iter(lambda: handle.read(1 << 20), b""):
+            digest.update(block)
+    return digest.hexdigest()
+
+
+def _read_yaml(path: Path) -> tuple[dict, str]:
+    data = path.read_bytes()
+    try:
+        raw = yaml.safe_load(data)
+    except yaml.YAMLError as exc:
+        raise SpecificationError(f"{path.name}: not valid YAML ({exc})") from exc
+    if not isinstance(raw, dict):
+        raise SpecificationError(f"{path.name}: expected a mapping at the top level")
+    return raw, hashlib.sha256(data).hexdigest()
+
+
+@dataclass(frozen=True)
+class Catalog:
+    """Every specification and method in force, keyed by product code and method id."""
+
+    specifications: dict[str, Specification]
+    methods: dict[str, KineticMethod | ProteinMethod]
+
+    def kinetic_method(self, method_id: str) -> KineticMethod:
+        method = self.methods.get(method_id)
+        if not isinstance(method, KineticMethod):
+            raise SpecificationError(f"no kinetic assay method '{method_id}' under specs/methods")
+        return method
+
+    def protein_method(self, method_id: str) -> ProteinMethod:
+        method = self.methods.get(method_id)
+        if not isinstance(method, ProteinMethod):
+            raise SpecificationError(f"no protein method '{method_id}' under specs/methods")
+        return method
+
+
+def load_catalog(root: Path | None = None) -> Catalog:
+    """Load ``products/*.yaml`` and ``methods/*.yaml``; check cross references."""
+    root = root or specs_dir()
+    specifications: dict[str, Specification] = {}
+    methods: dict[str, KineticMethod | ProteinMethod] = {}
+    for path in sorted((root / "methods").glob("*.yaml")):
+        raw, sha = _read_yaml(path)
+        method = parse_method(raw, f"specs/methods/{path.name}", sha)
+        if method.method_id in methods:
+            raise SpecificationError(f"specs/methods/{path.name}: method '{method.method_id}' defined twice")
+        methods[method.method_id] = method
+    for path in sorted((root / "products").glob("*.yaml")):
+        raw, sha = _read_yaml(path)
+        spec = parse_specification(raw, f"specs/products/{path.name}", sha)
+        if spec.product_code in specifications:
+            raise SpecificationError(f"specs/products/{path.name}: product '{spec.product_code}' defined twice")
+        for method_id in (spec.activity_method, spec.protein_method):
+            if method_id not in methods:
+                raise SpecificationError(
+                    f"specs/products/{path.name}: refers to method '{method_id}', which is not under specs/methods"
+                )
+        specifications[spec.product_code] = spec
+    if not specifications:
+        raise SpecificationError(f"no product specification found under {root / 'products'}")
+    return Catalog(specifications=specifications, methods=methods)

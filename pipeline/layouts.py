@@ -1,0 +1,85 @@
+"""Export layouts: the pandera schemas under ``schemas/`` plus what pandera cannot express.
+
+Each ``schemas/<kind>.yaml`` has two sections: ``pandera`` (a DataFrameSchema that
+``pandera.io.pandas_io.from_yaml`` reads: dtypes, nullability, uniqueness, patterns, ranges,
+allowed values) and ``lotgate_export`` (the file-name prefix, version, the size, row and
+line-length limits, and a hint per column in the analyst's words).
+"""
+
+from __future__ import annotations
+
+import hashlib
+import warnings
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import pandera.pandas as pa
+import yaml
+from pandera.io.pandas_io import from_yaml
+
+from pipeline.errors import SpecificationError
+
+
+@dataclass(frozen=True)
+class ExportLayout:
+    kind: str
+    version: str
+    title: str
+    file_prefix: str
+    max_bytes: int
+    max_rows: int
+    max_line_chars: int
+    columns: tuple[str, ...]
+    nullable: frozenset[str]
+    schema: pa.DataFrameSchema
+    sha256: str
+    hints: dict[str, str] = field(default_factory=dict)
+
+
+def load_layout(path: Path) -> ExportLayout:
+    data = path.read_bytes()
+    where = f"schemas/{path.name}"
+    try:
+        raw = yaml.safe_load(data)
+        head = raw["lotgate_export"]
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            schema = from_yaml(yaml.safe_dump(raw["pandera"], sort_keys=False))
+    except (yaml.YAMLError, KeyError, TypeError, ValueError) as exc:
+        raise SpecificationError(f"{where}: not a valid export layout ({exc})") from exc
+    try:
+        return ExportLayout(
+            kind=str(head["kind"]),
+            version=str(head["version"]),
+            title=str(head.get("title", head["kind"])),
+            file_prefix=str(head["file_prefix"]),
+            max_bytes=int(head["max_bytes"]),
+            max_rows=int(head["max_rows"]),
+            max_line_chars=int(head["max_line_chars"]),
+            columns=tuple(schema.columns),
+            nullable=frozenset(name for name, col in schema.columns.items() if col.nullable),
+            schema=schema,
+            sha256=hashlib.sha256(data).hexdigest(),
+            hints={str(k): str(v) for k, v in (head.get("hints") or {}).items()},
+        )
+    except KeyError as exc:
+        raise SpecificationError(f"{where}: the field 'lotgate_export.{exc.args[0]}' is missing") from exc
+
+
+def load_layouts(directory: Path) -> dict[str, ExportLayout]:
+    layouts = {}
+    for path in sorted(directory.glob("*.yaml")):
+        layout = load_layout(path)
+        layouts[layout.kind] = layout
+    if not layouts:
+        raise SpecificationError(f"no export layout found under {directory}")
+    prefixes = [layout.file_prefix for layout in layouts.values()]
+    if len(set(prefixes)) != len(prefixes):
+        raise SpecificationError(f"two export layouts share a file prefix: {prefixes}")
+    return layouts
+
+
+def layout_for(file_name: str, layouts: dict[str, ExportLayout]) -> ExportLayout | None:
+    """The layout whose prefix starts the file name (longest prefix wins), or None."""
+    matches = [lay for lay in layouts.values() if file_name.startswith(lay.file_prefix)]
+    return max(matches, key=lambda lay: len(lay.file_prefix)) if matches else None
