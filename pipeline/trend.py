@@ -1,0 +1,424 @@
+"""Individuals and moving-range (I-MR) control charts across lots, Nelson run rules, capability.
+
+Pure functions over numpy arrays; results are frozen dataclasses with ``to_dict()``.
+
+Conventions used by every rule (in the batch scan and in the incremental state alike):
+
+* "beyond kσ above" means ``x > centre + k·σ``, "beyond kσ below" means ``x < centre − k·σ``
+  (strict); a point exactly on a 1σ, 2σ or 3σ line is not beyond it.
+* "within 1σ" means not beyond 1σ on either side.
+* "above/below the centre line" is strict: a point exactly on the centre line is on neither side
+  and breaks a rule-2 run.
+* Point numbers (``index``, ``first_index`` and the numbers in descriptions) are 0-based
+  positions in the series.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Iterable, Sequence
+from dataclasses import dataclass
+
+import numpy as np
+from numpy.lib.stride_tricks import sliding_window_view
+from numpy.typing import ArrayLike, NDArray
+
+from pipeline.errors import CalculationError, SpecificationError
+
+# Control-chart constants for moving ranges of two consecutive points (subgroup size n = 2):
+# ASTM Manual on Presentation of Data and Control Chart Analysis (MNL 7), factor tables;
+# Montgomery, Introduction to Statistical Quality Control, Appendix VI.
+D2_N2 = 1.128
+D4_N2 = 3.267
+
+ALL_RULES: tuple[int, ...] = (1, 2, 3, 4, 5, 6, 7, 8)
+HISTORY_POINTS = 14  # rule 7 looks at 15 points: the new one plus the 14 before it
+
+
+# --------------------------------------------------------------------------- result objects
+@dataclass(frozen=True)
+class ControlLimits:
+    """Frozen I-MR limits of one attribute (values in the attribute's own unit)."""
+
+    center: float
+    sigma: float
+    mr_bar: float
+    mr_ucl: float
+    ucl: float
+    lcl: float
+    n: int
+
+    def to_dict(self) -> dict[str, float | int]:
+        return {
+            "center": self.center,
+            "sigma": self.sigma,
+            "mr_bar": self.mr_bar,
+            "mr_ucl": self.mr_ucl,
+            "ucl": self.ucl,
+            "lcl": self.lcl,
+            "n": self.n,
+        }
+
+
+@dataclass(frozen=True)
+class Signal:
+    """One run-rule pattern that completes at point ``index`` (it started at ``first_index``)."""
+
+    rule: int
+    index: int
+    first_index: int
+    side: str | None
+    description: str
+
+    def to_dict(self) -> dict[str, int | str | None]:
+        return {
+            "rule": self.rule,
+            "index": self.index,
+            "first_index": self.first_index,
+            "side": self.side,
+            "description": self.description,
+        }
+
+
+@dataclass(frozen=True)
+class Capability:
+    """Process capability of one attribute against its specification limits."""
+
+    cpk: float
+    ppk: float
+    mean: float
+    n: int
+    sigma_within: float
+    sigma_overall: float
+    lsl: float | None
+    usl: float | None
+
+    def to_dict(self) -> dict[str, float | int | None]:
+        return {
+            "cpk": self.cpk,
+            "ppk": self.ppk,
+            "mean": self.mean,
+            "n": self.n,
+            "sigma_within": self.sigma_within,
+            "sigma_overall": self.sigma_overall,
+            "lsl": self.lsl,
+            "usl": self.usl,
+        }
+
+
+# --------------------------------------------------------------------------- validation
+def _as_series(values: ArrayLike, what: str) -> NDArray[np.float64]:
+    arr = np.asarray(values, dtype=np.float64)
+    if arr.ndim != 1:
+        raise CalculationError(
+            f"{what}: expected one value per lot (a flat list), "
+            f"received an array of shape {arr.shape}"
+        )
+    bad = np.flatnonzero(~np.isfinite(arr))
+    if bad.size:
+        raise CalculationError(
+            f"{what}: {bad.size} of {arr.size} values are missing or not finite "
+            f"(first at point {int(bad[0])}); every value must be a finite number"
+        )
+    return arr
+
+
+def _check_rules(rules: Iterable[int]) -> tuple[int, ...]:
+    chosen = tuple(rules)
+    for rule in chosen:
+        is_int = isinstance(rule, int | np.integer) and not isinstance(rule, bool)
+        if not is_int or rule not in ALL_RULES:
+            raise SpecificationError(
+                f"run rule {rule!r} is not known; allowed rules are the Nelson rules 1 to 8"
+            )
+    return tuple(sorted({int(r) for r in chosen}))
+
+
+def _check_center_sigma(center: float, sigma: float) -> None:
+    if not np.isfinite(center):
+        raise CalculationError(f"the centre line must be a finite number, received {center!r}")
+    if not (np.isfinite(sigma) and sigma > 0):
+        raise CalculationError(f"sigma must be a finite number above 0, received {sigma!r}")
+
+
+# --------------------------------------------------------------------------- limits
+def imr_limits(values: ArrayLike, *, min_baseline: int = 20) -> ControlLimits:
+    """I-MR limits from a baseline of individual lot values.
+
+    MRᵢ = |xᵢ − xᵢ₋₁| (i = 1 … n−1),  MR̄ = mean(MR),  centre = x̄,
+    σ̂ = MR̄ / d₂ (d₂ = 1.128),  UCL/LCL = x̄ ± 3σ̂,  MR UCL = D₄·MR̄ (D₄ = 3.267).
+    """
+    if min_baseline < 2:
+        raise CalculationError(
+            "the minimum baseline must be at least 2 lots (one moving range), "
+            f"received {min_baseline}"
+        )
+    x = _as_series(values, "control-limit baseline")
+    if x.size < min_baseline:
+        raise CalculationError(
+            f"control limits need a baseline of at least {min_baseline} lots; "
+            f"received {x.size} values"
+        )
+    mr_bar = float(np.mean(np.abs(np.diff(x))))
+    if mr_bar == 0.0:
+        raise CalculationError(
+            f"all {x.size} baseline values are identical, so the moving range is 0 and sigma "
+            "cannot be estimated"
+        )
+    center = float(np.mean(x))
+    sigma = mr_bar / D2_N2
+    return ControlLimits(
+        center=center,
+        sigma=sigma,
+        mr_bar=mr_bar,
+        mr_ucl=D4_N2 * mr_bar,
+        ucl=center + 3.0 * sigma,
+        lcl=center - 3.0 * sigma,
+        n=int(x.size),
+    )
+
+
+# --------------------------------------------------------------------------- descriptions
+def _describe(rule: int, first: int, last: int, side: str | None, rising: bool = True) -> str:
+    where = "the centre line" if side is None else f"{side} the centre line"
+    span = f"point {last}" if first == last else f"points {first}–{last}"
+    text = {
+        1: f"1 point beyond 3 sigma {where}",
+        2: f"9 points in a row {where}",
+        3: f"6 points in a row steadily {'increasing' if rising else 'decreasing'}",
+        4: "14 points in a row alternating up and down",
+        5: f"2 of 3 points in a row beyond 2 sigma {where}",
+        6: f"4 of 5 points in a row beyond 1 sigma {where}",
+        7: "15 points in a row within 1 sigma of the centre line",
+        8: "8 points in a row beyond 1 sigma, none within 1 sigma of the centre line",
+    }[rule]
+    return f"rule {rule}: {text} ({span})"
+
+
+def _signal(rule: int, first: int, last: int, side: str | None, rising: bool = True) -> Signal:
+    return Signal(rule, last, first, side, _describe(rule, first, last, side, rising))
+
+
+def _thresholds(center: float, sigma: float) -> tuple[float, ...]:
+    """Lines at centre ± 1σ, 2σ, 3σ: (c+σ, c+2σ, c+3σ, c−σ, c−2σ, c−3σ)."""
+    return tuple(center + k * sigma for k in (1, 2, 3)) + tuple(
+        center - k * sigma for k in (1, 2, 3)
+    )
+
+
+# --------------------------------------------------------------------------- batch scan
+def _windows_all(flags: NDArray[np.bool_], length: int) -> NDArray[np.intp]:
+    """Start positions of every window of ``length`` consecutive True flags."""
+    if flags.size < length:
+        return np.empty(0, dtype=np.intp)
+    return np.flatnonzero(sliding_window_view(flags, length).all(axis=1))
+
+
+def _k_of_m(beyond: NDArray[np.bool_], k: int, m: int) -> list[tuple[int, int]]:
+    """(first, last) per point that is beyond and has ≥ k beyond among the m points ending there."""
+    padded = np.concatenate([np.zeros(m - 1, dtype=np.int64), beyond.astype(np.int64)])
+    counts = sliding_window_view(padded, m).sum(axis=1)
+    hits = np.flatnonzero(beyond & (counts >= k))
+    out: list[tuple[int, int]] = []
+    for i in hits:
+        start = max(0, int(i) - m + 1)
+        out.append((start + int(np.argmax(beyond[start : i + 1])), int(i)))
+    return out
+
+
+def rule_signals(
+    values: ArrayLike, center: float, sigma: float, rules: Iterable[int] = ALL_RULES
+) -> tuple[Signal, ...]:
+    """Every Nelson-rule pattern (Nelson, J. Quality Technology 16(4), 1984) in a series.
+
+    With zones measured from the centre c in units of σ:
+    1 one point beyond c ± 3σ; 2 nine in a row strictly on one side of c; 3 six in a row
+    steadily rising or falling (five strict steps; a tie breaks it); 4 fourteen in a row
+    alternating up and down (a tie breaks it); 5 two of three in a row beyond 2σ on one side;
+    6 four of five in a row beyond 1σ on one side; 7 fifteen in a row within 1σ; 8 eight in a
+    row beyond 1σ on either side. A signal is reported at each point where a pattern completes;
+    for rules 5 and 6 that point is itself beyond the line (a window clipped at the start of
+    the series counts). Returned sorted by (index, rule).
+    """
+    chosen = _check_rules(rules)
+    _check_center_sigma(center, sigma)
+    x = _as_series(values, "trend series")
+    center, sigma = float(center), float(sigma)
+    p1, p2, p3, m1, m2, m3 = _thresholds(center, sigma)
+    above, below = x > center, x < center
+    a1, a2, a3, b1, b2, b3 = x > p1, x > p2, x > p3, x < m1, x < m2, x < m3
+    diffs = np.diff(x)
+    found: list[Signal] = []
+    if 1 in chosen:
+        found += [_signal(1, int(i), int(i), "above" if a3[i] else "below")
+                  for i in np.flatnonzero(a3 | b3)]
+    if 2 in chosen:
+        for flags, side in ((above, "above"), (below, "below")):
+            found += [_signal(2, int(s), int(s) + 8, side) for s in _windows_all(flags, 9)]
+    if 3 in chosen:
+        for flags, rising in ((diffs > 0, True), (diffs < 0, False)):
+            found += [_signal(3, int(s), int(s) + 5, None, rising) for s in _windows_all(flags, 5)]
+    if 4 in chosen:
+        signs = np.sign(diffs)
+        alternating = signs[1:] * signs[:-1] < 0  # a zero step (tie) gives 0: breaks the run
+        found += [_signal(4, int(s), int(s) + 13, None) for s in _windows_all(alternating, 12)]
+    for rule, k, m, up, down in ((5, 2, 3, a2, b2), (6, 4, 5, a1, b1)):
+        if rule in chosen:
+            for flags, side in ((up, "above"), (down, "below")):
+                found += [_signal(rule, f, i, side) for f, i in _k_of_m(flags, k, m)]
+    if 7 in chosen:
+        found += [_signal(7, int(s), int(s) + 14, None) for s in _windows_all(~(a1 | b1), 15)]
+    if 8 in chosen:
+        found += [_signal(8, int(s), int(s) + 7, None) for s in _windows_all(a1 | b1, 8)]
+    return tuple(sorted(found, key=lambda s: (s.index, s.rule)))
+
+
+# --------------------------------------------------------------------------- incremental state
+def _zone(value: float, lines: Sequence[float], center: float) -> int:
+    """Signed zone: 0 on the centre line, ±1 within 1σ, ±2 beyond 1σ, ±3 beyond 2σ, ±4 beyond 3σ."""
+    p1, p2, p3, m1, m2, m3 = lines
+    if value > center:
+        return 4 if value > p3 else 3 if value > p2 else 2 if value > p1 else 1
+    if value < center:
+        return -4 if value < m3 else -3 if value < m2 else -2 if value < m1 else -1
+    return 0
+
+
+def _signals_at_end(
+    vals: Sequence[float], zones: Sequence[int], index: int, chosen: tuple[int, ...]
+) -> list[Signal]:
+    """Signals completing at the last point of a tail of ≤ 15 points; the last is at ``index``."""
+    n, z = len(vals), zones[-1]
+    side = "above" if z > 0 else "below" if z < 0 else None
+    sgn = 1 if z > 0 else -1
+    out: list[Signal] = []
+    if 1 in chosen and abs(z) == 4:
+        out.append(_signal(1, index, index, side))
+    if 2 in chosen and n >= 9 and z != 0 and all(q * sgn > 0 for q in zones[-9:]):
+        out.append(_signal(2, index - 8, index, side))
+    steps = [vals[j] - vals[j - 1] for j in range(1, n)]
+    if 3 in chosen and n >= 6:
+        if all(d > 0 for d in steps[-5:]):
+            out.append(_signal(3, index - 5, index, None, True))
+        elif all(d < 0 for d in steps[-5:]):
+            out.append(_signal(3, index - 5, index, None, False))
+    if 4 in chosen and n >= 14:
+        last13 = steps[-13:]
+        if all((a > 0 > b) or (a < 0 < b) for a, b in zip(last13, last13[1:], strict=False)):
+            out.append(_signal(4, index - 13, index, None))
+    for rule, level, k, m in ((5, 3, 2, 3), (6, 2, 4, 5)):
+        if rule in chosen and z * sgn >= level:
+            window = zones[-m:]
+            hits = [j for j, q in enumerate(window) if q * sgn >= level]
+            if len(hits) >= k:
+                out.append(_signal(rule, index - len(window) + 1 + hits[0], index, side))
+    if 7 in chosen and n >= 15 and all(abs(q) <= 1 for q in zones[-15:]):
+        out.append(_signal(7, index - 14, index, None))
+    if 8 in chosen and n >= 8 and all(abs(q) >= 2 for q in zones[-8:]):
+        out.append(_signal(8, index - 7, index, None))
+    return out
+
+
+@dataclass(frozen=True)
+class ChartState:
+    """What a chart must remember to judge the next lot: limits, last 14 points, lot count.
+
+    ``push`` costs O(1) in the length of the history and gives the same signals as
+    ``rule_signals`` on the whole series, restricted to the new point.
+    """
+
+    limits: ControlLimits
+    tail_values: tuple[float, ...]
+    tail_zones: tuple[int, ...]
+    count: int
+
+    @classmethod
+    def from_history(cls, values: ArrayLike, limits: ControlLimits) -> ChartState:
+        """State after the lots in ``values`` (oldest first) have been charted."""
+        _check_center_sigma(limits.center, limits.sigma)
+        x = _as_series(values, "trend history")
+        lines = _thresholds(limits.center, limits.sigma)
+        tail = [float(v) for v in x[-HISTORY_POINTS:]] if x.size else []
+        zones = tuple(_zone(v, lines, limits.center) for v in tail)
+        return cls(limits, tuple(tail), zones, int(x.size))
+
+    def push(
+        self, value: float, rules: Iterable[int] = ALL_RULES
+    ) -> tuple[ChartState, tuple[Signal, ...]]:
+        """Chart one new lot value; return the new state and the signals completing at it."""
+        chosen = _check_rules(rules)
+        v = float(value)
+        if not np.isfinite(v):
+            raise CalculationError(
+                f"lot value for point {self.count} is {value!r}; it must be a finite number"
+            )
+        lines = _thresholds(self.limits.center, self.limits.sigma)
+        vals = (*self.tail_values, v)
+        zones = (*self.tail_zones, _zone(v, lines, self.limits.center))
+        signals = tuple(_signals_at_end(vals, zones, self.count, chosen))
+        state = ChartState(self.limits, vals[-HISTORY_POINTS:], zones[-HISTORY_POINTS:],
+                           self.count + 1)
+        return state, signals
+
+    def to_dict(self) -> dict[str, object]:
+        return {
+            "limits": self.limits.to_dict(),
+            "tail_values": list(self.tail_values),
+            "tail_zones": list(self.tail_zones),
+            "count": self.count,
+        }
+
+
+# --------------------------------------------------------------------------- capability
+def capability(
+    values: ArrayLike,
+    lsl: float | None = None,
+    usl: float | None = None,
+    sigma_within: float | None = None,
+) -> Capability:
+    """Cpk and Ppk of a series against its specification limits.
+
+    Cpk = min(USL − μ, μ − LSL) / (3σ_within), σ_within = MR̄/d₂ unless given;
+    Ppk = the same with σ_overall = sample SD (n − 1). With one limit only, that side's term.
+    """
+    if lsl is None and usl is None:
+        raise CalculationError(
+            "capability needs at least one specification limit (lower or upper); none was given"
+        )
+    for name, lim in (("lower", lsl), ("upper", usl)):
+        if lim is not None and not np.isfinite(lim):
+            raise SpecificationError(
+                f"the {name} specification limit must be finite, received {lim!r}"
+            )
+    if lsl is not None and usl is not None and not lsl < usl:
+        raise SpecificationError(
+            f"the lower specification limit ({lsl}) must be below the upper one ({usl})"
+        )
+    x = _as_series(values, "capability data")
+    if x.size < 2:
+        raise CalculationError(f"capability needs at least 2 values; received {x.size}")
+    mean = float(np.mean(x))
+    sigma_overall = float(np.std(x, ddof=1))
+    if sigma_overall == 0.0:
+        raise CalculationError(
+            f"all {x.size} values are identical, so capability cannot be computed"
+        )
+    if sigma_within is None:
+        sigma_within = float(np.mean(np.abs(np.diff(x)))) / D2_N2
+    if not (np.isfinite(sigma_within) and sigma_within > 0):
+        raise CalculationError(
+            "the short-term sigma (within) must be a finite number above 0, "
+            f"received {sigma_within!r}"
+        )
+    distances = [d for d in (None if usl is None else usl - mean,
+                             None if lsl is None else mean - lsl) if d is not None]
+    nearest = min(distances)
+    return Capability(
+        cpk=nearest / (3.0 * sigma_within),
+        ppk=nearest / (3.0 * sigma_overall),
+        mean=mean,
+        n=int(x.size),
+        sigma_within=float(sigma_within),
+        sigma_overall=sigma_overall,
+        lsl=None if lsl is None else float(lsl),
+        usl=None if usl is None else float(usl),
+    )
