@@ -30,6 +30,13 @@ FloatArray = NDArray[np.float64]
 MICHAELIS_MENTEN = "michaelis-menten"
 SUBSTRATE_INHIBITION = "substrate-inhibition"
 
+# Status codes of a batched curve.
+BATCH_CONVERGED = "converged"
+BATCH_NOT_CONVERGED = "not-converged"
+BATCH_TOO_FEW_POINTS = "too-few-points"
+BATCH_TOO_FEW_LEVELS = "too-few-levels"
+BATCH_NOT_SEPARABLE = "not-separable"
+
 _BATCH_MAX_ITERATIONS = 200
 _BATCH_XTOL = 1e-13  # relative step size at which a batched curve counts as converged
 _BATCH_GTOL = 1e-13  # cosine between residual and Jacobian columns counted as zero
@@ -78,17 +85,29 @@ class MichaelisMentenBatch:
     n: NDArray[np.int64]
     dof: NDArray[np.int64]
     converged: NDArray[np.bool_]
-    messages: tuple[str, ...]
+    status: NDArray[np.str_]
+    iterations: NDArray[np.int64]
 
     def __len__(self) -> int:
         return int(self.vmax.shape[0])
+
+    def message(self, i: int) -> str:
+        """What happened to curve ``i``, in words."""
+        status, n_used, iters = str(self.status[i]), int(self.n[i]), int(self.iterations[i])
+        return {
+            BATCH_TOO_FEW_POINTS: f"too few points: {n_used} in use, at least 3 are needed",
+            BATCH_TOO_FEW_LEVELS: "too few substrate levels: at least 2 distinct levels above zero",
+            BATCH_NOT_SEPARABLE: "the data cannot separate Vmax and Km (singular normal equations)",
+            BATCH_CONVERGED: f"converged after {iters} Levenberg-Marquardt iterations",
+            BATCH_NOT_CONVERGED: f"did not converge within {iters} iterations",
+        }[status]
 
     def fit(self, i: int) -> MichaelisMentenFit:
         """Curve ``i`` as a one-curve result; raises CalculationError if it could not be fitted."""
         if not -len(self) <= i < len(self):
             raise CalculationError(f"curve {i} does not exist: the batch holds {len(self)} curves")
         if not np.isfinite(self.vmax[i]):
-            raise CalculationError(f"curve {i} could not be fitted: {self.messages[i]}")
+            raise CalculationError(f"curve {i} could not be fitted: {self.message(i)}")
         return MichaelisMentenFit(
             vmax=float(self.vmax[i]),
             km=float(self.km[i]),
@@ -102,7 +121,7 @@ class MichaelisMentenBatch:
             n=int(self.n[i]),
             dof=int(self.dof[i]),
             converged=bool(self.converged[i]),
-            message=self.messages[i],
+            message=self.message(i),
         )
 
     def to_dict(self) -> dict[str, Any]:
@@ -479,7 +498,7 @@ def fit_michaelis_menten_batch(
     point, so ragged curves are padded rows. Per curve: RSS = sum w (v - f)^2,
     s^2 = RSS/(n_i - 2), cov = s^2 (J'WJ)^-1, CI95 = p -/+ t(0.975, n_i - 2) se.
     Curves with fewer than 3 points or fewer than 2 substrate levels above zero get NaN
-    and a message; the rest of the batch is still fitted.
+    and a status code (``message(i)`` words it); the rest of the batch is still fitted.
     """
     s, v, w = _batch_inputs(substrate, rate, weights, mask)
     n_pts = (w > 0).sum(axis=1).astype(np.int64)
@@ -508,18 +527,11 @@ def fit_michaelis_menten_batch(
     vmax_se = np.where(separable, np.sqrt(vmax_var), nan)
     km_se = np.where(separable, np.sqrt(km_var), nan)
 
-    messages = []
-    for i in range(vmax.shape[0]):  # text only; the numbers above are all vectorised
-        if n_pts[i] < 3:
-            messages.append(f"too few points: {n_pts[i]} in use, at least 3 are needed")
-        elif not live[i]:
-            messages.append("too few substrate levels: at least 2 distinct levels above zero")
-        elif not separable[i]:
-            messages.append("the data cannot separate Vmax and Km (singular normal equations)")
-        elif converged[i]:
-            messages.append(f"converged after {iterations[i]} Levenberg-Marquardt iterations")
-        else:
-            messages.append(f"did not converge within {iterations[i]} iterations")
+    status = np.select(
+        [n_pts < 3, ~live, ~separable, converged],
+        [BATCH_TOO_FEW_POINTS, BATCH_TOO_FEW_LEVELS, BATCH_NOT_SEPARABLE, BATCH_CONVERGED],
+        default=BATCH_NOT_CONVERGED,
+    )
 
     def frozen(arr: NDArray[Any]) -> NDArray[Any]:
         arr = np.ascontiguousarray(arr)
@@ -539,7 +551,8 @@ def fit_michaelis_menten_batch(
         n=frozen(n_pts),
         dof=frozen(dof),
         converged=frozen(converged),
-        messages=tuple(messages),
+        status=frozen(status),
+        iterations=frozen(iterations),
     )
 
 

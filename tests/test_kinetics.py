@@ -149,8 +149,11 @@ class TestBatchedAgreesWithOneCurve:
         mask[1, 2:] = False  # curve 1 keeps two points only
         batch = fit_michaelis_menten_batch(s, rate, mask=mask)
         assert np.isnan(batch.km[1]) and not batch.converged[1]
-        assert "too few points" in batch.messages[1]
+        assert batch.status[1] == "too-few-points"
+        assert "too few points: 2 in use" in batch.message(1)
         assert batch.converged[0] and batch.converged[2]
+        one_level = fit_michaelis_menten_batch([0.0, 2.0, 2.0, 2.0], [[0.0, 5.1, 4.9, 5.0]])
+        assert one_level.status[0] == "too-few-levels" and np.isnan(one_level.vmax[0])
         with pytest.raises(CalculationError, match="curve 1 could not be fitted"):
             batch.fit(1)
 
