@@ -186,11 +186,19 @@ class Store:
                 query = query.where(DecisionRow.lot_id == lot_id)
             return list(s.scalars(query))
 
-    def chart_points(self, product_code: str, attribute: str) -> list[ChartPoint]:
+    def chart_points(self, product_code: str, attribute: str, tail: int | None = None) -> list[ChartPoint]:
+        """Released lots on a chart, oldest first; only the last ``tail`` when given (no full scan)."""
         with self.session() as s:
-            return list(s.scalars(select(ChartPoint).where(ChartPoint.product_code == product_code,
-                                                           ChartPoint.attribute == attribute)
-                                  .order_by(ChartPoint.id)))
+            query = select(ChartPoint).where(ChartPoint.product_code == product_code,
+                                             ChartPoint.attribute == attribute)
+            if tail is None:
+                return list(s.scalars(query.order_by(ChartPoint.id)))
+            return list(reversed(list(s.scalars(query.order_by(ChartPoint.id.desc()).limit(tail)))))
+
+    def chart_count(self, product_code: str, attribute: str) -> int:
+        with self.session() as s:
+            return int(s.scalar(select(func.count(ChartPoint.id)).where(
+                ChartPoint.product_code == product_code, ChartPoint.attribute == attribute)) or 0)
 
     def active_limits(self, product_code: str, attribute: str) -> ControlLimitRow | None:
         with self.session() as s:

@@ -1,0 +1,210 @@
+"""The ``lotgate`` command line: demo, run, verify (and the record-keeping commands).
+
+Holds are normal outcomes (exit 0). Exit 1 when a verification fails, 2 when the run itself
+could not complete (bad workspace, store or signing set-up), with a one-line reason.
+"""
+
+from __future__ import annotations
+
+import argparse
+import os
+import sys
+from pathlib import Path
+
+QUIET_PREFECT = {
+    "PREFECT_SERVER_ANALYTICS_ENABLED": "false",
+    "DO_NOT_TRACK": "1",
+    "PREFECT_SERVER_SERVICES_TASK_RUN_RECORDER_ENABLED": "false",
+    "PREFECT_LOGGING_LEVEL": "WARNING",
+    "PREFECT_LOGGING_TO_API_ENABLED": "false",
+}
+
+
+def quiet_prefect() -> None:
+    """Settings measured to keep the temporary server's console clean (see DEVELOPERS.md)."""
+    for key, value in QUIET_PREFECT.items():
+        os.environ.setdefault(key, value)
+
+
+def _console():
+    from rich.console import Console
+
+    return Console(highlight=False)
+
+
+def _run_night(workspace: Path, *, orchestrated: bool = True):
+    quiet_prefect()
+    import logging
+
+    from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeElapsedColumn
+
+    from flows import nightly
+
+    logging.getLogger("pyhanko").setLevel(logging.ERROR)
+    labels = {"receive": "Reading and validating exports", "publish": "Reports, certificates and records"}
+    console = _console()
+    with Progress(TextColumn("{task.description:<36}"), BarColumn(), MofNCompleteColumn(), TimeElapsedColumn(),
+                  console=console, transient=False) as bar:
+        tasks: dict[str, int] = {}
+
+        def progress(stage: str, done: int, total: int) -> None:
+            if stage not in tasks:
+                tasks[stage] = bar.add_task(labels.get(stage, stage), total=total)
+            bar.update(tasks[stage], completed=done, total=total)
+
+        nightly.set_progress(progress)
+        try:
+            if orchestrated:
+                summary = nightly.nightly(str(workspace))
+            else:
+                from pipeline import night
+
+                ws, store, signer = night.open_night(workspace)
+                summary = nightly.run_stages(ws, store, signer, orchestrated=False)
+        finally:
+            nightly.set_progress(None)
+    return summary
+
+
+def print_summary(summary, console=None) -> None:
+    from rich.table import Table
+
+    console = console or _console()
+    table = Table(title=f"Night {summary.night_id}: lot dispositions", show_lines=False)
+    table.add_column("Lot", no_wrap=True)
+    table.add_column("Product", no_wrap=True)
+    table.add_column("Rev.", justify="right")
+    table.add_column("Disposition", no_wrap=True)
+    table.add_column("Reasons")
+    for outcome in summary.outcomes:
+        style = "green" if outcome.label == "released" else "yellow"
+        reasons = "\n".join(outcome.reasons[:4]) + (f"\n… and {len(outcome.reasons) - 4} more" if len(outcome.reasons) > 4 else "")
+        label = outcome.label if outcome.new else f"{outcome.label} (unchanged, decided earlier)"
+        table.add_row(outcome.lot_id, outcome.product, str(outcome.revision), f"[{style}]{label}[/]", reasons)
+    if summary.outcomes:
+        console.print(table)
+    else:
+        console.print("No lot to decide tonight.")
+    released = sum(o.label == "released" and o.new for o in summary.outcomes)
+    held = sum(o.label != "released" and o.new for o in summary.outcomes)
+    console.print(f"Files received {summary.received} = archived {summary.archived} + quarantined {summary.quarantined}.  "
+                  f"Lots decided {released + held}: released {released}, held {held}; "
+                  f"unchanged {sum(not o.new for o in summary.outcomes)}.")
+    for name, reason in summary.quarantine_reasons:
+        first = [line for line in reason.splitlines() if line.startswith("- ")][:2]
+        console.print(f"[red]Quarantined[/] {name}: {' '.join(f.lstrip('- ') for f in first)}")
+    for note in summary.notes:
+        console.print(f"[yellow]Not decided[/]: {note}")
+    if summary.lims_files:
+        console.print(f"LIMS results: {', '.join(summary.lims_files)}")
+
+
+def cmd_demo(args: argparse.Namespace) -> int:
+    from pipeline import demo
+    from pipeline.workspace import atomic_write, write_settings
+
+    root = Path(args.workspace).expanduser().resolve()
+    console = _console()
+    if not (root / "workspace.yaml").exists():
+        write_settings(root, {"plant_name": demo.PLANT_NAME, "time_zone": demo.PLANT_TIME_ZONE,
+                              "signing": {"signer_name": demo.DEMO_SIGNER}})
+    (root / "keys").mkdir(parents=True, exist_ok=True)
+    (root / "keys" / "use-demo-identity").touch()
+    (root / "inbox").mkdir(parents=True, exist_ok=True)
+    nights = demo.build_scenario(seed=args.seed)
+    console.print(f"Demo plant: {demo.PLANT_NAME}; {len(nights)} nights of invented exports into {root / 'inbox'}")
+    for night_data in nights:
+        for name, data in sorted(night_data.files.items()):
+            atomic_write(root / "inbox" / name, data)
+        console.rule(f"Night of {night_data.assay_date:%Y-%m-%d}: {len(night_data.files)} exports")
+        summary = _run_night(root)
+        print_summary(summary, console)
+    console.print(f"\nOutputs in {root}: certificates/, reports/, lims/, decisions.jsonl, archive/, quarantine/.")
+    console.print("Check a certificate:  lotgate verify " + str(root / "certificates" / "<file>.pdf"))
+    return 0
+
+
+def cmd_run(args: argparse.Namespace) -> int:
+    root = Path(args.workspace).expanduser().resolve()
+    summary = _run_night(root, orchestrated=not args.no_orchestration)
+    print_summary(summary)
+    return 0
+
+
+def cmd_verify(args: argparse.Namespace) -> int:
+    from pipeline import ledger
+    from pipeline.signing import verify_pdf
+
+    console = _console()
+    failures = 0
+    trust = [Path(p) for p in args.trust] if args.trust else []
+    for name in args.files:
+        path = Path(name)
+        if not path.exists():
+            console.print(f"INVALID {name}: no such file")
+            failures += 1
+            continue
+        if path.suffix.lower() == ".pdf":
+            roots = trust or [p for p in (path.resolve().parent.parent / "keys" / "root-ca.pem",) if p.exists()]
+            result = verify_pdf(path, trust_roots=roots or None)
+            ok = result.valid
+            console.print(f"{'VALID' if ok else 'INVALID'} {name}: {result.summary}")
+        elif path.suffix.lower() == ".jsonl":
+            check = ledger.verify_file(path)
+            ok = check.valid
+            console.print(f"{'VALID' if ok else 'INVALID'} {name}: {check.reason}")
+        else:
+            ok = False
+            console.print(f"INVALID {name}: not a certificate (.pdf) or a decision log (.jsonl)")
+        failures += not ok
+    return 1 if failures else 0
+
+
+def build_parser() -> argparse.ArgumentParser:
+    parser = argparse.ArgumentParser(
+        prog="lotgate",
+        description="Nightly lot release for enzyme production: validates LIMS and plate-reader exports, computes "
+                    "activity, protein, specific activity and kinetic constants, judges them against versioned "
+                    "specifications and control charts, and writes signed certificates, batch reports, a "
+                    "hash-chained decision log and results for the LIMS. It supports, and never replaces, the "
+                    "authorised person who releases a lot.")
+    sub = parser.add_subparsers(dest="command", required=True, metavar="COMMAND")
+    demo = sub.add_parser("demo", help="write an invented plant's exports into DIR/inbox and run its nights",
+                          description="Write the invented demo plant's exports (four nights, deterministic) into "
+                                      "DIR/inbox and run each night on them. Running it again adds no duplicate decisions.")
+    demo.add_argument("--workspace", default="./lotgate-demo", metavar="DIR", help="workspace folder (default ./lotgate-demo)")
+    demo.add_argument("--seed", type=int, default=20261124, help="simulation seed (default 20261124)")
+    demo.set_defaults(func=cmd_demo)
+    run = sub.add_parser("run", help="run the night on whatever is in DIR/inbox",
+                         description="Run one night on every export in DIR/inbox: validate, compute, decide, "
+                                     "write documents and records; used files go to DIR/archive, bad ones to DIR/quarantine.")
+    run.add_argument("--workspace", required=True, metavar="DIR", help="workspace folder holding inbox/")
+    run.add_argument("--no-orchestration", action="store_true",
+                     help="call the stages as plain functions instead of a Prefect flow (same results)")
+    run.set_defaults(func=cmd_run)
+    verify = sub.add_parser("verify", help="check certificates' signatures or the decision log's chain",
+                            description="Check each FILE: a certificate PDF (signature intact and covering the whole "
+                                        "file) or a decision log .jsonl (hash chain). Exit 0 when all are valid, 1 when not.")
+    verify.add_argument("files", nargs="+", metavar="FILE")
+    verify.add_argument("--trust", action="append", metavar="PEM",
+                        help="a root CA certificate to trust (default: the workspace's keys/root-ca.pem when found)")
+    verify.set_defaults(func=cmd_verify)
+    return parser
+
+
+def main(argv: list[str] | None = None) -> int:
+    from pipeline.errors import LotgateError
+
+    args = build_parser().parse_args(argv)
+    try:
+        return int(args.func(args))
+    except LotgateError as exc:
+        print(f"lotgate: {exc}", file=sys.stderr)
+        return 2
+    except KeyboardInterrupt:
+        print("lotgate: interrupted; run the same command again to finish the night", file=sys.stderr)
+        return 130
+
+
+if __name__ == "__main__":
+    sys.exit(main())

@@ -1,0 +1,68 @@
+"""The nightly lot-release flow: Prefect tasks, one per stage, thin around ``pipeline.night``.
+
+Tasks are coarse (a stage each, the per-lot maths vectorised inside) so orchestration stays
+cheap; results are kept in memory (no caching, no persistence of task results).
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable
+from pathlib import Path
+
+from prefect import flow, task
+from prefect.cache_policies import NONE
+
+from pipeline import night
+from pipeline.night import NightSummary
+from pipeline.store import Store
+from pipeline.workspace import Workspace
+
+_PROGRESS: dict[str, Callable[[str, int, int], None]] = {}
+
+
+def set_progress(callback: Callable[[str, int, int], None] | None) -> None:
+    """Register the command line's progress display (kept out of flow parameters)."""
+    _PROGRESS.clear()
+    if callback is not None:
+        _PROGRESS["cb"] = callback
+
+
+def _progress(stage: str, done: int, total: int) -> None:
+    callback = _PROGRESS.get("cb")
+    if callback is not None:
+        callback(stage, done, total)
+
+
+receive = task(night.receive, name="receive exports", cache_policy=NONE, persist_result=False)
+assemble = task(night.assemble, name="assemble lots", cache_policy=NONE, persist_result=False)
+evaluate = task(night.evaluate, name="compute results", cache_policy=NONE, persist_result=False)
+load_charts = task(night.load_charts, name="read control charts", cache_policy=NONE, persist_result=False)
+decide = task(night.decide, name="trend and disposition", cache_policy=NONE, persist_result=False)
+publish = task(night.publish, name="reports, certificates, store, log", cache_policy=NONE, persist_result=False)
+close = task(night.close, name="archive and LIMS results", cache_policy=NONE, persist_result=False)
+
+
+def run_stages(ws: Workspace, store: Store, signer: night.CertificateSigner, *, orchestrated: bool = True) -> NightSummary:
+    """The night's stages in order, as Prefect tasks (default) or as plain function calls."""
+    step = {name: (getattr(globals()[name], "fn") if not orchestrated else globals()[name])
+            for name in ("receive", "assemble", "evaluate", "load_charts", "decide", "publish", "close")}
+    catalog, layouts = night.open_catalog_and_layouts()
+    night_id = store.start_night(night.__version__)
+    intake = step["receive"](ws, store, layouts, night_id, _progress)
+    assembly = step["assemble"](intake, catalog)
+    evaluations, _plates = step["evaluate"](assembly, catalog)
+    charts = step["load_charts"](store, catalog, evaluations)
+    decisions = step["decide"](evaluations, catalog, charts)
+    outcomes = step["publish"](ws, store, catalog, decisions, night_id, charts, signer, _progress)
+    return step["close"](ws, store, intake, outcomes, assembly.notes)
+
+
+@flow(name="lotgate-night", log_prints=False, persist_result=False)
+def nightly(workspace: str) -> NightSummary:
+    """One night: every export in ``workspace/inbox`` to decisions, documents and records."""
+    ws, store, signer = night.open_night(Path(workspace))
+    return run_stages(ws, store, signer, orchestrated=True)
+
+
+def workspace_path(value: str | Path) -> Path:
+    return Path(value).expanduser()

@@ -1,0 +1,178 @@
+"""Trend and disposition of a night's lots, in order (pure functions).
+
+For every trended attribute the chart holds released lots only. Below the baseline count the
+trend is "not yet established" and raises nothing; when the count is reached, limits are frozen
+from the first ``baseline_n`` released lots (centre = mean, σ̂ = MR̄/d₂) and stay frozen until an
+explicit, audited re-baseline. A signal completing at the current lot holds it as out of trend.
+Lots are judged one after another, so a lot released earlier in the night is history for the
+next one.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+from dataclasses import dataclass, field
+from typing import Any
+
+from pipeline import trend
+from pipeline.lots import LotEvaluation
+from pipeline.model import PASS, RELEASED, Decision, TrendFinding
+from pipeline.specs import Attribute, Specification
+from pipeline.verdicts import disposition
+
+RULE_NAMES = {
+    1: "one point beyond 3σ",
+    2: "nine points in a row on one side of the centre",
+    3: "six points in a row steadily rising or falling",
+    4: "fourteen points in a row alternating up and down",
+    5: "two of three points beyond 2σ on one side",
+    6: "four of five points beyond 1σ on one side",
+    7: "fifteen points in a row within 1σ",
+    8: "eight points in a row beyond 1σ on either side",
+}
+CHART_TAIL = 30  # points kept for evaluation (≥ 15, the longest rule) and for the plotted chart
+
+
+@dataclass(frozen=True)
+class FrozenLimits:
+    version: int
+    center: float
+    sigma: float
+    mr_bar: float
+    baseline_lots: tuple[str, ...]
+
+
+@dataclass
+class Chart:
+    """A product/attribute chart as the night sees it: limits and the recent released lots."""
+
+    product_code: str
+    attribute: str
+    limits: FrozenLimits | None
+    lots: list[str] = field(default_factory=list)
+    values: list[float] = field(default_factory=list)
+    total: int = 0  # released lots on the chart, all time
+    newly_frozen: FrozenLimits | None = None
+
+    def snapshot(self) -> dict[str, Any]:
+        return {"lots": list(self.lots[-CHART_TAIL:]), "values": list(self.values[-CHART_TAIL:]),
+                "center": self.limits.center if self.limits else None,
+                "sigma": self.limits.sigma if self.limits else None,
+                "limits_version": self.limits.version if self.limits else None}
+
+
+@dataclass(frozen=True)
+class LotDecision:
+    evaluation: LotEvaluation
+    decision: Decision
+    trend: tuple[TrendFinding, ...]
+    chart_values: dict[str, float]  # released: the values added to the charts
+    charts: tuple[dict[str, Any], ...]  # chart pictures for the report of an out-of-trend lot
+
+
+def _maybe_freeze(chart: Chart, attribute: Attribute) -> None:
+    if chart.limits is not None or chart.total < attribute.baseline_n or len(chart.values) < attribute.baseline_n:
+        return
+    base_values = chart.values[: attribute.baseline_n]
+    limits = trend.imr_limits(base_values, min_baseline=attribute.baseline_n)
+    chart.limits = FrozenLimits(1, limits.center, limits.sigma, limits.mr_bar,
+                                tuple(chart.lots[: attribute.baseline_n]))
+    chart.newly_frozen = chart.limits
+
+
+def _judge_point(chart: Chart, attribute: Attribute, lot_id: str, value: float, digits: int) -> TrendFinding:
+    _maybe_freeze(chart, attribute)
+    if chart.limits is None:
+        return TrendFinding(attribute.code, "not yet established", baseline_n=attribute.baseline_n,
+                            signals=(), lots_involved=())
+    limits = chart.limits
+    tail_lots = chart.lots[-CHART_TAIL:]
+    tail_values = chart.values[-CHART_TAIL:]
+    state = trend.ChartState.from_history(
+        tail_values, trend.ControlLimits(center=limits.center, sigma=limits.sigma, mr_bar=limits.mr_bar,
+                                         mr_ucl=trend.D4_N2 * limits.mr_bar, ucl=limits.center + 3 * limits.sigma,
+                                         lcl=limits.center - 3 * limits.sigma, n=len(limits.baseline_lots)))
+    _, signals = state.push(value, attribute.trend_rules)
+    sequence = [*tail_lots, lot_id]
+    reasons, involved = [], []
+    fmt = f"{{:.{digits + 1}f}}"
+    for signal in signals:
+        lots = sequence[signal.first_index: signal.index + 1]
+        involved.extend(lots)
+        span = lots[0] if len(lots) == 1 else f"{lots[0]} … {lots[-1]} ({len(lots)} lots)"
+        reasons.append(
+            f"{attribute.title}: Nelson rule {signal.rule} ({RULE_NAMES[signal.rule]}) at lot {lot_id}, "
+            f"value {fmt.format(value)} {attribute.unit}; lots {span}; chart centre {fmt.format(limits.center)}, "
+            f"σ {fmt.format(limits.sigma)}, 3σ limits {fmt.format(limits.center - 3 * limits.sigma)}–"
+            f"{fmt.format(limits.center + 3 * limits.sigma)} (limits v{limits.version})")
+    status = "out of trend" if signals else "in trend"
+    return TrendFinding(attribute.code, status, limits.center, limits.sigma, limits.version,
+                        len(limits.baseline_lots), tuple(reasons), tuple(dict.fromkeys(involved)))
+
+
+def fingerprint(evaluation: LotEvaluation, spec: Specification, method_sha: dict[str, str], code_version: str) -> str:
+    """SHA-256 over what decides a lot: its input files, specification, methods and code version."""
+    payload = {"lot": evaluation.lot_id, "files": sorted(evaluation.input_files.items()),
+               "spec": spec.document.sha256, "methods": sorted(method_sha.items()), "code": code_version}
+    return hashlib.sha256(json.dumps(payload, sort_keys=True).encode()).hexdigest()
+
+
+def decide_night(evaluations: list[LotEvaluation], specifications: dict[str, Specification],
+                 methods: dict[str, Any], charts: dict[tuple[str, str], Chart],
+                 code_version: str) -> list[LotDecision]:
+    """Trend and disposition for each lot, in the given order; ``charts`` advance as lots release."""
+    out = []
+    for evaluation in evaluations:
+        spec = specifications[evaluation.product_code]
+        used_methods = {m: methods[m] for m in (spec.activity_method, spec.protein_method) if m in methods}
+        findings: list[TrendFinding] = []
+        pending: dict[str, float] = {}
+        for attribute in spec.attributes:
+            if not attribute.trend:
+                continue
+            verdict = evaluation.verdict(attribute.code)
+            value = verdict.value
+            chart = charts.setdefault((spec.product_code, attribute.code),
+                                      Chart(spec.product_code, attribute.code, None))
+            if verdict.verdict != PASS and not (verdict.verdict == "reported" and isinstance(value, float)):
+                findings.append(TrendFinding(attribute.code, "not evaluated", signals=()))
+                continue
+            if not isinstance(value, float):
+                findings.append(TrendFinding(attribute.code, "not evaluated", signals=()))
+                continue
+            findings.append(_judge_point(chart, attribute, evaluation.lot_id, value, attribute.digits))
+            pending[attribute.code] = value
+        state, categories, reasons = disposition(evaluation.verdicts, findings, evaluation.incomplete)
+        method_sha = {m.method_id: m.document.sha256 for m in used_methods.values()}
+        decision = Decision(
+            lot_id=evaluation.lot_id, product=spec.product_code, disposition=state,
+            hold_categories=categories, reasons=reasons, spec_version=spec.document.version,
+            spec_sha256=spec.document.sha256,
+            method_versions={m.method_id: m.document.version for m in used_methods.values()},
+            method_sha256=method_sha, input_files=dict(sorted(evaluation.input_files.items())),
+            code_version=code_version, fingerprint=fingerprint(evaluation, spec, method_sha, code_version))
+        chart_pictures = []
+        for finding in findings:
+            if finding.status == "out of trend":
+                chart = charts[(spec.product_code, finding.attribute)]
+                attribute = spec.attribute(finding.attribute)
+                picture = chart.snapshot()
+                picture["lots"].append(evaluation.lot_id)
+                picture["values"].append(pending[finding.attribute])
+                picture.update(attribute=attribute.code, title=attribute.title, unit=attribute.unit,
+                               lsl=attribute.minimum, usl=attribute.maximum,
+                               dispositions=["released"] * (len(picture["lots"]) - 1) + [decision.label],
+                               signal_indices=[len(picture["lots"]) - 1],
+                               signal_labels=[f"rule {r.split('Nelson rule ')[1].split(' ')[0]}" for r in finding.signals])
+                chart_pictures.append(picture)
+        released = state == RELEASED
+        if released:
+            for code, value in pending.items():
+                chart = charts[(spec.product_code, code)]
+                chart.lots.append(evaluation.lot_id)
+                chart.values.append(value)
+                chart.total += 1
+        out.append(LotDecision(evaluation, decision, tuple(findings), pending if released else {},
+                               tuple(chart_pictures)))
+    return out

@@ -1,0 +1,220 @@
+"""From plate results and LIMS entries to each lot's numbers and verdicts (pure functions).
+
+specific activity [U/mg] = activity [U/mL] / protein [mg/mL],
+relative SE combined in quadrature: (se/x)² = (se_A/A)² + (se_P/P)²  (DOMAIN.md §3).
+Kinetic constants: v₀ against [S] in U/mL of lot, all lots of a night in one batched fit; Vmax
+is then expressed per mg protein, kcat and kcat/Km from the product's molecular weight.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+import math
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+
+from pipeline import kinetics
+from pipeline.errors import CalculationError
+from pipeline.model import REPORTED, AttributeVerdict, Measurement, _clean
+from pipeline.plates import ActivityPlateResult, KineticSeries, ProteinPlateResult
+from pipeline.specs import KineticMethod, Specification
+from pipeline.verdicts import judge_lims, judge_measurement
+
+
+@dataclass(frozen=True)
+class LimsEntry:
+    result: str
+    unit: str | None
+    file_name: str
+
+
+@dataclass(frozen=True)
+class LotInputs:
+    """Everything the night knows about one registered lot."""
+
+    lot_id: str
+    product_code: str
+    manufactured_on: str
+    assay_date: str
+    activity_plate: ActivityPlateResult | None
+    protein_plate: ProteinPlateResult | None
+    lims: dict[str, LimsEntry]
+    input_files: dict[str, str]
+    problems: tuple[str, ...] = ()  # reasons the lot's data are incomplete (e.g. quarantined file)
+
+
+@dataclass(frozen=True)
+class LotEvaluation:
+    lot_id: str
+    product_code: str
+    manufactured_on: str
+    assay_date: str
+    measurements: dict[str, Measurement]
+    verdicts: tuple[AttributeVerdict, ...]
+    incomplete: tuple[str, ...]
+    kinetics: dict[str, Any] | None
+    plates: tuple[dict[str, Any], ...]
+    input_files: dict[str, str]
+    report: dict[str, Any] = field(default_factory=dict)
+
+    def verdict(self, code: str) -> AttributeVerdict:
+        return next(v for v in self.verdicts if v.code == code)
+
+
+def _ratio(name: str, unit: str, top: Measurement, bottom: Measurement) -> Measurement:
+    if not top.valid or not bottom.valid:
+        reasons = tuple(dict.fromkeys((*(() if top.valid else top.reasons), *(() if bottom.valid else bottom.reasons))))
+        return Measurement(name, unit, None, valid=False, reasons=reasons)
+    if top.value is None or bottom.value is None or bottom.value == 0:
+        return Measurement(name, unit, None, valid=False, reasons=(*top.reasons, *bottom.reasons) or ("no value",))
+    value = top.value / bottom.value
+    rel = math.hypot(top.relative_se or 0.0, bottom.relative_se or 0.0)
+    return Measurement(name, unit, value, se=abs(value) * rel, n=min(top.n, bottom.n))
+
+
+def _fit_batch(series: dict[str, KineticSeries]) -> dict[str, kinetics.MichaelisMentenFit | str]:
+    """One vectorised Michaelis–Menten solve over every lot's substrate series."""
+    usable = {lot: s for lot, s in series.items() if s.valid and len(s.substrate_mm) >= 3}
+    out: dict[str, kinetics.MichaelisMentenFit | str] = {}
+    if not usable:
+        return out
+    lots = sorted(usable)
+    width = max(len(usable[lot].substrate_mm) for lot in lots)
+    s = np.ones((len(lots), width))
+    v = np.zeros((len(lots), width))
+    mask = np.zeros((len(lots), width), dtype=bool)
+    for i, lot in enumerate(lots):
+        n = len(usable[lot].substrate_mm)
+        s[i, :n] = usable[lot].substrate_mm
+        v[i, :n] = usable[lot].rate_u_per_ml
+        mask[i, :n] = True
+    batch = kinetics.fit_michaelis_menten_batch(s, v, mask=mask)
+    for i, lot in enumerate(lots):
+        try:
+            out[lot] = batch.fit(i)
+        except CalculationError as exc:
+            out[lot] = str(exc)
+    return out
+
+
+def _kinetic_measurements(lot: str, series: KineticSeries | None, fit: kinetics.MichaelisMentenFit | str | None,
+                          protein: Measurement, method: KineticMethod | None,
+                          spec: Specification) -> tuple[dict[str, Measurement], dict[str, Any] | None]:
+    names = {"km": "mM", "vmax": "U/mg", "kcat": "1/s", "kcat_over_km": "1/(M·s)"}
+    if series is None or method is None:
+        return {k: Measurement(k, u, None, valid=False, reasons=("no kinetic data",)) for k, u in names.items()}, None
+    if not series.valid:
+        return {k: Measurement(k, u, None, valid=False, reasons=series.reasons) for k, u in names.items()}, {
+            "model": None, "fit": None, "flagged": False, "reason": "; ".join(series.reasons),
+            "points": {"substrate_mm": list(series.substrate_mm), "rate_u_per_ml": list(series.rate_u_per_ml)},
+            "excluded": list(series.excluded), "km_quality": None}
+    if not isinstance(fit, kinetics.MichaelisMentenFit):
+        reason = f"the Michaelis–Menten fit failed: {fit}"
+        return {k: Measurement(k, u, None, valid=False, reasons=(reason,)) for k, u in names.items()}, None
+    choice = kinetics.choose_kinetic_model(series.substrate_mm, series.rate_u_per_ml, alpha=method.model_selection_alpha)
+    model = choice.model
+    vmax, vmax_se, km, km_se, cov = fit.vmax, fit.vmax_se, fit.km, fit.km_se, fit.cov_vmax_km
+    fit_dict = fit.to_dict()
+    if model != kinetics.MICHAELIS_MENTEN and choice.substrate_inhibition is not None:
+        si = choice.substrate_inhibition
+        vmax, vmax_se, km, km_se, cov = si.vmax, si.vmax_se, si.km, si.km_se, 0.0
+        fit_dict = si.to_dict()
+    quality = kinetics.km_determination(_KmView(km, km_se, fit.converged), series.substrate_mm, method.km_max_relative_se)
+    notes = [choice.reason] if choice.flagged else []
+    detail = {"model": model, "fit": fit_dict, "flagged": choice.flagged, "reason": choice.reason,
+              "f_statistic": choice.f_statistic, "p_value": choice.p_value,
+              "points": {"substrate_mm": list(series.substrate_mm), "rate_u_per_ml": list(series.rate_u_per_ml)},
+              "excluded": list(series.excluded), "km_quality": quality.to_dict()}
+    t = float(fit.km_ci95[1] - fit.km) / fit.km_se if fit.km_se and math.isfinite(fit.km_se) and fit.km_se > 0 else None
+    out: dict[str, Measurement] = {}
+    if quality.well_determined:
+        out["km"] = Measurement("km", "mM", km, se=km_se, ci95=(km - t * km_se, km + t * km_se) if t else None,
+                                n=fit.n, reasons=tuple(notes))
+    else:
+        out["km"] = Measurement("km", "mM", None, reasons=(f"Km poorly determined: {quality.reason}",))
+    if not protein.valid or protein.value is None:
+        reason = ("Vmax per mg needs the protein result, which is not available",)
+        for k in ("vmax", "kcat", "kcat_over_km"):
+            out[k] = Measurement(k, names[k], None, valid=False, reasons=reason)
+        return out, detail
+    p, rel_p = protein.value, protein.relative_se or 0.0
+    vmax_mg = vmax / p
+    vmax_mg_se = abs(vmax_mg) * math.hypot(vmax_se / vmax if vmax else 0.0, rel_p)
+    out["vmax"] = Measurement("vmax", "U/mg", vmax_mg, se=vmax_mg_se,
+                              ci95=(vmax_mg - t * vmax_mg_se, vmax_mg + t * vmax_mg_se) if t else None, n=fit.n)
+    turn = kinetics.turnover(vmax_mg, vmax_mg_se, km, km_se, spec.molecular_weight_g_per_mol,
+                             cov_vmax_km=cov / p)
+    out["kcat"] = Measurement("kcat", "1/s", turn.kcat_per_s, se=turn.kcat_se_per_s, n=fit.n)
+    if quality.well_determined:
+        out["kcat_over_km"] = Measurement("kcat_over_km", "1/(M·s)", turn.kcat_over_km_per_m_per_s,
+                                          se=turn.kcat_over_km_se_per_m_per_s, n=fit.n)
+    else:
+        out["kcat_over_km"] = Measurement("kcat_over_km", "1/(M·s)", None, reasons=("Km poorly determined",))
+    return out, detail
+
+
+@dataclass(frozen=True)
+class _KmView:
+    km: float
+    km_se: float
+    converged: bool
+
+
+def evaluate_lots(lots: list[LotInputs], specifications: dict[str, Specification],
+                  methods: dict[str, Any]) -> list[LotEvaluation]:
+    """Numbers and verdicts of every lot of the night (trend comes after, in pipeline.oot)."""
+    series = {lot.lot_id: lot.activity_plate.kinetics.get(lot.lot_id) for lot in lots if lot.activity_plate}
+    fits = _fit_batch({k: v for k, v in series.items() if v is not None})
+    evaluations = []
+    for lot in lots:
+        spec = specifications[lot.product_code]
+        method = methods.get(spec.activity_method)
+        plate = lot.activity_plate
+        no_plate = (f"no activity plate for lot {lot.lot_id} arrived tonight",)
+        activity = (plate.activity.get(lot.lot_id) if plate else None) or Measurement(
+            "activity", "U/mL", None, valid=True, reasons=no_plate)
+        protein = (lot.protein_plate.protein.get(lot.lot_id) if lot.protein_plate else None) or Measurement(
+            "protein", "mg/mL", None, valid=True, reasons=(f"no protein plate for lot {lot.lot_id} arrived tonight",))
+        specific = _ratio("specific_activity", "U/mg", activity, protein)
+        kinetic_values, kinetic_detail = _kinetic_measurements(
+            lot.lot_id, series.get(lot.lot_id), fits.get(lot.lot_id), protein, method, spec)
+        measurements = {"activity": activity, "protein": protein, "specific_activity": specific, **kinetic_values}
+        incomplete = list(lot.problems)
+        if dt.date.fromisoformat(lot.assay_date) < spec.document.effective_from:
+            incomplete.append(f"specification {spec.product_code} v{spec.document.version} is effective from "
+                              f"{spec.document.effective_from}; the lot was assayed on {lot.assay_date}, before it was in force")
+        verdicts = []
+        for attribute in spec.attributes:
+            if attribute.source == "lims":
+                entry = lot.lims.get(attribute.test_code or "")
+                verdicts.append(judge_lims(attribute, entry.result if entry else None, entry.unit if entry else None))
+                continue
+            measurement = measurements.get(attribute.source)
+            method_label = (f"{spec.activity_method}" if attribute.source != "protein" else spec.protein_method)
+            if measurement is not None and measurement.value is None and measurement.valid and plate is None \
+                    and attribute.source != "protein":
+                measurement = None  # the data did not arrive: missing, not invalid
+            if measurement is not None and measurement.value is None and measurement.valid \
+                    and lot.protein_plate is None and attribute.source == "protein":
+                measurement = None
+            verdict = judge_measurement(attribute, measurement, method_label)
+            if not attribute.has_limit and measurement is not None and measurement.valid and measurement.value is None:
+                verdict = AttributeVerdict(attribute.code, attribute.title, attribute.unit, None, "not determined",
+                                           None, attribute.limit_text, REPORTED, measurement.reasons, method_label)
+            verdicts.append(verdict)
+        plates = tuple(p.summary() for p in (plate, lot.protein_plate) if p is not None)
+        report = {
+            "traces": plate.traces.get(lot.lot_id) if plate else None,
+            "protein_curve": ({**lot.protein_plate.curve, "samples": lot.protein_plate.samples.get(lot.lot_id, [])}
+                              if lot.protein_plate and lot.protein_plate.curve else None),
+            "wells": ({w: d for w, d in plate.wells.items() if d.get("lot_id") in (lot.lot_id, None)
+                       or d.get("role") in ("reference", "blank")} if plate else {}),
+        }
+        evaluations.append(LotEvaluation(
+            lot_id=lot.lot_id, product_code=lot.product_code, manufactured_on=lot.manufactured_on,
+            assay_date=lot.assay_date, measurements=measurements, verdicts=tuple(verdicts),
+            incomplete=tuple(incomplete), kinetics=_clean(kinetic_detail) if kinetic_detail else None,
+            plates=plates, input_files=dict(lot.input_files), report=_clean(report)))
+    return evaluations

@@ -1,0 +1,329 @@
+"""System suitability and per-well computation of one plate (pure functions).
+
+An activity plate carries a reference standard, substrate blanks (at the assay substrate and at
+each kinetic level) and lot wells; a protein plate carries a standard curve and lot wells. A
+failed criterion invalidates exactly what it touches — a well, a lot's result, or the whole
+plate — and says why (DOMAIN.md §5). Nothing is dropped without a stated reason.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+import pandas as pd
+
+from pipeline import rates, units
+from pipeline.errors import CalculationError, LotgateError
+from pipeline.model import Measurement, _clean
+from pipeline.specs import KineticMethod, ProteinMethod
+
+try:  # noqa: SIM105
+    from pipeline import protein
+except ImportError:  # pragma: no cover
+    protein = None  # type: ignore[assignment]
+
+SUBSTRATE_MATCH_MM = 1e-6
+
+
+@dataclass(frozen=True)
+class KineticSeries:
+    """A lot's initial rates against substrate, as U/mL of lot (blank-corrected)."""
+
+    substrate_mm: tuple[float, ...]
+    rate_u_per_ml: tuple[float, ...]
+    excluded: tuple[str, ...] = ()
+    valid: bool = True
+    reasons: tuple[str, ...] = ()
+
+
+@dataclass(frozen=True)
+class ActivityPlateResult:
+    plate_id: str
+    method_id: str
+    method_version: str
+    valid: bool
+    reasons: tuple[str, ...]
+    reference_recovery_pct: float | None
+    blank_rate_au_per_min: float | None
+    activity: dict[str, Measurement]
+    kinetics: dict[str, KineticSeries]
+    wells: dict[str, dict[str, Any]]  # well -> rate details, for the report
+    traces: dict[str, dict[str, Any]] = field(default_factory=dict)  # a few progress curves per lot
+
+    def summary(self) -> dict[str, Any]:
+        return _clean({"plate_id": self.plate_id, "method": f"{self.method_id} v{self.method_version}",
+                       "valid": self.valid, "reasons": list(self.reasons),
+                       "reference_recovery_pct": self.reference_recovery_pct,
+                       "blank_rate_au_per_min": self.blank_rate_au_per_min})
+
+
+@dataclass(frozen=True)
+class ProteinPlateResult:
+    plate_id: str
+    method_id: str
+    method_version: str
+    valid: bool
+    reasons: tuple[str, ...]
+    protein: dict[str, Measurement]
+    curve: dict[str, Any]
+    samples: dict[str, list[dict[str, Any]]]
+
+    def summary(self) -> dict[str, Any]:
+        return _clean({"plate_id": self.plate_id, "method": f"{self.method_id} v{self.method_version}",
+                       "valid": self.valid, "reasons": list(self.reasons),
+                       "curve_accepted": self.curve.get("accepted"), "curve_r2": self.curve.get("r2")})
+
+
+def _replicates(name: str, unit: str, values: np.ndarray, cv_max_pct: float, what: str) -> Measurement:
+    """Mean, SE = SD/√n and CV of replicate results; CV above the method limit invalidates."""
+    n = int(values.size)
+    if n == 0:
+        return Measurement(name, unit, None, valid=False, reasons=(f"no usable replicate of {what}",))
+    mean = float(values.mean())
+    sd = float(values.std(ddof=1)) if n > 1 else float("nan")
+    se = sd / np.sqrt(n) if n > 1 else None
+    cv = abs(sd / mean) * 100.0 if n > 1 and mean != 0 else float("nan")
+    reasons: list[str] = []
+    valid = True
+    if n < 2:
+        valid = False
+        reasons.append(f"only {n} usable replicate of {what}; at least 2 are needed")
+    elif cv > cv_max_pct:
+        valid = False
+        reasons.append(f"replicate CV {cv:.1f} % of {what} exceeds the method limit {cv_max_pct:.1f} %")
+    return Measurement(name, unit, mean, se=se, n=n, valid=valid, reasons=tuple(reasons),
+                       detail={"replicates": [float(v) for v in values], "cv_pct": cv})
+
+
+def _reads_matrix(plate_id: str, reads: pd.DataFrame, wells: list[str]) -> tuple[np.ndarray, np.ndarray]:
+    """Absorbance (W, T) on the plate's common read times (min); error if a well differs."""
+    grouped = {w: g.sort_values("time_s") for w, g in reads.groupby("well", sort=False)}
+    missing = [w for w in wells if w not in grouped]
+    if missing:
+        raise CalculationError(f"plate {plate_id}: the kinetic read has no data for mapped well(s) {', '.join(missing[:8])}")
+    times = grouped[wells[0]]["time_s"].to_numpy(dtype=float)
+    if times.size < 2 or np.any(np.diff(times) <= 0):
+        raise CalculationError(f"plate {plate_id}: well {wells[0]} read times do not increase")
+    matrix = np.empty((len(wells), times.size))
+    for i, well in enumerate(wells):
+        group = grouped[well]
+        t = group["time_s"].to_numpy(dtype=float)
+        if t.shape != times.shape or np.any(np.abs(t - times) > 0.5):
+            raise CalculationError(f"plate {plate_id}: well {well} was read at other times than well {wells[0]}")
+        matrix[i] = group["absorbance"].to_numpy(dtype=float)
+    return times / 60.0, matrix
+
+
+def _activity_u_per_ml(method: KineticMethod, rate_au_per_min: np.ndarray, dilution: np.ndarray) -> np.ndarray:
+    return np.asarray(units.activity_u_per_ml(
+        rate_au_per_min, method.epsilon_per_mm_per_cm, method.path_length_cm,
+        method.reaction_volume_ml, method.sample_volume_ml, dilution))
+
+
+def _invalid_plate(plate_id: str, method: KineticMethod, lots: list[str], reasons: list[str]) -> ActivityPlateResult:
+    activity = {lot: Measurement("activity", "U/mL", None, valid=False, reasons=tuple(reasons)) for lot in lots}
+    kinetics = {lot: KineticSeries((), (), valid=False, reasons=tuple(reasons)) for lot in lots}
+    return ActivityPlateResult(plate_id, method.method_id, method.document.version, False, tuple(reasons),
+                               None, None, activity, kinetics, {})
+
+
+def evaluate_activity_plate(plate_id: str, plate_map: pd.DataFrame, reads: pd.DataFrame,
+                            method: KineticMethod) -> ActivityPlateResult:
+    """Rates, blanks, reference recovery, lot activities and kinetic series of one plate.
+
+    activity [U/mL] = (ΔA/min − blank ΔA/min) / (ε·l) · V_reaction / V_sample · DF
+    recovery [%] = mean reference activity / assigned activity · 100
+    """
+    used = plate_map[plate_map["role"] != "empty"].reset_index(drop=True)
+    lots = sorted({str(x) for x in used.loc[used["role"].isin(["sample", "kinetic"]), "lot_id"].dropna()})
+    reasons: list[str] = []
+    wavelengths = sorted(set(int(x) for x in reads["wavelength_nm"]))
+    if wavelengths != [int(method.wavelength_nm)]:
+        reasons.append(f"read at {', '.join(map(str, wavelengths))} nm; method {method.method_id} requires {method.wavelength_nm:.0f} nm")
+    temps = reads["temperature_c"].to_numpy(dtype=float)
+    if np.any(np.abs(temps - method.temperature_c) > 1.0):
+        reasons.append(f"read at {temps.min():.1f}–{temps.max():.1f} °C; method requires {method.temperature_c:.1f} ± 1.0 °C")
+    if reasons:
+        return _invalid_plate(plate_id, method, lots, reasons)
+    wells = used["well"].tolist()
+    try:
+        time_min, absorbance = _reads_matrix(plate_id, reads, wells)
+        blank_names = used.loc[used["role"] == "blank", "well"].tolist()
+        window = method.rate_window
+        settings = rates.RateWindowSettings(min_points=window.min_points, min_r2=window.min_r2,
+                                            linear_limit_au=window.linear_limit_au,
+                                            max_slope_change=window.max_slope_change)
+        well_rates = rates.initial_rates(time_min, absorbance, wells, settings, blank_wells=blank_names)
+    except LotgateError as exc:
+        return _invalid_plate(plate_id, method, lots, [str(exc)])
+    by_well = {r.well: r for r in well_rates}
+    used = used.assign(
+        slope=[by_well[w].slope_au_per_min for w in wells],
+        ok=[by_well[w].ok for w in wells],
+    )
+    details = {w: {**by_well[w].to_dict(), "role": role, "lot_id": lot, "substrate_mm": s}
+               for w, role, lot, s in zip(used["well"], used["role"], used["lot_id"], used["substrate_mm"], strict=True)}
+
+    def blanks_at(level: float) -> pd.DataFrame:
+        b = used[(used["role"] == "blank") & (np.abs(used["substrate_mm"].astype(float) - level) < SUBSTRATE_MATCH_MM)]
+        return b
+
+    # Blank at the assay substrate concentration: needed for every activity on the plate.
+    assay_blanks = blanks_at(method.assay_substrate_mm)
+    plate_reasons: list[str] = []
+    blank_rate = None
+    if assay_blanks.empty:
+        plate_reasons.append(f"no substrate blank at the assay concentration {method.assay_substrate_mm:g} mM")
+    elif not assay_blanks["ok"].all():
+        bad = assay_blanks.loc[~assay_blanks["ok"], "well"].tolist()
+        plate_reasons.append(f"substrate blank well(s) {', '.join(bad)} have no usable rate: {by_well[bad[0]].reason}")
+    else:
+        blank_rate = float(assay_blanks["slope"].mean())
+        if blank_rate > method.blank_rate_max_au_per_min:
+            plate_reasons.append(f"substrate blank rate {blank_rate:.4f} AU/min exceeds the limit {method.blank_rate_max_au_per_min:.4f} AU/min")
+
+    recovery = None
+    refs = used[used["role"] == "reference"]
+    if not plate_reasons:
+        if refs.empty:
+            plate_reasons.append(f"no reference standard ({method.reference_lot}) on the plate")
+        else:
+            good = refs[refs["ok"]]
+            if len(good) < 2:
+                plate_reasons.append(f"reference standard: only {len(good)} of {len(refs)} wells have a usable rate")
+            else:
+                ref_activity = _activity_u_per_ml(method, good["slope"].to_numpy() - blank_rate,
+                                                  good["dilution_factor"].to_numpy(dtype=float))
+                recovery = float(ref_activity.mean() / method.reference_assigned_u_per_ml * 100.0)
+                if not method.recovery_min_pct <= recovery <= method.recovery_max_pct:
+                    plate_reasons.append(
+                        f"reference standard {method.reference_lot} recovered {recovery:.1f} % of its assigned "
+                        f"{method.reference_assigned_u_per_ml:g} U/mL; the method allows "
+                        f"{method.recovery_min_pct:g}–{method.recovery_max_pct:g} %")
+    if plate_reasons:
+        result = _invalid_plate(plate_id, method, lots, [f"plate {plate_id}: {r}" for r in plate_reasons])
+        return ActivityPlateResult(plate_id, method.method_id, method.document.version, False, result.reasons,
+                                   recovery, blank_rate, result.activity, result.kinetics, details,
+                                   _traces(used, time_min, absorbance, by_well))
+    assert blank_rate is not None
+
+    activity: dict[str, Measurement] = {}
+    kinetics: dict[str, KineticSeries] = {}
+    for lot in lots:
+        samples = used[(used["role"] == "sample") & (used["lot_id"] == lot)]
+        excluded = [f"well {w}: {by_well[w].reason}" for w in samples.loc[~samples["ok"], "well"]]
+        good = samples[samples["ok"]]
+        values = _activity_u_per_ml(method, good["slope"].to_numpy() - blank_rate, good["dilution_factor"].to_numpy(dtype=float))
+        m = _replicates("activity", "U/mL", values, method.replicate_cv_max_pct, f"lot {lot} activity")
+        activity[lot] = Measurement(m.name, m.unit, m.value, se=m.se, n=m.n, valid=m.valid,
+                                    reasons=(*m.reasons, *excluded) if not m.valid else m.reasons,
+                                    detail={**m.detail, "excluded_wells": excluded,
+                                            "wells": good["well"].tolist()})
+        kinetics[lot] = _kinetic_series(lot, used, method, by_well, blanks_at)
+    return ActivityPlateResult(plate_id, method.method_id, method.document.version, True, (), recovery,
+                               blank_rate, activity, kinetics, details, _traces(used, time_min, absorbance, by_well))
+
+
+def _kinetic_series(lot: str, used: pd.DataFrame, method: KineticMethod, by_well: dict[str, rates.WellRate],
+                    blanks_at: Any) -> KineticSeries:
+    wells = used[(used["role"] == "kinetic") & (used["lot_id"] == lot)]
+    if wells.empty:
+        return KineticSeries((), (), valid=False, reasons=(f"lot {lot}: no kinetic (substrate series) wells on the plate",))
+    s_out: list[float] = []
+    v_out: list[float] = []
+    excluded: list[str] = []
+    for level, group in wells.groupby("substrate_mm", sort=True):
+        blanks = blanks_at(float(level))
+        if blanks.empty or not blanks["ok"].all():
+            excluded.append(f"{float(level):g} mM: no usable substrate blank at this level")
+            continue
+        blank = float(blanks["slope"].mean())
+        if blank > method.blank_rate_max_au_per_min:
+            excluded.append(f"{float(level):g} mM: blank rate {blank:.4f} AU/min above the limit")
+            continue
+        for well, slope, ok, dilution in zip(group["well"], group["slope"], group["ok"], group["dilution_factor"], strict=True):
+            if not ok:
+                excluded.append(f"well {well} ({float(level):g} mM): {by_well[well].reason}")
+                continue
+            s_out.append(float(level))
+            v_out.append(float(_activity_u_per_ml(method, np.array([slope - blank]), np.array([float(dilution)]))[0]))
+    levels = len(set(s_out))
+    if levels < 4:
+        return KineticSeries(tuple(s_out), tuple(v_out), tuple(excluded), False,
+                             (f"lot {lot}: only {levels} substrate levels with usable rates; at least 4 are needed",))
+    return KineticSeries(tuple(s_out), tuple(v_out), tuple(excluded))
+
+
+def _traces(used: pd.DataFrame, time_min: np.ndarray, absorbance: np.ndarray,
+            by_well: dict[str, rates.WellRate]) -> dict[str, dict[str, Any]]:
+    """Up to three progress curves per lot (lowest, middle, highest substrate), for the report."""
+    out: dict[str, dict[str, Any]] = {}
+    index = {w: i for i, w in enumerate(used["well"])}
+    for lot, group in used[used["role"] == "kinetic"].groupby("lot_id"):
+        ordered = group.sort_values("substrate_mm")
+        picks = ordered.iloc[[0, len(ordered) // 2, len(ordered) - 1]]
+        out[str(lot)] = {
+            "time_min": [float(t) for t in time_min],
+            "curves": [{"well": w, "substrate_mm": float(s), "absorbance": [float(a) for a in absorbance[index[w]]],
+                        **{k: v for k, v in by_well[w].to_dict().items() if k in
+                           ("window_start_min", "window_end_min", "slope_au_per_min", "intercept_au", "flag")}}
+                       for w, s in zip(picks["well"], picks["substrate_mm"], strict=True)],
+        }
+    return out
+
+
+def evaluate_protein_plate(plate_id: str, plate_map: pd.DataFrame, reads: pd.DataFrame,
+                           method: ProteinMethod) -> ProteinPlateResult:
+    """Standard curve acceptance, then protein of each lot inside the calibrated range only.
+
+    protein [mg/mL] = in-well concentration from the curve · dilution factor
+    """
+    used = plate_map[plate_map["role"] != "empty"]
+    lots = sorted({str(x) for x in used.loc[used["role"] == "sample", "lot_id"].dropna()})
+    merged = used.merge(reads[["well", "absorbance", "wavelength_nm"]], on="well", how="left")
+    version = method.document.version
+
+    def invalid(reasons: list[str], curve: dict[str, Any] | None = None) -> ProteinPlateResult:
+        protein_by_lot = {lot: Measurement("protein", "mg/mL", None, valid=False, reasons=tuple(reasons)) for lot in lots}
+        return ProteinPlateResult(plate_id, method.method_id, version, False, tuple(reasons), protein_by_lot, curve or {}, {})
+
+    missing = merged.loc[merged["absorbance"].isna(), "well"].tolist()
+    if missing:
+        return invalid([f"plate {plate_id}: the read has no value for mapped well(s) {', '.join(missing[:8])}"])
+    wavelengths = sorted(set(int(x) for x in merged["wavelength_nm"]))
+    if wavelengths != [int(method.wavelength_nm)]:
+        return invalid([f"plate {plate_id}: read at {', '.join(map(str, wavelengths))} nm; method {method.method_id} requires {method.wavelength_nm:.0f} nm"])
+    standards = merged[merged["role"] == "standard"]
+    if standards.empty:
+        return invalid([f"plate {plate_id}: no standard curve wells"])
+    try:
+        curve = protein.fit_standard_curve(
+            standards["nominal_mg_per_ml"].to_numpy(dtype=float), standards["absorbance"].to_numpy(dtype=float),
+            method.curve_model, weighting=method.curve_weighting, min_r2=method.curve_min_r2,
+            bias_limit_pct=method.bias_limit_pct, lowest_bias_limit_pct=method.lowest_bias_limit_pct)
+    except LotgateError as exc:
+        return invalid([f"plate {plate_id}: the standard curve cannot be fitted: {exc}"])
+    curve_dict = {**curve.to_dict(), "standards": [[float(x), float(y)] for x, y in
+                                                   zip(standards["nominal_mg_per_ml"], standards["absorbance"], strict=True)]}
+    if not curve.accepted:
+        return invalid([f"plate {plate_id}: standard curve not accepted: {'; '.join(curve.reasons)}"], curve_dict)
+    result: dict[str, Measurement] = {}
+    samples_out: dict[str, list[dict[str, Any]]] = {}
+    for lot in lots:
+        wells = merged[(merged["role"] == "sample") & (merged["lot_id"] == lot)]
+        readings = []
+        for absorbance_value, dilution in zip(wells["absorbance"], wells["dilution_factor"], strict=True):
+            readings.extend(protein.back_calculate(curve, np.array([float(absorbance_value)]), dilution_factor=float(dilution)))
+        samples_out[lot] = [{"well": w, "absorbance": float(a), "dilution_factor": float(d),
+                             "mg_per_ml": r.concentration_mg_per_ml, "in_range": r.in_range}
+                            for w, a, d, r in zip(wells["well"], wells["absorbance"], wells["dilution_factor"], readings, strict=True)]
+        outside = [r for r in readings if not r.in_range]
+        if outside:
+            result[lot] = Measurement("protein", "mg/mL", None, valid=False, n=len(readings),
+                                      reasons=(f"{len(outside)} of {len(readings)} replicates {outside[0].reason}",))
+            continue
+        values = np.array([r.concentration_mg_per_ml for r in readings], dtype=float)
+        result[lot] = _replicates("protein", "mg/mL", values, method.replicate_cv_max_pct, f"lot {lot} protein")
+    return ProteinPlateResult(plate_id, method.method_id, version, True, (), result, curve_dict, samples_out)

@@ -1,0 +1,129 @@
+"""The workspace on disk (adapter): folders, settings, atomic writes and file moves."""
+
+from __future__ import annotations
+
+import os
+import shutil
+import tempfile
+from dataclasses import dataclass
+from pathlib import Path
+
+import yaml
+
+from pipeline.errors import SpecificationError
+
+DEFAULT_TIME_ZONE = "Europe/Berlin"
+
+
+@dataclass(frozen=True)
+class Workspace:
+    root: Path
+    plant_name: str
+    time_zone: str
+    database_url: str
+    signing_p12: Path | None
+    signing_passphrase_file: Path | None
+    signer_name: str
+
+    @property
+    def inbox(self) -> Path:
+        return self.root / "inbox"
+
+    @property
+    def archive(self) -> Path:
+        return self.root / "archive"
+
+    @property
+    def quarantine(self) -> Path:
+        return self.root / "quarantine"
+
+    @property
+    def certificates(self) -> Path:
+        return self.root / "certificates"
+
+    @property
+    def reports(self) -> Path:
+        return self.root / "reports"
+
+    @property
+    def lims(self) -> Path:
+        return self.root / "lims"
+
+    @property
+    def keys(self) -> Path:
+        return self.root / "keys"
+
+    @property
+    def log(self) -> Path:
+        return self.root / "decisions.jsonl"
+
+    def make_folders(self) -> None:
+        for folder in (self.inbox, self.archive, self.quarantine, self.certificates, self.reports, self.lims):
+            folder.mkdir(parents=True, exist_ok=True)
+
+
+SETTINGS_FILE = "workspace.yaml"
+
+
+def open_workspace(root: Path, *, plant_name: str | None = None, signer_name: str | None = None) -> Workspace:
+    """Read ``DIR/workspace.yaml`` if present; the environment's LOTGATE_DATABASE_URL wins."""
+    root = root.resolve()
+    settings: dict = {}
+    path = root / SETTINGS_FILE
+    if path.exists():
+        try:
+            settings = yaml.safe_load(path.read_text(encoding="utf-8")) or {}
+        except yaml.YAMLError as exc:
+            raise SpecificationError(f"{path}: not valid YAML ({exc})") from exc
+        if not isinstance(settings, dict):
+            raise SpecificationError(f"{path}: expected a mapping of settings")
+    url = os.environ.get("LOTGATE_DATABASE_URL") or settings.get("database_url") or f"sqlite:///{root / 'lotgate.db'}"
+    signing = settings.get("signing") or {}
+    p12 = signing.get("p12")
+    passphrase_file = signing.get("passphrase_file")
+    return Workspace(
+        root=root,
+        plant_name=str(settings.get("plant_name") or plant_name or "Unnamed plant"),
+        time_zone=str(settings.get("time_zone") or DEFAULT_TIME_ZONE),
+        database_url=str(url),
+        signing_p12=Path(p12) if p12 else None,
+        signing_passphrase_file=Path(passphrase_file) if passphrase_file else None,
+        signer_name=str(signing.get("signer_name") or signer_name or "QA reviewer"),
+    )
+
+
+def write_settings(root: Path, settings: dict) -> None:
+    root.mkdir(parents=True, exist_ok=True)
+    atomic_write(root / SETTINGS_FILE, yaml.safe_dump(settings, sort_keys=False).encode("utf-8"))
+
+
+def atomic_write(path: Path, data: bytes) -> None:
+    """Write to a temporary file in the same folder, flush to disk, then rename over ``path``."""
+    path.parent.mkdir(parents=True, exist_ok=True)
+    handle, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
+    try:
+        with os.fdopen(handle, "wb") as out:
+            out.write(data)
+            out.flush()
+            os.fsync(out.fileno())
+        os.replace(tmp, path)
+    except BaseException:
+        Path(tmp).unlink(missing_ok=True)
+        raise
+
+
+def unique_target(folder: Path, name: str) -> Path:
+    """``folder/name``, or ``folder/name.2`` … when that exists (nothing is ever overwritten)."""
+    folder.mkdir(parents=True, exist_ok=True)
+    target = folder / name
+    counter = 2
+    while target.exists():
+        target = folder / f"{name}.{counter}"
+        counter += 1
+    return target
+
+
+def move_into(source: Path, folder: Path) -> Path:
+    target = unique_target(folder, source.name)
+    shutil.move(str(source), str(target))
+    return target
