@@ -17,6 +17,8 @@ from typing import Any
 
 from pipeline.errors import LedgerError
 
+__all__ = ["LedgerError", "append", "chain", "verify_file", "verify_records"]
+
 GENESIS = "0" * 64
 
 

@@ -1,0 +1,73 @@
+"""Reading exports: every problem reported as line, column and expectation; nothing guessed."""
+
+from pathlib import Path
+
+import pytest
+
+from pipeline.ingest import ExportRejected, parse_export
+from pipeline.layouts import load_layouts
+
+LAYOUTS = load_layouts(Path(__file__).resolve().parents[1] / "schemas")
+LIMS_HEADER = "lot_id,test_code,result,unit,tested_on,analyst\n"
+GOOD_LIMS = LIMS_HEADER + "LLC-2611-001,PH,7.05,,2026-11-27,K. L.\nLLC-2611-001,PB,<0.5,mg/kg,2026-11-27,K. L.\n"
+
+
+def reject(name: str, text: str | bytes) -> ExportRejected:
+    data = text.encode() if isinstance(text, str) else text
+    with pytest.raises(ExportRejected) as info:
+        parse_export(name, data, LAYOUTS)
+    return info.value
+
+
+def test_good_export_is_read_as_typed_table():
+    parsed = parse_export("lims-LLC-2611-001.csv", GOOD_LIMS.encode(), LAYOUTS)
+    assert parsed.kind == "lims-results" and len(parsed.frame) == 2
+    assert parsed.frame.loc[1, "result"] == "<0.5" and parsed.frame.loc[0, "unit"] is None
+
+
+def test_decimal_comma_names_line_and_column():
+    error = reject("lims-x.csv", LIMS_HEADER + 'LLC-2611-001,DM,"95,2",%,2026-11-27,K. L.\n')
+    assert str(error.problems[0]).startswith("line 2, column 'result': '95,2' does not have the expected form")
+
+
+def test_every_failure_is_collected_lazily():
+    text = ("plate_id,plate_format,method_id,well,role,lot_id,substrate_mm,dilution_factor,nominal_mg_per_ml\n"
+            "AK-1,96,LIP-PNPB,A01,sample,LLC-1,abc,1,\n"
+            "AK-1,95,LIP-PNPB,Z01,sample,,1,0.5,\n")
+    error = reject("platemap-AK-1.csv", text)
+    found = {(p.line, p.column) for p in error.problems}
+    assert found == {(2, "substrate_mm"), (3, "plate_format"), (3, "well"), (3, "dilution_factor")}
+    assert "expected a dilution factor of 1 or more" in error.report()
+
+
+@pytest.mark.parametrize(("name", "data", "code", "words"), [
+    ("lims-a.csv", b"", "empty", "the file is empty"),
+    ("lims-a.csv", LIMS_HEADER.encode(), "no-rows", "header but no data rows"),
+    ("lims-a.csv", (LIMS_HEADER + "LLC-2611-001,PH,7.0,,2026-11-27").encode(), "field-count", "cut off"),
+    ("lims-a.csv", LIMS_HEADER.replace(",", ";").encode() + b"LLC-2611-001;PH;7,0;;2026-11-27;K\n", "delimiter", "semicolons"),
+    ("lims-a.csv", (LIMS_HEADER + "LLC-2611-001,PH,7.0,,2026-11-27,J. M\xfcller\n").encode("latin-1"), "encoding", "not UTF-8"),
+    ("lims-a.csv", b"\x00\x01\x02binary", "binary", "binary file"),
+    ("unknown-a.csv", GOOD_LIMS.encode(), "unknown-kind", "known export prefix"),
+    ("lims-a.txt", GOOD_LIMS.encode(), "extension", ".csv"),
+    ("lims-a.csv", b"lot_id,test_code,result\nLLC-1,PH,7.0\n", "missing-column", "lacks"),
+    ("lims-a.csv", (LIMS_HEADER + "LLC-2611-001,PH," + "9" * 600 + ",,2026-11-27,K\n").encode(), "line-too-long", "at most 512"),
+])
+def test_bad_files_are_rejected_with_their_reason(name, data, code, words):
+    error = reject(name, data)
+    assert error.problems[0].code == code
+    assert words in error.report()
+
+
+def test_explicit_conversions_are_recorded():
+    data = b"\xef\xbb\xbf" + GOOD_LIMS.replace("\n", "\r\n").encode()
+    parsed = parse_export("lims-LLC-2611-001.csv", data, LAYOUTS)
+    assert len(parsed.frame) == 2
+    assert any("byte-order mark" in c for c in parsed.conversions)
+    assert any("CR LF" in c for c in parsed.conversions)
+
+
+def test_duplicate_lot_in_registry_is_refused():
+    text = ("lot_id,product_code,manufactured_on,assay_date,analyst\n"
+            "LLC-2611-001,LLC-200,2026-11-25,2026-11-27,J. F.\nLLC-2611-001,LLC-200,2026-11-25,2026-11-27,J. F.\n")
+    error = reject("lots-20261127.csv", text)
+    assert any(p.column == "lot_id" and "more than once" in p.message for p in error.problems)
