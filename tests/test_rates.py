@@ -1,0 +1,368 @@
+"""Initial rates: window choice on simulated kinetic traces, properties, plate layouts.
+
+Every trace here is simulated (seeded numpy Generator), with a read every 0.5 min for
+20 min and a read noise of 0.001 AU SD (a typical plate-reader noise level, from memory).
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
+from scipy.special import lambertw
+
+from pipeline.errors import CalculationError, InputError, SpecificationError
+from pipeline.rates import (
+    RateWindowSettings,
+    all_wells,
+    blank_corrected,
+    initial_rates,
+    parse_well,
+    well_index,
+)
+
+TIME_MIN = np.arange(0.0, 20.0 + 1e-9, 0.5)  # 41 reads
+NOISE_AU = 0.001
+REPLICATES = 24
+
+
+def simulated_plate(trace: np.ndarray, seed: int, wells: int = REPLICATES) -> np.ndarray:
+    """Replicate wells of one simulated trace with independent Gaussian read noise."""
+    rng = np.random.default_rng(seed)
+    return trace[None, :] + rng.normal(0.0, NOISE_AU, (wells, trace.size))
+
+
+def names(count: int) -> list[str]:
+    return list(all_wells(96)[:count])
+
+
+def slopes(rates) -> np.ndarray:
+    return np.array([r.slope_au_per_min for r in rates])
+
+
+# --------------------------------------------------------------------------- window choice
+
+
+def test_lag_phase_is_excluded() -> None:
+    # Simulated hysteretic start: rate v·(1 − exp(−t/τ)), so A = A0 + v·(t − τ·(1 − exp(−t/τ))).
+    v, tau = 0.05, 1.0
+    trace = 0.05 + v * (TIME_MIN - tau * (1.0 - np.exp(-TIME_MIN / tau)))
+    rates = initial_rates(TIME_MIN, simulated_plate(trace, seed=11), names(REPLICATES))
+    assert all(r.ok for r in rates)
+    for r in rates:
+        # Reads of the first time constant (rate below 63 % of v) are outside the window.
+        assert 1.0 <= r.window_start_min <= 3.0, r.reason
+        assert r.window_end_min >= 10.0
+        assert "lag" in r.reason
+    np.testing.assert_allclose(slopes(rates), v, rtol=0.02)
+
+
+def test_burst_is_excluded() -> None:
+    # Simulated pre-steady-state burst: B·(1 − exp(−k·t)) on top of the steady rate v.
+    v, burst_au, k = 0.05, 0.2, 2.0
+    trace = 0.05 + v * TIME_MIN + burst_au * (1.0 - np.exp(-k * TIME_MIN))
+    rates = initial_rates(TIME_MIN, simulated_plate(trace, seed=12), names(REPLICATES))
+    assert all(r.ok for r in rates)
+    for r in rates:
+        # At least three time constants (95 % of the burst) are outside the window.
+        assert r.window_start_min >= 3.0 / k, r.reason
+        assert "burst" in r.reason
+    # Without the window choice the first reads would give about v + B·k = 0.45 AU/min.
+    np.testing.assert_allclose(slopes(rates), v, rtol=0.015)
+
+
+def test_reads_at_or_above_the_linear_limit_are_excluded() -> None:
+    # Simulated fast well: 0.15 AU/min, capped at 2.8 AU by the reader.
+    v = 0.15
+    trace = np.minimum(0.05 + v * TIME_MIN, 2.8)
+    plate = simulated_plate(trace, seed=13)
+    rates = initial_rates(TIME_MIN, plate, names(REPLICATES))
+    for r, well in zip(rates, plate, strict=True):
+        assert r.ok
+        first_high = TIME_MIN[np.argmax(well >= 2.0)]
+        assert r.window_start_min == 0.0
+        assert r.window_end_min < first_high
+        assert "saturated" in r.reason
+    np.testing.assert_allclose(slopes(rates), v, rtol=0.01)
+
+
+def test_substrate_depletion_bend_is_excluded() -> None:
+    # Simulated integrated Michaelis–Menten progress curve (Lambert W form),
+    # S(t) = Km·W((S0/Km)·exp((S0 − Vmax·t)/Km)), product P = S0 − S read as A = ε·l·P,
+    # ε405 = 18 mM⁻¹cm⁻¹ for 4-nitrophenolate (common practice), l = 0.6 cm (common practice).
+    # A 40-min read so that the rate falls to under half of its initial value.
+    time_min = np.arange(0.0, 40.0 + 1e-9, 0.5)
+    km_mm = s0_mm = 0.15
+    vmax_mm_per_min = 0.0075
+    epsilon_l = 18.0 * 0.6
+    s_mm = km_mm * np.real(
+        lambertw((s0_mm / km_mm) * np.exp((s0_mm - vmax_mm_per_min * time_min) / km_mm))
+    )
+    trace = 0.05 + epsilon_l * (s0_mm - s_mm)
+    rate_mm = vmax_mm_per_min * s_mm / (km_mm + s_mm)  # instantaneous rate along the curve
+    assert rate_mm[-1] / rate_mm[0] < 0.5
+    v0 = epsilon_l * vmax_mm_per_min * s0_mm / (km_mm + s0_mm)
+    assert v0 == pytest.approx(0.0405)
+    rates = initial_rates(time_min, simulated_plate(trace, seed=14), names(REPLICATES))
+    for r in rates:
+        assert r.ok and r.window_start_min == 0.0
+        end = int(round(r.window_end_min / 0.5))
+        # The window stops before the rate has dropped by 15 %.
+        assert rate_mm[end] / rate_mm[0] > 0.85, r.reason
+    # A window whose slope may change by up to 10 % has a mean slope up to ~5 % below the
+    # initial one; read noise adds a little.
+    np.testing.assert_allclose(slopes(rates), v0, rtol=0.07)
+
+
+def test_trace_without_linear_part_is_flagged_not_fitted() -> None:
+    # Simulated first-order approach to a plateau from the first read: the rate halves every 2.3 min.
+    trace = 0.05 + 1.2 * (1.0 - np.exp(-0.3 * TIME_MIN))
+    rates = initial_rates(TIME_MIN, simulated_plate(trace, seed=15, wells=8), names(8))
+    for r in rates:
+        assert r.flag == "no-linear-window"
+        assert not r.ok
+        assert math.isnan(r.slope_au_per_min) and math.isnan(r.window_start_min)
+        assert r.n_points == 0
+        assert r.reason.startswith(f"well {r.well}: no linear window")
+        assert "R² ≥ 0.98" in r.reason
+
+
+def test_flat_noisy_sample_is_flagged_but_a_blank_well_gets_its_rate() -> None:
+    rng = np.random.default_rng(16)
+    # Simulated: a well without enzyme drifting 0.0002 AU/min (spontaneous hydrolysis).
+    flat = 0.08 + 0.0002 * TIME_MIN + rng.normal(0.0, NOISE_AU, (2, TIME_MIN.size))
+    rates = initial_rates(TIME_MIN, flat, ["A01", "A02"], blank_wells=["A02"])
+    assert rates[0].flag == "no-linear-window"
+    assert rates[1].ok and rates[1].n_points == TIME_MIN.size
+    # OLS slope SE for 41 reads: σ/√Σ(t − t̄)² = 0.001/√1435 ≈ 2.6e-5 AU/min.
+    assert abs(rates[1].slope_au_per_min - 0.0002) < 4 * 2.6e-5
+    assert rates[1].slope_se_au_per_min == pytest.approx(2.6e-5, rel=0.3)
+
+
+def test_exact_linear_trace_uses_every_read() -> None:
+    trace = 0.1 + 0.02 * TIME_MIN
+    (r,) = initial_rates(TIME_MIN, trace[None, :], ["B07"])
+    assert r.ok and r.flag is None
+    assert r.n_points == TIME_MIN.size
+    assert (r.window_start_min, r.window_end_min) == (0.0, 20.0)
+    assert r.slope_au_per_min == pytest.approx(0.02, rel=1e-12)
+    assert r.intercept_au == pytest.approx(0.1, rel=1e-12)
+    assert r.r2 == pytest.approx(1.0)
+    assert r.slope_se_au_per_min < 1e-12
+
+
+@pytest.mark.parametrize(
+    ("trace", "flag", "words"),
+    [
+        (np.r_[0.5, 1.2, 1.9, 2.6, np.full(37, 3.0)], "saturated", "reaches the linear limit"),
+        (np.r_[0.1, 0.12, np.nan, np.linspace(0.16, 0.9, 38)], "non-finite", "non-numeric read"),
+    ],
+    ids=["saturated-after-three-reads", "blank-cell-at-third-read"],
+)
+def test_unusable_wells_are_flagged(trace: np.ndarray, flag: str, words: str) -> None:
+    (r,) = initial_rates(TIME_MIN, trace[None, :], ["C03"])
+    assert r.flag == flag
+    assert words in r.reason and "C03" in r.reason
+    assert math.isnan(r.slope_au_per_min)
+
+
+def test_too_few_reads_on_the_plate() -> None:
+    t = np.array([0.0, 1.0, 2.0, 3.0])
+    (r,) = initial_rates(t, (0.1 + 0.05 * t)[None, :], ["D04"])
+    assert r.flag == "too-few-points"
+    assert "only 4 reads" in r.reason
+
+
+def test_decreasing_trace_nadh_oxidation() -> None:
+    # Simulated NADH consumption at 340 nm: absorbance falls 0.03 AU/min from 1.2 AU.
+    trace = 1.2 - 0.03 * TIME_MIN
+    (r,) = initial_rates(TIME_MIN, simulated_plate(trace, seed=17, wells=1), ["E05"])
+    assert r.ok
+    assert r.slope_au_per_min == pytest.approx(-0.03, rel=0.02)
+
+
+def test_to_dict_is_json_ready() -> None:
+    trace = np.r_[0.5, 1.2, 1.9, 2.6, np.full(37, 3.0)]
+    (r,) = initial_rates(TIME_MIN, trace[None, :], ["C03"])
+    out = r.to_dict()
+    assert out["slope_au_per_min"] is None and out["flag"] == "saturated" and out["ok"] is False
+    assert out["well"] == "C03" and out["n_points"] == 0
+
+
+# --------------------------------------------------------------------------- properties
+
+
+_slope = st.floats(min_value=0.002, max_value=0.08)
+_sign = st.sampled_from([-1.0, 1.0])
+
+
+@settings(max_examples=40, deadline=None)
+@given(slope=_slope, sign=_sign, intercept=st.floats(min_value=0.05, max_value=0.3))
+def test_rate_of_a_perfectly_linear_trace_is_its_slope(
+    slope: float, sign: float, intercept: float
+) -> None:
+    t = TIME_MIN[:21]
+    start = intercept if sign > 0 else intercept + 1.0
+    (r,) = initial_rates(t, (start + sign * slope * t)[None, :], ["A01"])
+    assert r.ok
+    assert r.slope_au_per_min == pytest.approx(sign * slope, rel=1e-9)
+    assert r.n_points == t.size
+
+
+@settings(max_examples=30, deadline=None)
+@given(offset=st.floats(min_value=-0.5, max_value=0.8), seed=st.integers(0, 2**16))
+def test_constant_offset_leaves_the_rate_unchanged(offset: float, seed: int) -> None:
+    trace = 0.6 + 0.03 * TIME_MIN[:25] + np.random.default_rng(seed).normal(0, NOISE_AU, 25)
+    t = TIME_MIN[:25]
+    (base,) = initial_rates(t, trace[None, :], ["A01"])
+    (moved,) = initial_rates(t, (trace + offset)[None, :], ["A01"])
+    assert moved.slope_au_per_min == pytest.approx(base.slope_au_per_min, rel=1e-9)
+    assert (moved.window_start_min, moved.n_points) == (base.window_start_min, base.n_points)
+
+
+@settings(max_examples=30, deadline=None)
+@given(k=st.floats(min_value=0.2, max_value=2.0), seed=st.integers(0, 2**16))
+def test_scaling_absorbance_scales_the_rate(k: float, seed: int) -> None:
+    t = TIME_MIN[:25]
+    trace = 0.05 + 0.03 * t + np.random.default_rng(seed).normal(0, NOISE_AU, 25)
+    (base,) = initial_rates(t, trace[None, :], ["A01"])
+    (scaled,) = initial_rates(t, (k * trace)[None, :], ["A01"])
+    assert scaled.slope_au_per_min == pytest.approx(k * base.slope_au_per_min, rel=1e-9)
+    assert scaled.n_points == base.n_points
+
+
+# --------------------------------------------------------------------------- 384-well plate
+
+
+def test_384_well_plate_gradient() -> None:
+    wells = all_wells(384)
+    assert len(wells) == 384 and wells[0] == "A01" and wells[-1] == "P24"
+    rng = np.random.default_rng(384)
+    # Simulated plate: rate grows along the columns; column 24 is substrate blank.
+    true = np.array([0.002 * (well_index(w, 384) % 24 + 1) for w in wells])
+    true[23::24] = 0.0
+    plate = 0.06 + true[:, None] * TIME_MIN + rng.normal(0.0, NOISE_AU, (384, TIME_MIN.size))
+    blanks = [w for w in wells if w.endswith("24")]
+    rates = initial_rates(TIME_MIN, plate, wells, blank_wells=blanks)
+    assert [r.well for r in rates] == list(wells)
+    got = slopes(rates)
+    assert all(r.ok for r in rates)
+    # Each rate within 4.5 SE of its truth, SE = σ/√Σ(t − t̄)² over the well's window.
+    for r, expected in zip(rates, true, strict=True):
+        t = TIME_MIN[int(r.window_start_min / 0.5) : int(r.window_end_min / 0.5) + 1]
+        assert t.size == r.n_points
+        se = NOISE_AU / np.sqrt(np.sum((t - t.mean()) ** 2))
+        assert abs(r.slope_au_per_min - expected) < 4.5 * se, r.well
+    correction = blank_corrected(got[true > 0], got[23::24])
+    assert correction.n_blanks == 16
+    assert abs(correction.blank_mean_au_per_min) < 3 * correction.blank_se_au_per_min
+
+
+# --------------------------------------------------------------------------- helpers and inputs
+
+
+def test_blank_correction_subtracts_the_mean_blank() -> None:
+    result = blank_corrected([0.050, 0.040, float("nan")], [0.001, 0.003])
+    assert result.blank_mean_au_per_min == pytest.approx(0.002)
+    # SE of the mean of 0.001 and 0.003: sd 0.001414 / √2 = 0.001.
+    assert result.blank_se_au_per_min == pytest.approx(0.001)
+    assert result.corrected_slopes_au_per_min[:2] == pytest.approx((0.048, 0.038))
+    assert math.isnan(result.corrected_slopes_au_per_min[2])
+    assert result.to_dict()["corrected_slopes_au_per_min"][2] is None
+    single = blank_corrected(0.05, [0.001])
+    assert (
+        math.isnan(single.blank_se_au_per_min) and single.to_dict()["blank_se_au_per_min"] is None
+    )
+
+
+@pytest.mark.parametrize(
+    ("blanks", "match"),
+    [([], "at least one blank"), ([0.001, float("nan")], "flagged blank well")],
+)
+def test_blank_correction_needs_blank_rates(blanks: list[float], match: str) -> None:
+    with pytest.raises(CalculationError, match=match):
+        blank_corrected([0.05], blanks)
+
+
+@pytest.mark.parametrize(
+    ("well", "plate_format", "expected"),
+    [
+        ("A01", 96, 0),
+        ("a1", 96, 0),
+        ("H12", 96, 95),
+        ("B03", 96, 14),
+        ("P24", 384, 383),
+        ("I01", 384, 192),
+    ],
+)
+def test_well_index_row_major(well: str, plate_format: int, expected: int) -> None:
+    assert well_index(well, plate_format) == expected
+
+
+@pytest.mark.parametrize(
+    ("well", "plate_format", "match"),
+    [
+        ("I01", 96, "outside a 96-well plate; allowed A01 to H12"),
+        ("A13", 96, "outside a 96-well plate"),
+        ("Q01", 384, "outside a 384-well plate; allowed A01 to P24"),
+        ("A00", 384, "outside"),
+        ("1A", 96, "not a well name"),
+        ("A01", 48, "plate format 48 is not supported"),
+    ],
+)
+def test_wells_outside_the_plate_are_rejected(well: str, plate_format: int, match: str) -> None:
+    with pytest.raises(InputError, match=match):
+        parse_well(well, plate_format)
+
+
+def test_all_wells_96() -> None:
+    wells = all_wells(96)
+    assert len(wells) == 96 and wells[11] == "A12" and wells[12] == "B01"
+    assert parse_well("h12") == (7, 11)
+
+
+def test_settings_from_mapping() -> None:
+    s = RateWindowSettings.from_mapping({"min_points": 6, "min_r2": 0.99})
+    assert (s.min_points, s.min_r2, s.linear_limit_au) == (6, 0.99, 2.0)
+    assert s.to_dict()["max_slope_change"] == 0.10
+
+
+@pytest.mark.parametrize(
+    ("mapping", "match"),
+    [
+        ({"min_point": 5}, r"unknown rate-window setting\(s\) \['min_point'\]"),
+        ({"min_points": 3}, "at least 4"),
+        ({"min_points": 5.5}, "whole number"),
+        ({"min_r2": 1.5}, "min_r2 must be between 0 and 1; received 1.5"),
+        ({"linear_limit_au": -1.0}, "linear_limit_au must be a positive absorbance"),
+        ({"max_slope_change": float("nan")}, "max_slope_change"),
+        ({"min_r2": "high"}, "received 'high'"),
+    ],
+)
+def test_invalid_settings(mapping: dict, match: str) -> None:
+    with pytest.raises(SpecificationError, match=match):
+        RateWindowSettings.from_mapping(mapping)
+
+
+@pytest.mark.parametrize(
+    ("time", "absorbance", "wells", "match"),
+    [
+        (TIME_MIN, np.zeros((2, 40)), ["A01", "A02"], "one column per read time"),
+        (TIME_MIN, np.zeros((2, 41)), ["A01"], "1 well names given for 2 absorbance traces"),
+        (TIME_MIN, np.zeros((2, 41)), ["A01", "A01"], r"repeated: \['A01'\]"),
+        (TIME_MIN[::-1], np.zeros((1, 41)), ["A01"], "strictly increasing"),
+        (np.r_[TIME_MIN[:-1], np.nan], np.zeros((1, 41)), ["A01"], "finite"),
+        (TIME_MIN, [["x"] * 41], ["A01"], "must be numbers"),
+    ],
+)
+def test_invalid_plate_inputs(time, absorbance, wells, match: str) -> None:
+    with pytest.raises(InputError, match=match):
+        initial_rates(time, absorbance, wells)
+
+
+def test_unknown_blank_well() -> None:
+    with pytest.raises(InputError, match=r"blank well\(s\) \['H12'\]"):
+        initial_rates(TIME_MIN, np.zeros((1, 41)), ["A01"], blank_wells=["H12"])
