@@ -25,12 +25,16 @@ NKAT_PER_U: float = 1000.0 / 60.0
 """Nanokatal per enzyme unit: 1 U = 1 µmol/min = 10⁻⁶/60 mol/s = 16.67 nkat."""
 
 
-def _as_result(value: npt.NDArray[np.float64]) -> FloatOrArray:
-    return float(value) if value.ndim == 0 else value
+def as_result(value: npt.NDArray[np.float64]) -> FloatOrArray:
+    """A float for a 0-d result, the array otherwise."""
+    return float(value) if np.ndim(value) == 0 else value
 
 
-def _positive(name: str, value: ArrayLike, unit: str) -> npt.NDArray[np.float64]:
-    """Return ``value`` as a float array, or raise CalculationError unless every entry is > 0."""
+def require_positive(name: str, value: ArrayLike, unit: str) -> npt.NDArray[np.float64]:
+    """Return ``value`` as a float array; raise CalculationError unless every entry is finite and > 0.
+
+    ``unit`` is appended to the parameter's name in the message, e.g. " (cm)".
+    """
     try:
         array = np.asarray(value, dtype=float)
     except (TypeError, ValueError) as exc:
@@ -48,12 +52,12 @@ def _positive(name: str, value: ArrayLike, unit: str) -> npt.NDArray[np.float64]
 
 def u_to_nkat(activity_u: ArrayLike) -> FloatOrArray:
     """Convert enzyme units to nanokatal: nkat = U · 1000/60."""
-    return _as_result(np.asarray(activity_u, dtype=float) * NKAT_PER_U)
+    return as_result(np.asarray(activity_u, dtype=float) * NKAT_PER_U)
 
 
 def nkat_to_u(activity_nkat: ArrayLike) -> FloatOrArray:
     """Convert nanokatal to enzyme units: U = nkat · 60/1000."""
-    return _as_result(np.asarray(activity_nkat, dtype=float) / NKAT_PER_U)
+    return as_result(np.asarray(activity_nkat, dtype=float) / NKAT_PER_U)
 
 
 def rate_mm_per_min(
@@ -65,10 +69,12 @@ def rate_mm_per_min(
 
     rate [mM/min] = (ΔA/min) / (ε [mM⁻¹·cm⁻¹] · l [cm])
     """
-    epsilon = _positive("extinction coefficient ε", epsilon_per_mm_per_cm, " (per mM per cm)")
-    path = _positive("path length", path_length_cm, " (cm)")
+    epsilon = require_positive(
+        "extinction coefficient ε", epsilon_per_mm_per_cm, " (per mM per cm)"
+    )
+    path = require_positive("path length", path_length_cm, " (cm)")
     rate = np.asarray(rate_au_per_min, dtype=float)
-    return _as_result(rate / (epsilon * path))
+    return as_result(rate / (epsilon * path))
 
 
 def activity_u_per_ml(
@@ -87,10 +93,10 @@ def activity_u_per_ml(
     of reaction mixture, V_reaction/V_sample refers it to the sample added, and DF to the
     sample before dilution.
     """
-    reaction = _positive("reaction volume", reaction_volume_ml, " (mL)")
-    sample = _positive("sample volume", sample_volume_ml, " (mL)")
-    dilution = _positive("dilution factor", dilution_factor, "")
+    reaction = require_positive("reaction volume", reaction_volume_ml, " (mL)")
+    sample = require_positive("sample volume", sample_volume_ml, " (mL)")
+    dilution = require_positive("dilution factor", dilution_factor, "")
     per_ml_reaction = np.asarray(
         rate_mm_per_min(rate_au_per_min, epsilon_per_mm_per_cm, path_length_cm), dtype=float
     )
-    return _as_result(per_ml_reaction * reaction / sample * dilution)
+    return as_result(per_ml_reaction * reaction / sample * dilution)
