@@ -14,15 +14,10 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
-from pipeline import rates, units
+from pipeline import protein, rates, units
 from pipeline.errors import CalculationError, LotgateError
 from pipeline.model import Measurement, _clean
 from pipeline.specs import KineticMethod, ProteinMethod
-
-try:  # noqa: SIM105
-    from pipeline import protein
-except ImportError:  # pragma: no cover
-    protein = None  # type: ignore[assignment]
 
 SUBSTRATE_MATCH_MM = 1e-6
 

@@ -89,10 +89,10 @@ def judge_measurement(attribute: Attribute, measurement: Measurement | None, met
                                 reasons=(f"{attribute.title}: no result (the assay data needed for it did not arrive)",))
     if not measurement.valid:
         return AttributeVerdict(**base, value=None, reported=None, se=None, verdict=INVALID,
-                                reasons=tuple(f"{attribute.title}: {r}" for r in measurement.reasons) or (f"{attribute.title}: invalid",))
+                                reasons=measurement.reasons or ("invalid",))
     if measurement.value is None or not math.isfinite(measurement.value):
         return AttributeVerdict(**base, value=None, reported=None, se=None, verdict=INVALID,
-                                reasons=tuple(f"{attribute.title}: {r}" for r in measurement.reasons) or (f"{attribute.title}: no number could be computed",))
+                                reasons=measurement.reasons or ("no number could be computed",))
     verdict, reported, reason = judge_numeric(attribute, measurement.value)
     return AttributeVerdict(**base, value=measurement.value, reported=reported, se=measurement.se,
                             verdict=verdict, reasons=(reason,) if reason else ())
@@ -117,7 +117,7 @@ def judge_lims(attribute: Attribute, result_text: str | None, unit: str | None) 
                                 reasons=(f"{attribute.title} (LIMS test {attribute.test_code}): no result received",))
     if attribute.unit and unit and unit.strip() != attribute.unit:
         return AttributeVerdict(**base, value=None, reported=None, se=None, verdict=INVALID,
-                                reasons=(f"{attribute.title}: the LIMS reports the unit '{unit}', the specification expects '{attribute.unit}'",))
+                                reasons=(f"the LIMS reports the unit '{unit}', the specification expects '{attribute.unit}'",))
     value, qualifier = parse_lims_result(result_text)
     if isinstance(value, str):
         if attribute.expect is None:
@@ -140,17 +140,23 @@ def disposition(verdicts: Iterable[AttributeVerdict], trend: Iterable[TrendFindi
     """
     categories: set[str] = set()
     reasons: list[str] = []
-    for verdict in verdicts:
-        if verdict.verdict == FAIL:
-            categories.add(OUT_OF_SPECIFICATION)
-        elif verdict.verdict == INVALID:
-            categories.add(INVALID_ASSAY)
-        elif verdict.verdict == MISSING:
-            categories.add(INCOMPLETE)
-        reasons.extend(verdict.reasons if verdict.verdict in (FAIL, INVALID, MISSING) else ())
     for reason in extra_incomplete:
         categories.add(INCOMPLETE)
         reasons.append(reason)
+    invalid: dict[str, list[str]] = {}  # one reason, the attributes it invalidates
+    for verdict in verdicts:
+        if verdict.verdict == FAIL:
+            categories.add(OUT_OF_SPECIFICATION)
+            reasons.extend(verdict.reasons)
+        elif verdict.verdict == INVALID:
+            categories.add(INVALID_ASSAY)
+            for reason in verdict.reasons:
+                invalid.setdefault(reason, []).append(verdict.title)
+        elif verdict.verdict == MISSING:
+            categories.add(INCOMPLETE)
+            reasons.extend(verdict.reasons)
+    for reason, titles in invalid.items():
+        reasons.append(f"{', '.join(titles)}: invalid assay: {reason}")
     for finding in trend:
         if finding.status == "out of trend":
             categories.add(OUT_OF_TREND)

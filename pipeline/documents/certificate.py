@@ -1,0 +1,271 @@
+"""The certificate of analysis of a released lot, as PDF bytes (reportlab platypus, A4).
+
+Pure: a dossier and the signer's data in, bytes out; no file is read or written except the
+font files. The digital signature is added afterwards by :mod:`pipeline.signing`; the visible
+block drawn here shows what 21 CFR 11.50 asks a signed record to show: printed name, date
+and time, and the meaning of the signature.
+"""
+
+from __future__ import annotations
+
+import io
+from typing import Any
+
+from reportlab.lib import colors
+from reportlab.lib.pagesizes import A4
+from reportlab.lib.units import mm
+from reportlab.pdfbase.pdfmetrics import stringWidth
+from reportlab.pdfgen.canvas import Canvas
+from reportlab.platypus import BaseDocTemplate, Frame, KeepTogether, PageTemplate, Paragraph, Spacer, Table, TableStyle
+
+from pipeline.documents.text import (
+    HEAD_FILL,
+    HOLD_INK,
+    INK,
+    MUTED,
+    PASS_INK,
+    RULE,
+    canvas_with_footer,
+    caution_markup,
+    clean,
+    draw_paragraph,
+    escape,
+    get,
+    markup,
+    mpara,
+    num,
+    para,
+    short_hash,
+    styles,
+)
+from pipeline.errors import InputError
+
+KINETIC_CODES = ("km", "vmax", "kcat", "kcat_over_km")
+SIGNATURE_KEYS = ("signer_name", "signed_at_local", "signed_at_utc", "meaning", "certificate_fingerprint")
+PAGE_W, PAGE_H = A4
+MARGIN_X = 18 * mm
+CONTENT_W = PAGE_W - 2 * MARGIN_X
+
+
+def _check(dossier: dict[str, Any], signature: dict[str, Any]) -> None:
+    decision = get(dossier, "decision", {})
+    disposition = get(decision, "disposition")
+    lot = clean(get(get(dossier, "lot", {}), "lot_id", "?"), 60)
+    if disposition != "released":
+        raise InputError(f"lot {lot}: a certificate of analysis is issued only for a released lot; "
+                         f"this lot's disposition is {clean(disposition, 60)!r}")
+    if not isinstance(signature, dict):
+        raise InputError(f"lot {lot}: the signature data must be a mapping with {', '.join(SIGNATURE_KEYS)}")
+    missing = [k for k in SIGNATURE_KEYS if not str(signature.get(k) or "").strip()]
+    if missing:
+        raise InputError(f"lot {lot}: the certificate's signature block lacks {', '.join(missing)}; "
+                         f"all of {', '.join(SIGNATURE_KEYS)} are required")
+
+
+def _fit(cell: Any, available: float, style: Any) -> Any:
+    """A plain-text cell stays a (cheap) string while it fits its column, else it wraps as a Paragraph."""
+    if not isinstance(cell, str) or not cell:
+        return cell
+    text = clean(cell)
+    if stringWidth(text, style.fontName, style.fontSize) <= available:
+        return text
+    return Paragraph(escape(text), style)
+
+
+def grid_table(rows: list[list[Any]], widths: list[float], header: bool = True, zebra: bool = False) -> Table:
+    """A ruled table; str cells are data shown literally (a Table never parses them as markup)."""
+    st = styles()
+    body, head = st["cell"], st["head"]
+    fitted = [[_fit(cell, widths[j] - 8, head if header and i == 0 else body) for j, cell in enumerate(row)]
+              for i, row in enumerate(rows)]
+    t = Table(fitted, colWidths=widths, repeatRows=1 if header else 0)
+    cmds: list[tuple[Any, ...]] = [
+        ("FONT", (0, 0), (-1, -1), body.fontName, body.fontSize, body.leading),
+        ("TEXTCOLOR", (0, 0), (-1, -1), body.textColor),
+        ("VALIGN", (0, 0), (-1, -1), "TOP"),
+        ("LEFTPADDING", (0, 0), (-1, -1), 4),
+        ("RIGHTPADDING", (0, 0), (-1, -1), 4),
+        ("TOPPADDING", (0, 0), (-1, -1), 2.5),
+        ("BOTTOMPADDING", (0, 0), (-1, -1), 2.5),
+        ("LINEBELOW", (0, 0), (-1, -1), 0.4, RULE),
+    ]
+    if header:
+        cmds += [("FONT", (0, 0), (-1, 0), head.fontName, head.fontSize, head.leading),
+                 ("TEXTCOLOR", (0, 0), (-1, 0), head.textColor)]
+    if header:
+        cmds += [("BACKGROUND", (0, 0), (-1, 0), HEAD_FILL), ("LINEBELOW", (0, 0), (-1, 0), 0.8, MUTED)]
+    if zebra:
+        cmds += [("ROWBACKGROUNDS", (0, 1), (-1, -1), [colors.white, colors.HexColor("#f7f9fb")])]
+    t.setStyle(TableStyle(cmds))
+    return t
+
+
+def method_label(dossier: dict[str, Any], method_id: Any) -> str:
+    """"LIP-PNPB v1.2" from the method id and the decision's method versions (plain text)."""
+    if method_id is None:
+        return ""
+    version = get(get(get(dossier, "decision", {}), "method_versions", {}), str(method_id))
+    return f"{clean(method_id, 40)} v{clean(version, 20)}" if version is not None else clean(method_id, 40)
+
+
+_VERDICT_WORDS = {"pass": "complies", "reported": "for information", "fail": "DOES NOT COMPLY",
+                  "invalid": "INVALID ASSAY", "missing": "NOT TESTED"}
+
+
+def _result_rows(dossier: dict[str, Any]) -> list[list[Any]]:
+    st = styles()
+    rows: list[list[Any]] = [["Attribute", "Method", "Specification", "Result", "Verdict"]]
+    verdicts = [v for v in get(dossier, "verdicts", []) if isinstance(v, dict)]
+    limited = [v for v in verdicts if str(get(v, "limit_text", "")).strip()]
+    info = [v for v in verdicts if not str(get(v, "limit_text", "")).strip() and get(v, "code") in KINETIC_CODES]
+    for v, is_info in [(v, False) for v in limited] + [(v, True) for v in info]:
+        verdict = str(get(v, "verdict", ""))
+        word = "for information" if is_info else _VERDICT_WORDS.get(verdict, verdict)
+        colour = PASS_INK if verdict == "pass" else (MUTED if is_info or verdict == "reported" else HOLD_INK)
+        result = f"{clean(get(v, 'reported', num(get(v, 'value'))), 60)} {clean(get(v, 'unit', ''), 30)}".strip()
+        rows.append([
+            para(get(v, "title", get(v, "code")), "cellb", 120),
+            para(method_label(dossier, get(v, "method")), "cell", 60),
+            para(get(v, "limit_text", "") if not is_info else "not specified", "cell", 120),
+            para(result, "cell", 90),
+            Paragraph(f'<font color="#{colour.hexval()[2:]}">{escape(word, 40)}</font>', st["cellb"]),
+        ])
+    if len(rows) == 1:
+        rows.append([para("No results in this dossier.", "cell"), "", "", "", ""])
+    return rows
+
+
+def key_value_table(rows: list[tuple[str, Any]], key_w: float, val_w: float, value_style: str = "body") -> Table:
+    st = styles()
+    data = [[Paragraph(escape(k), st["head"]), v if isinstance(v, Paragraph | Table) else para(v, value_style)]
+            for k, v in rows]
+    t = Table(data, colWidths=[key_w, val_w])
+    t.setStyle(TableStyle([("VALIGN", (0, 0), (-1, -1), "TOP"), ("LEFTPADDING", (0, 0), (-1, -1), 0),
+                           ("RIGHTPADDING", (0, 0), (-1, -1), 4), ("TOPPADDING", (0, 0), (-1, -1), 1.5),
+                           ("BOTTOMPADDING", (0, 0), (-1, -1), 1.5)]))
+    return t
+
+
+def _signature_block(signature: dict[str, Any]) -> Table:
+    st = styles()
+    inner = key_value_table([
+        ("Signed by (printed name)", para(signature["signer_name"], "cellb", 120)),
+        ("Date and time", mpara("{local}<br/>{utc}", "cell", local=signature["signed_at_local"],
+                                utc=signature["signed_at_utc"])),
+        ("Meaning of the signature", para(signature["meaning"], "cell", 600)),
+        ("Certificate fingerprint", para(signature["certificate_fingerprint"], "mono", 200)),
+    ], 38 * mm, CONTENT_W - 38 * mm - 16)
+    rows = [[Paragraph("Electronic signature (21 CFR 11.50)", st["h3"])], [inner],
+            [Paragraph("The digital signature embedded in this file (PAdES) carries the signer's certificate; "
+                       "verify it with any PDF signature validator. A printed copy is not a signed record.",
+                       st["note"])]]
+    box = Table(rows, colWidths=[CONTENT_W])
+    box.setStyle(TableStyle([("BOX", (0, 0), (-1, -1), 1.0, INK), ("LEFTPADDING", (0, 0), (-1, -1), 8),
+                             ("RIGHTPADDING", (0, 0), (-1, -1), 8), ("TOPPADDING", (0, 0), (-1, -1), 3),
+                             ("BOTTOMPADDING", (0, 0), (-1, -1), 4),
+                             ("BACKGROUND", (0, 0), (-1, -1), colors.HexColor("#fbfbf8"))]))
+    return box
+
+
+def _caution_box(dossier: dict[str, Any]) -> Table:
+    st = styles()
+    box = Table([[Paragraph(caution_markup(get(dossier, "caution", "")), st["caution"])]], colWidths=[CONTENT_W])
+    box.setStyle(TableStyle([("BOX", (0, 0), (-1, -1), 0.6, MUTED), ("LEFTPADDING", (0, 0), (-1, -1), 6),
+                             ("RIGHTPADDING", (0, 0), (-1, -1), 6), ("TOPPADDING", (0, 0), (-1, -1), 4),
+                             ("BOTTOMPADDING", (0, 0), (-1, -1), 5)]))
+    return box
+
+
+def _footer(dossier: dict[str, Any], document: str) -> Any:
+    lot = get(dossier, "lot", {})
+    plant = get(dossier, "plant", {})
+    revision = get(get(dossier, "decision", {}), "revision", 0)
+
+    def draw(canvas: Canvas, page: int, total: int) -> None:
+        st = styles()
+        canvas.saveState()
+        canvas.setStrokeColor(RULE)
+        canvas.setLineWidth(0.5)
+        canvas.line(MARGIN_X, 16 * mm, PAGE_W - MARGIN_X, 16 * mm)
+        left = Paragraph(markup("{plant} · {doc} · lot {lot}", plant=get(plant, "name", ""), doc=document,
+                                lot=get(lot, "lot_id", "")), st["footer"])
+        right = Paragraph(markup("revision {rev} · page {p} of {t}", rev=revision, p=page, t=total),
+                          st["footer"].clone("footer_r", alignment=2))
+        draw_paragraph(canvas, left, MARGIN_X, 14.5 * mm, CONTENT_W * 0.72)
+        draw_paragraph(canvas, right, MARGIN_X + CONTENT_W * 0.72, 14.5 * mm, CONTENT_W * 0.28)
+        canvas.restoreState()
+
+    return draw
+
+
+def doc_template(buffer: io.BytesIO, dossier: dict[str, Any], title: str, bottom: float) -> BaseDocTemplate:
+    lot = get(dossier, "lot", {})
+    doc = BaseDocTemplate(buffer, pagesize=A4, invariant=1, leftMargin=MARGIN_X, rightMargin=MARGIN_X,
+                          topMargin=14 * mm, bottomMargin=bottom,
+                          title=f"{title}: lot {clean(get(lot, 'lot_id', ''), 60)}",
+                          author=clean(get(get(dossier, "plant", {}), "name", ""), 120),
+                          subject=clean(get(lot, "product_name", ""), 120), creator="lotgate")
+    frame = Frame(MARGIN_X, bottom, CONTENT_W, PAGE_H - 14 * mm - bottom, id="body",
+                  leftPadding=0, rightPadding=0, topPadding=0, bottomPadding=0)
+    doc.addPageTemplates([PageTemplate(id="page", frames=[frame])])
+    return doc
+
+
+def header_flowables(dossier: dict[str, Any], title: str) -> list[Any]:
+    st = styles()
+    lot = get(dossier, "lot", {})
+    return [
+        para(get(get(dossier, "plant", {}), "name", ""), "plant", 160),
+        Paragraph(escape(title), st["title"]),
+        mpara("{name} <font color='#5b6773'>({code})</font>", "subtitle", name=get(lot, "product_name", ""),
+              code=get(lot, "product_code", "")),
+        Spacer(1, 6),
+    ]
+
+
+def render_certificate(dossier: dict[str, Any], signature: dict[str, Any]) -> bytes:
+    """The certificate of analysis of a released lot, with its visible signature block.
+
+    Raises InputError when the lot is not released or the signature data are incomplete.
+    """
+    _check(dossier, signature)
+    st = styles()
+    lot = get(dossier, "lot", {})
+    decision = get(dossier, "decision", {})
+    act = get(get(dossier, "methods", {}), "activity", {})
+    prot = get(get(dossier, "methods", {}), "protein", {})
+    story: list[Any] = header_flowables(dossier, "Certificate of analysis")
+    story.append(key_value_table([
+        ("Lot", para(get(lot, "lot_id"), "cellb", 80)),
+        ("Product", mpara("{n} ({c})", "cell", n=get(lot, "product_name"), c=get(lot, "product_code"))),
+        ("Manufactured on", para(get(lot, "manufactured_on"), "cell", 60)),
+        ("Assay date", para(get(lot, "assay_date"), "cell", 60)),
+        ("Disposition", mpara("<b>{d}</b>, decided {t}", "cell", d=get(decision, "label", "released"),
+                              t=get(decision, "decided_at_local"))),
+    ], 34 * mm, CONTENT_W - 34 * mm))
+    story += [Paragraph("Results", st["h2"]),
+              grid_table(_result_rows(dossier), [44 * mm, 33 * mm, 32 * mm, 37 * mm, CONTENT_W - 146 * mm], zebra=True),
+              Spacer(1, 2),
+              Paragraph("Results are rounded to the digits of the specification limit before comparison. "
+                        "Kinetic constants are given for information and are not release criteria.", st["note"])]
+    sha = get(decision, "spec_sha256", "")
+    story += [Paragraph("Specification", st["h2"]), key_value_table([
+        ("Version", mpara("{code} version {v}, effective from {eff}, approved by {who}", "cell",
+                          code=get(lot, "product_code"), v=get(decision, "spec_version"),
+                          eff=get(decision, "spec_effective_from"), who=get(decision, "spec_approved_by"))),
+        ("SHA-256", mpara("{short}<br/><font size=6>{full}</font>", "mono", short=short_hash(sha), full=sha)),
+    ], 34 * mm, CONTENT_W - 34 * mm)]
+    story += [Paragraph("Assay conditions", st["h2"]), key_value_table([
+        ("Activity method", mpara("{t} ({m})", "cell", t=get(act, "title"),
+                                  m=method_label(dossier, get(act, "method_id")))),
+        ("Conditions", mpara("{temp} °C, pH {ph}, read at {wl} nm", "cell", temp=num(get(act, "temperature_c"), 3),
+                             ph=num(get(act, "ph"), 3), wl=num(get(act, "wavelength_nm"), 3))),
+        ("Unit definition", para(get(act, "unit_definition"), "cell")),
+        ("Protein method", mpara("{t} ({m})", "cell", t=get(prot, "title"),
+                                 m=method_label(dossier, get(prot, "method_id")))),
+    ], 34 * mm, CONTENT_W - 34 * mm)]
+    story += [Spacer(1, 10), _caution_box(dossier), Spacer(1, 10), KeepTogether([_signature_block(signature)])]
+    buffer = io.BytesIO()
+    doc = doc_template(buffer, dossier, "Certificate of analysis", 22 * mm)
+    doc.build(story, canvasmaker=canvas_with_footer(_footer(dossier, "Certificate of analysis")))
+    return buffer.getvalue()
