@@ -201,6 +201,17 @@ def main(argv: list[str] | None = None) -> int:
     except LotgateError as exc:
         print(f"lotgate: {exc}", file=sys.stderr)
         return 2
+    except Exception as exc:  # a defect: keep the analyst's console readable, keep the details
+        import tempfile
+        import traceback
+
+        handle, path = tempfile.mkstemp(prefix="lotgate-error-", suffix=".txt")
+        with os.fdopen(handle, "w") as out:
+            traceback.print_exc(file=out)
+        print(f"lotgate: the run could not complete ({exc.__class__.__name__}: {exc}); "
+              f"details for the engineer in {path}. Running the same command again resumes the night.",
+              file=sys.stderr)
+        return 2
     except KeyboardInterrupt:
         print("lotgate: interrupted; run the same command again to finish the night", file=sys.stderr)
         return 130

@@ -228,7 +228,6 @@ def parse_export(file_name: str, data: bytes, layouts: dict[str, ExportLayout]) 
     for column in validated.columns:
         if validated[column].dtype == object:
             validated[column] = validated[column].map(lambda v: v if v is None else str(v))
-    validated.attrs["source_lines"] = source_lines
     return ParsedExport(
         file_name=file_name, kind=layout.kind, layout_version=layout.version,
         layout_sha256=layout.sha256, sha256=sha256, frame=validated.reset_index(drop=True),

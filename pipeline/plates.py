@@ -94,21 +94,27 @@ def _replicates(name: str, unit: str, values: np.ndarray, cv_max_pct: float, wha
 
 def _reads_matrix(plate_id: str, reads: pd.DataFrame, wells: list[str]) -> tuple[np.ndarray, np.ndarray]:
     """Absorbance (W, T) on the plate's common read times (min); error if a well differs."""
-    grouped = {w: g.sort_values("time_s") for w, g in reads.groupby("well", sort=False)}
-    missing = [w for w in wells if w not in grouped]
+    counts = reads["well"].value_counts()
+    missing = [w for w in wells if w not in counts.index]
     if missing:
         raise CalculationError(f"plate {plate_id}: the kinetic read has no data for mapped well(s) {', '.join(missing[:8])}")
-    times = grouped[wells[0]]["time_s"].to_numpy(dtype=float)
-    if times.size < 2 or np.any(np.diff(times) <= 0):
+    if counts.loc[wells].nunique() != 1:
+        odd = counts.loc[wells].idxmin()
+        raise CalculationError(f"plate {plate_id}: well {odd} has {counts[odd]} reads, other wells {counts.loc[wells].max()}")
+    order = {w: i for i, w in enumerate(wells)}
+    subset = reads[reads["well"].isin(order)]
+    key = subset["well"].map(order).to_numpy()
+    time_s = subset["time_s"].to_numpy(dtype=float)
+    sort = np.lexsort((time_s, key))
+    n_reads = int(counts.loc[wells].iloc[0])
+    times = time_s[sort].reshape(len(wells), n_reads)
+    matrix = subset["absorbance"].to_numpy(dtype=float)[sort].reshape(len(wells), n_reads)
+    if n_reads < 2 or np.any(np.diff(times[0]) <= 0):
         raise CalculationError(f"plate {plate_id}: well {wells[0]} read times do not increase")
-    matrix = np.empty((len(wells), times.size))
-    for i, well in enumerate(wells):
-        group = grouped[well]
-        t = group["time_s"].to_numpy(dtype=float)
-        if t.shape != times.shape or np.any(np.abs(t - times) > 0.5):
-            raise CalculationError(f"plate {plate_id}: well {well} was read at other times than well {wells[0]}")
-        matrix[i] = group["absorbance"].to_numpy(dtype=float)
-    return times / 60.0, matrix
+    differs = np.flatnonzero(np.any(np.abs(times - times[0]) > 0.5, axis=1))
+    if differs.size:
+        raise CalculationError(f"plate {plate_id}: well {wells[differs[0]]} was read at other times than well {wells[0]}")
+    return times[0] / 60.0, matrix
 
 
 def _activity_u_per_ml(method: KineticMethod, rate_au_per_min: np.ndarray, dilution: np.ndarray) -> np.ndarray:
@@ -300,7 +306,8 @@ def evaluate_protein_plate(plate_id: str, plate_map: pd.DataFrame, reads: pd.Dat
             bias_limit_pct=method.bias_limit_pct, lowest_bias_limit_pct=method.lowest_bias_limit_pct)
     except LotgateError as exc:
         return invalid([f"plate {plate_id}: the standard curve cannot be fitted: {exc}"])
-    curve_dict = {**curve.to_dict(), "standards": [[float(x), float(y)] for x, y in
+    curve_dict = {**curve.to_dict(), "params": [float(v) for v in curve.params],
+                  "param_names": list(curve.param_names), "standards": [[float(x), float(y)] for x, y in
                                                    zip(standards["nominal_mg_per_ml"], standards["absorbance"], strict=True)]}
     if not curve.accepted:
         return invalid([f"plate {plate_id}: standard curve not accepted: {'; '.join(curve.reasons)}"], curve_dict)

@@ -16,7 +16,16 @@ from reportlab.lib.pagesizes import A4
 from reportlab.lib.units import mm
 from reportlab.pdfbase.pdfmetrics import stringWidth
 from reportlab.pdfgen.canvas import Canvas
-from reportlab.platypus import BaseDocTemplate, Frame, KeepTogether, PageTemplate, Paragraph, Spacer, Table, TableStyle
+from reportlab.platypus import (
+    BaseDocTemplate,
+    Frame,
+    KeepTogether,
+    PageTemplate,
+    Paragraph,
+    Spacer,
+    Table,
+    TableStyle,
+)
 
 from pipeline.documents.text import (
     HEAD_FILL,
@@ -25,7 +34,7 @@ from pipeline.documents.text import (
     MUTED,
     PASS_INK,
     RULE,
-    canvas_with_footer,
+    build_pdf,
     caution_markup,
     clean,
     draw_paragraph,
@@ -72,12 +81,21 @@ def _fit(cell: Any, available: float, style: Any) -> Any:
     return Paragraph(escape(text), style)
 
 
-def grid_table(rows: list[list[Any]], widths: list[float], header: bool = True, zebra: bool = False) -> Table:
-    """A ruled table; str cells are data shown literally (a Table never parses them as markup)."""
+def grid_table(rows: list[list[Any]], widths: list[float], header: bool = True, zebra: bool = False,
+               col_styles: dict[int, str] | None = None, extra: list[tuple[Any, ...]] | None = None) -> Table:
+    """A ruled table; str cells are data shown literally (a Table never parses them as markup).
+
+    ``col_styles`` gives some columns another paragraph style ("cellb", "mono"); ``extra``
+    adds TableStyle commands (colours, spans).
+    """
     st = styles()
     body, head = st["cell"], st["head"]
-    fitted = [[_fit(cell, widths[j] - 8, head if header and i == 0 else body) for j, cell in enumerate(row)]
-              for i, row in enumerate(rows)]
+    by_col = {j: st[name] for j, name in (col_styles or {}).items()}
+
+    def style_of(i: int, j: int) -> Any:
+        return head if header and i == 0 else by_col.get(j, body)
+
+    fitted = [[_fit(cell, widths[j] - 8, style_of(i, j)) for j, cell in enumerate(row)] for i, row in enumerate(rows)]
     t = Table(fitted, colWidths=widths, repeatRows=1 if header else 0)
     cmds: list[tuple[Any, ...]] = [
         ("FONT", (0, 0), (-1, -1), body.fontName, body.fontSize, body.leading),
@@ -89,6 +107,8 @@ def grid_table(rows: list[list[Any]], widths: list[float], header: bool = True, 
         ("BOTTOMPADDING", (0, 0), (-1, -1), 2.5),
         ("LINEBELOW", (0, 0), (-1, -1), 0.4, RULE),
     ]
+    cmds += [("FONT", (j, 1 if header else 0), (j, -1), sty.fontName, sty.fontSize, sty.leading)
+             for j, sty in by_col.items()]
     if header:
         cmds += [("FONT", (0, 0), (-1, 0), head.fontName, head.fontSize, head.leading),
                  ("TEXTCOLOR", (0, 0), (-1, 0), head.textColor)]
@@ -96,7 +116,7 @@ def grid_table(rows: list[list[Any]], widths: list[float], header: bool = True, 
         cmds += [("BACKGROUND", (0, 0), (-1, 0), HEAD_FILL), ("LINEBELOW", (0, 0), (-1, 0), 0.8, MUTED)]
     if zebra:
         cmds += [("ROWBACKGROUNDS", (0, 1), (-1, -1), [colors.white, colors.HexColor("#f7f9fb")])]
-    t.setStyle(TableStyle(cmds))
+    t.setStyle(TableStyle(cmds + list(extra or [])))
     return t
 
 
@@ -112,8 +132,8 @@ _VERDICT_WORDS = {"pass": "complies", "reported": "for information", "fail": "DO
                   "invalid": "INVALID ASSAY", "missing": "NOT TESTED"}
 
 
-def _result_rows(dossier: dict[str, Any]) -> list[list[Any]]:
-    st = styles()
+def _result_rows(dossier: dict[str, Any]) -> tuple[list[list[Any]], list[tuple[Any, ...]]]:
+    colours: list[tuple[Any, ...]] = []
     rows: list[list[Any]] = [["Attribute", "Method", "Specification", "Result", "Verdict"]]
     verdicts = [v for v in get(dossier, "verdicts", []) if isinstance(v, dict)]
     limited = [v for v in verdicts if str(get(v, "limit_text", "")).strip()]
@@ -123,16 +143,12 @@ def _result_rows(dossier: dict[str, Any]) -> list[list[Any]]:
         word = "for information" if is_info else _VERDICT_WORDS.get(verdict, verdict)
         colour = PASS_INK if verdict == "pass" else (MUTED if is_info or verdict == "reported" else HOLD_INK)
         result = f"{clean(get(v, 'reported', num(get(v, 'value'))), 60)} {clean(get(v, 'unit', ''), 30)}".strip()
-        rows.append([
-            para(get(v, "title", get(v, "code")), "cellb", 120),
-            para(method_label(dossier, get(v, "method")), "cell", 60),
-            para(get(v, "limit_text", "") if not is_info else "not specified", "cell", 120),
-            para(result, "cell", 90),
-            Paragraph(f'<font color="#{colour.hexval()[2:]}">{escape(word, 40)}</font>', st["cellb"]),
-        ])
+        colours.append(("TEXTCOLOR", (4, len(rows)), (4, len(rows)), colour))
+        rows.append([clean(get(v, "title", get(v, "code")), 120), method_label(dossier, get(v, "method")),
+                     clean(get(v, "limit_text", ""), 120) if not is_info else "not specified", result, word])
     if len(rows) == 1:
-        rows.append([para("No results in this dossier.", "cell"), "", "", "", ""])
-    return rows
+        rows.append(["No results in this dossier.", "", "", "", ""])
+    return rows, colours
 
 
 def key_value_table(rows: list[tuple[str, Any]], key_w: float, val_w: float, value_style: str = "body") -> Table:
@@ -235,6 +251,7 @@ def render_certificate(dossier: dict[str, Any], signature: dict[str, Any]) -> by
     act = get(get(dossier, "methods", {}), "activity", {})
     prot = get(get(dossier, "methods", {}), "protein", {})
     story: list[Any] = header_flowables(dossier, "Certificate of analysis")
+    rows, colours = _result_rows(dossier)
     story.append(key_value_table([
         ("Lot", para(get(lot, "lot_id"), "cellb", 80)),
         ("Product", mpara("{n} ({c})", "cell", n=get(lot, "product_name"), c=get(lot, "product_code"))),
@@ -244,7 +261,8 @@ def render_certificate(dossier: dict[str, Any], signature: dict[str, Any]) -> by
                               t=get(decision, "decided_at_local"))),
     ], 34 * mm, CONTENT_W - 34 * mm))
     story += [Paragraph("Results", st["h2"]),
-              grid_table(_result_rows(dossier), [44 * mm, 33 * mm, 32 * mm, 37 * mm, CONTENT_W - 146 * mm], zebra=True),
+              grid_table(rows, [44 * mm, 33 * mm, 32 * mm, 37 * mm, CONTENT_W - 146 * mm], zebra=True,
+                         col_styles={0: "cellb", 4: "cellb"}, extra=colours),
               Spacer(1, 2),
               Paragraph("Results are rounded to the digits of the specification limit before comparison. "
                         "Kinetic constants are given for information and are not release criteria.", st["note"])]
@@ -267,5 +285,5 @@ def render_certificate(dossier: dict[str, Any], signature: dict[str, Any]) -> by
     story += [Spacer(1, 10), _caution_box(dossier), Spacer(1, 10), KeepTogether([_signature_block(signature)])]
     buffer = io.BytesIO()
     doc = doc_template(buffer, dossier, "Certificate of analysis", 22 * mm)
-    doc.build(story, canvasmaker=canvas_with_footer(_footer(dossier, "Certificate of analysis")))
+    build_pdf(doc, story, _footer(dossier, "Certificate of analysis"))
     return buffer.getvalue()

@@ -13,7 +13,7 @@ from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
-from reportlab.graphics.shapes import Circle, Drawing, Group, Line, PolyLine, Polygon, Rect, String
+from reportlab.graphics.shapes import Circle, Drawing, Group, Line, Polygon, PolyLine, Rect, String
 from reportlab.lib import colors
 from reportlab.pdfbase.pdfmetrics import stringWidth
 from scipy import stats
@@ -282,7 +282,7 @@ def standard_curve_chart(curve: dict[str, Any] | None, samples: list[dict[str, A
     accepted = get(curve, "accepted")
     _title(d, f"{title} ({clean(model, 20)} model)", "" if accepted in (True, None) else "curve NOT accepted")
     f = _frame(d, xr, yr, "protein in the well (mg/mL)", "absorbance (AU)", (52, 36, WIDTH - 66, HEIGHT - 82))
-    grid = np.linspace(f.xmin, f.xmax, 121)
+    grid = np.linspace(f.xmin, f.xmax, 61)
     fitted = curve_absorbance(model, get(curve, "params", []), grid)
     lo_x = float(low) if isinstance(low, int | float) else f.xmin
     hi_x = float(high) if isinstance(high, int | float) else f.xmax
@@ -334,7 +334,7 @@ def michaelis_menten_chart(kinetics: dict[str, Any] | None) -> Drawing:
     vmax, km = get(fit, "vmax"), get(fit, "km")
     have_fit = isinstance(vmax, int | float) and isinstance(km, int | float) and km > 0
     smax = max([x for x in s if math.isfinite(x)] + [float(km) * 2 if have_fit else 1.0])
-    grid = np.linspace(0.0, smax * 1.04, 120)
+    grid = smax * 1.04 * np.linspace(0.0, 1.0, 64) ** 2  # dense where the curve bends
     fitted = np.full_like(grid, np.nan)
     half = np.full_like(grid, np.nan)
     band_note = ""
@@ -420,8 +420,7 @@ def progress_curves_chart(traces: dict[str, Any] | None) -> Drawing:
             d.add(raw)
         for x, y in zip(t[:n], a[:n], strict=True):
             if math.isfinite(x) and math.isfinite(y):
-                d.add(Circle(f.X(x), f.Y(f.clamp_y(y)), 1.5, fillColor=colors.white, strokeColor=colour,
-                             strokeWidth=0.6))
+                d.add(Rect(f.X(x) - 1.3, f.Y(f.clamp_y(y)) - 1.3, 2.6, 2.6, fillColor=colour, strokeColor=None))
         w0, w1 = get(c, "window_start_min"), get(c, "window_end_min")
         slope, icpt = get(c, "slope_au_per_min"), get(c, "intercept_au")
         if all(isinstance(x, int | float) for x in (w0, w1, slope, icpt)):
@@ -527,7 +526,7 @@ def imr_chart(chart: dict[str, Any] | None) -> Drawing:
         d.add(line)
     for x, y in zip(mr_x, mr, strict=True):
         if math.isfinite(y):
-            d.add(Circle(m.X(x), m.Y(y), 1.6, fillColor=C_INK, strokeColor=None))
+            d.add(Rect(m.X(x) - 1.4, m.Y(y) - 1.4, 2.8, 2.8, fillColor=C_INK, strokeColor=None))
     _legend(d, [(_dot(C_RELEASED, 2.5), "released lot"), (_dot(C_HELD, 2.5), "held lot"),
                 (_dot(C_OTHER, 2.5), "other / this lot pending"), (_ring(C_SIGNAL, 4), "run-rule signal"),
                 (_swatch(C_CONTROL, 1.0), "±3σ control limits"), (_swatch(C_ZONE, 0.6, [1, 2]), "±1σ, ±2σ zones"),

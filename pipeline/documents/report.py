@@ -17,7 +17,16 @@ from reportlab.pdfgen.canvas import Canvas
 from reportlab.platypus import CondPageBreak, KeepTogether, Paragraph, Spacer, Table, TableStyle
 
 from pipeline.documents import charts
-from pipeline.documents.certificate import CONTENT_W, MARGIN_X, PAGE_W, doc_template, header_flowables, key_value_table, grid_table, method_label
+from pipeline.documents.certificate import (
+    CONTENT_W,
+    MARGIN_X,
+    PAGE_W,
+    doc_template,
+    grid_table,
+    header_flowables,
+    key_value_table,
+    method_label,
+)
 from pipeline.documents.text import (
     DASH,
     HOLD_FILL,
@@ -27,7 +36,7 @@ from pipeline.documents.text import (
     PASS_INK,
     RULE,
     Trusted,
-    canvas_with_footer,
+    build_pdf,
     caution_markup,
     clean,
     draw_paragraph,
@@ -104,7 +113,7 @@ def _results(dossier: dict[str, Any]) -> list[Any]:
     measurements = get(dossier, "measurements", {})
     head = ["Attribute", "Method", "Limit", "Reported", "Value ± SE", "95 % interval", "n", "Verdict"]
     rows: list[list[Any]] = [list(head)]
-    spans: list[tuple[Any, ...]] = []
+    extra: list[tuple[Any, ...]] = []
     for v in [v for v in _items(get(dossier, "verdicts", [])) if isinstance(v, dict)]:
         m = get(measurements, str(get(v, "code", "")), {})
         verdict = str(get(v, "verdict", ""))
@@ -112,25 +121,24 @@ def _results(dossier: dict[str, Any]) -> list[Any]:
         value = get(v, "value", get(m, "value"))
         se = get(v, "se", get(m, "se"))
         unit = clean(get(v, "unit", ""), 30)
+        extra.append(("TEXTCOLOR", (7, len(rows)), (7, len(rows)), colour))
         rows.append([
-            para(get(v, "title", get(v, "code")), "cellb", 100),
-            para(method_label(dossier, get(v, "method")) or DASH, "cell", 50),
-            para(get(v, "limit_text", "") or "none", "cell", 80),
-            para(f"{clean(get(v, 'reported'), 40)} {unit}".strip(), "cell", 80),
+            clean(get(v, "title", get(v, "code")), 100),
+            method_label(dossier, get(v, "method")) or DASH,
+            clean(get(v, "limit_text", ""), 80) or "none",
+            f"{clean(get(v, 'reported'), 40)} {unit}".strip(),
             value_pm(value, se) if not isinstance(value, str) else clean(value, 60),
             interval(get(m, "ci95")),
             clean(get(m, "n", DASH), 10),
-            Paragraph(f"<font color='#{colour.hexval()[2:]}'>{escape(verdict.upper(), 20)}</font>", st["cellb"]),
+            clean(verdict.upper(), 20),
         ])
         notes = _items(get(v, "reasons", [])) + [r for r in _items(get(m, "reasons", []))
                                                   if r not in _items(get(v, "reasons", []))]
         if notes:
             rows.append([_reasons_cell(notes)] + [""] * 7)
-            spans.append(("SPAN", (0, len(rows) - 1), (-1, len(rows) - 1)))
-    widths = [30 * mm, 24 * mm, 19 * mm, 23 * mm, 25 * mm, 26 * mm, 7 * mm]
-    t = grid_table(rows, [*widths, CONTENT_W - sum(widths)])
-    if spans:
-        t.setStyle(TableStyle(spans))
+            extra.append(("SPAN", (0, len(rows) - 1), (-1, len(rows) - 1)))
+    widths = [29 * mm, 21 * mm, 19 * mm, 22 * mm, 29 * mm, 28 * mm, 7 * mm]
+    t = grid_table(rows, [*widths, CONTENT_W - sum(widths)], col_styles={0: "cellb", 7: "cellb"}, extra=extra)
     return [Paragraph("Results", st["h2"]), t,
             Paragraph("Reported: rounded to the digits of the limit, as compared. Value ± SE: unrounded, with its "
                       "standard error; the interval is the 95 % confidence interval where one was computed.",
@@ -149,6 +157,7 @@ def _plates(dossier: dict[str, Any]) -> list[Any]:
     known = {"plate_id", "method", "valid", "reasons", "reference_recovery_pct", "blank_rate_au_per_min",
              "curve_accepted", "curve_r2"}
     rows: list[list[Any]] = [["Plate", "Method", "Valid", "Criteria", "Reasons"]]
+    extra: list[tuple[Any, ...]] = []
     for p in plates:
         crit: list[str] = []
         if "reference_recovery_pct" in p:
@@ -162,13 +171,13 @@ def _plates(dossier: dict[str, Any]) -> list[Any]:
         for key in sorted(k for k in p if k not in known and isinstance(p[k], str | int | float | bool | None)):
             crit.append(f"{clean(key, 40).replace('_', ' ')}: {clean(num(p[key]) if isinstance(p[key], float) else p[key], 60)}")
         valid = get(p, "valid")
-        rows.append([para(get(p, "plate_id"), "cellb", 40), para(get(p, "method"), "cell", 40),
-                     mpara("<font color='#{c}'>{v}</font>", "cellb",
-                           c=Trusted((PASS_INK if valid else HOLD_INK).hexval()[2:]), v=_yes_no(valid)),
+        extra.append(("TEXTCOLOR", (2, len(rows)), (2, len(rows)), PASS_INK if valid else HOLD_INK))
+        rows.append([clean(get(p, "plate_id"), 40), clean(get(p, "method"), 40), _yes_no(valid),
                      Paragraph("<br/>".join(escape(c, 120) for c in crit) or DASH, st["cell"]),
                      _reasons_cell(_items(get(p, "reasons", [])))])
     if plates:
-        out.append(grid_table(rows, [24 * mm, 28 * mm, 12 * mm, 52 * mm, CONTENT_W - 116 * mm]))
+        out.append(grid_table(rows, [24 * mm, 28 * mm, 12 * mm, 52 * mm, CONTENT_W - 116 * mm],
+                              col_styles={0: "cellb", 2: "cellb"}, extra=extra))
     out += _protein_curve(get(dossier, "protein_curve"))
     out += _windows(get(dossier, "traces"))
     return out
@@ -186,21 +195,22 @@ def _protein_curve(curve: Any) -> list[Any]:
                      a=_yes_no(get(curve, "accepted"))))
     out += _bullets(_items(get(curve, "reasons", [])), "body")
     rows: list[list[Any]] = [["Nominal (mg/mL)", "Back-calculated (mg/mL)", "Bias (%)", "Within limit"]]
+    extra: list[tuple[Any, ...]] = []
     for b in [b for b in _items(get(curve, "back_calculated", [])) if isinstance(b, dict)]:
         ok = get(b, "within_limit")
+        extra.append(("TEXTCOLOR", (3, len(rows)), (3, len(rows)), PASS_INK if ok or ok is None else HOLD_INK))
         rows.append([num(get(b, "nominal_mg_per_ml")), num(get(b, "back_calculated_mg_per_ml")),
-                     num(get(b, "bias_pct"), 3),
-                     mpara("<font color='#{c}'>{v}</font>", "cellb",
-                           c=Trusted((PASS_INK if ok or ok is None else HOLD_INK).hexval()[2:]), v=_yes_no(ok))])
+                     num(get(b, "bias_pct"), 3), _yes_no(ok)])
     samples = [s for s in _items(get(curve, "samples", [])) if isinstance(s, dict)]
     srows: list[list[Any]] = [["Sample well", "Absorbance (AU)", "Dilution", "Protein (mg/mL)", "In range"]]
     for s in samples:
-        srows.append([para(get(s, "well"), "cell", 20), num(get(s, "absorbance")),
+        srows.append([clean(get(s, "well"), 20), num(get(s, "absorbance")),
                       num(get(s, "dilution_factor")), num(get(s, "mg_per_ml")),
                       _yes_no(get(s, "in_range"))])
     half = (CONTENT_W - 6 * mm) / 2
-    left = grid_table(rows, [half * 0.25, half * 0.32, half * 0.18, half * 0.25]) if len(rows) > 1 else Spacer(1, 1)
-    right = grid_table(srows, [half * 0.2, half * 0.22, half * 0.18, half * 0.22, half * 0.18]) if samples else Spacer(1, 1)
+    left = (grid_table(rows, [half * 0.25, half * 0.32, half * 0.18, half * 0.25], col_styles={3: "cellb"}, extra=extra)
+            if len(rows) > 1 else Spacer(1, 1))
+    right = grid_table(srows, [half * 0.17, half * 0.25, half * 0.18, half * 0.22, half * 0.18]) if samples else Spacer(1, 1)
     pair = Table([[left, right]], colWidths=[half + 3 * mm, half + 3 * mm])
     pair.setStyle(TableStyle([("VALIGN", (0, 0), (-1, -1), "TOP"), ("LEFTPADDING", (0, 0), (-1, -1), 0),
                               ("RIGHTPADDING", (0, 0), (-1, -1), 0)]))
@@ -215,11 +225,12 @@ def _windows(traces: Any) -> list[Any]:
         return out + [Paragraph("No progress curves in this dossier.", st["body"])]
     rows: list[list[Any]] = [["Well", "[S] (mM)", "Window (min)", "Slope (AU/min)", "Intercept (AU)", "Flag"]]
     for c in curves[:3]:
-        rows.append([para(get(c, "well"), "cellb", 20), num(get(c, "substrate_mm")),
+        rows.append([clean(get(c, "well"), 20), num(get(c, "substrate_mm")),
                      f"{num(get(c, 'window_start_min'), 3)} to {num(get(c, 'window_end_min'), 3)}",
                      num(get(c, "slope_au_per_min")), num(get(c, "intercept_au")),
                      get(c, "flag") or "none"])
-    return out + [grid_table(rows, [18 * mm, 20 * mm, 28 * mm, 28 * mm, 26 * mm, CONTENT_W - 120 * mm])]
+    return out + [grid_table(rows, [18 * mm, 20 * mm, 28 * mm, 28 * mm, 26 * mm, CONTENT_W - 120 * mm],
+                             col_styles={0: "cellb"})]
 
 
 # ---------------------------------------------------------------- kinetics
@@ -242,17 +253,16 @@ def _kinetics(dossier: dict[str, Any]) -> list[Any]:
                      r=get(quality, "reason", "")))
     rows: list[list[Any]] = [["Quantity", "Value ± SE", "95 % interval", "Unit"]]
     if isinstance(fit, dict):
-        rows.append([para("Vmax (fit, per mL of lot)", "cellb"), value_pm(get(fit, "vmax"), get(fit, "vmax_se")),
-                     interval(get(fit, "vmax_ci95")), para("U/mL")])
-        rows.append([para("Km (fit)", "cellb"), value_pm(get(fit, "km"), get(fit, "km_se")),
-                     interval(get(fit, "km_ci95")), para("mM")])
+        rows.append(["Vmax (fit, per mL of lot)", value_pm(get(fit, "vmax"), get(fit, "vmax_se")),
+                     interval(get(fit, "vmax_ci95")), "U/mL"])
+        rows.append(["Km (fit)", value_pm(get(fit, "km"), get(fit, "km_se")), interval(get(fit, "km_ci95")), "mM"])
     measurements = get(dossier, "measurements", {})
     for key in ("vmax", "km", "kcat", "kcat_over_km"):
         m = get(measurements, key)
         if isinstance(m, dict) and not (key == "km" and isinstance(fit, dict)):
-            rows.append([para(get(m, "name", key), "cellb", 60), value_pm(get(m, "value"), get(m, "se")),
-                         interval(get(m, "ci95")), para(get(m, "unit"), "cell", 30)])
-    out.append(grid_table(rows, [50 * mm, 45 * mm, 45 * mm, CONTENT_W - 140 * mm]))
+            rows.append([clean(get(m, "name", key), 60), value_pm(get(m, "value"), get(m, "se")),
+                         interval(get(m, "ci95")), clean(get(m, "unit"), 30)])
+    out.append(grid_table(rows, [50 * mm, 45 * mm, 45 * mm, CONTENT_W - 140 * mm], col_styles={0: "cellb"}))
     if isinstance(fit, dict):
         out.append(mpara("cov(Vmax, Km) = {cov}; residual SE {rse} U/mL on {dof} degrees of freedom; n = {n}; "
                          "converged: {conv}.", "note", cov=num(get(fit, "cov_vmax_km")), rse=num(get(fit, "residual_se")),
@@ -286,6 +296,7 @@ def _trend(dossier: dict[str, Any]) -> list[Any]:
         out.append(Paragraph("No trend findings in this dossier.", st["body"]))
     else:
         rows: list[list[Any]] = [["Attribute", "Status", "Centre", "σ", "Limits v.", "Baseline n", "Signals and lots"]]
+        extra: list[tuple[Any, ...]] = []
         for f in findings:
             status = str(get(f, "status", ""))
             colour = HOLD_INK if status == "out of trend" else (PASS_INK if status == "in trend" else MUTED)
@@ -293,11 +304,12 @@ def _trend(dossier: dict[str, Any]) -> list[Any]:
             lots = _items(get(f, "lots_involved", []))
             text = "<br/>".join(["• " + escape(s, 300) for s in signals] +
                                 ([markup("lots: {l}", l=", ".join(clean(x, 30) for x in lots))] if lots else [])) or DASH
-            rows.append([para(get(f, "attribute"), "cellb", 60),
-                         mpara("<font color='#{c}'>{s}</font>", "cellb", c=Trusted(colour.hexval()[2:]), s=status),
-                         num(get(f, "center")), num(get(f, "sigma")), para(get(f, "limits_version", DASH)),
-                         para(get(f, "baseline_n", DASH)), Paragraph(text, st["cell"])])
-        out.append(grid_table(rows, [30 * mm, 26 * mm, 17 * mm, 15 * mm, 15 * mm, 16 * mm, CONTENT_W - 119 * mm]))
+            extra.append(("TEXTCOLOR", (1, len(rows)), (1, len(rows)), colour))
+            rows.append([clean(get(f, "attribute"), 60), clean(status, 60), num(get(f, "center")), num(get(f, "sigma")),
+                         clean(get(f, "limits_version", DASH), 20), clean(get(f, "baseline_n", DASH), 20),
+                         Paragraph(text, st["cell"])])
+        out.append(grid_table(rows, [30 * mm, 26 * mm, 17 * mm, 15 * mm, 15 * mm, 16 * mm, CONTENT_W - 119 * mm],
+                              col_styles={0: "cellb", 1: "cellb"}, extra=extra))
     for chart in [c for c in _items(get(dossier, "trend_charts", [])) if isinstance(c, dict)]:
         out += [Spacer(1, 8), KeepTogether([charts.imr_chart(chart)])]
     return out
@@ -308,18 +320,16 @@ def _traceability(dossier: dict[str, Any]) -> list[Any]:
     decision = get(dossier, "decision", {})
     out: list[Any] = [CondPageBreak(50 * mm), Paragraph("Traceability", st["h2"])]
     rows: list[list[Any]] = [["Record", "Version / name", "SHA-256"]]
-    rows.append([para("Specification", "cellb"), mpara("{c} v{v}", "cell", c=get(get(dossier, "lot", {}), "product_code"),
-                                                        v=get(decision, "spec_version")),
-                 para(get(decision, "spec_sha256"), "mono", 100)])
+    rows.append(["Specification", f"{clean(get(get(dossier, 'lot', {}), 'product_code'), 40)} "
+                                  f"v{clean(get(decision, 'spec_version'), 20)}", clean(get(decision, "spec_sha256"), 100)])
     versions = get(decision, "method_versions", {})
     shas = get(decision, "method_sha256", {})
     for mid in sorted(set(versions) | set(shas)) if isinstance(versions, dict) and isinstance(shas, dict) else []:
-        rows.append([para("Method", "cellb"), mpara("{m} v{v}", "cell", m=mid, v=get(versions, mid, DASH)),
-                     para(get(shas, mid), "mono", 100)])
+        rows.append(["Method", f"{clean(mid, 40)} v{clean(get(versions, mid, DASH), 20)}", clean(get(shas, mid), 100)])
     files = get(decision, "input_files", {})
     for name in sorted(files) if isinstance(files, dict) else []:
-        rows.append([para("Input file", "cellb"), para(name, "cell", 160), para(files[name], "mono", 100)])
-    out.append(grid_table(rows, [22 * mm, 48 * mm, CONTENT_W - 70 * mm]))
+        rows.append(["Input file", clean(name, 160), clean(files[name], 100)])
+    out.append(grid_table(rows, [25 * mm, 45 * mm, CONTENT_W - 70 * mm], col_styles={0: "cellb", 2: "mono"}))
     out.append(Spacer(1, 4))
     out.append(key_value_table([("Code version", para(get(decision, "code_version"), "mono", 100)),
                     ("Decision fingerprint", para(get(decision, "fingerprint"), "mono", 100)),
@@ -384,5 +394,5 @@ def render_batch_report(dossier: dict[str, Any]) -> bytes:
     story += _traceability(dossier)
     buffer = io.BytesIO()
     doc = doc_template(buffer, dossier, "Batch report", FOOTER_H)
-    doc.build(story, canvasmaker=canvas_with_footer(_footer(dossier)))
+    build_pdf(doc, story, _footer(dossier))
     return buffer.getvalue()

@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import math
 import os
+import threading
 import unicodedata
 from collections.abc import Callable, Mapping
 from functools import lru_cache, partial
@@ -18,6 +19,7 @@ from importlib.util import find_spec
 from typing import Any
 from xml.sax.saxutils import escape as _xml_escape
 
+from reportlab import rl_config
 from reportlab.lib import colors
 from reportlab.lib.styles import ParagraphStyle
 from reportlab.pdfbase import pdfmetrics
@@ -92,7 +94,7 @@ def caution_markup(caution: Any) -> str:
     text = clean(caution, 1200)
     if text.lower().startswith("caution"):
         head, sep, rest = text.partition(":") if ":" in text[:12] else (text[:7], "", text[7:])
-        return f"<b>{escape(head + sep, 20)}</b>{escape(rest, 1200)}"
+        return f"<b>{escape(head + sep, 20)}</b> {escape(rest, 1200)}"
     return f"<b>Caution.</b> {escape(text, 1200)}"
 
 
@@ -296,3 +298,21 @@ def draw_paragraph(canvas: Canvas, paragraph: Paragraph, x: float, y_top: float,
     _, height = paragraph.wrapOn(canvas, width, 1000)
     paragraph.drawOn(canvas, x, y_top - height)
     return height
+
+
+_BUILD_LOCK = threading.Lock()
+
+
+def build_pdf(doc: Any, story: list[Any], footer: FooterDrawer) -> None:
+    """``doc.build(story)`` with numbered footers and binary (not ASCII85) compressed streams.
+
+    reportlab reads ``rl_config.useA85`` while it writes; binary streams are smaller and about
+    a tenth faster to write. The setting is global, so it is changed under a lock and restored.
+    """
+    with _BUILD_LOCK:
+        previous = rl_config.useA85
+        rl_config.useA85 = 0
+        try:
+            doc.build(story, canvasmaker=canvas_with_footer(footer))
+        finally:
+            rl_config.useA85 = previous

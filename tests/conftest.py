@@ -1,0 +1,18 @@
+"""Shared fixtures: quiet Prefect settings and one Prefect test harness per session."""
+
+import os
+
+from flows.cli import QUIET_PREFECT
+
+for _key, _value in QUIET_PREFECT.items():
+    os.environ.setdefault(_key, _value)
+
+import pytest  # noqa: E402
+
+
+@pytest.fixture(scope="session")
+def prefect_harness():
+    from prefect.testing.utilities import prefect_test_harness
+
+    with prefect_test_harness(server_startup_timeout=120):
+        yield
