@@ -44,7 +44,7 @@ close = task(night.close, name="archive and LIMS results", cache_policy=NONE, pe
 
 def run_stages(ws: Workspace, store: Store, signer: night.CertificateSigner, *, orchestrated: bool = True) -> NightSummary:
     """The night's stages in order, as Prefect tasks (default) or as plain function calls."""
-    step = {name: (getattr(globals()[name], "fn") if not orchestrated else globals()[name])
+    step = {name: (globals()[name].fn if not orchestrated else globals()[name])
             for name in ("receive", "assemble", "evaluate", "load_charts", "decide", "publish", "close")}
     catalog, layouts = night.open_catalog_and_layouts()
     night_id = store.start_night(night.__version__)

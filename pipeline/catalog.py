@@ -10,7 +10,13 @@ from pathlib import Path
 import yaml
 
 from pipeline.errors import SpecificationError
-from pipeline.specs import KineticMethod, ProteinMethod, Specification, parse_method, parse_specification
+from pipeline.specs import (
+    KineticMethod,
+    ProteinMethod,
+    Specification,
+    parse_method,
+    parse_specification,
+)
 
 REPO_ROOT = Path(__file__).resolve().parents[1]
 

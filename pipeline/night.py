@@ -25,6 +25,7 @@ from pipeline import __version__, ledger
 from pipeline.catalog import Catalog, load_catalog, schemas_dir
 from pipeline.decide import CHART_TAIL, Chart, FrozenLimits, LotDecision, decide_night
 from pipeline.dossier import build_dossier, local_time_text
+from pipeline.errors import InputError, SigningError
 from pipeline.ingest import ExportRejected, ParsedExport, parse_export
 from pipeline.layouts import ExportLayout, load_layouts
 from pipeline.lots import LimsEntry, LotEvaluation, LotInputs, evaluate_lots
@@ -37,7 +38,6 @@ from pipeline.plates import (
 )
 from pipeline.specs import KineticMethod, ProteinMethod
 from pipeline.store import Store
-from pipeline.errors import InputError, SigningError
 from pipeline.workspace import Workspace, atomic_write, move_into, open_workspace
 
 Progress = Callable[[str, int, int], None]
@@ -191,7 +191,7 @@ def assemble(intake: Intake, catalog: Catalog) -> Assembly:
             lims[lot][test] = LimsEntry(row["result"], row.get("unit"), export.file_name)
 
     plate_lots: dict[str, dict[str, list[str]]] = defaultdict(lambda: defaultdict(list))
-    for plate_id, (frame, files) in maps.items():
+    for plate_id, (frame, _files) in maps.items():
         for lot in frame.loc[frame["role"].isin(["sample", "kinetic"]), "lot_id"].dropna().unique():
             plate_lots[str(lot)][plate_id].append(plate_id)
     mentioned = set(plate_lots) | set(lims)

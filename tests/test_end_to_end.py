@@ -3,6 +3,7 @@
 import json
 import shutil
 import subprocess
+import sys
 
 import pytest
 
@@ -106,7 +107,7 @@ def test_log_verifies_and_an_edited_record_is_named(demo_workspace, tmp_path):
     edited.write_text("\n".join(lines) + "\n")
     check = ledger.verify_file(edited)
     assert not check.valid and check.first_bad_seq == record["seq"]
-    out = subprocess.run(["lotgate", "verify", str(edited)], capture_output=True, text=True)
+    out = subprocess.run([sys.executable, "-m", "flows.cli", "verify", str(edited)], capture_output=True, text=True)
     assert out.returncode == 1 and f"record {record['seq']}" in out.stdout
 
 

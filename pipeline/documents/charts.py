@@ -27,7 +27,7 @@ C_INK = colors.HexColor("#25313c")
 C_GRID = colors.HexColor("#e3e8ed")
 C_AXIS = colors.HexColor("#6b7785")
 C_FIT = colors.HexColor("#1b4965")
-C_BAND = colors.HexColor("#bcd4e6")
+C_BAND = colors.HexColor("#a9c8e0")
 C_RANGE = colors.HexColor("#eef5e9")
 C_RANGE_EDGE = colors.HexColor("#9cbf86")
 C_STANDARD = colors.HexColor("#1b4965")
@@ -88,10 +88,10 @@ def _nice_ticks(lo: float, hi: float, target: int = 5) -> tuple[list[float], int
     first = math.floor(lo / step + 1e-9) * step
     count = int(math.ceil((hi - first) / step - 1e-9)) + 1
     ticks = [first + i * step for i in range(count)]
-    decimals = max(0, -math.floor(math.log10(step) + 1e-9))
-    if abs(step / 10**math.floor(math.log10(step) + 1e-9) - 2.5) < 1e-9:
+    decimals = 0
+    while decimals < 6 and abs(step * 10**decimals - round(step * 10**decimals)) > 1e-6 * step * 10**decimals:
         decimals += 1
-    return ticks, min(decimals, 6)
+    return ticks, decimals
 
 
 @dataclass
@@ -122,6 +122,22 @@ def _text(x: float, y: float, text: Any, size: float = 7.0, anchor: str = "start
                   fillColor=colour, textAnchor=anchor)
 
 
+def _fit_text(text: Any, size: float, width: float, max_len: int = 120, bold: bool = False) -> str:
+    """Cleaned text cut to its longest prefix that, followed by "…", is at most ``width`` points wide."""
+    font = fonts()[1 if bold else 0]
+    out = clean(text, max_len)
+    if stringWidth(out, font, size) <= width:
+        return out
+    lo, hi = 0, len(out)
+    while lo < hi:
+        mid = (lo + hi + 1) // 2
+        if stringWidth(out[:mid].rstrip() + "…", font, size) <= width:
+            lo = mid
+        else:
+            hi = mid - 1
+    return out[:lo].rstrip() + "…"
+
+
 def _frame(d: Drawing, xr: tuple[float, float], yr: tuple[float, float], xlabel: str, ylabel: str,
            box: tuple[float, float, float, float], x_ticks: bool = True) -> _Frame:
     """Axes with grid, ticks and titles in ``box`` = (x0, y0, w, h); returns the mapping.
@@ -142,16 +158,18 @@ def _frame(d: Drawing, xr: tuple[float, float], yr: tuple[float, float], xlabel:
     d.add(Rect(f.x0, f.y0, f.w, f.h, fillColor=None, strokeColor=C_AXIS, strokeWidth=0.6))
     if xlabel:
         d.add(_text(f.x0 + f.w / 2, f.y0 - 20, xlabel, 7.5, "middle"))
-    label = Group(_text(0, 0, ylabel, 7.5, "middle"))
+    label = Group(_text(0, 0, _fit_text(ylabel, 7.5, f.h + 30), 7.5, "middle"))
     label.transform = (0, 1, -1, 0, f.x0 - 34, f.y0 + f.h / 2)
     d.add(label)
     return f
 
 
 def _title(d: Drawing, title: str, note: str = "") -> None:
-    d.add(_text(4, d.height - 12, title, 9, bold=True, max_len=80))
-    if note:
-        d.add(_text(d.width - 4, d.height - 12, note, 6.5, "end", C_OUT, max_len=95))
+    note_text = _fit_text(note, 6.5, d.width * 0.45) if note else ""
+    room = d.width - 12 - (stringWidth(note_text, fonts()[0], 6.5) if note_text else 0)
+    d.add(_text(4, d.height - 12, _fit_text(title, 9, room, bold=True), 9, bold=True, max_len=200))
+    if note_text:
+        d.add(_text(d.width - 4, d.height - 12, note_text, 6.5, "end", C_OUT, max_len=200))
 
 
 def _legend(d: Drawing, entries: Sequence[tuple[Callable[[float, float], Any], str]], y: float) -> None:

@@ -111,7 +111,7 @@ def _disposition_box(dossier: dict[str, Any]) -> Table:
 def _results(dossier: dict[str, Any]) -> list[Any]:
     st = styles()
     measurements = get(dossier, "measurements", {})
-    head = ["Attribute", "Method", "Limit", "Reported", "Value ± SE", "95 % interval", "n", "Verdict"]
+    head = ["Attribute and method", "Limit", "Reported", "Value ± SE", "95 % interval", "n", "Verdict"]
     rows: list[list[Any]] = [list(head)]
     extra: list[tuple[Any, ...]] = []
     for v in [v for v in _items(get(dossier, "verdicts", [])) if isinstance(v, dict)]:
@@ -121,10 +121,11 @@ def _results(dossier: dict[str, Any]) -> list[Any]:
         value = get(v, "value", get(m, "value"))
         se = get(v, "se", get(m, "se"))
         unit = clean(get(v, "unit", ""), 30)
-        extra.append(("TEXTCOLOR", (7, len(rows)), (7, len(rows)), colour))
+        extra.append(("TEXTCOLOR", (6, len(rows)), (6, len(rows)), colour))
+        method = method_label(dossier, get(v, "method"))
         rows.append([
-            clean(get(v, "title", get(v, "code")), 100),
-            method_label(dossier, get(v, "method")) or DASH,
+            mpara("<b>{t}</b><br/><font size=6.8 color='#5b6773'>{m}</font>", "cell",
+                  t=get(v, "title", get(v, "code")), m=method) if method else clean(get(v, "title", get(v, "code")), 100),
             clean(get(v, "limit_text", ""), 80) or "none",
             f"{clean(get(v, 'reported'), 40)} {unit}".strip(),
             value_pm(value, se) if not isinstance(value, str) else clean(value, 60),
@@ -135,10 +136,10 @@ def _results(dossier: dict[str, Any]) -> list[Any]:
         notes = _items(get(v, "reasons", [])) + [r for r in _items(get(m, "reasons", []))
                                                   if r not in _items(get(v, "reasons", []))]
         if notes:
-            rows.append([_reasons_cell(notes)] + [""] * 7)
+            rows.append([_reasons_cell(notes)] + [""] * 6)
             extra.append(("SPAN", (0, len(rows) - 1), (-1, len(rows) - 1)))
-    widths = [29 * mm, 21 * mm, 19 * mm, 22 * mm, 29 * mm, 28 * mm, 7 * mm]
-    t = grid_table(rows, [*widths, CONTENT_W - sum(widths)], col_styles={0: "cellb", 7: "cellb"}, extra=extra)
+    widths = [36 * mm, 20 * mm, 26 * mm, 29 * mm, 29 * mm, 8 * mm]
+    t = grid_table(rows, [*widths, CONTENT_W - sum(widths)], col_styles={0: "cellb", 6: "cellb"}, extra=extra)
     return [Paragraph("Results", st["h2"]), t,
             Paragraph("Reported: rounded to the digits of the limit, as compared. Value ± SE: unrounded, with its "
                       "standard error; the interval is the 95 % confidence interval where one was computed.",
