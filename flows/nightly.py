@@ -34,7 +34,7 @@ def _progress(stage: str, done: int, total: int) -> None:
 
 
 receive = task(night.receive, name="receive exports", cache_policy=NONE, persist_result=False)
-assemble = task(night.assemble, name="assemble lots", cache_policy=NONE, persist_result=False)
+assemble = task(night.assemble_intake, name="assemble lots", cache_policy=NONE, persist_result=False)
 evaluate = task(night.evaluate, name="compute results", cache_policy=NONE, persist_result=False)
 load_charts = task(night.load_charts, name="read control charts", cache_policy=NONE, persist_result=False)
 decide = task(night.decide, name="trend and disposition", cache_policy=NONE, persist_result=False)

@@ -142,10 +142,14 @@ def _result_rows(dossier: dict[str, Any]) -> tuple[list[list[Any]], list[tuple[A
         verdict = str(get(v, "verdict", ""))
         word = "for information" if is_info else _VERDICT_WORDS.get(verdict, verdict)
         colour = PASS_INK if verdict == "pass" else (MUTED if is_info or verdict == "reported" else HOLD_INK)
-        result = f"{clean(get(v, 'reported', num(get(v, 'value'))), 60)} {clean(get(v, 'unit', ''), 30)}".strip()
+        unit = clean(get(v, "unit", ""), 30)
+        result = f"{clean(get(v, 'reported', num(get(v, 'value'))), 60)} {unit}".strip()
+        if get(v, "code") == "km" and get(get(get(dossier, "kinetics", {}), "km_quality", {}), "well_determined") is False:
+            result += " (poorly determined)"
+        limit = f"{clean(get(v, 'limit_text', ''), 100)} {unit}".strip() if not is_info else "not specified"
         colours.append(("TEXTCOLOR", (4, len(rows)), (4, len(rows)), colour))
         rows.append([clean(get(v, "title", get(v, "code")), 120), method_label(dossier, get(v, "method")),
-                     clean(get(v, "limit_text", ""), 120) if not is_info else "not specified", result, word])
+                     limit, result, word])
     if len(rows) == 1:
         rows.append(["No results in this dossier.", "", "", "", ""])
     return rows, colours
@@ -170,7 +174,7 @@ def _signature_block(signature: dict[str, Any]) -> Table:
                                 utc=signature["signed_at_utc"])),
         ("Meaning of the signature", para(signature["meaning"], "cell", 600)),
         ("Certificate fingerprint", para(signature["certificate_fingerprint"], "mono", 200)),
-    ], 38 * mm, CONTENT_W - 38 * mm - 16)
+    ], 44 * mm, CONTENT_W - 44 * mm - 16)
     rows = [[Paragraph("Electronic signature (21 CFR 11.50)", st["h3"])], [inner],
             [Paragraph("The digital signature embedded in this file (PAdES) carries the signer's certificate; "
                        "verify it with any PDF signature validator. A printed copy is not a signed record.",

@@ -364,8 +364,8 @@ def michaelis_menten_chart(kinetics: dict[str, Any] | None) -> Drawing:
         else:
             se_v, se_k = get(fit, "vmax_se"), get(fit, "km_se")
             dof = get(fit, "dof")
-            if all(isinstance(x, int | float) for x in (se_v, se_k)) and isinstance(dof, int) and dof > 0:
-                fitted, half = mm_band(grid, vmax, km, se_v, se_k, float(get(fit, "cov_vmax_km", 0.0)), dof)
+            if all(isinstance(x, int | float) for x in (se_v, se_k, dof)) and dof > 0:
+                fitted, half = mm_band(grid, vmax, km, se_v, se_k, float(get(fit, "cov_vmax_km", 0.0)), int(dof))
             else:
                 fitted = vmax * grid / (km + grid)
                 band_note = "no standard errors: band not drawn"

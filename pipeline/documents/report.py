@@ -351,7 +351,7 @@ FOOTER_H = 26 * mm
 def _footer(dossier: dict[str, Any]) -> Any:
     lot = get(dossier, "lot", {})
     revision = get(get(dossier, "decision", {}), "revision", 0)
-    caution = clean(get(dossier, "caution", ""), 700)
+    caution = clean(get(dossier, "caution", ""), 600)  # four footer lines at most; page 1 has it whole
 
     def draw(canvas: Canvas, page: int, total: int) -> None:
         st = styles()
@@ -360,7 +360,7 @@ def _footer(dossier: dict[str, Any]) -> Any:
         canvas.setLineWidth(0.5)
         top = FOOTER_H - 4 * mm
         canvas.line(MARGIN_X, top, PAGE_W - MARGIN_X, top)
-        used = draw_paragraph(canvas, Paragraph(escape(caution, 700), st["footer"]), MARGIN_X, top - 2, CONTENT_W)
+        used = draw_paragraph(canvas, Paragraph(escape(caution, 600), st["footer"]), MARGIN_X, top - 2, CONTENT_W)
         line = Paragraph(markup("Batch report · lot {lot} · {code} · revision {rev} · page {p} of {t}",
                                 lot=get(lot, "lot_id", ""), code=get(lot, "product_code", ""), rev=revision,
                                 p=page, t=total), st["footer"].clone("footer_b", fontSize=7, textColor=colors.black))
