@@ -94,7 +94,12 @@ def test_certificate_results_are_limited_attributes_plus_kinetics_for_informatio
         assert title in text, title
     assert "for information" in text
     assert "Colour (visual)" not in text  # no limit and not a kinetic constant
-    assert "1043 U/mL" in text and "≥ 800" in text
+    assert "1043 U/mL" in text and "≥ 800 U/mL" in text
+
+
+def test_certificate_says_when_km_is_poorly_determined(dossier: dict[str, Any]) -> None:
+    dossier["kinetics"]["km_quality"] = {"well_determined": False, "reason": "Km above the tested range"}
+    assert "0.362 mM (poorly determined)" in flat(" ".join(pages_text(render_certificate(dossier, SIGNATURE))))
 
 
 def test_certificate_refuses_a_held_lot(dossier: dict[str, Any]) -> None:
@@ -153,6 +158,10 @@ def test_report_prints_with_every_optional_part_absent(dossier: dict[str, Any]) 
     assert "No standard curve in this dossier." in text
     assert "No plate results in this dossier." in text
     assert d["decision"]["label"] in text
+    released = copy.deepcopy(dossier)
+    released.update(kinetics=None, methods={"activity": None, "protein": None}, verdicts=[], measurements={})
+    text = flat(" ".join(pages_text(render_certificate(released, SIGNATURE))))
+    assert "No results in this dossier." in text and SIGNATURE["signer_name"] in text
 
 
 # ---------------------------------------------------------------- hostile text
@@ -196,7 +205,11 @@ def _assert_literal(pdf: bytes) -> None:
 
 
 def test_hostile_strings_print_literally_in_the_report(dossier: dict[str, Any]) -> None:
-    _assert_literal(render_batch_report(hostile(dossier)))
+    pdf = render_batch_report(hostile(dossier))
+    _assert_literal(pdf)
+    text = flat(" ".join(pages_text(pdf)))
+    assert "<b>f.csv</b>" in text and "<b>C2</b>:" in text  # a table cell and a chart legend
+    assert "<b>C2</b>0.1" in dense(text)  # the rate-window table (the narrow cell wraps it)
 
 
 def test_hostile_strings_print_literally_on_the_certificate(dossier: dict[str, Any]) -> None:

@@ -426,7 +426,7 @@ def progress_curves_chart(traces: dict[str, Any] | None) -> Drawing:
         return _empty(title, "No progress curves in this dossier.")
     all_a = [a for c in curves for a in _floats(get(c, "absorbance", []))]
     d = Drawing(WIDTH, HEIGHT)
-    flagged = [clean(get(c, "well", "?"), 8) for c in curves if get(c, "flag")]
+    flagged = [clean(get(c, "well", "?"), 12) for c in curves if get(c, "flag")]
     _title(d, title, f"flagged: {', '.join(flagged)}" if flagged else "")
     f = _frame(d, _span(t, pad=0.0), _span(all_a), "time (min)", "absorbance (AU)", (52, 36, WIDTH - 66, HEIGHT - 82))
     entries = []
@@ -445,7 +445,7 @@ def progress_curves_chart(traces: dict[str, Any] | None) -> Drawing:
             seg = _polyline(f, [w0, w1], [icpt + slope * w0, icpt + slope * w1], colour, 3.0)
             if seg is not None:
                 d.add(seg)
-        label = f"{clean(get(c, 'well', '?'), 8)}: {num(get(c, 'substrate_mm'), 3)} mM, {num(slope, 3)} AU/min"
+        label = f"{clean(get(c, 'well', '?'), 12)}: {num(get(c, 'substrate_mm'), 3)} mM, {num(slope, 3)} AU/min"
         if get(c, "flag"):
             label += f" ({clean(get(c, 'flag'), 30)})"
         entries.append((_swatch(colour, 3.0), label))
