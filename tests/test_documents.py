@@ -209,7 +209,7 @@ def test_hostile_strings_print_literally_in_the_report(dossier: dict[str, Any]) 
     _assert_literal(pdf)
     text = flat(" ".join(pages_text(pdf)))
     assert "<b>f.csv</b>" in text and "<b>C2</b>:" in text  # a table cell and a chart legend
-    assert "<b>C2</b>0.1" in dense(text)  # the rate-window table (the narrow cell wraps it)
+    assert dense(text).count("<b>C2</b>") >= 2  # the chart legend and the rate-window table
 
 
 def test_hostile_strings_print_literally_on_the_certificate(dossier: dict[str, Any]) -> None:

@@ -180,7 +180,7 @@ def _plates(dossier: dict[str, Any]) -> list[Any]:
         out.append(grid_table(rows, [24 * mm, 28 * mm, 12 * mm, 52 * mm, CONTENT_W - 116 * mm],
                               col_styles={0: "cellb", 2: "cellb"}, extra=extra))
     out += _protein_curve(get(dossier, "protein_curve"))
-    out += _windows(get(dossier, "traces"))
+    out += _windows(get(dossier, "wells"), get(dossier, "traces"))
     return out
 
 
@@ -218,20 +218,39 @@ def _protein_curve(curve: Any) -> list[Any]:
     return out + [Spacer(1, 3), pair]
 
 
-def _windows(traces: Any) -> list[Any]:
+def _windows(wells: Any, traces: Any) -> list[Any]:
+    """Every well behind the lot's numbers: its role, chosen linear window, slope ± SE, R², flag."""
     st = styles()
-    curves = [c for c in _items(get(traces, "curves", [])) if isinstance(c, dict)]
-    out: list[Any] = [Paragraph("Initial-rate windows of the wells shown", st["h3"])]
-    if not curves:
-        return out + [Paragraph("No progress curves in this dossier.", st["body"])]
-    rows: list[list[Any]] = [["Well", "[S] (mM)", "Window (min)", "Slope (AU/min)", "Intercept (AU)", "Flag"]]
-    for c in curves[:3]:
-        rows.append([clean(get(c, "well"), 20), num(get(c, "substrate_mm")),
-                     f"{num(get(c, 'window_start_min'), 3)} to {num(get(c, 'window_end_min'), 3)}",
-                     num(get(c, "slope_au_per_min")), num(get(c, "intercept_au")),
-                     get(c, "flag") or "none"])
-    return out + [grid_table(rows, [18 * mm, 20 * mm, 28 * mm, 28 * mm, 26 * mm, CONTENT_W - 120 * mm],
-                             col_styles={0: "cellb"})]
+    out: list[Any] = [Paragraph("Initial-rate windows (every well behind this lot's activity)", st["h3"])]
+    rows_in = [dict(w, well=name) for name, w in (wells or {}).items() if isinstance(w, dict)] if isinstance(wells, dict) else []
+    if not rows_in:
+        rows_in = [c for c in _items(get(traces, "curves", [])) if isinstance(c, dict)]
+    if not rows_in:
+        return out + [Paragraph("No kinetic wells in this dossier.", st["body"])]
+    order = {"reference": 0, "blank": 1, "sample": 2, "kinetic": 3}
+    rows_in.sort(key=lambda w: (order.get(str(get(w, "role")), 9), get(w, "substrate_mm") or 0.0, str(get(w, "well"))))
+    rows: list[list[Any]] = [["Well", "Role", "[S] (mM)", "Window (min)", "n", "Slope ± SE (AU/min)", "R²", "Flag / note"]]
+    extra: list[tuple[Any, ...]] = []
+    for w in rows_in:
+        flag = get(w, "flag")
+        note = get(w, "reason") or ""
+        if flag:
+            extra.append(("TEXTCOLOR", (7, len(rows)), (7, len(rows)), HOLD_INK))
+        window = (f"{num(get(w, 'window_start_min'), 3)}–{num(get(w, 'window_end_min'), 3)}"
+                  if get(w, "window_start_min") is not None else DASH)
+        slope, se, r2 = get(w, "slope_au_per_min"), get(w, "slope_se_au_per_min"), get(w, "r2")
+        role = str(get(w, "role") or "")
+        rows.append([clean(get(w, "well"), 8), clean(role, 12), num(get(w, "substrate_mm"), 3), window,
+                     clean(get(w, "n_points"), 4),
+                     DASH if not isinstance(slope, float) else
+                     f"{slope:.4f} ± {se:.4f}" if isinstance(se, float) else f"{slope:.4f}",
+                     DASH if not isinstance(r2, float) or role == "blank" else f"{r2:.4f}",
+                     Paragraph(escape(f"{flag}: {note}" if flag else (note if "excluded" in note else "ok"), 160), st["cell"])])
+    out.append(Paragraph("R² is not shown for substrate blanks: without enzyme their slope is near zero and R² "
+                         "says nothing; blanks are judged by their rate against the method's limit.", st["small"]
+                         if "small" in st else st["body"]))
+    return out + [grid_table(rows, [12 * mm, 18 * mm, 14 * mm, 18 * mm, 8 * mm, 34 * mm, 15 * mm, CONTENT_W - 119 * mm],
+                             col_styles={0: "cellb"}, extra=extra)]
 
 
 # ---------------------------------------------------------------- kinetics
