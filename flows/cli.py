@@ -29,7 +29,7 @@ def quiet_prefect() -> None:
 def _console():
     from rich.console import Console
 
-    return Console(highlight=False)
+    return Console(highlight=False, width=None if sys.stdout.isatty() else 140)
 
 
 def _run_night(workspace: Path, *, orchestrated: bool = True):
@@ -40,7 +40,8 @@ def _run_night(workspace: Path, *, orchestrated: bool = True):
 
     from flows import nightly
 
-    logging.getLogger("pyhanko").setLevel(logging.ERROR)
+    for noisy in ("pyhanko", "pyhanko_certvalidator"):
+        logging.getLogger(noisy).setLevel(logging.CRITICAL)
     labels = {"receive": "Reading and validating exports", "publish": "Reports, certificates and records"}
     console = _console()
     with Progress(TextColumn("{task.description:<36}"), BarColumn(), MofNCompleteColumn(), TimeElapsedColumn(),
@@ -52,15 +53,17 @@ def _run_night(workspace: Path, *, orchestrated: bool = True):
                 tasks[stage] = bar.add_task(labels.get(stage, stage), total=total)
             bar.update(tasks[stage], completed=done, total=total)
 
+        from pipeline import night
+        from pipeline.runlock import run_lock
+
+        ws, store, signer = night.open_night(workspace)
         nightly.set_progress(progress)
         try:
-            if orchestrated:
-                summary = nightly.nightly(str(workspace))
-            else:
-                from pipeline import night
-
-                ws, store, signer = night.open_night(workspace)
-                summary = nightly.run_stages(ws, store, signer, orchestrated=False)
+            with run_lock(ws.root, store):
+                if orchestrated:
+                    summary = nightly.nightly(str(workspace), lock_held_by_caller=True)
+                else:
+                    summary = nightly.run_stages(ws, store, signer, orchestrated=False, lock=False)
         finally:
             nightly.set_progress(None)
     return summary
@@ -132,9 +135,13 @@ def cmd_run(args: argparse.Namespace) -> int:
 
 
 def cmd_verify(args: argparse.Namespace) -> int:
+    import logging
+
     from pipeline import ledger
     from pipeline.signing import verify_pdf
 
+    for noisy in ("pyhanko", "pyhanko_certvalidator"):
+        logging.getLogger(noisy).setLevel(logging.CRITICAL)
     console = _console()
     failures = 0
     trust = [Path(p) for p in args.trust] if args.trust else []
@@ -150,9 +157,15 @@ def cmd_verify(args: argparse.Namespace) -> int:
             ok = result.valid
             console.print(f"{'VALID' if ok else 'INVALID'} {name}: {result.summary}")
         elif path.suffix.lower() == ".jsonl":
+            from flows.records_cmd import verify_trail_text
+
             check = ledger.verify_file(path)
-            ok = check.valid
-            console.print(f"{'VALID' if ok else 'INVALID'} {name}: {check.reason}")
+            ok, reason = check.valid, check.reason
+            if ok:
+                both = verify_trail_text(path)
+                if both is not None:
+                    ok, reason = both
+            console.print(f"{'VALID' if ok else 'INVALID'} {name}: {reason}")
         else:
             ok = False
             console.print(f"INVALID {name}: not a certificate (.pdf) or a decision log (.jsonl)")
@@ -189,6 +202,9 @@ def build_parser() -> argparse.ArgumentParser:
     verify.add_argument("--trust", action="append", metavar="PEM",
                         help="a root CA certificate to trust (default: the workspace's keys/root-ca.pem when found)")
     verify.set_defaults(func=cmd_verify)
+    from flows import records_cmd
+
+    records_cmd.add_commands(sub)
     return parser
 
 

@@ -14,6 +14,7 @@ from prefect.cache_policies import NONE
 
 from pipeline import night
 from pipeline.night import NightSummary
+from pipeline.runlock import run_lock
 from pipeline.store import Store
 from pipeline.workspace import Workspace
 
@@ -42,26 +43,37 @@ publish = task(night.publish, name="reports, certificates, store, log", cache_po
 close = task(night.close, name="archive and LIMS results", cache_policy=NONE, persist_result=False)
 
 
-def run_stages(ws: Workspace, store: Store, signer: night.CertificateSigner, *, orchestrated: bool = True) -> NightSummary:
-    """The night's stages in order, as Prefect tasks (default) or as plain function calls."""
+def run_stages(ws: Workspace, store: Store, signer: night.CertificateSigner, *, orchestrated: bool = True,
+               lock: bool = True) -> NightSummary:
+    """The night's stages in order, as Prefect tasks (default) or as plain function calls.
+
+    Holds the night's run lock unless the caller already holds it (``lock=False``).
+    """
     step = {name: (globals()[name].fn if not orchestrated else globals()[name])
             for name in ("receive", "assemble", "evaluate", "load_charts", "decide", "publish", "close")}
+    if not lock:
+        return _stages(ws, store, signer, step)
+    with run_lock(ws.root, store):
+        return _stages(ws, store, signer, step)
+
+
+def _stages(ws: Workspace, store: Store, signer: night.CertificateSigner, step: dict) -> NightSummary:
     catalog, layouts = night.open_catalog_and_layouts()
     night_id = store.start_night(night.__version__)
     intake = step["receive"](ws, store, layouts, night_id, _progress)
     assembly = step["assemble"](intake, catalog)
     evaluations, _plates = step["evaluate"](assembly, catalog)
     charts = step["load_charts"](store, catalog, evaluations)
-    decisions = step["decide"](evaluations, catalog, charts)
+    decisions = step["decide"](evaluations, catalog, charts, night.earlier_decisions(store, evaluations))
     outcomes = step["publish"](ws, store, catalog, decisions, night_id, charts, signer, _progress)
     return step["close"](ws, store, intake, outcomes, assembly.notes)
 
 
 @flow(name="lotgate-night", log_prints=False, persist_result=False)
-def nightly(workspace: str) -> NightSummary:
+def nightly(workspace: str, lock_held_by_caller: bool = False) -> NightSummary:
     """One night: every export in ``workspace/inbox`` to decisions, documents and records."""
     ws, store, signer = night.open_night(Path(workspace))
-    return run_stages(ws, store, signer, orchestrated=True)
+    return run_stages(ws, store, signer, orchestrated=True, lock=not lock_held_by_caller)
 
 
 def workspace_path(value: str | Path) -> Path:

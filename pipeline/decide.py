@@ -17,7 +17,7 @@ from typing import Any
 
 from pipeline import trend
 from pipeline.lots import LotEvaluation
-from pipeline.model import PASS, RELEASED, Decision, TrendFinding
+from pipeline.model import HELD, PASS, RELEASED, REVIEW_REQUIRED, Decision, TrendFinding
 from pipeline.specs import Attribute, Specification
 from pipeline.verdicts import disposition
 
@@ -120,8 +120,13 @@ def fingerprint(evaluation: LotEvaluation, spec: Specification, method_sha: dict
 
 def decide_night(evaluations: list[LotEvaluation], specifications: dict[str, Specification],
                  methods: dict[str, Any], charts: dict[tuple[str, str], Chart],
-                 code_version: str) -> list[LotDecision]:
-    """Trend and disposition for each lot, in the given order; ``charts`` advance as lots release."""
+                 code_version: str, earlier: dict[str, str] | None = None) -> list[LotDecision]:
+    """Trend and disposition for each lot, in the given order; ``charts`` advance as lots release.
+
+    ``earlier`` names lots whose latest decision was a hold or a person's decision: the nightly
+    job never releases such a lot on its own; it is held for an authorised person's review.
+    """
+    earlier = earlier or {}
     out = []
     for evaluation in evaluations:
         spec = specifications[evaluation.product_code]
@@ -144,6 +149,11 @@ def decide_night(evaluations: list[LotEvaluation], specifications: dict[str, Spe
             findings.append(_judge_point(chart, attribute, evaluation.lot_id, value, attribute.digits))
             pending[attribute.code] = value
         state, categories, reasons = disposition(evaluation.verdicts, findings, evaluation.incomplete)
+        if evaluation.lot_id in earlier:
+            categories = (*categories, REVIEW_REQUIRED)
+            reasons = (*reasons, f"the lot's earlier decision ({earlier[evaluation.lot_id]}) stands until an "
+                                 "authorised person decides (lotgate decide); the nightly job does not release it")
+            state = HELD
         method_sha = {m.method_id: m.document.sha256 for m in used_methods.values()}
         decision = Decision(
             lot_id=evaluation.lot_id, product=spec.product_code, disposition=state,

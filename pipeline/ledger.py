@@ -88,6 +88,52 @@ def verify_file(path: Path) -> ChainCheck:
     return verify_records(read_lines(path))
 
 
+def last_line(path: Path) -> tuple[str | None, int]:
+    """The file's last complete line and the byte offset where a partial tail starts (or the size).
+
+    Reads backwards from the end, so the cost does not grow with the log's length.
+    """
+    if not path.exists():
+        return None, 0
+    with open(path, "rb") as handle:
+        handle.seek(0, os.SEEK_END)
+        size = handle.tell()
+        if size == 0:
+            return None, 0
+        block = 4096
+        data = b""
+        position = size
+        while position > 0:
+            step = min(block, position)
+            position -= step
+            handle.seek(position)
+            data = handle.read(step) + data
+            body_end = data.rfind(b"\n")
+            if body_end != -1 and (data.rfind(b"\n", 0, body_end) != -1 or position == 0):
+                break
+        end = data.rfind(b"\n")
+        if end == -1:
+            return None, position  # only a partial line
+        start = data.rfind(b"\n", 0, end) + 1
+        return data[start:end].decode("utf-8"), position + end + 1
+
+
+def append_chained(path: Path, records: list[dict[str, Any]]) -> None:
+    """Append already-chained records (each with seq, prev_hash, hash) and flush them to disk.
+
+    A partial last line left by a crash is cut off first; the caller's source of truth (the
+    store) then writes it again.
+    """
+    _, good_end = last_line(path)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    with open(path, "ab") as handle:
+        if handle.tell() != good_end:
+            handle.truncate(good_end)
+        handle.write("".join(canonical_json(r) + "\n" for r in records).encode("utf-8"))
+        handle.flush()
+        os.fsync(handle.fileno())
+
+
 def append(path: Path, records: list[dict[str, Any]]) -> list[dict[str, Any]]:
     """Chain ``records`` onto the log at ``path`` and write them durably.
 

@@ -18,7 +18,8 @@ OUT_OF_SPECIFICATION = "out of specification"
 INVALID_ASSAY = "invalid assay"
 INCOMPLETE = "incomplete"
 OUT_OF_TREND = "out of trend"
-HOLD_ORDER = (OUT_OF_SPECIFICATION, INVALID_ASSAY, INCOMPLETE, OUT_OF_TREND)
+REVIEW_REQUIRED = "review required"  # an earlier hold or a person's decision stands
+HOLD_ORDER = (OUT_OF_SPECIFICATION, INVALID_ASSAY, INCOMPLETE, OUT_OF_TREND, REVIEW_REQUIRED)
 
 # Verdicts of one attribute.
 PASS = "pass"

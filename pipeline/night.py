@@ -18,7 +18,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Protocol
 
-from pipeline import __version__, ledger
+from pipeline import __version__, audit
 from pipeline.assembly import Assembly, QuarantinedFile, assemble
 from pipeline.catalog import Catalog, load_catalog, schemas_dir
 from pipeline.decide import CHART_TAIL, Chart, FrozenLimits, LotDecision, decide_night
@@ -55,12 +55,17 @@ class Intake:
     quarantined: list[QuarantinedFile] = field(default_factory=list)
 
 
-def _quarantine(ws: Workspace, store: Store, intake: Intake, path: Path, sha: str, kind: str | None,
-                status: str, report: str, text: str) -> None:
+def _quarantine(ws: Workspace, store: Store, intake: Intake, path: Path, sha: str, status: str, report: str,
+                text: str) -> None:
+    """Move a file aside with its reason beside it, and record both in one transaction."""
     target = move_into(path, ws.quarantine)
     atomic_write(target.with_name(target.name + ".reason.txt"), report.encode("utf-8"))
-    store.record_file(intake.night_id, file_name=path.name, sha256=sha, kind=kind, layout_version=None,
-                      status=status, reason=report.strip(), stored_as=str(target.relative_to(ws.root)))
+    stored_as = str(target.relative_to(ws.root))
+    store.record_files(intake.night_id, [dict(file_name=path.name, sha256=sha, kind=None, layout_version=None,
+                                               status=status, reason=report.strip(), stored_as=stored_as)],
+                       [audit.event("file-quarantined", time_zone=ws.time_zone, night_id=intake.night_id,
+                                    file=path.name, sha256=sha, status=status, stored_as=stored_as,
+                                    reason=report.strip())])
     intake.quarantined.append(QuarantinedFile(path.name, sha, report.strip(), text))
 
 
@@ -70,27 +75,34 @@ def receive(ws: Workspace, store: Store, layouts: dict[str, ExportLayout], night
     files = sorted(p for p in ws.inbox.iterdir() if p.is_file() and not p.name.startswith("."))
     intake = Intake(night_id=night_id, received=len(files))
     seen: dict[str, str] = {}
+    received = []
     for number, path in enumerate(files, start=1):
         data = path.read_bytes()
         sha = hashlib.sha256(data).hexdigest()
-        text = data.decode("utf-8", errors="replace")
         earlier = store.known_file(sha)
         if earlier is not None or sha in seen:
             first = earlier.file_name if earlier is not None else seen[sha]
             when = f" (received {earlier.received_at_utc:%Y-%m-%d %H:%M} UTC)" if earlier is not None else " tonight"
             report = (f"File {path.name} was set aside (quarantined) and not used.\n\n- it is byte for byte "
                       f"identical (SHA-256 {sha[:16]}…) to {first}{when}, which was already processed\n")
-            _quarantine(ws, store, intake, path, sha, None, "duplicate", report, "")
+            _quarantine(ws, store, intake, path, sha, "duplicate", report, "")
         else:
             try:
                 parsed = parse_export(path.name, data, layouts)
             except ExportRejected as exc:
-                _quarantine(ws, store, intake, path, sha, None, "quarantined", exc.report(), text)
+                _quarantine(ws, store, intake, path, sha, "quarantined", exc.report(),
+                            data.decode("utf-8", errors="replace"))
             else:
                 seen[sha] = path.name
                 intake.parsed.append(parsed)
                 intake.paths[path.name] = path
+                received.append(audit.event("file-received", time_zone=ws.time_zone, night_id=night_id,
+                                            file=path.name, sha256=sha, export_kind=parsed.kind,
+                                            layout_version=parsed.layout_version, rows=len(parsed.frame),
+                                            conversions=list(parsed.conversions)))
         progress("receive", number, len(files))
+    store.add_events(received)
+    audit.sync_log(store, ws.log)
     return intake
 
 
@@ -147,9 +159,18 @@ def load_charts(store: Store, catalog: Catalog, evaluations: list[LotEvaluation]
     return charts
 
 
-def decide(evaluations: list[LotEvaluation], catalog: Catalog, charts: dict[tuple[str, str], Chart]) -> list[LotDecision]:
+def earlier_decisions(store: Store, evaluations: list[LotEvaluation]) -> dict[str, str]:
+    """For each lot decided before, a note on its latest decision (one query for the night)."""
+    rows = store.previous_decisions([e.lot_id for e in evaluations])
+    return {lot: f"revision {row.revision}: {row.record.get('label', row.disposition)} (decided by {row.decided_by})"
+            for lot, row in rows.items()
+            if row.disposition != RELEASED or not row.decided_by.startswith("lotgate")}
+
+
+def decide(evaluations: list[LotEvaluation], catalog: Catalog, charts: dict[tuple[str, str], Chart],
+           earlier: dict[str, str] | None = None) -> list[LotDecision]:
     ordered = sorted(evaluations, key=lambda e: (e.product_code, e.manufactured_on, e.lot_id))
-    return decide_night(ordered, catalog.specifications, catalog.methods, charts, __version__)
+    return decide_night(ordered, catalog.specifications, catalog.methods, charts, __version__, earlier or {})
 
 
 # ------------------------------------------------------------------------------ publish
@@ -176,22 +197,31 @@ SIGNATURE_MEANING = ("Release of the lot: I have reviewed its results and the va
                      "behind them, and I approve its release against the stated specification")
 
 
+def _freeze_new_limits(ws: Workspace, store: Store, charts: dict[tuple[str, str], Chart]) -> None:
+    for chart in charts.values():
+        if chart.newly_frozen is None:
+            continue
+        frozen = chart.newly_frozen
+        reason = f"baseline of {len(frozen.baseline_lots)} released lots reached"
+        store.freeze_limits(chart.product_code, chart.attribute, frozen.center, frozen.sigma, frozen.mr_bar,
+                            list(frozen.baseline_lots), frozen_by="lotgate (baseline reached)", reason=reason,
+                            events=[audit.event("limits-frozen", time_zone=ws.time_zone, product=chart.product_code,
+                                                attribute=chart.attribute, center=frozen.center, sigma=frozen.sigma,
+                                                mr_bar=frozen.mr_bar, baseline_lots=list(frozen.baseline_lots),
+                                                by="lotgate (baseline reached)", reason=reason)])
+        chart.newly_frozen = None
+
+
 def publish(ws: Workspace, store: Store, catalog: Catalog, decisions: list[LotDecision], night_id: int,
             charts: dict[tuple[str, str], Chart], signer: CertificateSigner,
             progress: Progress = _no_progress) -> list[Outcome]:
-    """Per lot, in one transaction each: report, certificate (released), store, log."""
+    """Per lot: batch report and (released) signed certificate written atomically, then the
+    decision, its results and its audit events in one store transaction, then the log file."""
     from pipeline.documents.certificate import render_certificate
     from pipeline.documents.report import render_batch_report
 
-    for chart in charts.values():
-        if chart.newly_frozen is not None:
-            frozen = chart.newly_frozen
-            store.freeze_limits(chart.product_code, chart.attribute, frozen.center, frozen.sigma, frozen.mr_bar,
-                                list(frozen.baseline_lots), frozen_by="lotgate (baseline reached)",
-                                reason=f"baseline of {len(frozen.baseline_lots)} released lots reached")
-            ledger.append(ws.log, [{"kind": "limits-frozen", "time_utc": _now_text(), "product": chart.product_code,
-                                    "attribute": chart.attribute, "version": frozen.version, "center": frozen.center,
-                                    "sigma": frozen.sigma, "baseline_lots": list(frozen.baseline_lots)}])
+    _freeze_new_limits(ws, store, charts)
+    audit.sync_log(store, ws.log)
     outcomes = []
     for number, item in enumerate(decisions, start=1):
         decision = item.decision
@@ -213,9 +243,16 @@ def publish(ws: Workspace, store: Store, catalog: Catalog, decisions: list[LotDe
                                 decided_at=decided_at)
         stem = f"{decision.lot_id}_r{revision}"
         report_path = ws.reports / f"{stem}_batch-report.pdf"
-        atomic_write(report_path, render_batch_report(dossier))
-        certificate_path = None
-        signature: dict[str, str] = {}
+        report_bytes = render_batch_report(dossier)
+        atomic_write(report_path, report_bytes)
+        atomic_write(ws.reports / f"{stem}_dossier.json",
+                     json.dumps(dossier, ensure_ascii=False, sort_keys=True).encode("utf-8"))
+        certificate = None
+        events = [audit.event("results-computed", time_zone=ws.time_zone, lot_id=decision.lot_id, night_id=night_id,
+                              results=[{"code": v.code, "value": v.value, "se": v.se, "unit": v.unit,
+                                        "reported": v.reported, "verdict": v.verdict}
+                                       for v in item.evaluation.verdicts],
+                              plates=list(item.evaluation.plates))]
         if decision.disposition == RELEASED:
             signed_at = dt.datetime.now(dt.UTC).replace(microsecond=0)
             signature = {"signer_name": signer.signer_name,
@@ -226,26 +263,55 @@ def publish(ws: Workspace, store: Store, catalog: Catalog, decisions: list[LotDe
                                  reason=SIGNATURE_MEANING, location=ws.plant_name)
             certificate_path = ws.certificates / f"{stem}_certificate.pdf"
             atomic_write(certificate_path, signed)
+            certificate = {"file": certificate_path.name, "sha256": hashlib.sha256(signed).hexdigest(),
+                           "signer": signer.signer_name, "signer_certificate_sha256": signer.fingerprint_sha256,
+                           "signed_at_utc": signed_at.isoformat(), "meaning": SIGNATURE_MEANING}
         record = {**decision.to_dict(), "label": decision.label, "revision": revision, "night_id": night_id,
-                  "lot_id": decision.lot_id, "decided_at_utc": decided_at.isoformat(timespec="seconds"),
+                  "decided_at_utc": decided_at.isoformat(timespec="seconds"),
                   "results": [{"code": v.code, "value": v.value, "reported": v.reported, "unit": v.unit,
                                "verdict": v.verdict} for v in item.evaluation.verdicts],
-                  "trend": [f.to_dict() for f in item.trend],
-                  "certificate": None if certificate_path is None else {
-                      "file": certificate_path.name, "sha256": hashlib.sha256(certificate_path.read_bytes()).hexdigest(),
-                      "signer": signature.get("signer_name"), "meaning": SIGNATURE_MEANING},
-                  "report": {"file": report_path.name, "sha256": hashlib.sha256(report_path.read_bytes()).hexdigest()}}
+                  "trend": [f.to_dict() for f in item.trend], "certificate": certificate,
+                  "report": {"file": report_path.name, "sha256": hashlib.sha256(report_bytes).hexdigest()}}
+        events.append(audit.event("decision", time_zone=ws.time_zone, **record))
+        if certificate is not None:
+            events.append(audit.event("certificate-signed", time_zone=ws.time_zone, lot_id=decision.lot_id, **certificate))
         store.add_decision(lot_id=decision.lot_id, product_code=decision.product,
                            manufactured_on=item.evaluation.manufactured_on, night_id=night_id,
                            decision=record, results=[v.to_dict() for v in item.evaluation.verdicts],
                            chart_values=item.chart_values, decided_by=f"lotgate {__version__} (nightly job)",
-                           change_note=None if previous is None else "new input files or specification")
-        ledger.append(ws.log, [{"kind": "decision", "time_utc": _now_text(), **record}])
+                           change_note=None if previous is None else _change_note(previous.record, record),
+                           events=events)
+        audit.sync_log(store, ws.log)
         outcomes.append(Outcome(decision.lot_id, decision.product, decision.label, decision.reasons, revision, True,
-                                None if certificate_path is None else str(certificate_path.relative_to(ws.root)),
+                                None if certificate is None else f"certificates/{certificate['file']}",
                                 str(report_path.relative_to(ws.root))))
         progress("publish", number, len(decisions))
     return outcomes
+
+
+def _change_note(before: dict[str, Any], after: dict[str, Any]) -> str:
+    """What differs between two revisions: input files, specification, results, disposition."""
+    notes = []
+    old_files, new_files = before.get("input_files", {}), after.get("input_files", {})
+    added = sorted(set(new_files) - set(old_files))
+    removed = sorted(set(old_files) - set(new_files))
+    changed = sorted(n for n in set(old_files) & set(new_files) if old_files[n] != new_files[n])
+    if added:
+        notes.append(f"new input files {', '.join(added)}")
+    if removed:
+        notes.append(f"input files no longer used {', '.join(removed)}")
+    if changed:
+        notes.append(f"changed content of {', '.join(changed)}")
+    if before.get("spec_version") != after.get("spec_version"):
+        notes.append(f"specification v{before.get('spec_version')} → v{after.get('spec_version')}")
+    old_results = {r["code"]: r.get("reported") for r in before.get("results", [])}
+    moved = [f"{r['code']} {old_results.get(r['code'])} → {r.get('reported')}" for r in after.get("results", [])
+             if r["code"] in old_results and old_results[r["code"]] != r.get("reported")]
+    if moved:
+        notes.append("results changed: " + "; ".join(moved))
+    if before.get("label") != after.get("label"):
+        notes.append(f"disposition {before.get('label')} → {after.get('label')}")
+    return "; ".join(notes) or "re-evaluated with the same numbers"
 
 
 @dataclass(frozen=True)
@@ -286,38 +352,47 @@ def csv_cell(value: Any) -> str:
     return "'" + text if text.startswith(FORMULA_PREFIXES) else text
 
 
-def write_lims_results(ws: Workspace, store: Store, night_id: int, outcomes: list[Outcome]) -> list[Path]:
-    """Results for the LIMS: CSV and JSON plus a SHA-256 manifest, each written atomically."""
-    rows = []
-    for outcome in outcomes:
-        if not outcome.new:
-            continue
-        row = store.latest_decision(outcome.lot_id)
-        assert row is not None
-        for result in row.record.get("results", []):
-            rows.append({"lot_id": outcome.lot_id, "product_code": outcome.product, "attribute": result["code"],
-                         "value": result["reported"], "unit": result["unit"], "verdict": result["verdict"],
-                         "disposition": row.record["label"], "revision": row.revision,
-                         "spec_version": row.spec_version})
-    if not rows:
+def write_lims_results(ws: Workspace, store: Store) -> list[Path]:
+    """Every decision not yet exported, as CSV and JSON plus a SHA-256 manifest (atomic writes).
+
+    The file names come from the first and last decision exported, so a night re-run after a
+    crash writes the same bytes to the same names, and a night with nothing new writes nothing.
+    """
+    pending = store.unexported_decisions()
+    if not pending:
         return []
+    rows = []
+    for decision in pending:
+        for result in decision.record.get("results", []):
+            rows.append({"lot_id": decision.lot_id, "product_code": decision.record.get("product"),
+                         "attribute": result["code"], "value": result["reported"], "unit": result["unit"],
+                         "verdict": result["verdict"], "disposition": decision.record.get("label", decision.disposition),
+                         "revision": decision.revision, "spec_version": decision.spec_version,
+                         "decided_at_utc": decision.record.get("decided_at_utc")})
     header = list(rows[0])
     buffer = io.StringIO()
     writer = csv.writer(buffer, lineterminator="\n")
     writer.writerow(header)
     for row in rows:
         writer.writerow([csv_cell(row[h]) for h in header])
-    stem = f"results-night-{night_id:04d}"
+    stem = f"results-{pending[0].id:06d}-{pending[-1].id:06d}"
     csv_path, json_path = ws.lims / f"{stem}.csv", ws.lims / f"{stem}.json"
     csv_bytes = buffer.getvalue().encode("utf-8")
-    json_bytes = json.dumps({"night_id": night_id, "code_version": __version__, "results": rows},
+    json_bytes = json.dumps({"code_version": __version__, "decisions": [d.id for d in pending], "results": rows},
                             indent=1, ensure_ascii=False).encode("utf-8")
-    atomic_write(csv_path, csv_bytes)
-    atomic_write(json_path, json_bytes)
-    manifest = "".join(f"{hashlib.sha256(b).hexdigest()}  {p.name}\n" for p, b in ((csv_path, csv_bytes), (json_path, json_bytes)))
+    manifest = "".join(f"{hashlib.sha256(b).hexdigest()}  {p.name}\n"
+                       for p, b in ((csv_path, csv_bytes), (json_path, json_bytes))).encode()
     manifest_path = ws.lims / f"{stem}.sha256"
-    atomic_write(manifest_path, manifest.encode())
-    return [csv_path, json_path, manifest_path]
+    written = []
+    for path, data in ((csv_path, csv_bytes), (json_path, json_bytes), (manifest_path, manifest)):
+        if not (path.exists() and path.read_bytes() == data):
+            atomic_write(path, data)
+        written.append(path)
+    store.mark_exported([d.id for d in pending], stem, [audit.event(
+        "lims-results-written", time_zone=ws.time_zone, files={p.name: hashlib.sha256(p.read_bytes()).hexdigest()
+                                                                for p in written},
+        decisions=len(pending), rows=len(rows))])
+    return written
 
 
 @dataclass(frozen=True)
@@ -335,23 +410,28 @@ class NightSummary:
 def close(ws: Workspace, store: Store, intake: Intake, outcomes: list[Outcome], notes: list[str]) -> NightSummary:
     """Archive the used files, write the LIMS results, and count: received = archived + quarantined."""
     archive = ws.archive / f"night-{intake.night_id:04d}"
+    files, events = [], []
     for parsed in intake.parsed:
-        path = intake.paths[parsed.file_name]
-        target = move_into(path, archive)
-        store.record_file(intake.night_id, file_name=parsed.file_name, sha256=parsed.sha256, kind=parsed.kind,
+        target = move_into(intake.paths[parsed.file_name], archive)
+        stored_as = str(target.relative_to(ws.root))
+        files.append(dict(file_name=parsed.file_name, sha256=parsed.sha256, kind=parsed.kind,
                           layout_version=parsed.layout_version, status="archived",
-                          reason="; ".join(parsed.conversions) or None, stored_as=str(target.relative_to(ws.root)))
-    lims_files = write_lims_results(ws, store, intake.night_id, outcomes)
+                          reason="; ".join(parsed.conversions) or None, stored_as=stored_as))
+        events.append(audit.event("file-archived", time_zone=ws.time_zone, night_id=intake.night_id,
+                                  file=parsed.file_name, sha256=parsed.sha256, stored_as=stored_as))
+    store.record_files(intake.night_id, files, events)
+    lims_files = write_lims_results(ws, store)
     archived, quarantined = len(intake.parsed), len(intake.quarantined)
+    decided = sum(o.new for o in outcomes)
     store.finish_night(intake.night_id, files_received=intake.received, files_archived=archived,
-                       files_quarantined=quarantined, lots_decided=sum(o.new for o in outcomes))
-    ledger.append(ws.log, [{"kind": "night-closed", "time_utc": _now_text(), "night_id": intake.night_id,
-                            "files_received": intake.received, "files_archived": archived,
-                            "files_quarantined": quarantined, "lots_decided": sum(o.new for o in outcomes),
-                            "quarantined": [{"file": q.file_name, "sha256": q.sha256} for q in intake.quarantined],
-                            "not_decided": notes}])
+                       files_quarantined=quarantined, lots_decided=decided)
+    store.add_events([audit.event("night-closed", time_zone=ws.time_zone, night_id=intake.night_id,
+                                  files_received=intake.received, files_archived=archived,
+                                  files_quarantined=quarantined, lots_decided=decided, not_decided=notes)])
+    audit.sync_log(store, ws.log)
     return NightSummary(intake.night_id, intake.received, archived, quarantined, outcomes, notes,
-                        [(q.file_name, q.reason) for q in intake.quarantined], [str(p.relative_to(ws.root)) for p in lims_files])
+                        [(q.file_name, q.reason) for q in intake.quarantined],
+                        [str(p.relative_to(ws.root)) for p in lims_files])
 
 
 def signer_for(ws: Workspace) -> IdentitySigner:

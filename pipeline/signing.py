@@ -528,3 +528,64 @@ def pdfsig_report(path: Path, *, timeout_s: float = 30.0) -> tuple[bool, str] | 
     ]
     ok = bool(verdicts) and all(v == PDFSIG_VALID_LINE for v in verdicts)
     return ok, text
+
+
+# --------------------------------------------------------------------------- record signatures
+@dataclass(frozen=True)
+class RecordSignature:
+    """A signature over one record's canonical bytes, linked to it (21 CFR 11.70)."""
+
+    algorithm: str
+    signature_b64: str
+    signer_name: str
+    certificate_pem: str
+    certificate_sha256: str
+
+    def to_dict(self) -> dict[str, Any]:
+        return {"algorithm": self.algorithm, "signature_b64": self.signature_b64, "signer_name": self.signer_name,
+                "certificate_pem": self.certificate_pem, "certificate_sha256": self.certificate_sha256}
+
+
+def sign_record(identity: SigningIdentity, data: bytes) -> RecordSignature:
+    """Sign ``data`` with the identity's private key: ECDSA or RSA (PKCS#1 v1.5) over SHA-256."""
+    import base64
+
+    from cryptography import x509
+    from cryptography.hazmat.primitives import hashes, serialization
+    from cryptography.hazmat.primitives.asymmetric import ec, padding, rsa
+
+    key = serialization.load_der_private_key(identity.signer.signing_key.dump(), password=None)
+    cert = x509.load_der_x509_certificate(identity.signer.signing_cert.dump())
+    if isinstance(key, ec.EllipticCurvePrivateKey):
+        signature, algorithm = key.sign(data, ec.ECDSA(hashes.SHA256())), "ecdsa-sha256"
+    elif isinstance(key, rsa.RSAPrivateKey):
+        signature, algorithm = key.sign(data, padding.PKCS1v15(), hashes.SHA256()), "rsa-pkcs1v15-sha256"
+    else:  # pragma: no cover - identities are made with EC or RSA keys
+        raise SigningError(f"unsupported key type {type(key).__name__} in {identity.signer_name}'s identity")
+    pem = cert.public_bytes(serialization.Encoding.PEM).decode("ascii")
+    return RecordSignature(algorithm, base64.b64encode(signature).decode("ascii"), identity.signer_name, pem,
+                           identity.fingerprint_sha256)
+
+
+def verify_record(signature: dict[str, Any], data: bytes) -> bool:
+    """True when ``signature`` (RecordSignature.to_dict()) is valid for ``data``."""
+    import base64
+
+    from cryptography import x509
+    from cryptography.exceptions import InvalidSignature
+    from cryptography.hazmat.primitives import hashes
+    from cryptography.hazmat.primitives.asymmetric import ec, padding, rsa
+
+    try:
+        cert = x509.load_pem_x509_certificate(signature["certificate_pem"].encode("ascii"))
+        raw = base64.b64decode(signature["signature_b64"])
+        key = cert.public_key()
+        if isinstance(key, ec.EllipticCurvePublicKey):
+            key.verify(raw, data, ec.ECDSA(hashes.SHA256()))
+        elif isinstance(key, rsa.RSAPublicKey):
+            key.verify(raw, data, padding.PKCS1v15(), hashes.SHA256())
+        else:
+            return False
+    except (InvalidSignature, KeyError, ValueError, TypeError):
+        return False
+    return True

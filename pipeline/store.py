@@ -10,8 +10,12 @@ import datetime as dt
 import json
 from collections.abc import Iterator
 from contextlib import contextmanager
+from pathlib import Path
 from typing import Any
 
+from alembic import command
+from alembic.config import Config
+from filelock import FileLock
 from sqlalchemy import (
     JSON,
     DateTime,
@@ -29,6 +33,11 @@ from sqlalchemy.exc import SQLAlchemyError
 from sqlalchemy.orm import DeclarativeBase, Mapped, Session, mapped_column, sessionmaker
 
 from pipeline.errors import StoreError
+
+MIGRATIONS = Path(__file__).resolve().parent / "migrations"
+MIGRATION_LOCK_KEY = 472_901_001
+RUN_LOCK_KEY = 472_901_002
+AUDIT_LOCK_KEY = 472_901_003
 
 
 class Base(DeclarativeBase):
@@ -91,6 +100,7 @@ class DecisionRow(Base):
     decided_at_utc: Mapped[dt.datetime] = mapped_column(DateTime(timezone=True))
     record: Mapped[dict[str, Any]] = mapped_column(JSON)
     superseded_by: Mapped[int | None] = mapped_column(ForeignKey("decisions.id"), nullable=True)
+    lims_export: Mapped[str | None] = mapped_column(String(120), nullable=True)
 
 
 class ResultRow(Base):
@@ -124,6 +134,19 @@ class ControlLimitRow(Base):
     active: Mapped[int] = mapped_column(Integer, default=1)
 
 
+class AuditEvent(Base):
+    """One hash-chained audit record (the decision log's lines are copies of these)."""
+
+    __tablename__ = "audit_events"
+    seq: Mapped[int] = mapped_column(Integer, primary_key=True, autoincrement=False)
+    time_utc: Mapped[str] = mapped_column(String(32))
+    kind: Mapped[str] = mapped_column(String(40), index=True)
+    lot_id: Mapped[str | None] = mapped_column(String(40), nullable=True, index=True)
+    body: Mapped[str] = mapped_column(Text)
+    prev_hash: Mapped[str] = mapped_column(String(64))
+    hash: Mapped[str] = mapped_column(String(64), unique=True)
+
+
 class ChartPoint(Base):
     """A released lot's value on a product/attribute chart, in the order lots were released."""
 
@@ -144,10 +167,37 @@ class Store:
         self.url = url
         try:
             self.engine = create_engine(url, future=True)
-            Base.metadata.create_all(self.engine)
+            self.migrate()
         except SQLAlchemyError as exc:
             raise StoreError(f"cannot open the results store at {safe_url(url)}: {exc.__class__.__name__}: {exc}") from exc
         self._sessions = sessionmaker(self.engine, expire_on_commit=False)
+
+    @property
+    def is_postgresql(self) -> bool:
+        return self.engine.dialect.name == "postgresql"
+
+    def migrate(self, revision: str = "head") -> None:
+        """Bring the database to ``revision`` with Alembic; one process at a time."""
+        config = Config()
+        config.set_main_option("script_location", str(MIGRATIONS))
+        if self.is_postgresql:
+            with self.engine.begin() as connection:
+                connection.exec_driver_sql(f"SELECT pg_advisory_xact_lock({MIGRATION_LOCK_KEY})")
+                config.attributes["connection"] = connection
+                command.upgrade(config, revision)
+            return
+        database = self.engine.url.database
+        lock = FileLock(f"{database}.migrate.lock") if database and database != ":memory:" else None
+        if lock is not None:
+            Path(database).parent.mkdir(parents=True, exist_ok=True)
+            lock.acquire(timeout=60)
+        try:
+            with self.engine.begin() as connection:
+                config.attributes["connection"] = connection
+                command.upgrade(config, revision)
+        finally:
+            if lock is not None:
+                lock.release()
 
     @contextmanager
     def session(self) -> Iterator[Session]:
@@ -235,7 +285,9 @@ class Store:
             s.add(InputFile(night_id=night_id, received_at_utc=utcnow(), **fields))
 
     def freeze_limits(self, product_code: str, attribute: str, center: float, sigma: float, mr_bar: float,
-                      baseline_lots: list[str], frozen_by: str, reason: str) -> ControlLimitRow:
+                      baseline_lots: list[str], frozen_by: str, reason: str,
+                      events: list[dict[str, Any]] | None = None) -> ControlLimitRow:
+        """A new version of a chart's limits (earlier ones deactivated), with its audit event."""
         with self.session() as s:
             current = s.scalar(select(func.max(ControlLimitRow.version)).where(
                 ControlLimitRow.product_code == product_code, ControlLimitRow.attribute == attribute)) or 0
@@ -248,12 +300,37 @@ class Store:
                                   reason=reason, active=1)
             s.add(row)
             s.flush()
+            self.chain_events(s, [{**e, "version": row.version, "previous_version": current or None}
+                                  for e in (events or [])])
             return row
+
+    def chain_events(self, session: Session, events: list[dict[str, Any]]) -> list[dict[str, Any]]:
+        """Chain audit ``events`` after the last stored one, inside the caller's transaction."""
+        from pipeline import ledger
+
+        if not events:
+            return []
+        if self.is_postgresql:
+            session.connection().exec_driver_sql(f"SELECT pg_advisory_xact_lock({AUDIT_LOCK_KEY})")
+        last = session.scalars(select(AuditEvent).order_by(AuditEvent.seq.desc()).limit(1)).first()
+        chained = ledger.chain(events, prev_hash=last.hash if last else ledger.GENESIS,
+                               start_seq=(last.seq + 1) if last else 1)
+        for record in chained:
+            session.add(AuditEvent(seq=record["seq"], time_utc=str(record.get("time_utc", "")), kind=record["kind"],
+                                   lot_id=record.get("lot_id"), body=ledger.canonical_json(record),
+                                   prev_hash=record["prev_hash"], hash=record["hash"]))
+        session.flush()
+        return chained
+
+    def add_events(self, events: list[dict[str, Any]]) -> list[dict[str, Any]]:
+        with self.session() as s:
+            return self.chain_events(s, events)
 
     def add_decision(self, *, lot_id: str, product_code: str, manufactured_on: str | None, night_id: int | None,
                      decision: dict[str, Any], results: list[dict[str, Any]], chart_values: dict[str, float],
-                     decided_by: str, change_note: str | None = None) -> DecisionRow:
-        """Store one lot's decision as a new revision, in one transaction (commit per lot)."""
+                     decided_by: str, change_note: str | None = None,
+                     events: list[dict[str, Any]] | None = None) -> DecisionRow:
+        """Store one lot's decision as a new revision with its audit events, in one transaction."""
         with self.session() as s:
             if s.get(Lot, lot_id) is None:
                 s.add(Lot(lot_id=lot_id, product_code=product_code, manufactured_on=manufactured_on,
@@ -283,7 +360,33 @@ class Store:
             for attribute, value in chart_values.items():
                 s.add(ChartPoint(product_code=product_code, attribute=attribute, lot_id=lot_id,
                                  value=value, decision_id=row.id))
+            self.chain_events(s, [{**e, "revision": row.revision} for e in (events or [])])
             return row
+
+    def record_files(self, night_id: int, files: list[dict[str, Any]], events: list[dict[str, Any]]) -> None:
+        with self.session() as s:
+            for fields in files:
+                s.add(InputFile(night_id=night_id, received_at_utc=utcnow(), **fields))
+            self.chain_events(s, events)
+
+    def unexported_decisions(self) -> list[DecisionRow]:
+        with self.session() as s:
+            return list(s.scalars(select(DecisionRow).where(DecisionRow.lims_export.is_(None)).order_by(DecisionRow.id)))
+
+    def mark_exported(self, decision_ids: list[int], export_name: str, events: list[dict[str, Any]]) -> None:
+        with self.session() as s:
+            for row in s.scalars(select(DecisionRow).where(DecisionRow.id.in_(decision_ids))):
+                row.lims_export = export_name
+            self.chain_events(s, events)
+
+    def previous_decisions(self, lot_ids: list[str]) -> dict[str, DecisionRow]:
+        """The latest decision of each lot that has one (one query for the night)."""
+        if not lot_ids:
+            return {}
+        with self.session() as s:
+            rows = s.scalars(select(DecisionRow).where(DecisionRow.lot_id.in_(lot_ids))
+                             .order_by(DecisionRow.lot_id, DecisionRow.revision))
+            return {row.lot_id: row for row in rows}
 
 
 def safe_url(url: str) -> str:

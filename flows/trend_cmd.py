@@ -1,0 +1,273 @@
+"""``lotgate trend`` and ``lotgate rebaseline``: a chart for a reviewer, and an audited re-baseline.
+
+Each command function takes the parsed arguments and returns the exit code: 0 done, 2 refused
+or not possible (one line on standard error saying why).
+"""
+
+from __future__ import annotations
+
+import argparse
+import datetime as dt
+import sys
+from pathlib import Path
+from typing import Any
+
+from pipeline.errors import InputError, LotgateError, SpecificationError
+
+DEFAULT_WINDOW = 30
+
+
+# ------------------------------------------------------------------------------ shared
+def _refuse(command: str, exc: Exception | str) -> int:
+    text = " ".join(str(exc).split())
+    print(f"lotgate {command}: {text}", file=sys.stderr)
+    return 2
+
+
+def _open(workspace: str) -> tuple[Any, Any]:
+    """The workspace and its store; refuses a folder that holds no store yet."""
+    from pipeline.store import Store
+    from pipeline.workspace import open_workspace
+
+    root = Path(workspace).expanduser()
+    if not root.is_dir():
+        raise InputError(f"the workspace {root} does not exist")
+    ws = open_workspace(root)
+    if ws.database_url.startswith("sqlite:///"):
+        db = Path(ws.database_url.removeprefix("sqlite:///"))
+        if not db.exists():
+            raise InputError(f"no results store in {ws.root} (expected {db}); run a night there first")
+    return ws, Store(ws.database_url)
+
+
+def _attribute(product: str, code: str) -> Any:
+    """The trended attribute of a product's specification, or a SpecificationError naming the choices."""
+    from pipeline.catalog import load_catalog
+
+    catalog = load_catalog()
+    spec = catalog.specifications.get(product)
+    if spec is None:
+        raise SpecificationError(f"unknown product '{product}'; known products: "
+                                 f"{', '.join(sorted(catalog.specifications))}")
+    trended = [a.code for a in spec.attributes if a.trend]
+    if code not in {a.code for a in spec.attributes}:
+        raise SpecificationError(f"product {product} has no attribute '{code}'; its charted attributes: "
+                                 f"{', '.join(trended) or 'none'}")
+    attribute = spec.attribute(code)
+    if not attribute.trend:
+        raise SpecificationError(f"{product} {code} is not on a control chart (no 'trend: true' in "
+                                 f"specification v{spec.document.version}); charted: {', '.join(trended) or 'none'}")
+    return spec, attribute
+
+
+def _num(value: float | None, decimals: int) -> str:
+    return "—" if value is None else f"{value:.{max(decimals, 0)}f}"
+
+
+def _lots_text(lots: tuple[str, ...] | list[str]) -> str:
+    if not lots:
+        return "none"
+    return lots[0] if len(lots) == 1 else f"{lots[0]} … {lots[-1]}"
+
+
+# ------------------------------------------------------------------------------ trend
+def chart_report(view: Any, product_name: str) -> str:
+    """The chart's numbers as text: limits, the lots of the window, capability, signals."""
+    d = view.digits + 1
+    unit = view.unit
+    lines = [f"{view.product_code} {product_name} · {view.title} ({view.attribute}, {unit}) — I-MR chart",
+             f"Specification: {_limit_text(view)}; Nelson rules {', '.join(map(str, view.rules))}; "
+             f"baseline {view.baseline_n} released lots"]
+    lim = view.limits
+    if lim is None:
+        lines.append(f"Control limits: {view.status}")
+    else:
+        lines += [
+            f"Control limits: version {lim.version} (active), frozen {lim.frozen_at_utc} by {lim.frozen_by}",
+            f"  reason          {lim.reason}",
+            f"  baseline lots   {len(lim.baseline_lots)}: {_lots_text(lim.baseline_lots)}",
+            f"  centre          {_num(lim.center, d + 1)} {unit}",
+            f"  sigma           {_num(lim.sigma, d + 1)} {unit}  (σ̂ = MR̄/d₂, d₂ = 1.128)",
+            f"  UCL / LCL       {_num(lim.ucl, d + 1)} / {_num(lim.lcl, d + 1)} {unit}  (centre ± 3σ̂)",
+            f"  MR̄ / MR UCL     {_num(lim.mr_bar, d + 1)} / {_num(lim.mr_ucl, d + 1)} {unit}  (D₄ = 3.267)"]
+        if view.previous is not None:
+            lines.append(f"  replaces        version {view.previous.version} (centre "
+                         f"{_num(view.previous.center, d + 1)}, σ {_num(view.previous.sigma, d + 1)})")
+    released = sum(r.released for r in view.rows)
+    lines += ["", f"Last {len(view.rows)} lots ({released} released, {len(view.rows) - released} held); "
+                  f"released lots on the chart in all: {view.released_total}"]
+    header = f"  {'lot':<16}{'value':>12}  {'disposition':<34}{'zone':<13}signals"
+    lines += [header, "  " + "-" * (len(header) + 10)]
+    for r in view.rows:
+        tag = " (baseline)" if r.baseline else ""
+        lines.append(f"  {r.lot_id:<16}{_num(r.value, d):>12}  {(r.disposition + tag):<34}"
+                     f"{r.zone_text:<13}{'; '.join(r.signal_notes)}")
+    lines.append("")
+    cap = view.capability
+    if cap is None:
+        lines.append(f"Capability: {view.capability_note}")
+    else:
+        lines += [f"Capability against {_limit_text(view)}, {view.capability_note}:",
+                  f"  Cpk {cap.cpk:.2f}  (σ within = MR̄/d₂ = {_num(cap.sigma_within, d + 1)} {unit})",
+                  f"  Ppk {cap.ppk:.2f}  (σ overall = s = {_num(cap.sigma_overall, d + 1)} {unit}); "
+                  f"mean {_num(cap.mean, d + 1)} {unit}"]
+    if lim is not None:
+        lines.append("")
+        if view.signals:
+            lines.append("Signals in the window:")
+            lines += [f"  {s.lot_id}: {s.description} [{s.source}]" for s in view.signals]
+        else:
+            lines.append("Signals in the window: none")
+    return "\n".join(lines)
+
+
+def _limit_text(view: Any) -> str:
+    fmt = f"{{:.{view.digits}f}}"
+    if view.lsl is not None and view.usl is not None:
+        return f"{fmt.format(view.lsl)} – {fmt.format(view.usl)} {view.unit}"
+    if view.lsl is not None:
+        return f"≥ {fmt.format(view.lsl)} {view.unit}"
+    if view.usl is not None:
+        return f"≤ {fmt.format(view.usl)} {view.unit}"
+    return "no limits (reported only)"
+
+
+def cmd_trend(args: argparse.Namespace) -> int:
+    """Print a chart's numbers and write its PNG and PDF."""
+    from pipeline.chart_queries import chart_history
+    from pipeline.chartview import build_chart_view
+    from pipeline.documents.trend_figure import figure_pdf, figure_png
+    from pipeline.workspace import atomic_write
+
+    try:
+        if args.window < 1:
+            raise InputError(f"--window must be at least 1 lot, received {args.window}")
+        spec, attribute = _attribute(args.product, args.attribute)
+        ws, store = _open(args.workspace)
+        view = build_chart_view(chart_history(store, args.product, args.attribute, args.window),
+                                attribute, args.window)
+        out = Path(args.out).expanduser() if args.out else ws.root / "charts"
+        as_of = dt.datetime.now(dt.UTC).strftime("%Y-%m-%d %H:%M UTC")
+        stem = f"{args.product}_{args.attribute}_trend"
+        png, pdf = out / f"{stem}.png", out / f"{stem}.pdf"
+        atomic_write(png, figure_png(view, as_of))
+        atomic_write(pdf, figure_pdf(view, as_of))
+    except (LotgateError, OSError) as exc:
+        return _refuse("trend", exc)
+    print(chart_report(view, spec.product_name))
+    print(f"\nChart written: {png}\n               {pdf}")
+    return 0
+
+
+# ------------------------------------------------------------------------------ rebaseline
+def _side_by_side(old: Any, new: Any, d: int, unit: str) -> str:
+    """Old and new limits in two columns."""
+    def column(lim: Any) -> list[str]:
+        if lim is None:
+            return ["—"] * 9
+        return [f"v{lim.version}", _num(lim.center, d), _num(lim.sigma, d), _num(lim.ucl, d),
+                _num(lim.lcl, d), _num(lim.mr_bar, d), _num(lim.mr_ucl, d), str(len(lim.baseline_lots)),
+                _lots_text(lim.baseline_lots)]
+    names = ["version", f"centre ({unit})", "σ̂ = MR̄/d₂", "UCL", "LCL", "MR̄", "MR UCL", "baseline lots",
+             "baseline"]
+    left, right = column(old), column(new)
+    width = max(14, *(len(x) for x in left))
+    rows = [f"  {'':<16}{'before':<{width + 3}}after",
+            *(f"  {n:<16}{a:<{width + 3}}{b}" for n, a, b in zip(names, left, right, strict=True))]
+    return "\n".join(rows)
+
+
+def cmd_rebaseline(args: argparse.Namespace) -> int:
+    """Compute new limits from chosen released lots, store them as a new version, log it."""
+    from pipeline import ledger
+    from pipeline.chart_queries import active_limits, released_count, released_points
+    from pipeline.chartview import StoredLimits, propose_limits, select_baseline
+
+    try:
+        reason = (args.reason or "").strip()
+        by = (args.by or "").strip()
+        if not reason:
+            raise InputError("a re-baseline needs a reason (--reason TEXT): why the old limits no longer apply")
+        if not by:
+            raise InputError("a re-baseline needs the name of the person who decides it (--by NAME)")
+        _, attribute = _attribute(args.product, args.attribute)
+        count = attribute.baseline_n if args.count is None else args.count
+        if count < 2:
+            raise InputError(f"--count must be at least 2 lots (one moving range), received {count}")
+        ws, store = _open(args.workspace)
+        check = ledger.verify_file(ws.log)
+        if not check.valid:
+            raise InputError(f"the decision log {ws.log.name} is broken ({check.reason}); "
+                             "no re-baseline is recorded on a broken log")
+        if args.from_lot is not None:
+            points = released_points(store, args.product, args.attribute, from_lot=args.from_lot, count=count)
+            if not points:
+                raise InputError(f"lot {args.from_lot} is not among the released lots on the "
+                                 f"{args.product} {args.attribute} chart")
+        else:
+            points = released_points(store, args.product, args.attribute, tail=count)
+        chosen = select_baseline(points, args.from_lot, count)
+        proposal = propose_limits(chosen)
+        old = active_limits(store, args.product, args.attribute)
+        lim = proposal.limits
+        row = store.freeze_limits(args.product, args.attribute, lim.center, lim.sigma, lim.mr_bar,
+                                  list(proposal.lots), frozen_by=by, reason=reason)
+        record = {"kind": "limits-rebaselined", "time_utc": dt.datetime.now(dt.UTC).isoformat(timespec="seconds"),
+                  "product": args.product, "attribute": args.attribute, "version": int(row.version),
+                  "center": lim.center, "sigma": lim.sigma, "baseline_lots": list(proposal.lots),
+                  "by": by, "reason": reason, "previous_version": None if old is None else old.version}
+        ledger.append(ws.log, [record])
+        total = released_count(store, args.product, args.attribute)
+    except (LotgateError, OSError) as exc:
+        return _refuse("rebaseline", exc)
+    new = StoredLimits(int(row.version), lim.center, lim.sigma, lim.mr_bar, proposal.lots,
+                       record["time_utc"], by, reason)
+    d = attribute.digits + 2
+    print(f"{args.product} {attribute.title} ({args.attribute}): control limits re-baselined "
+          f"by {by}, version {new.version}")
+    print(f"  reason: {reason}")
+    print(f"  from {len(proposal.lots)} released lots {_lots_text(proposal.lots)} "
+          f"(of {total} on the chart)")
+    if len(proposal.lots) < attribute.baseline_n:
+        print(f"  note: fewer lots than the specification's baseline of {attribute.baseline_n}")
+    print(_side_by_side(old, new, d, attribute.unit))
+    print(f"Recorded in {ws.log} (kind limits-rebaselined); the next night judges lots against version "
+          f"{new.version}.")
+    return 0
+
+
+# ------------------------------------------------------------------------------ parser
+def add_commands(subparsers: Any) -> None:
+    """Register ``trend`` and ``rebaseline`` on an ``argparse`` sub-parser collection."""
+    trend = subparsers.add_parser(
+        "trend", help="print a control chart's numbers and write it as PNG and PDF",
+        description="Print one product attribute's I-MR chart: the limits in force (version, centre, "
+                    "sigma = MR-bar/d2, UCL/LCL, MR-bar and MR UCL, baseline lots, when, by whom and why "
+                    "frozen), the last N lots with value, disposition, zone and signals, and Cpk/Ppk over "
+                    "them against the specification; write the chart (individuals and moving range, held "
+                    "lots in their own colours, signals marked) as PNG and PDF.")
+    trend.add_argument("product", metavar="PRODUCT", help="product code, e.g. LLC-200")
+    trend.add_argument("attribute", metavar="ATTRIBUTE", help="charted attribute code, e.g. specific_activity")
+    trend.add_argument("--workspace", required=True, metavar="DIR", help="workspace folder holding the store")
+    trend.add_argument("--window", type=int, default=DEFAULT_WINDOW, metavar="N",
+                       help=f"how many of the most recent lots to show (default {DEFAULT_WINDOW})")
+    trend.add_argument("--out", metavar="DIR", help="folder for the PNG and PDF (default DIR/charts)")
+    trend.set_defaults(func=cmd_trend)
+
+    rebase = subparsers.add_parser(
+        "rebaseline", help="re-compute a chart's control limits from chosen lots (audited)",
+        description="Compute new I-MR limits from N consecutive released lots starting at LOT (default: "
+                    "the last N, N = the specification's baseline size), store them as a new version "
+                    "(the old one is kept, inactive) and record who did it and why in the decision log. "
+                    "Refused without a reason and a name.")
+    rebase.add_argument("product", metavar="PRODUCT", help="product code, e.g. LLC-200")
+    rebase.add_argument("attribute", metavar="ATTRIBUTE", help="charted attribute code, e.g. specific_activity")
+    rebase.add_argument("--workspace", required=True, metavar="DIR", help="workspace folder holding the store")
+    rebase.add_argument("--reason", metavar="TEXT",
+                        help="why the limits change, e.g. the change control that moved the process (required)")
+    rebase.add_argument("--by", metavar="NAME", help="the person who decides the re-baseline (required)")
+    rebase.add_argument("--from-lot", dest="from_lot", metavar="LOT",
+                        help="first released lot of the new baseline (default: the last N released lots)")
+    rebase.add_argument("--count", type=int, metavar="N",
+                        help="number of released lots in the new baseline (default: the specification's baseline size)")
+    rebase.set_defaults(func=cmd_rebaseline)

@@ -1,0 +1,1 @@
+"""Alembic migrations of the results store (run by pipeline.store.Store on open)."""
