@@ -309,3 +309,29 @@ def build_scenario(seed: int = DEMO_SEED, first_night: dt.date = dt.date(2026, 1
             files[name] = data
         result.append(Night(assay_date=date, files=files, lots=(*lipase, *protease), notes=tuple(notes)))
     return result
+
+
+def build_reassay(night: Night, lot_ids: tuple[str, ...], assay_date: dt.date, seed: int = DEMO_SEED + 1) -> Night:
+    """A corrected, complete re-export for some lots of an earlier night: new plates, new LIMS files.
+
+    Models a re-assay after an invalid plate: the same lots (same true values), assayed again on
+    fresh activity and protein plates whose reference standard recovers normally.
+    """
+    rng = np.random.default_rng(seed)
+    lots = [lot for lot in night.lots if lot.lot_id in lot_ids]
+    files: dict[str, bytes] = {}
+    registry = [[lot.lot_id, lot.product.code, lot.manufactured_on.isoformat(), assay_date.isoformat(), "J. Ferro"]
+                for lot in lots]
+    files[f"lots-{assay_date:%Y%m%d}-reassay.csv"] = _csv(
+        ["lot_id", "product_code", "manufactured_on", "assay_date", "analyst"], registry)
+    for product, tag in ((LIPASE, "L"), (PROTEASE, "P")):
+        mine = [lot for lot in lots if lot.product is product]
+        for plate_no, start in enumerate(range(0, len(mine), 4), start=1):
+            files.update(_activity_plate(f"AK-{assay_date:%y%m%d}-R{tag}{plate_no}", product, mine[start:start + 4],
+                                         rng, 1.0))
+    files.update(_protein_plate(f"PR-{assay_date:%y%m%d}-R1", lots, rng))
+    for lot in lots:
+        name, data = _lims_file(lot, assay_date, rng)
+        files[name.replace(".csv", f"-{assay_date:%Y%m%d}.csv")] = data
+    return Night(assay_date=assay_date, files=files, lots=tuple(lots),
+                 notes=(f"re-assay of {', '.join(lot_ids)} on fresh plates",))

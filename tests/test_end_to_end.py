@@ -121,3 +121,60 @@ def test_running_the_demo_again_adds_no_decision(demo_workspace):
     assert summary.received == summary.quarantined == len(nights[-1].files)
     assert not any(o.new for o in summary.outcomes)
     assert ledger.verify_file(root / "decisions.jsonl").valid
+
+
+def test_revision_chain_original_reassay_and_a_persons_release(demo_workspace, tmp_path):
+    """A plate failed its reference standard; the lot is re-assayed, then released by a person."""
+    import datetime as dt
+
+    from flows import records_cmd
+    from pipeline import signing
+    from pipeline.person import decide_lot
+
+    root, nights, _ = demo_workspace
+    lot = "LLC-2611-030"
+    reassay = demo.build_reassay(nights[-1], (lot,), dt.date(2026, 11, 28))
+    _write_night(root, reassay)
+    summary = nightly.nightly(str(root))
+    outcome = next(o for o in summary.outcomes if o.lot_id == lot)
+    assert outcome.revision == 2 and outcome.label == "held: review required"
+    # The re-assay's numbers are valid: the only reason left is the earlier hold awaiting a person.
+    assert len(outcome.reasons) == 1 and outcome.reasons[0].startswith("the lot's earlier decision")
+
+    person = signing.create_demo_identity(tmp_path / "person", demo.PLANT_NAME, "Jonas Brandt")
+    identity = signing.load_identity(person.p12_path, passphrase_file=person.passphrase_path)
+    ws = open_workspace(root)
+    store = Store(ws.database_url)
+    result = decide_lot(ws, store, lot, release=True, reason="re-assay valid; plate failure investigated",
+                        identity=identity)
+    assert result.revision == 3 and result.certificate
+    rows = store.decisions(lot)
+    assert [r.revision for r in rows] == [1, 2, 3]
+    assert [r.record["label"] for r in rows] == ["held: invalid assay", "held: review required",
+                                                 "released by Jonas Brandt (DEMO)"]
+    assert rows[0].superseded_by == rows[1].id and rows[1].superseded_by == rows[2].id
+    assert "new input files" in rows[1].change_note
+    # The person's signature is linked to the record it signs (21 CFR 11.70).
+    record = dict(rows[2].record)
+    signature = record.pop("person_signature")
+    assert signing.verify_record(signature, ledger.canonical_json(record).encode())
+    record["reasons"] = ["edited"]
+    assert not signing.verify_record(signature, ledger.canonical_json(record).encode())
+    # The re-issued certificate carries the person's signature, name and meaning.
+    verification = verify_pdf(root / result.certificate, trust_roots=[person.root_ca_path])
+    assert verification.valid and verification.trusted
+    assert verification.signer_name == "Jonas Brandt (DEMO)"
+    from pypdf import PdfReader
+    text = " ".join(page.extract_text() for page in PdfReader(root / result.certificate).pages)
+    assert "Jonas Brandt (DEMO)" in " ".join(text.split())
+    assert verification.reason.split(":")[0] in " ".join(text.split())
+    # History shows all three revisions.
+    import argparse
+    import contextlib
+    import io
+    buffer = io.StringIO()
+    with contextlib.redirect_stdout(buffer):
+        records_cmd.cmd_history(argparse.Namespace(lot=lot, workspace=str(root)))
+    shown = buffer.getvalue()
+    assert "held: invalid assay" in shown and "review required" in shown and "Jonas Brandt" in shown
+    assert ledger.verify_file(root / "decisions.jsonl").valid

@@ -1,0 +1,136 @@
+"""The results store on SQLite and on PostgreSQL: migrations, revisions, audit trail, tampering."""
+
+import json
+
+import pytest
+from sqlalchemy import create_engine, text
+
+from pipeline import audit, ledger
+from pipeline.store import Store
+from tests.pg import fresh_database
+
+
+@pytest.fixture(params=["sqlite", "postgresql"])
+def url(request, tmp_path):
+    if request.param == "sqlite":
+        yield f"sqlite:///{tmp_path / 'store.db'}"
+        return
+    database, drop = fresh_database()
+    yield database
+    drop()
+
+
+def _decision(lot, fingerprint, disposition="released"):
+    return {"disposition": disposition, "hold_categories": [], "reasons": [], "spec_version": "1.0",
+            "spec_sha256": "a" * 64, "fingerprint": fingerprint, "label": disposition, "product": "LLC-200",
+            "input_files": {"lots-1.csv": "b" * 64}, "results": [
+                {"code": "activity", "value": 1200.0, "reported": "1200", "unit": "U/mL", "verdict": "pass"}]}
+
+
+def test_migrations_bring_a_new_database_to_the_current_version(url):
+    store = Store(url)
+    with store.engine.connect() as connection:
+        version = connection.execute(text("select version_num from alembic_version")).scalar()
+        tables = set(store.engine.dialect.get_table_names(connection))
+    assert version == "0002"
+    assert {"input_files", "lots", "decisions", "results", "control_limits", "audit_events", "night_runs"} <= tables
+
+
+def test_a_database_of_the_previous_version_upgrades_with_its_data(url):
+    # Build the schema of revision 0001 (the first release of the store), fill it, then open it.
+    engine = create_engine(url)
+    from alembic import command
+    from alembic.config import Config
+
+    from pipeline.store import MIGRATIONS
+    config = Config()
+    config.set_main_option("script_location", str(MIGRATIONS))
+    with engine.begin() as connection:
+        config.attributes["connection"] = connection
+        command.upgrade(config, "0001")
+        connection.execute(text("insert into lots (lot_id, product_code, first_seen_utc) values "
+                                "('LLC-0001', 'LLC-200', CURRENT_TIMESTAMP)"))
+    engine.dispose()
+    store = Store(url)
+    with store.engine.connect() as connection:
+        assert connection.execute(text("select count(*) from lots")).scalar() == 1
+        assert connection.execute(text("select count(*) from audit_events")).scalar() == 0
+        assert connection.execute(text("select lims_export from decisions")).all() == []
+
+
+def test_revisions_supersede_and_stay_readable(url):
+    store = Store(url)
+    first = store.add_decision(lot_id="LLC-0001", product_code="LLC-200", manufactured_on="2026-11-25",
+                               night_id=None, decision=_decision("LLC-0001", "f1", "held"), results=[],
+                               chart_values={}, decided_by="lotgate")
+    second = store.add_decision(lot_id="LLC-0001", product_code="LLC-200", manufactured_on="2026-11-25",
+                                night_id=None, decision=_decision("LLC-0001", "f2"), results=[],
+                                chart_values={}, decided_by="lotgate", change_note="re-assay")
+    rows = store.decisions("LLC-0001")
+    assert [r.revision for r in rows] == [1, 2]
+    assert rows[0].superseded_by == second.id and rows[0].disposition == "held"
+    assert store.latest_decision("LLC-0001").id == second.id and first.id != second.id
+
+
+def _trail(url, tmp_path, n=6):
+    store = Store(url)
+    log = tmp_path / "decisions.jsonl"
+    for i in range(n):
+        audit.record(store, log, [audit.event("decision", time_zone="Europe/Berlin", lot_id=f"L-{i:03d}", n=i)])
+    return store, log
+
+
+def test_store_and_log_agree(url, tmp_path):
+    store, log = _trail(url, tmp_path)
+    check = audit.verify_trail(store, log)
+    assert check.valid and check.store_records == check.log_records == 6
+
+
+@pytest.mark.parametrize("tamper", ["edit", "delete", "reorder"])
+def test_tampering_in_the_store_is_found_and_the_record_named(url, tmp_path, tamper):
+    store, log = _trail(url, tmp_path)
+    with store.engine.begin() as connection:
+        if tamper == "edit":
+            body = json.loads(connection.execute(text("select body from audit_events where seq = 3")).scalar())
+            body["n"] = 99
+            connection.execute(text("update audit_events set body = :b where seq = 3"),
+                               {"b": ledger.canonical_json(body)})
+        elif tamper == "delete":
+            connection.execute(text("delete from audit_events where seq = 3"))
+        else:
+            a, b = (connection.execute(text("select body from audit_events where seq = :s"), {"s": s}).scalar()
+                    for s in (3, 4))
+            connection.execute(text("update audit_events set body = :b where seq = 3"), {"b": b})
+            connection.execute(text("update audit_events set body = :b where seq = 4"), {"b": a})
+    check = audit.verify_trail(store, log)
+    assert not check.valid
+    assert "in the store" in check.reason
+    assert "record 3" in check.reason or "record 4" in check.reason
+
+
+@pytest.mark.parametrize("tamper", ["edit", "delete", "reorder"])
+def test_tampering_in_the_log_is_found_and_the_record_named(url, tmp_path, tamper):
+    store, log = _trail(url, tmp_path)
+    lines = log.read_text().splitlines()
+    if tamper == "edit":
+        record = json.loads(lines[2])
+        record["n"] = 99
+        lines[2] = json.dumps(record)
+    elif tamper == "delete":
+        del lines[2]
+    else:
+        lines[2], lines[3] = lines[3], lines[2]
+    log.write_text("\n".join(lines) + "\n")
+    check = audit.verify_trail(store, log)
+    assert not check.valid and "in the log file" in check.reason
+    assert "record 3" in check.reason or "record 4" in check.reason
+
+
+def test_a_crash_between_store_and_log_is_mended_on_the_next_write(url, tmp_path):
+    store, log = _trail(url, tmp_path, n=3)
+    store.add_events([audit.event("decision", time_zone="UTC", lot_id="L-X")])  # the log file missed it
+    assert not audit.verify_trail(store, log).valid
+    with open(log, "a") as handle:
+        handle.write('{"half a line')  # and a partial line, as a kill during a write leaves
+    assert audit.sync_log(store, log) == 1
+    assert audit.verify_trail(store, log).valid
