@@ -1,7 +1,8 @@
 """The ``lotgate`` command line: demo, run, verify (and the record-keeping commands).
 
 Holds are normal outcomes (exit 0). Exit 1 when a verification fails, 2 when the run itself
-could not complete (bad workspace, store or signing set-up), with a one-line reason.
+could not complete (bad workspace, store or signing set-up), 3 when another night holds the
+run lock; always with a one-line reason.
 """
 
 from __future__ import annotations
@@ -210,10 +211,14 @@ def build_parser() -> argparse.ArgumentParser:
 
 def main(argv: list[str] | None = None) -> int:
     from pipeline.errors import LotgateError
+    from pipeline.runlock import RunLocked
 
     args = build_parser().parse_args(argv)
     try:
         return int(args.func(args))
+    except RunLocked as exc:
+        print(f"lotgate: {exc}", file=sys.stderr)
+        return 3
     except LotgateError as exc:
         print(f"lotgate: {exc}", file=sys.stderr)
         return 2

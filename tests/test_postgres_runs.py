@@ -1,0 +1,63 @@
+"""The night on PostgreSQL, chosen by the database URL alone; two runs at once."""
+
+import os
+import subprocess
+import sys
+
+import pytest
+from sqlalchemy import create_engine, text
+
+from pipeline import demo
+from pipeline.workspace import atomic_write, write_settings
+from tests.pg import fresh_database
+
+pytestmark = [pytest.mark.slow, pytest.mark.postgres]
+
+
+@pytest.fixture
+def pg_url():
+    url, drop = fresh_database()
+    yield url
+    drop()
+
+
+def _env(url):
+    env = dict(os.environ, LOTGATE_DATABASE_URL=url)
+    env.pop("PREFECT_API_URL", None)
+    return env
+
+
+def test_the_demo_runs_on_postgresql_by_setting_only_the_url(pg_url, tmp_path):
+    out = subprocess.run([sys.executable, "-m", "flows.cli", "demo", "--workspace", str(tmp_path / "w")],
+                         env=_env(pg_url), capture_output=True, text=True, timeout=600)
+    assert out.returncode == 0, out.stderr[-2000:]
+    assert "ERROR" not in out.stdout + out.stderr and "Traceback" not in out.stdout + out.stderr
+    assert not (tmp_path / "w" / "lotgate.db").exists()
+    with create_engine(pg_url).connect() as connection:
+        rows = connection.execute(text("select disposition, count(*) from decisions group by disposition")).all()
+    assert dict(rows) == {"released": 44, "held": 8}  # the scenario's intent (README table)
+
+
+def test_two_runs_at_once_exactly_one_processes(pg_url, tmp_path):
+    root = tmp_path / "w"
+    write_settings(root, {"plant_name": demo.PLANT_NAME, "signing": {"signer_name": demo.DEMO_SIGNER}})
+    (root / "keys").mkdir()
+    (root / "keys" / "use-demo-identity").touch()
+    (root / "inbox").mkdir()
+    night = demo.build_scenario(nights=1)[0]
+    for name, data in night.files.items():
+        atomic_write(root / "inbox" / name, data)
+    command = [sys.executable, "-m", "flows.cli", "run", "--workspace", str(root)]
+    runs = [subprocess.Popen(command, env=_env(pg_url), stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+            for _ in range(2)]
+    results = []
+    for run in runs:
+        stdout, stderr = run.communicate(timeout=600)
+        results.append((run.returncode, stdout, stderr))
+    codes = sorted(code for code, _, _ in results)
+    assert codes == [0, 3], results
+    refused = next(err for code, _, err in results if code == 3)
+    assert "another night is already running" in refused
+    with create_engine(pg_url).connect() as connection:
+        assert connection.execute(text("select count(*) from decisions")).scalar() == len(night.lots)
+        assert connection.execute(text("select count(distinct lot_id) from decisions")).scalar() == len(night.lots)
