@@ -206,6 +206,9 @@ def build_parser() -> argparse.ArgumentParser:
     from flows import records_cmd
 
     records_cmd.add_commands(sub)
+    from flows import bench
+
+    bench.add_commands(sub)
     return parser
 
 

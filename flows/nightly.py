@@ -6,6 +6,7 @@ cheap; results are kept in memory (no caching, no persistence of task results).
 
 from __future__ import annotations
 
+import time
 from collections.abc import Callable
 from pathlib import Path
 
@@ -57,16 +58,28 @@ def run_stages(ws: Workspace, store: Store, signer: night.CertificateSigner, *, 
         return _stages(ws, store, signer, step)
 
 
+STAGE_SECONDS: dict[str, float] = {}  # wall time of each stage of the last night in this process
+
+
 def _stages(ws: Workspace, store: Store, signer: night.CertificateSigner, step: dict) -> NightSummary:
+    STAGE_SECONDS.clear()
+
+    def timed(name: str, *args):
+        start = time.perf_counter()
+        try:
+            return step[name](*args)
+        finally:
+            STAGE_SECONDS[name] = time.perf_counter() - start
+
     catalog, layouts = night.open_catalog_and_layouts()
     night_id = store.start_night(night.__version__)
-    intake = step["receive"](ws, store, layouts, night_id, _progress)
-    assembly = step["assemble"](intake, catalog)
-    evaluations, _plates = step["evaluate"](assembly, catalog)
-    charts = step["load_charts"](store, catalog, evaluations)
-    decisions = step["decide"](evaluations, catalog, charts, night.earlier_decisions(store, evaluations))
-    outcomes = step["publish"](ws, store, catalog, decisions, night_id, charts, signer, _progress)
-    return step["close"](ws, store, intake, outcomes, assembly.notes)
+    intake = timed("receive", ws, store, layouts, night_id, _progress)
+    assembly = timed("assemble", intake, catalog)
+    evaluations, _plates = timed("evaluate", assembly, catalog)
+    charts = timed("load_charts", store, catalog, evaluations)
+    decisions = timed("decide", evaluations, catalog, charts, night.earlier_decisions(store, evaluations))
+    outcomes = timed("publish", ws, store, catalog, decisions, night_id, charts, signer, _progress)
+    return timed("close", ws, store, intake, outcomes, assembly.notes)
 
 
 @flow(name="lotgate-night", log_prints=False, persist_result=False)

@@ -32,6 +32,7 @@ DEMO_SEED = 20261124
 READ_TIMES_S = np.arange(0, 601, 30, dtype=float)  # 21 reads, 10 min
 BSA_STANDARDS_MG_PER_ML = (0.0, 0.125, 0.25, 0.5, 0.75, 1.0, 1.5)
 ROWS_96 = "ABCDEFGH"
+PROTEIN_LOTS_PER_PLATE = 27  # 14 standard wells + 27 lots × 3 replicates = 95 of 96 wells
 
 
 @dataclass(frozen=True)
@@ -303,7 +304,9 @@ def build_scenario(seed: int = DEMO_SEED, first_night: dt.date = dt.date(2026, 1
                 plate_id = f"AK-{date:%y%m%d}-{tag}{plate_no}"
                 recovery = recoveries.get(plate_no, 1.0) if tag == "L" else 1.0
                 files.update(_activity_plate(plate_id, product, lots[start:start + 4], rng, recovery))
-        files.update(_protein_plate(f"PR-{date:%y%m%d}-1", [*lipase, *protease], rng))
+        everyone = [*lipase, *protease]
+        for plate_no, start in enumerate(range(0, len(everyone), PROTEIN_LOTS_PER_PLATE), start=1):
+            files.update(_protein_plate(f"PR-{date:%y%m%d}-{plate_no}", everyone[start:start + PROTEIN_LOTS_PER_PLATE], rng))
         for lot in (*lipase, *protease):
             name, data = _lims_file(lot, date, rng)
             files[name] = data

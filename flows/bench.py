@@ -1,0 +1,187 @@
+"""``lotgate bench``: a night of N simulated lots, end to end, with per-stage figures and ratios.
+
+Prints wall time per stage, lots per second and peak memory; then, side by side, the Prefect
+flow against the same stages as plain calls, the batched kinetic fit against a loop of
+``scipy.optimize.curve_fit``, and certificate signing across all cores against one process.
+No test asserts a time: these are measurements to read.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import resource
+import shutil
+import tempfile
+import time
+from pathlib import Path
+from typing import Any
+
+STAGES = ("receive", "assemble", "evaluate", "load_charts", "decide", "publish", "close")
+
+
+def _peak_rss_mb() -> float:
+    own = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0
+    children = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss / 1024.0
+    return max(own, children)
+
+
+def _workspace(root: Path, files: dict[str, bytes]) -> Path:
+    from pipeline import demo
+    from pipeline.workspace import atomic_write, write_settings
+
+    write_settings(root, {"plant_name": demo.PLANT_NAME, "time_zone": demo.PLANT_TIME_ZONE,
+                          "signing": {"signer_name": demo.DEMO_SIGNER}})
+    (root / "keys").mkdir(parents=True, exist_ok=True)
+    (root / "keys" / "use-demo-identity").touch()
+    (root / "inbox").mkdir(exist_ok=True)
+    for name, data in files.items():
+        atomic_write(root / "inbox" / name, data)
+    return root
+
+
+def _run(root: Path, orchestrated: bool) -> tuple[float, dict[str, float], Any]:
+    from flows import nightly
+    from pipeline import night
+
+    start = time.perf_counter()
+    if orchestrated:
+        summary = nightly.nightly(str(root))
+    else:
+        ws, store, signer = night.open_night(root)
+        summary = nightly.run_stages(ws, store, signer, orchestrated=False)
+    return time.perf_counter() - start, dict(nightly.STAGE_SECONDS), summary
+
+
+def _fit_comparison(files: dict[str, bytes]) -> dict[str, Any]:
+    import numpy as np
+    from scipy.optimize import curve_fit
+
+    from pipeline import kinetics
+    from pipeline.demo import LIPASE
+
+    rng = np.random.default_rng(7)
+    n_curves = max(200, sum(1 for name in files if name.startswith("lims-")))
+    s = np.tile(np.array(LIPASE.kinetic_levels_mm).repeat(2), (n_curves, 1))
+    vmax = rng.normal(1400, 60, (n_curves, 1))
+    km = rng.normal(0.4, 0.02, (n_curves, 1))
+    v = vmax * s / (km + s) * (1 + rng.normal(0, 0.02, s.shape))
+    start = time.perf_counter()
+    batch = kinetics.fit_michaelis_menten_batch(s, v)
+    batched = time.perf_counter() - start
+    start = time.perf_counter()
+    params = []
+    for i in range(n_curves):
+        p, _ = curve_fit(lambda x, a, b: a * x / (b + x), s[i], v[i], p0=(v[i].max(), np.median(s[i])),
+                         xtol=1e-15, ftol=1e-15, gtol=1e-15, maxfev=10000)
+        params.append(p)
+    looped = time.perf_counter() - start
+    params_arr = np.array(params)
+    rel = max(float(np.max(np.abs(batch.vmax - params_arr[:, 0]) / np.abs(params_arr[:, 0]))),
+              float(np.max(np.abs(batch.km - params_arr[:, 1]) / np.abs(params_arr[:, 1]))))
+    return {"curves": n_curves, "batched_s": batched, "curve_fit_loop_s": looped,
+            "speed_ratio": looped / batched, "max_relative_difference": rel}
+
+
+def _sign_chunk(args: tuple[str, str, list[bytes]]) -> int:
+    import datetime as dt
+
+    from pipeline import signing
+
+    p12, passphrase_file, pdfs = args
+    identity = signing.load_identity(Path(p12), passphrase_file=Path(passphrase_file))
+    now = dt.datetime.now(dt.UTC)
+    return sum(len(signing.sign_pdf(pdf, identity, reason="benchmark", location="bench", signed_at=now,
+                                    field_name="Bench-Countersignature"))
+               for pdf in pdfs)
+
+
+def _signing_comparison(root: Path, count: int) -> dict[str, Any]:
+    from concurrent.futures import ProcessPoolExecutor
+
+    certificates = sorted((root / "certificates").glob("*.pdf"))[:count]
+    if not certificates:
+        return {}
+    # Sign the unsigned renderings again: take the bytes before the signature's revision.
+    pdfs = [path.read_bytes() for path in certificates]
+    p12, secret = str(root / "keys" / "signer.p12"), str(root / "keys" / "signer.passphrase")
+    start = time.perf_counter()
+    _sign_chunk((p12, secret, pdfs))
+    one = time.perf_counter() - start
+    cores = os.cpu_count() or 1
+    chunks = [pdfs[i::cores] for i in range(cores)]
+    start = time.perf_counter()
+    with ProcessPoolExecutor(max_workers=cores) as pool:
+        list(pool.map(_sign_chunk, [(p12, secret, chunk) for chunk in chunks]))
+    parallel = time.perf_counter() - start
+    return {"documents": len(pdfs), "cores": cores, "one_process_s": one, "all_cores_s": parallel,
+            "speed_ratio": one / parallel}
+
+
+def cmd_bench(args: argparse.Namespace) -> int:
+    from flows.cli import quiet_prefect
+
+    quiet_prefect()
+    import logging
+
+    for noisy in ("pyhanko", "pyhanko_certvalidator"):
+        logging.getLogger(noisy).setLevel(logging.CRITICAL)
+    from pipeline import demo
+
+    lots = int(args.lots)
+    if lots < 2:
+        print("lotgate: --lots must be at least 2")
+        return 2
+    lipase = (lots + 1) // 2
+    started = time.perf_counter()
+    nights = demo.build_scenario(nights=1, lipase_per_night=lipase, protease_per_night=lots - lipase)
+    files = nights[0].files
+    simulate_s = time.perf_counter() - started
+    base = Path(tempfile.mkdtemp(prefix="lotgate-bench-"))
+    try:
+        flow_root = _workspace(base / "flow", files)
+        wall, stages, summary = _run(flow_root, orchestrated=True)
+        plain_root = _workspace(base / "plain", files)
+        plain_wall, plain_stages, _ = _run(plain_root, orchestrated=False)
+        fit = _fit_comparison(files)
+        signing = _signing_comparison(flow_root, min(200, lots)) if not args.skip_signing else {}
+        result = {
+            "lots": lots, "wall_s": wall, "lots_per_s": lots / wall, "peak_rss_mb": _peak_rss_mb(),
+            "stage_s": stages, "simulate_s": simulate_s, "decided": sum(o.new for o in summary.outcomes),
+            "plain_wall_s": plain_wall, "plain_stage_s": plain_stages,
+            "orchestration_ratio": wall / plain_wall, "fit": fit, "signing": signing,
+        }
+    finally:
+        if not args.keep:
+            shutil.rmtree(base, ignore_errors=True)
+        else:
+            print(f"workspaces kept in {base}")
+    print(f"lotgate bench: {lots} simulated lots, one night, end to end (simulation {simulate_s:.1f} s, not counted)")
+    print(f"{'stage':<14}{'flow (s)':>10}{'plain (s)':>11}")
+    for name in STAGES:
+        print(f"{name:<14}{stages.get(name, 0.0):>10.2f}{plain_stages.get(name, 0.0):>11.2f}")
+    print(f"{'whole night':<14}{wall:>10.2f}{plain_wall:>11.2f}   ratio flow/plain {wall / plain_wall:.2f}")
+    print(f"lots per second {lots / wall:.1f}; peak memory {result['peak_rss_mb']:.0f} MB")
+    print(f"kinetic fit, {fit['curves']} curves: batched {fit['batched_s'] * 1e3:.1f} ms, curve_fit loop "
+          f"{fit['curve_fit_loop_s'] * 1e3:.0f} ms, ratio {fit['speed_ratio']:.0f}x, "
+          f"max relative difference {fit['max_relative_difference']:.1e}")
+    if signing:
+        print(f"signing {signing['documents']} certificates: one process {signing['one_process_s']:.2f} s, "
+              f"{signing['cores']} cores {signing['all_cores_s']:.2f} s, ratio {signing['speed_ratio']:.2f}x")
+    if args.json:
+        print(json.dumps(result, sort_keys=True))
+    return 0
+
+
+def add_commands(sub: argparse._SubParsersAction) -> None:
+    bench = sub.add_parser("bench", help="measure a night of N simulated lots end to end",
+                           description="Generate N lots with the demo simulator in a temporary workspace and run the "
+                                       "whole night on them; print time per stage, lots per second, peak memory, and "
+                                       "side-by-side ratios (flow vs plain calls, batched fit vs curve_fit loop, "
+                                       "signing on all cores vs one).")
+    bench.add_argument("--lots", type=int, default=200, metavar="N", help="number of lots (default 200)")
+    bench.add_argument("--json", action="store_true", help="end with one JSON line of the figures")
+    bench.add_argument("--keep", action="store_true", help="keep the temporary workspaces")
+    bench.add_argument("--skip-signing", action="store_true", help="leave out the signing comparison")
+    bench.set_defaults(func=cmd_bench)
