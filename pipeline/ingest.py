@@ -156,7 +156,7 @@ def _decode(name: str, data: bytes) -> tuple[str, list[str]]:
     conversions = []
     for magic, what in _MAGIC:
         if data.startswith(magic):
-            raise _reject(name, "binary", f"this is a binary file ({what}), not a comma-separated text export")
+            raise _reject(name, "binary", f"this is a binary file, {what}, not a comma-separated text export")
     for bom, encoding in _WIDE_BOMS:
         if data.startswith(bom):
             raise _reject(name, "encoding", f"the file is {encoding} text, not UTF-8; export it again as UTF-8")
@@ -520,10 +520,13 @@ def _parse(file_name: str, data: bytes, layouts: dict[str, ExportLayout]) -> Par
     numbers, seen_numbers = _number_problems(frame, layout, rows.lines)
     dates, seen_dates = _date_problems(frame, layout, rows.lines)
     problems = numbers + dates
+    checked = frame.copy()
+    for column, index in seen_numbers:  # reported already; emptied so that the rest of the column is checked
+        checked.at[index, column] = None
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
         try:
-            validated = layout.schema.validate(frame.copy(), lazy=True)
+            validated = layout.schema.validate(checked, lazy=True)
         except pa.errors.SchemaErrors as exc:
             problems += _schema_problems(exc, frame, layout, rows.lines, seen_numbers | seen_dates)
             validated = None
