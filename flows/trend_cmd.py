@@ -9,6 +9,7 @@ from __future__ import annotations
 import argparse
 import datetime as dt
 import sys
+import unicodedata
 from pathlib import Path
 from typing import Any
 
@@ -64,6 +65,12 @@ def _num(value: float | None, decimals: int) -> str:
     return "—" if value is None else f"{value:.{max(decimals, 0)}f}"
 
 
+def _pad(text: str, width: int) -> str:
+    """Left-justify to ``width`` columns; combining marks (the bar of MR̄) take no column."""
+    shown = sum(1 for ch in text if not unicodedata.combining(ch))
+    return text + " " * max(width - shown, 0)
+
+
 def _lots_text(lots: tuple[str, ...] | list[str]) -> str:
     if not lots:
         return "none"
@@ -83,7 +90,7 @@ def chart_report(view: Any, product_name: str) -> str:
         lines.append(f"Control limits: {view.status}")
     else:
         lines += [
-            f"Control limits: version {lim.version} (active), frozen {lim.frozen_at_utc} by {lim.frozen_by}",
+            f"Control limits: version {lim.version} (active), frozen {_when(lim.frozen_at_utc)} by {lim.frozen_by}",
             f"  reason          {lim.reason}",
             f"  baseline lots   {len(lim.baseline_lots)}: {_lots_text(lim.baseline_lots)}",
             f"  centre          {_num(lim.center, d + 1)} {unit}",
@@ -115,10 +122,23 @@ def chart_report(view: Any, product_name: str) -> str:
         lines.append("")
         if view.signals:
             lines.append("Signals in the window:")
-            lines += [f"  {s.lot_id}: {s.description} [{s.source}]" for s in view.signals]
+            for s in view.signals:
+                where = ("found when the lot was decided; the lot is held" if s.source == "decision"
+                         else "on the released series, against the active limits")
+                lines.append(f"  {s.lot_id}: {s.description} ({where})")
+                if s.detail:
+                    lines.append(f"      recorded: {s.detail}")
         else:
             lines.append("Signals in the window: none")
-    return "\n".join(lines)
+    return "\n".join(line.rstrip() for line in lines)
+
+
+def _when(iso: str) -> str:
+    """'2026-12-01T17:46:45+00:00' → '2026-12-01 17:46 UTC'."""
+    try:
+        return dt.datetime.fromisoformat(iso).astimezone(dt.UTC).strftime("%Y-%m-%d %H:%M UTC")
+    except ValueError:
+        return iso
 
 
 def _limit_text(view: Any) -> str:
@@ -171,17 +191,24 @@ def _side_by_side(old: Any, new: Any, d: int, unit: str) -> str:
     names = ["version", f"centre ({unit})", "σ̂ = MR̄/d₂", "UCL", "LCL", "MR̄", "MR UCL", "baseline lots",
              "baseline"]
     left, right = column(old), column(new)
-    width = max(14, *(len(x) for x in left))
-    rows = [f"  {'':<16}{'before':<{width + 3}}after",
-            *(f"  {n:<16}{a:<{width + 3}}{b}" for n, a, b in zip(names, left, right, strict=True))]
+    width = max(14, *(len(x) for x in left)) + 3
+    rows = [f"  {_pad('', 16)}{_pad('before', width)}after",
+            *(f"  {_pad(n, 16)}{_pad(a, width)}{b}" for n, a, b in zip(names, left, right, strict=True))]
     return "\n".join(rows)
 
 
 def cmd_rebaseline(args: argparse.Namespace) -> int:
-    """Compute new limits from chosen released lots, store them as a new version, log it."""
-    from pipeline import ledger
+    """Compute new limits from chosen released lots, store them as a new version, log it.
+
+    The limits and their ``limits-rebaselined`` audit event are written in one store transaction
+    (the store is the audit trail's source of truth); the event is then mirrored to
+    DIR/decisions.jsonl, hash-chained like every record there. The night's run lock is held
+    throughout, so a night cannot judge lots while the limits change.
+    """
+    from pipeline import audit
     from pipeline.chart_queries import active_limits, released_count, released_points
-    from pipeline.chartview import StoredLimits, propose_limits, select_baseline
+    from pipeline.chartview import propose_limits, select_baseline
+    from pipeline.runlock import run_lock
 
     try:
         reason = (args.reason or "").strip()
@@ -195,33 +222,35 @@ def cmd_rebaseline(args: argparse.Namespace) -> int:
         if count < 2:
             raise InputError(f"--count must be at least 2 lots (one moving range), received {count}")
         ws, store = _open(args.workspace)
-        check = ledger.verify_file(ws.log)
-        if not check.valid:
-            raise InputError(f"the decision log {ws.log.name} is broken ({check.reason}); "
-                             "no re-baseline is recorded on a broken log")
-        if args.from_lot is not None:
-            points = released_points(store, args.product, args.attribute, from_lot=args.from_lot, count=count)
-            if not points:
-                raise InputError(f"lot {args.from_lot} is not among the released lots on the "
-                                 f"{args.product} {args.attribute} chart")
-        else:
-            points = released_points(store, args.product, args.attribute, tail=count)
-        chosen = select_baseline(points, args.from_lot, count)
-        proposal = propose_limits(chosen)
-        old = active_limits(store, args.product, args.attribute)
-        lim = proposal.limits
-        row = store.freeze_limits(args.product, args.attribute, lim.center, lim.sigma, lim.mr_bar,
-                                  list(proposal.lots), frozen_by=by, reason=reason)
-        record = {"kind": "limits-rebaselined", "time_utc": dt.datetime.now(dt.UTC).isoformat(timespec="seconds"),
-                  "product": args.product, "attribute": args.attribute, "version": int(row.version),
-                  "center": lim.center, "sigma": lim.sigma, "baseline_lots": list(proposal.lots),
-                  "by": by, "reason": reason, "previous_version": None if old is None else old.version}
-        ledger.append(ws.log, [record])
-        total = released_count(store, args.product, args.attribute)
+        with run_lock(ws.root, store):
+            audit.sync_log(store, ws.log)  # mend a log left behind by an interrupted write
+            trail = audit.verify_trail(store, ws.log)
+            if not trail.valid:
+                raise InputError(f"the audit trail is broken ({trail.reason}); "
+                                 "no re-baseline is recorded on a broken trail")
+            if args.from_lot is not None:
+                points = released_points(store, args.product, args.attribute, from_lot=args.from_lot,
+                                         count=count)
+                if not points:
+                    raise InputError(f"lot {args.from_lot} is not among the released lots on the "
+                                     f"{args.product} {args.attribute} chart")
+            else:
+                points = released_points(store, args.product, args.attribute, tail=count)
+            proposal = propose_limits(select_baseline(points, args.from_lot, count))
+            old = active_limits(store, args.product, args.attribute)
+            lim = proposal.limits
+            event = audit.event("limits-rebaselined", time_zone=ws.time_zone, product=args.product,
+                                attribute=args.attribute, center=lim.center, sigma=lim.sigma,
+                                mr_bar=lim.mr_bar, baseline_lots=list(proposal.lots), by=by, reason=reason)
+            store.freeze_limits(args.product, args.attribute, lim.center, lim.sigma, lim.mr_bar,
+                                list(proposal.lots), frozen_by=by, reason=reason, events=[event])
+            audit.sync_log(store, ws.log)
+            new = active_limits(store, args.product, args.attribute)
+            total = released_count(store, args.product, args.attribute)
     except (LotgateError, OSError) as exc:
         return _refuse("rebaseline", exc)
-    new = StoredLimits(int(row.version), lim.center, lim.sigma, lim.mr_bar, proposal.lots,
-                       record["time_utc"], by, reason)
+    if new is None:  # cannot happen after a committed freeze; say so rather than crash
+        return _refuse("rebaseline", "the new limits were not found in the store after writing them")
     d = attribute.digits + 2
     print(f"{args.product} {attribute.title} ({args.attribute}): control limits re-baselined "
           f"by {by}, version {new.version}")
@@ -231,8 +260,8 @@ def cmd_rebaseline(args: argparse.Namespace) -> int:
     if len(proposal.lots) < attribute.baseline_n:
         print(f"  note: fewer lots than the specification's baseline of {attribute.baseline_n}")
     print(_side_by_side(old, new, d, attribute.unit))
-    print(f"Recorded in {ws.log} (kind limits-rebaselined); the next night judges lots against version "
-          f"{new.version}.")
+    print(f"Recorded in the store's audit trail and in {ws.log} (kind limits-rebaselined); "
+          f"the next night judges lots against version {new.version}.")
     return 0
 
 

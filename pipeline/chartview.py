@@ -156,11 +156,12 @@ class ChartSignal:
     position: int
     source: str  # "released series" (evaluated now) or "decision" (found when the lot was held)
     description: str
+    detail: str = ""  # for a held lot: the reason recorded with its decision
 
     def to_dict(self) -> dict[str, object]:
         return {"rule": self.rule, "lot_id": self.lot_id, "first_lot": self.first_lot,
                 "position": self.position, "source": self.source,
-                "description": self.description}
+                "description": self.description, "detail": self.detail}
 
 
 @dataclass(frozen=True)
@@ -325,8 +326,9 @@ def build_chart_view(history: ChartHistory, attribute: Attribute, window: int = 
         if point.out_of_trend_here and not rules:
             notes = ("out of trend (when held)",)
         for r in rules:
+            detail = next((t for t in point.trend_signals if f"Nelson rule {r}" in t), "")
             signals.append(ChartSignal(r, point.lot_id, point.lot_id, i, "decision",
-                                       f"rule {r}: {RULE_NAMES[r]} (held lot {point.lot_id})"))
+                                       f"rule {r}: {RULE_NAMES[r]}", detail))
         rows.append(ChartRow(i, point.lot_id, value, point.label, _category(point), False,
                              False, zone, zone_text(zone), units, rules, notes))
     moving: list[MovingRange] = []
@@ -386,7 +388,7 @@ def select_baseline(points: Sequence[ReleasedPoint], from_lot: str | None, count
     chosen = tuple(points[start:start + count])
     if len(chosen) < count:
         raise CalculationError(f"{count} baseline lots requested from {from_lot}, but only "
-                               f"{len(chosen)} released lots follow it (it included)")
+                               f"{len(chosen)} released lots from it on (it included) are on the chart")
     return chosen
 
 

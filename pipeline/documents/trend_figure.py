@@ -183,12 +183,18 @@ def _draw_individuals(ax, view: ChartView, rows: tuple[ChartRow, ...]) -> list:
                               label=f"{name}, no valid value (× at the foot)"))
     ringed = False
     span = yhi - ylo
+    ring = max(110.0, 290.0 * min(1.0, 40.0 / max(n, 1)))
+    last_label: tuple[int, tuple[int, ...]] | None = None
     for row in rows:
         if not row.signal_rules or row.value is None:
             continue
-        ax.scatter([row.position], [row.value], s=290, facecolors="none", edgecolors=SIGNAL,
-                   linewidths=1.9, zorder=6)
+        ax.scatter([row.position], [row.value], s=ring, facecolors="none", edgecolors=SIGNAL,
+                   linewidths=1.9 if ring > 200 else 1.3, zorder=6)
         ringed = True
+        # label the first of a run of signalled lots, a change of rules, or after a gap
+        if last_label is not None and last_label[1] == row.signal_rules and row.position - last_label[0] < 8:
+            continue
+        last_label = (row.position, row.signal_rules)
         text = "rule " + ", ".join(str(r) for r in row.signal_rules)
         upper = row.value > (ylo + yhi) / 2
         ax.annotate(text, (row.position, row.value),
@@ -279,7 +285,8 @@ def build_figure(view: ChartView, as_of: str | None = None) -> Figure:
     if handles:
         fig.legend(handles=handles, loc="lower left", bbox_to_anchor=(0.07, 0.005), ncol=4,
                    fontsize=8.5, frameon=False, handlelength=1.8, columnspacing=1.4)
-    footer = f"{len(rows)} most recent lots; zones and signals against the active limits"
+    footer = f"{len(rows)} most recent lots; " + (
+        "zones and signals against the active limits" if view.limits else "no control limits yet")
     if as_of:
         footer += f"; as of {as_of}"
     fig.text(0.075, 0.905, footer, fontsize=8, color=MUTED, ha="left", va="bottom")
