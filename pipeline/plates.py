@@ -160,96 +160,107 @@ def evaluate_activity_plate(plate_id: str, plate_map: pd.DataFrame, reads: pd.Da
     except LotgateError as exc:
         return _invalid_plate(plate_id, method, lots, [str(exc)])
     by_well = {r.well: r for r in well_rates}
-    used = used.assign(
-        slope=[by_well[w].slope_au_per_min for w in wells],
-        ok=[by_well[w].ok for w in wells],
-    )
-    details = {w: {**by_well[w].to_dict(), "role": role, "lot_id": lot, "substrate_mm": s}
-               for w, role, lot, s in zip(used["well"], used["role"], used["lot_id"], used["substrate_mm"], strict=True)}
-
-    def blanks_at(level: float) -> pd.DataFrame:
-        b = used[(used["role"] == "blank") & (np.abs(used["substrate_mm"].astype(float) - level) < SUBSTRATE_MATCH_MM)]
-        return b
+    plate = _Columns(used, by_well)
+    details = {w: {**by_well[w].to_dict(), "role": role, "lot_id": lot, "substrate_mm": sub}
+               for w, role, lot, sub in zip(plate.wells, plate.roles, plate.lots, plate.substrate_list, strict=True)}
 
     # Blank at the assay substrate concentration: needed for every activity on the plate.
-    assay_blanks = blanks_at(method.assay_substrate_mm)
+    assay_blanks = plate.blanks_at(method.assay_substrate_mm)
     plate_reasons: list[str] = []
     blank_rate = None
-    if assay_blanks.empty:
+    if assay_blanks.size == 0:
         plate_reasons.append(f"no substrate blank at the assay concentration {method.assay_substrate_mm:g} mM")
-    elif not assay_blanks["ok"].all():
-        bad = assay_blanks.loc[~assay_blanks["ok"], "well"].tolist()
+    elif not plate.ok[assay_blanks].all():
+        bad = [plate.wells[i] for i in assay_blanks if not plate.ok[i]]
         plate_reasons.append(f"substrate blank well(s) {', '.join(bad)} have no usable rate: {by_well[bad[0]].reason}")
     else:
-        blank_rate = float(assay_blanks["slope"].mean())
+        blank_rate = float(plate.slope[assay_blanks].mean())
         if blank_rate > method.blank_rate_max_au_per_min:
             plate_reasons.append(f"substrate blank rate {blank_rate:.4f} AU/min exceeds the limit {method.blank_rate_max_au_per_min:.4f} AU/min")
 
     recovery = None
-    refs = used[used["role"] == "reference"]
+    refs = np.flatnonzero(plate.roles == "reference")
     if not plate_reasons:
-        if refs.empty:
+        if refs.size == 0:
             plate_reasons.append(f"no reference standard ({method.reference_lot}) on the plate")
         else:
-            good = refs[refs["ok"]]
-            if len(good) < 2:
-                plate_reasons.append(f"reference standard: only {len(good)} of {len(refs)} wells have a usable rate")
+            good = refs[plate.ok[refs]]
+            if good.size < 2:
+                plate_reasons.append(f"reference standard: only {good.size} of {refs.size} wells have a usable rate")
             else:
-                ref_activity = _activity_u_per_ml(method, good["slope"].to_numpy() - blank_rate,
-                                                  good["dilution_factor"].to_numpy(dtype=float))
+                ref_activity = _activity_u_per_ml(method, plate.slope[good] - blank_rate, plate.dilution[good])
                 recovery = float(ref_activity.mean() / method.reference_assigned_u_per_ml * 100.0)
                 if not method.recovery_min_pct <= recovery <= method.recovery_max_pct:
                     plate_reasons.append(
                         f"reference standard {method.reference_lot} recovered {recovery:.1f} % of its assigned "
                         f"{method.reference_assigned_u_per_ml:g} U/mL; the method allows "
                         f"{method.recovery_min_pct:g}–{method.recovery_max_pct:g} %")
+    traces = _traces(plate, time_min, absorbance, by_well)
     if plate_reasons:
         result = _invalid_plate(plate_id, method, lots, [f"plate {plate_id}: {r}" for r in plate_reasons])
         return ActivityPlateResult(plate_id, method.method_id, method.document.version, False, result.reasons,
-                                   recovery, blank_rate, result.activity, result.kinetics, details,
-                                   _traces(used, time_min, absorbance, by_well))
+                                   recovery, blank_rate, result.activity, result.kinetics, details, traces)
     assert blank_rate is not None
 
     activity: dict[str, Measurement] = {}
     kinetics: dict[str, KineticSeries] = {}
     for lot in lots:
-        samples = used[(used["role"] == "sample") & (used["lot_id"] == lot)]
-        excluded = [f"well {w}: {by_well[w].reason}" for w in samples.loc[~samples["ok"], "well"]]
-        good = samples[samples["ok"]]
-        values = _activity_u_per_ml(method, good["slope"].to_numpy() - blank_rate, good["dilution_factor"].to_numpy(dtype=float))
+        samples = np.flatnonzero((plate.roles == "sample") & (plate.lots == lot))
+        excluded = [f"well {plate.wells[i]}: {by_well[plate.wells[i]].reason}" for i in samples if not plate.ok[i]]
+        good = samples[plate.ok[samples]]
+        values = _activity_u_per_ml(method, plate.slope[good] - blank_rate, plate.dilution[good])
         m = _replicates("activity", "U/mL", values, method.replicate_cv_max_pct, f"lot {lot} activity")
         activity[lot] = Measurement(m.name, m.unit, m.value, se=m.se, n=m.n, valid=m.valid,
                                     reasons=(*m.reasons, *excluded) if not m.valid else m.reasons,
                                     detail={**m.detail, "excluded_wells": excluded,
-                                            "wells": good["well"].tolist()})
-        kinetics[lot] = _kinetic_series(lot, used, method, by_well, blanks_at)
+                                            "wells": [plate.wells[i] for i in good]})
+        kinetics[lot] = _kinetic_series(lot, plate, method, by_well)
     return ActivityPlateResult(plate_id, method.method_id, method.document.version, True, (), recovery,
-                               blank_rate, activity, kinetics, details, _traces(used, time_min, absorbance, by_well))
+                               blank_rate, activity, kinetics, details, traces)
 
 
-def _kinetic_series(lot: str, used: pd.DataFrame, method: KineticMethod, by_well: dict[str, rates.WellRate],
-                    blanks_at: Any) -> KineticSeries:
-    wells = used[(used["role"] == "kinetic") & (used["lot_id"] == lot)]
-    if wells.empty:
+class _Columns:
+    """A plate map's used wells as numpy columns, with each well's rate (vectorised selections)."""
+
+    def __init__(self, used: pd.DataFrame, by_well: dict[str, rates.WellRate]):
+        self.wells = used["well"].tolist()
+        self.roles = used["role"].to_numpy(dtype=object).astype(str)
+        self.lots = np.array([x if isinstance(x, str) else "" for x in used["lot_id"]], dtype=object)
+        self.substrate_list = [None if x is None or (isinstance(x, float) and np.isnan(x)) else float(x)
+                               for x in used["substrate_mm"]]
+        self.substrate = np.array([np.nan if x is None else x for x in self.substrate_list], dtype=float)
+        self.dilution = used["dilution_factor"].to_numpy(dtype=float)
+        self.slope = np.array([by_well[w].slope_au_per_min for w in self.wells], dtype=float)
+        self.ok = np.array([by_well[w].ok for w in self.wells], dtype=bool)
+        self._blank = self.roles == "blank"
+
+    def blanks_at(self, level: float) -> np.ndarray:
+        return np.flatnonzero(self._blank & (np.abs(self.substrate - level) < SUBSTRATE_MATCH_MM))
+
+
+def _kinetic_series(lot: str, plate: _Columns, method: KineticMethod, by_well: dict[str, rates.WellRate]) -> KineticSeries:
+    wells = np.flatnonzero((plate.roles == "kinetic") & (plate.lots == lot))
+    if wells.size == 0:
         return KineticSeries((), (), valid=False, reasons=(f"lot {lot}: no kinetic (substrate series) wells on the plate",))
     s_out: list[float] = []
     v_out: list[float] = []
     excluded: list[str] = []
-    for level, group in wells.groupby("substrate_mm", sort=True):
-        blanks = blanks_at(float(level))
-        if blanks.empty or not blanks["ok"].all():
+    for level in np.unique(plate.substrate[wells]):
+        group = wells[plate.substrate[wells] == level]
+        blanks = plate.blanks_at(float(level))
+        if blanks.size == 0 or not plate.ok[blanks].all():
             excluded.append(f"{float(level):g} mM: no usable substrate blank at this level")
             continue
-        blank = float(blanks["slope"].mean())
+        blank = float(plate.slope[blanks].mean())
         if blank > method.blank_rate_max_au_per_min:
             excluded.append(f"{float(level):g} mM: blank rate {blank:.4f} AU/min above the limit")
             continue
-        for well, slope, ok, dilution in zip(group["well"], group["slope"], group["ok"], group["dilution_factor"], strict=True):
-            if not ok:
-                excluded.append(f"well {well} ({float(level):g} mM): {by_well[well].reason}")
-                continue
-            s_out.append(float(level))
-            v_out.append(float(_activity_u_per_ml(method, np.array([slope - blank]), np.array([float(dilution)]))[0]))
+        for i in group:
+            if not plate.ok[i]:
+                excluded.append(f"well {plate.wells[i]} ({float(level):g} mM): {by_well[plate.wells[i]].reason}")
+        good = group[plate.ok[group]]
+        s_out.extend([float(level)] * good.size)
+        v_out.extend(float(v) for v in _activity_u_per_ml(method, plate.slope[good] - blank, plate.dilution[good]))
     levels = len(set(s_out))
     if levels < 4:
         return KineticSeries(tuple(s_out), tuple(v_out), tuple(excluded), False,
@@ -257,21 +268,25 @@ def _kinetic_series(lot: str, used: pd.DataFrame, method: KineticMethod, by_well
     return KineticSeries(tuple(s_out), tuple(v_out), tuple(excluded))
 
 
-def _traces(used: pd.DataFrame, time_min: np.ndarray, absorbance: np.ndarray,
+def _traces(plate: _Columns, time_min: np.ndarray, absorbance: np.ndarray,
             by_well: dict[str, rates.WellRate]) -> dict[str, dict[str, Any]]:
     """Up to three progress curves per lot (lowest, middle, highest substrate), for the report."""
     out: dict[str, dict[str, Any]] = {}
-    index = {w: i for i, w in enumerate(used["well"])}
-    for lot, group in used[used["role"] == "kinetic"].groupby("lot_id"):
-        ordered = group.sort_values("substrate_mm")
-        picks = ordered.iloc[[0, len(ordered) // 2, len(ordered) - 1]]
-        out[str(lot)] = {
-            "time_min": [float(t) for t in time_min],
-            "curves": [{"well": w, "substrate_mm": float(s), "absorbance": [float(a) for a in absorbance[index[w]]],
-                        **{k: v for k, v in by_well[w].to_dict().items() if k in
-                           ("window_start_min", "window_end_min", "slope_au_per_min", "intercept_au", "flag")}}
-                       for w, s in zip(picks["well"], picks["substrate_mm"], strict=True)],
-        }
+    kinetic = plate.roles == "kinetic"
+    times = [float(t) for t in time_min]
+    for lot in sorted(set(plate.lots[kinetic]) - {""}):
+        idx = np.flatnonzero(kinetic & (plate.lots == lot))
+        idx = idx[np.argsort(plate.substrate[idx], kind="stable")]
+        picks = idx[[0, idx.size // 2, idx.size - 1]]
+        curves = []
+        for i in picks:
+            rate = by_well[plate.wells[i]]
+            curves.append({"well": plate.wells[i], "substrate_mm": float(plate.substrate[i]),
+                           "absorbance": [float(a) for a in absorbance[i]],
+                           "window_start_min": rate.window_start_min, "window_end_min": rate.window_end_min,
+                           "slope_au_per_min": rate.slope_au_per_min, "intercept_au": rate.intercept_au,
+                           "flag": rate.flag})
+        out[str(lot)] = {"time_min": times, "curves": curves}
     return out
 
 
