@@ -41,7 +41,7 @@ from pipeline.layouts import ExportLayout, layout_for
 MAX_PROBLEMS_LISTED = 20
 MAX_PER_KIND = 50  # problems of one code kept per file (a broken file is not listed row by row)
 
-DATE_PATTERN = r"^\d{4}-\d{2}-\d{2}$"
+DATE_PATTERN = r"^[0-9]{4}-[0-9]{2}-[0-9]{2}$"  # ASCII digits only: "２０２６" is not a year here
 PLATE_GEOMETRY = {96: ("ABCDEFGH", 12), 384: ("ABCDEFGHIJKLMNOP", 24)}
 ROLE_NEEDS = {  # plate-map role -> fields that must not be empty for it
     "sample": ("lot_id",),
@@ -49,9 +49,9 @@ ROLE_NEEDS = {  # plate-map role -> fields that must not be empty for it
     "reference": ("lot_id",),
     "standard": ("nominal_mg_per_ml",),
 }
-_FLOAT = re.compile(r"[+-]?(?:\d+(?:\.\d+)?|\.\d+)(?:[eE][+-]?\d+)?")
-_INT = re.compile(r"[+-]?\d+")
-_DECIMAL_COMMA = re.compile(r"[+-]?\d+,\d+")
+_FLOAT = re.compile(r"[+-]?(?:[0-9]+(?:\.[0-9]+)?|\.[0-9]+)(?:[eE][+-]?[0-9]+)?")
+_INT = re.compile(r"[+-]?[0-9]+")
+_DECIMAL_COMMA = re.compile(r"[+-]?[0-9]+,[0-9]+")
 _MAGIC = (
     (b"PK\x03\x04", "a ZIP archive (for example an .xlsx workbook)"),
     (b"\xd0\xcf\x11\xe0", "an old-style Office document (for example an .xls workbook)"),
