@@ -206,8 +206,9 @@ def build_parser() -> argparse.ArgumentParser:
     from flows import records_cmd
 
     records_cmd.add_commands(sub)
-    from flows import bench
+    from flows import bench, trend_cmd
 
+    trend_cmd.add_commands(sub)
     bench.add_commands(sub)
     return parser
 

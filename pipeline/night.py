@@ -212,81 +212,192 @@ def _freeze_new_limits(ws: Workspace, store: Store, charts: dict[tuple[str, str]
         chart.newly_frozen = None
 
 
-def publish(ws: Workspace, store: Store, catalog: Catalog, decisions: list[LotDecision], night_id: int,
-            charts: dict[tuple[str, str], Chart], signer: CertificateSigner,
-            progress: Progress = _no_progress) -> list[Outcome]:
-    """Per lot: batch report and (released) signed certificate written atomically, then the
-    decision, its results and its audit events in one store transaction, then the log file."""
+WINDOW_LOTS = 64          # lots rendered per round: bounds memory whatever the night's size
+PARALLEL_FROM_LOTS = 24   # below this, a process pool costs more than it saves
+
+
+@dataclass(frozen=True)
+class _Job:
+    item: LotDecision
+    revision: int
+    previous_record: dict[str, Any] | None
+    stem: str
+    decided_at: dt.datetime
+    dossier: dict[str, Any]
+    signature: dict[str, str] | None  # the visible signature block, for a released lot
+
+
+def _render(dossier: dict[str, Any], signature: dict[str, str] | None, signer: CertificateSigner | None,
+            location: str) -> tuple[bytes, bytes | None]:
+    """Batch report, and for a released lot the certificate, rendered and signed (bytes only)."""
     from pipeline.documents.certificate import render_certificate
     from pipeline.documents.report import render_batch_report
 
+    report = render_batch_report(dossier)
+    if signature is None or signer is None:
+        return report, None
+    signed_at = dt.datetime.fromisoformat(signature["signed_at_utc"])
+    certificate = signer.sign(render_certificate(dossier, signature), signed_at=signed_at,
+                              reason=signature["meaning"], location=location)
+    return report, certificate
+
+
+_WORKER: dict[str, Any] = {}
+
+
+def _worker_start(root: str) -> None:
+    import logging
+
+    for noisy in ("pyhanko", "pyhanko_certvalidator"):
+        logging.getLogger(noisy).setLevel(logging.CRITICAL)
+    ws = open_workspace(Path(root))
+    _WORKER["signer"] = signer_for(ws)
+    _WORKER["location"] = ws.plant_name
+
+
+def _worker_render(job: tuple[dict[str, Any], dict[str, str] | None]) -> tuple[bytes, bytes | None]:
+    return _render(job[0], job[1], _WORKER["signer"], _WORKER["location"])
+
+
+class _Renderers:
+    """Renders and signs documents in this process, or across all cores for a large night."""
+
+    def __init__(self, ws: Workspace, signer: CertificateSigner, lots: int, workers: int | None):
+        import os
+
+        self.ws, self.signer = ws, signer
+        cores = workers if workers is not None else (os.cpu_count() or 1)
+        self.pool = None
+        if cores > 1 and lots >= PARALLEL_FROM_LOTS:
+            import multiprocessing
+            from concurrent.futures import ProcessPoolExecutor
+
+            self.pool = ProcessPoolExecutor(max_workers=cores, mp_context=multiprocessing.get_context("spawn"),
+                                            initializer=_worker_start, initargs=(str(ws.root),))
+
+    def submit(self, jobs: list[_Job]) -> Any:
+        """Start rendering ``jobs``; ``collect`` returns their documents in order."""
+        payloads = [(job.dossier, job.signature) for job in jobs]
+        if self.pool is None:
+            return payloads
+        return [self.pool.submit(_worker_render, payload) for payload in payloads]
+
+    def collect(self, handle: Any) -> list[tuple[bytes, bytes | None]]:
+        if self.pool is None:
+            return [_render(d, sig, self.signer, self.ws.plant_name) for d, sig in handle]
+        return [future.result() for future in handle]
+
+    def close(self) -> None:
+        if self.pool is not None:
+            self.pool.shutdown()
+
+
+def _prepare(ws: Workspace, catalog: Catalog, item: LotDecision, previous: Any, signer: CertificateSigner) -> _Job:
+    decision = item.decision
+    revision = previous.revision + 1 if previous else 1
+    spec = catalog.specifications[decision.product]
+    activity_method = catalog.methods.get(spec.activity_method)
+    protein_method = catalog.methods.get(spec.protein_method)
+    decided_at = dt.datetime.now(dt.UTC)
+    dossier = build_dossier(item, spec, activity_method if isinstance(activity_method, KineticMethod) else None,
+                            protein_method if isinstance(protein_method, ProteinMethod) else None,
+                            plant_name=ws.plant_name, time_zone=ws.time_zone, revision=revision,
+                            decided_at=decided_at)
+    signature = None
+    if decision.disposition == RELEASED:
+        signed_at = decided_at.replace(microsecond=0)
+        signature = {"signer_name": signer.signer_name, "signed_at_local": local_time_text(signed_at, ws.time_zone),
+                     "signed_at_utc": signed_at.isoformat(), "meaning": SIGNATURE_MEANING,
+                     "certificate_fingerprint": signer.fingerprint_sha256}
+    return _Job(item, revision, None if previous is None else previous.record, f"{decision.lot_id}_r{revision}",
+                decided_at, dossier, signature)
+
+
+def _record(ws: Workspace, store: Store, job: _Job, night_id: int, report_bytes: bytes,
+            certificate_bytes: bytes | None, signer: CertificateSigner) -> Outcome:
+    """Write the lot's documents (atomic), then its decision, results and audit events (one transaction)."""
+    item, decision = job.item, job.item.decision
+    report_path = ws.reports / f"{job.stem}_batch-report.pdf"
+    atomic_write(report_path, report_bytes)
+    atomic_write(ws.reports / f"{job.stem}_dossier.json",
+                 json.dumps(job.dossier, ensure_ascii=False, sort_keys=True).encode("utf-8"))
+    certificate = None
+    if certificate_bytes is not None and job.signature is not None:
+        certificate_path = ws.certificates / f"{job.stem}_certificate.pdf"
+        atomic_write(certificate_path, certificate_bytes)
+        certificate = {"file": certificate_path.name, "sha256": hashlib.sha256(certificate_bytes).hexdigest(),
+                       "signer": signer.signer_name, "signer_certificate_sha256": signer.fingerprint_sha256,
+                       "signed_at_utc": job.signature["signed_at_utc"], "meaning": SIGNATURE_MEANING}
+    events = [audit.event("results-computed", time_zone=ws.time_zone, lot_id=decision.lot_id, night_id=night_id,
+                          results=[{"code": v.code, "value": v.value, "se": v.se, "unit": v.unit,
+                                    "reported": v.reported, "verdict": v.verdict} for v in item.evaluation.verdicts],
+                          plates=list(item.evaluation.plates))]
+    record = {**decision.to_dict(), "label": decision.label, "revision": job.revision, "night_id": night_id,
+              "decided_at_utc": job.decided_at.isoformat(timespec="seconds"),
+              "results": [{"code": v.code, "value": v.value, "reported": v.reported, "unit": v.unit,
+                           "verdict": v.verdict} for v in item.evaluation.verdicts],
+              "trend": [f.to_dict() for f in item.trend], "certificate": certificate,
+              "report": {"file": report_path.name, "sha256": hashlib.sha256(report_bytes).hexdigest()}}
+    events.append(audit.event("decision", time_zone=ws.time_zone, **record))
+    if certificate is not None:
+        events.append(audit.event("certificate-signed", time_zone=ws.time_zone, lot_id=decision.lot_id, **certificate))
+    store.add_decision(lot_id=decision.lot_id, product_code=decision.product,
+                       manufactured_on=item.evaluation.manufactured_on, night_id=night_id,
+                       decision=record, results=[v.to_dict() for v in item.evaluation.verdicts],
+                       chart_values=item.chart_values, decided_by=f"lotgate {__version__} (nightly job)",
+                       change_note=None if job.previous_record is None else _change_note(job.previous_record, record),
+                       events=events)
+    return Outcome(decision.lot_id, decision.product, decision.label, decision.reasons, job.revision, True,
+                   None if certificate is None else f"certificates/{certificate['file']}",
+                   str(report_path.relative_to(ws.root)))
+
+
+def publish(ws: Workspace, store: Store, catalog: Catalog, decisions: list[LotDecision], night_id: int,
+            charts: dict[tuple[str, str], Chart], signer: CertificateSigner,
+            progress: Progress = _no_progress, workers: int | None = None) -> list[Outcome]:
+    """Per lot: batch report and (released) signed certificate written atomically, then the
+    decision, its results and its audit events in one store transaction; the log file follows.
+
+    Documents are rendered and signed in rounds of WINDOW_LOTS lots, across all cores when the
+    night is large; the store and the log are written here, in the lots' order.
+    """
     _freeze_new_limits(ws, store, charts)
     audit.sync_log(store, ws.log)
-    outcomes = []
-    for number, item in enumerate(decisions, start=1):
-        decision = item.decision
-        existing = store.decision_by_fingerprint(decision.fingerprint)
+    known = store.known_fingerprints([d.decision.fingerprint for d in decisions])
+    previous = store.previous_decisions([d.decision.lot_id for d in decisions])
+    outcomes: dict[int, Outcome] = {}
+    pending: list[tuple[int, LotDecision]] = []
+    for index, item in enumerate(decisions):
+        existing = known.get(item.decision.fingerprint)
         if existing is not None:
-            outcomes.append(Outcome(decision.lot_id, decision.product, existing.record.get("label", existing.disposition),
-                                    tuple(existing.reasons), existing.revision, False, None, None))
-            progress("publish", number, len(decisions))
-            continue
-        previous = store.latest_decision(decision.lot_id)
-        revision = previous.revision + 1 if previous else 1
-        spec = catalog.specifications[decision.product]
-        activity_method = catalog.methods.get(spec.activity_method)
-        protein_method = catalog.methods.get(spec.protein_method)
-        decided_at = dt.datetime.now(dt.UTC)
-        dossier = build_dossier(item, spec, activity_method if isinstance(activity_method, KineticMethod) else None,
-                                protein_method if isinstance(protein_method, ProteinMethod) else None,
-                                plant_name=ws.plant_name, time_zone=ws.time_zone, revision=revision,
-                                decided_at=decided_at)
-        stem = f"{decision.lot_id}_r{revision}"
-        report_path = ws.reports / f"{stem}_batch-report.pdf"
-        report_bytes = render_batch_report(dossier)
-        atomic_write(report_path, report_bytes)
-        atomic_write(ws.reports / f"{stem}_dossier.json",
-                     json.dumps(dossier, ensure_ascii=False, sort_keys=True).encode("utf-8"))
-        certificate = None
-        events = [audit.event("results-computed", time_zone=ws.time_zone, lot_id=decision.lot_id, night_id=night_id,
-                              results=[{"code": v.code, "value": v.value, "se": v.se, "unit": v.unit,
-                                        "reported": v.reported, "verdict": v.verdict}
-                                       for v in item.evaluation.verdicts],
-                              plates=list(item.evaluation.plates))]
-        if decision.disposition == RELEASED:
-            signed_at = dt.datetime.now(dt.UTC).replace(microsecond=0)
-            signature = {"signer_name": signer.signer_name,
-                         "signed_at_local": local_time_text(signed_at, ws.time_zone),
-                         "signed_at_utc": signed_at.isoformat(), "meaning": SIGNATURE_MEANING,
-                         "certificate_fingerprint": signer.fingerprint_sha256}
-            signed = signer.sign(render_certificate(dossier, signature), signed_at=signed_at,
-                                 reason=SIGNATURE_MEANING, location=ws.plant_name)
-            certificate_path = ws.certificates / f"{stem}_certificate.pdf"
-            atomic_write(certificate_path, signed)
-            certificate = {"file": certificate_path.name, "sha256": hashlib.sha256(signed).hexdigest(),
-                           "signer": signer.signer_name, "signer_certificate_sha256": signer.fingerprint_sha256,
-                           "signed_at_utc": signed_at.isoformat(), "meaning": SIGNATURE_MEANING}
-        record = {**decision.to_dict(), "label": decision.label, "revision": revision, "night_id": night_id,
-                  "decided_at_utc": decided_at.isoformat(timespec="seconds"),
-                  "results": [{"code": v.code, "value": v.value, "reported": v.reported, "unit": v.unit,
-                               "verdict": v.verdict} for v in item.evaluation.verdicts],
-                  "trend": [f.to_dict() for f in item.trend], "certificate": certificate,
-                  "report": {"file": report_path.name, "sha256": hashlib.sha256(report_bytes).hexdigest()}}
-        events.append(audit.event("decision", time_zone=ws.time_zone, **record))
-        if certificate is not None:
-            events.append(audit.event("certificate-signed", time_zone=ws.time_zone, lot_id=decision.lot_id, **certificate))
-        store.add_decision(lot_id=decision.lot_id, product_code=decision.product,
-                           manufactured_on=item.evaluation.manufactured_on, night_id=night_id,
-                           decision=record, results=[v.to_dict() for v in item.evaluation.verdicts],
-                           chart_values=item.chart_values, decided_by=f"lotgate {__version__} (nightly job)",
-                           change_note=None if previous is None else _change_note(previous.record, record),
-                           events=events)
-        audit.sync_log(store, ws.log)
-        outcomes.append(Outcome(decision.lot_id, decision.product, decision.label, decision.reasons, revision, True,
-                                None if certificate is None else f"certificates/{certificate['file']}",
-                                str(report_path.relative_to(ws.root))))
-        progress("publish", number, len(decisions))
-    return outcomes
+            outcomes[index] = Outcome(item.decision.lot_id, item.decision.product,
+                                      existing.record.get("label", existing.disposition), tuple(existing.reasons),
+                                      existing.revision, False, None, None)
+        else:
+            pending.append((index, item))
+    done = len(outcomes)
+    progress("publish", done, len(decisions))
+    renderers = _Renderers(ws, signer, len(pending), workers)
+    windows = [pending[start:start + WINDOW_LOTS] for start in range(0, len(pending), WINDOW_LOTS)]
+
+    def start(window: list[tuple[int, LotDecision]]) -> tuple[list[_Job], Any]:
+        jobs = [_prepare(ws, catalog, item, previous.get(item.decision.lot_id), signer) for _, item in window]
+        return jobs, renderers.submit(jobs)
+
+    try:
+        running = start(windows[0]) if windows else None
+        for number, window in enumerate(windows):
+            jobs, handle = running
+            # The next window renders on the workers while this one is written to disk and store.
+            running = start(windows[number + 1]) if number + 1 < len(windows) else None
+            for (index, _), job, (report, certificate) in zip(window, jobs, renderers.collect(handle), strict=True):
+                outcomes[index] = _record(ws, store, job, night_id, report, certificate, signer)
+                done += 1
+                progress("publish", done, len(decisions))
+            audit.sync_log(store, ws.log)
+    finally:
+        renderers.close()
+    return [outcomes[i] for i in range(len(decisions))]
 
 
 def _change_note(before: dict[str, Any], after: dict[str, Any]) -> str:

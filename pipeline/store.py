@@ -229,6 +229,16 @@ class Store:
         with self.session() as s:
             return s.scalars(select(DecisionRow).where(DecisionRow.fingerprint == fingerprint)).first()
 
+    def known_fingerprints(self, fingerprints: list[str]) -> dict[str, DecisionRow]:
+        """Decisions already made with these fingerprints (chunked IN queries, no scan)."""
+        out: dict[str, DecisionRow] = {}
+        with self.session() as s:
+            for start in range(0, len(fingerprints), 500):
+                chunk = fingerprints[start:start + 500]
+                for row in s.scalars(select(DecisionRow).where(DecisionRow.fingerprint.in_(chunk))):
+                    out[row.fingerprint] = row
+        return out
+
     def decisions(self, lot_id: str | None = None) -> list[DecisionRow]:
         with self.session() as s:
             query = select(DecisionRow).order_by(DecisionRow.id)
@@ -383,10 +393,13 @@ class Store:
         """The latest decision of each lot that has one (one query for the night)."""
         if not lot_ids:
             return {}
+        out: dict[str, DecisionRow] = {}
         with self.session() as s:
-            rows = s.scalars(select(DecisionRow).where(DecisionRow.lot_id.in_(lot_ids))
-                             .order_by(DecisionRow.lot_id, DecisionRow.revision))
-            return {row.lot_id: row for row in rows}
+            for start in range(0, len(lot_ids), 500):
+                rows = s.scalars(select(DecisionRow).where(DecisionRow.lot_id.in_(lot_ids[start:start + 500]))
+                                 .order_by(DecisionRow.lot_id, DecisionRow.revision))
+                out.update({row.lot_id: row for row in rows})
+        return out
 
 
 def safe_url(url: str) -> str:
