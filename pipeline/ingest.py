@@ -31,7 +31,6 @@ import warnings
 from collections import defaultdict
 from dataclasses import dataclass
 
-import numpy as np
 import pandas as pd
 import pandera.pandas as pa
 
@@ -214,11 +213,14 @@ def _read_rows(name: str, text: str, layout: ExportLayout) -> _Rows:
     spanning: list[int] = []
     end = 0
     try:
-        for row in reader:
-            if reader.line_num > end + 1:
-                spanning.append(len(rows))
-            rows.append((end + 1, row))
-            end = reader.line_num
+        if '"' not in text:  # no quoted field, so one row per line (the fast path of large reads)
+            rows = list(enumerate(reader, start=1))
+        else:
+            for row in reader:
+                if reader.line_num > end + 1:
+                    spanning.append(len(rows))
+                rows.append((end + 1, row))
+                end = reader.line_num
     except csv.Error as exc:
         raise _reject(name, "csv", f"the file is not well-formed CSV ({exc}); check the quotes on this line", reader.line_num) from None
     problems = _hidden_problems(rows, spanning, text)
@@ -242,8 +244,9 @@ def _read_rows(name: str, text: str, layout: ExportLayout) -> _Rows:
     body: list[list[str]] = []
     lines: list[int] = []
     skipped: list[int] = []
+    spaced = any(ch.isspace() and ch != "\n" for ch in set(text))  # else nothing to strip (most reads)
     for start, row in rows[1:]:
-        cells = [cell.strip() for cell in row]
+        cells = [cell.strip() for cell in row] if spaced else row
         if not any(cells):
             skipped.append(start)
             continue
@@ -326,9 +329,9 @@ def _number_problems(frame: pd.DataFrame, layout: ExportLayout, lines: list[int]
         whole = dtype == "int64"
         pattern = _INT if whole else _FLOAT
         values = frame[column].dropna().astype(str)
-        form = values.str.fullmatch(pattern.pattern)
-        finite = np.isfinite(pd.to_numeric(values[form], errors="coerce").astype(float))
-        bad = values.index.difference(finite[finite].index)
+        distinct = pd.unique(values.to_numpy())  # reads repeat their times, wavelength and temperature
+        good = {v for v in distinct if pattern.fullmatch(v) is not None and math.isfinite(float(v))}
+        bad = values.index[~values.isin(good).to_numpy()]
         for index in bad:
             value = str(values.at[index])
             why = f"'{_printable(value)}' is not a {'whole number' if whole else 'number'}"
