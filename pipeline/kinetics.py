@@ -291,7 +291,9 @@ def _mm_jacobian(s: FloatArray, p: FloatArray) -> FloatArray:
     return np.column_stack([s / d, -p[0] * s / d**2])
 
 
-def _mm_start(s: FloatArray, v: FloatArray, w: FloatArray) -> tuple[FloatArray, FloatArray]:
+def michaelis_menten_start(
+    s: FloatArray, v: FloatArray, w: FloatArray
+) -> tuple[FloatArray, FloatArray]:
     """Start values per row of (B, n) arrays; points with w == 0 are ignored.
 
     Hanes-Woolf line S/v = Km/Vmax + S/Vmax (slope 1/Vmax, intercept Km/Vmax) over points
@@ -349,7 +351,7 @@ def fit_michaelis_menten(
     """
     s, v, w = _curve(substrate, rate, weights, n_params=2)
     w_start = np.ones_like(v) if w is None else w
-    vmax0, km0 = _mm_start(s[None, :], v[None, :], w_start[None, :])
+    vmax0, km0 = michaelis_menten_start(s[None, :], v[None, :], w_start[None, :])
     res = fit_least_squares(
         _mm_model, _mm_jacobian, s, v, [vmax0[0], km0[0]], weights=w, param_names=("vmax", "km")
     )
@@ -359,7 +361,7 @@ def fit_michaelis_menten(
 # ------------------------------------------------------------------ Michaelis-Menten, batched
 
 
-def _batch_inputs(
+def batch_inputs(
     substrate: ArrayLike, rate: ArrayLike, weights: ArrayLike | None, mask: ArrayLike | None
 ) -> tuple[FloatArray, FloatArray, FloatArray]:
     """(B, n) substrate, rate and effective weights (0 where masked); NaN allowed there only."""
@@ -500,13 +502,13 @@ def fit_michaelis_menten_batch(
     Curves with fewer than 3 points or fewer than 2 substrate levels above zero get NaN
     and a status code (``message(i)`` words it); the rest of the batch is still fitted.
     """
-    s, v, w = _batch_inputs(substrate, rate, weights, mask)
+    s, v, w = batch_inputs(substrate, rate, weights, mask)
     n_pts = (w > 0).sum(axis=1).astype(np.int64)
     positive = (w > 0) & (s > 0)
     spread = np.where(positive, s, -np.inf).max(axis=1) > np.where(positive, s, np.inf).min(axis=1)
     live = (n_pts >= 3) & spread
 
-    vmax0, km0 = _mm_start(s, v, w)
+    vmax0, km0 = michaelis_menten_start(s, v, w)
     vmax, km, stopped, iterations = _lm_batch(s, v, w, vmax0, km0, live)
 
     rss = _mm_rss(s, v, w, vmax, km)
@@ -594,7 +596,7 @@ def fit_substrate_inhibition(
     except CalculationError:
         pass
     w_start = np.ones_like(v) if w is None else w
-    vmax0, km0 = _mm_start(s[None, :], v[None, :], w_start[None, :])
+    vmax0, km0 = michaelis_menten_start(s[None, :], v[None, :], w_start[None, :])
     starts.append([float(vmax0[0]), float(km0[0]), 1 / float(s.max())])
 
     best: NLSResult | None = None
