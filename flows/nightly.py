@@ -12,6 +12,7 @@ from pathlib import Path
 
 from prefect import flow, task
 from prefect.cache_policies import NONE
+from prefect.utilities.annotations import quote
 
 from pipeline import night
 from pipeline.night import NightSummary
@@ -53,21 +54,24 @@ def run_stages(ws: Workspace, store: Store, signer: night.CertificateSigner, *, 
     step = {name: (globals()[name].fn if not orchestrated else globals()[name])
             for name in ("receive", "assemble", "evaluate", "load_charts", "decide", "publish", "close")}
     if not lock:
-        return _stages(ws, store, signer, step)
+        return _stages(ws, store, signer, step, orchestrated)
     with run_lock(ws.root, store):
-        return _stages(ws, store, signer, step)
+        return _stages(ws, store, signer, step, orchestrated)
 
 
 STAGE_SECONDS: dict[str, float] = {}  # wall time of each stage of the last night in this process
 
 
-def _stages(ws: Workspace, store: Store, signer: night.CertificateSigner, step: dict) -> NightSummary:
+def _stages(ws: Workspace, store: Store, signer: night.CertificateSigner, step: dict,
+            orchestrated: bool) -> NightSummary:
     STAGE_SECONDS.clear()
 
     def timed(name: str, *args):
         start = time.perf_counter()
         try:
-            return step[name](*args)
+            # quote(): Prefect would otherwise walk every nested object of a night's data
+            # looking for upstream futures, which costs seconds on a large night.
+            return step[name](*(quote(a) for a in args)) if orchestrated else step[name](*args)
         finally:
             STAGE_SECONDS[name] = time.perf_counter() - start
 

@@ -30,6 +30,7 @@ import unicodedata
 import warnings
 from collections import defaultdict
 from dataclasses import dataclass
+from typing import Any
 
 import pandas as pd
 import pandera.pandas as pa
@@ -501,7 +502,22 @@ def _sorted(problems: list[Problem], layout: ExportLayout) -> list[Problem]:
     return kept
 
 
-def _parse(file_name: str, data: bytes, layouts: dict[str, ExportLayout]) -> ParsedExport:
+@dataclass
+class _Prepared:
+    """A file read and cell-checked, waiting for its layout's schema validation."""
+
+    file_name: str
+    sha256: str
+    layout: ExportLayout
+    conversions: list[str]
+    lines: list[int]
+    frame: pd.DataFrame
+    checked: pd.DataFrame
+    seen: set[tuple[str, int]]
+
+
+def _prepare(file_name: str, data: bytes, layouts: dict[str, ExportLayout]) -> _Prepared:
+    """Stages 1 and 2 of a file: the whole file, then every cell (raises ExportRejected)."""
     sha256 = hashlib.sha256(data).hexdigest()
     layout = _check_name(file_name, data, layouts)
     text, conversions = _decode(file_name, data)
@@ -522,32 +538,105 @@ def _parse(file_name: str, data: bytes, layouts: dict[str, ExportLayout]) -> Par
     frame = frame.astype(object).where(frame != "", None)
     numbers, seen_numbers = _number_problems(frame, layout, rows.lines)
     dates, seen_dates = _date_problems(frame, layout, rows.lines)
-    problems = numbers + dates
-    checked = frame.copy()
-    for column, index in seen_numbers:  # reported already; emptied so that the rest of the column is checked
-        checked.at[index, column] = None
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore")
-        try:
-            validated = layout.schema.validate(checked, lazy=True)
-        except pa.errors.SchemaErrors as exc:
-            problems += _schema_problems(exc, frame, layout, rows.lines, seen_numbers | seen_dates)
-            validated = None
-    if validated is None and not problems:
-        problems.append(Problem("value", "the values do not match the layout"))
-    if validated is not None and not problems:
-        problems = _row_problems(validated.reset_index(drop=True), set(layout.columns), rows.lines)
-    if problems:
+    if numbers or dates:
+        checked = frame.copy()
+        for column, index in seen_numbers:  # reported already; emptied so that the rest of the column is checked
+            checked.at[index, column] = None
+        problems = numbers + dates
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            try:
+                layout.schema.validate(checked, lazy=True)
+            except pa.errors.SchemaErrors as exc:
+                problems += _schema_problems(exc, frame, layout, rows.lines, seen_numbers | seen_dates)
         raise ExportRejected(file_name, _sorted(problems, layout))
+    return _Prepared(file_name, sha256, layout, conversions, rows.lines, frame, frame, seen_numbers | seen_dates)
+
+
+def _finish(prepared: _Prepared, validated: pd.DataFrame | None, errors: pa.errors.SchemaErrors | None) -> ParsedExport:
+    """Stage 3 of a file: its schema verdict, then rows against each other (raises ExportRejected)."""
+    layout = prepared.layout
+    problems: list[Problem] = []
+    if errors is not None:
+        problems += _schema_problems(errors, prepared.frame, layout, prepared.lines, prepared.seen)
+        if not problems:
+            problems.append(Problem("value", "the values do not match the layout"))
+        raise ExportRejected(prepared.file_name, _sorted(problems, layout))
     assert validated is not None
+    validated = validated.reset_index(drop=True)
+    problems = _row_problems(validated, set(layout.columns), prepared.lines)
+    if problems:
+        raise ExportRejected(prepared.file_name, _sorted(problems, layout))
     for column in validated.columns:
         if validated[column].dtype == object:
             validated[column] = validated[column].map(lambda v: v if v is None else str(v))
     return ParsedExport(
-        file_name=file_name, kind=layout.kind, layout_version=layout.version,
-        layout_sha256=layout.sha256, sha256=sha256, frame=validated.reset_index(drop=True),
-        conversions=tuple(conversions),
+        file_name=prepared.file_name, kind=layout.kind, layout_version=layout.version,
+        layout_sha256=layout.sha256, sha256=prepared.sha256, frame=validated,
+        conversions=tuple(prepared.conversions),
     )
+
+
+def _validate_one(prepared: _Prepared) -> ParsedExport:
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        try:
+            validated = prepared.layout.schema.validate(prepared.checked, lazy=True)
+        except pa.errors.SchemaErrors as exc:
+            return _finish(prepared, None, exc)
+    return _finish(prepared, validated, None)
+
+
+def _parse(file_name: str, data: bytes, layouts: dict[str, ExportLayout]) -> ParsedExport:
+    return _validate_one(_prepare(file_name, data, layouts))
+
+
+def _guarded(file_name: str, call: Any) -> Any:
+    try:
+        return call()
+    except ExportRejected as exc:
+        return exc
+    except Exception as exc:  # noqa: BLE001 - the contract: a bad file never stops the night
+        rejected = _reject(file_name, "internal-error", f"lotgate could not read this file ({type(exc).__name__}: "
+                           f"{_printable(str(exc), 120)}); this is a defect of lotgate, please report it")
+        rejected.__cause__ = exc
+        return rejected
+
+
+def parse_exports(files: list[tuple[str, bytes]], layouts: dict[str, ExportLayout]) -> list[ParsedExport | ExportRejected]:
+    """``parse_export`` for many files at once, with the same verdict for each file.
+
+    The schema check, pandera's fixed cost per call, runs once per layout over all files of
+    that kind stacked together; only when that finds a problem are that kind's files checked
+    one by one, so every problem is still attributed to its file, line and column.
+    """
+    results: list[ParsedExport | ExportRejected | _Prepared] = [
+        _guarded(name, lambda name=name, data=data: _prepare(name, data, layouts)) for name, data in files]
+    by_kind: dict[str, list[int]] = {}
+    for index, item in enumerate(results):
+        if isinstance(item, _Prepared):
+            by_kind.setdefault(item.layout.kind, []).append(index)
+    for indices in by_kind.values():
+        group = [results[i] for i in indices]
+        assert all(isinstance(p, _Prepared) for p in group)
+        stacked = pd.concat([p.checked for p in group], keys=range(len(group)))  # type: ignore[union-attr]
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            try:
+                validated = group[0].layout.schema.validate(stacked, lazy=True)  # type: ignore[union-attr]
+            except pa.errors.SchemaErrors:
+                validated = None
+            except Exception:  # noqa: BLE001 - fall back to one file at a time, which guards each file
+                validated = None
+        for position, index in enumerate(indices):
+            prepared = results[index]
+            assert isinstance(prepared, _Prepared)
+            if validated is None:
+                results[index] = _guarded(prepared.file_name, lambda p=prepared: _validate_one(p))
+            else:
+                part = validated.xs(position, level=0)
+                results[index] = _guarded(prepared.file_name, lambda p=prepared, v=part: _finish(p, v, None))
+    return results  # type: ignore[return-value]
 
 
 def parse_export(file_name: str, data: bytes, layouts: dict[str, ExportLayout]) -> ParsedExport:

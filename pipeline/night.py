@@ -13,6 +13,8 @@ import datetime as dt
 import hashlib
 import io
 import json
+import os
+import re
 from collections.abc import Callable
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -20,12 +22,12 @@ from typing import Any, Protocol
 
 from pipeline import __version__, audit
 from pipeline.assembly import Assembly, QuarantinedFile, assemble
-from pipeline.catalog import Catalog, load_catalog, schemas_dir
+from pipeline.catalog import Catalog, load_catalog, schemas_dir, sha256_file
 from pipeline.decide import CHART_TAIL, Chart, FrozenLimits, LotDecision, decide_night
 from pipeline.dossier import build_dossier, local_time_text
 from pipeline.errors import InputError, SigningError
-from pipeline.ingest import ExportRejected, ParsedExport, parse_export
-from pipeline.layouts import ExportLayout, load_layouts
+from pipeline.ingest import ExportRejected, ParsedExport, parse_exports
+from pipeline.layouts import ExportLayout, layout_for, load_layouts
 from pipeline.lots import LotEvaluation, LotInputs, evaluate_lots
 from pipeline.model import RELEASED
 from pipeline.plates import (
@@ -53,6 +55,7 @@ class Intake:
     parsed: list[ParsedExport] = field(default_factory=list)
     paths: dict[str, Path] = field(default_factory=dict)
     quarantined: list[QuarantinedFile] = field(default_factory=list)
+    notes: list[str] = field(default_factory=list)
 
 
 def _quarantine(ws: Workspace, store: Store, intake: Intake, path: Path, sha: str, status: str, report: str,
@@ -71,36 +74,84 @@ def _quarantine(ws: Workspace, store: Store, intake: Intake, path: Path, sha: st
 
 def receive(ws: Workspace, store: Store, layouts: dict[str, ExportLayout], night_id: int,
             progress: Progress = _no_progress) -> Intake:
-    """Read and validate every file in the inbox; set aside, with its reason, what cannot be used."""
-    files = sorted(p for p in ws.inbox.iterdir() if p.is_file() and not p.name.startswith("."))
-    intake = Intake(night_id=night_id, received=len(files))
+    """Read and validate every file in the inbox; set aside, with its reason, what cannot be used.
+
+    Every entry of the inbox is counted: hidden files and symbolic links are set aside too (a
+    link's target could change after it is archived); a folder is left in place and named.
+    """
+    entries = sorted(ws.inbox.iterdir())
+    intake = Intake(night_id=night_id, received=0)
+    for entry in entries:
+        if entry.is_dir() and not entry.is_symlink():
+            intake.notes.append(f"the inbox holds a folder '{entry.name}'; lotgate reads files only, it was left in place")
+    files = [e for e in entries if e.is_symlink() or e.is_file()]
+    intake.received = len(files)
+    largest = max(layout.max_bytes for layout in layouts.values())
+    candidates: list[tuple[Path, bytes, str]] = []
     seen: dict[str, str] = {}
-    received = []
-    for number, path in enumerate(files, start=1):
+    done = 0
+    for path in files:
+        reason = None
+        if path.is_symlink():
+            reason = "it is a symbolic link; export the file itself into the inbox (a link's target can change later)"
+        elif path.name.startswith("."):
+            reason = "it is a hidden file (its name starts with '.'), not an export"
+        else:
+            layout = layout_for(path.name, layouts)
+            limit = layout.max_bytes if layout is not None else largest
+            size = path.stat().st_size
+            if size > limit:
+                reason = f"the file has {size:,} bytes; {'a ' + layout.kind + ' export' if layout else 'an export'} may have at most {limit:,}"
+        if reason is not None:
+            report = f"File {path.name} was set aside (quarantined) and not used.\n\n- {reason}\n"
+            head = b""
+            if not path.is_symlink():
+                with open(path, "rb") as handle:  # the start only: enough to name the lots it mentions
+                    head = handle.read(1 << 16)
+            digest = (hashlib.sha256(os.readlink(path).encode()).hexdigest() if path.is_symlink()
+                      else sha256_file(path))  # streamed: a large file is never held in memory
+            _quarantine(ws, store, intake, path, digest, "quarantined", report, head.decode("utf-8", errors="replace"))
+            done += 1
+            progress("receive", done, len(files))
+            continue
         data = path.read_bytes()
-        sha = hashlib.sha256(data).hexdigest()
-        earlier = store.known_file(sha)
+        candidates.append((path, data, hashlib.sha256(data).hexdigest()))
+    archived = store.archived_files([sha for _, _, sha in candidates])
+    to_parse: list[tuple[Path, bytes, str]] = []
+    for path, data, sha in candidates:
+        earlier = archived.get(sha)
         if earlier is not None or sha in seen:
             first = earlier.file_name if earlier is not None else seen[sha]
             when = f" (received {earlier.received_at_utc:%Y-%m-%d %H:%M} UTC)" if earlier is not None else " tonight"
             report = (f"File {path.name} was set aside (quarantined) and not used.\n\n- it is byte for byte "
                       f"identical (SHA-256 {sha[:16]}…) to {first}{when}, which was already processed\n")
-            _quarantine(ws, store, intake, path, sha, "duplicate", report, "")
+            # A copy of a file used tonight takes nothing away; a copy of an earlier night's file
+            # may be what a lot needed, so its text links it to the lots it names.
+            text = data.decode("utf-8", errors="replace") if earlier is not None else ""
+            _quarantine(ws, store, intake, path, sha, "duplicate", report, text)
+            done += 1
+            progress("receive", done, len(files))
         else:
-            try:
-                parsed = parse_export(path.name, data, layouts)
-            except ExportRejected as exc:
-                _quarantine(ws, store, intake, path, sha, "quarantined", exc.report(),
+            seen[sha] = path.name
+            to_parse.append((path, data, sha))
+    received = []
+    batch = 200
+    for start in range(0, len(to_parse), batch):
+        chunk = to_parse[start:start + batch]
+        for (path, data, sha), result in zip(chunk, parse_exports([(p.name, d) for p, d, _ in chunk], layouts),
+                                              strict=True):
+            if isinstance(result, ExportRejected):
+                _quarantine(ws, store, intake, path, sha, "quarantined", result.report(),
                             data.decode("utf-8", errors="replace"))
             else:
-                seen[sha] = path.name
-                intake.parsed.append(parsed)
+                intake.parsed.append(result)
                 intake.paths[path.name] = path
                 received.append(audit.event("file-received", time_zone=ws.time_zone, night_id=night_id,
-                                            file=path.name, sha256=sha, export_kind=parsed.kind,
-                                            layout_version=parsed.layout_version, rows=len(parsed.frame),
-                                            conversions=list(parsed.conversions)))
-        progress("receive", number, len(files))
+                                            file=path.name, sha256=sha, export_kind=result.kind,
+                                            layout_version=result.layout_version, rows=len(result.frame),
+                                            conversions=list(result.conversions)))
+            done += 1
+            progress("receive", done, len(files))
     store.add_events(received)
     audit.sync_log(store, ws.log)
     return intake
@@ -451,6 +502,7 @@ def _now_text() -> str:
 
 # ------------------------------------------------------------------------------ close
 FORMULA_PREFIXES = ("=", "+", "-", "@", "\t", "\r")
+_PLAIN_NUMBER = re.compile(r"-?[0-9]+(\.[0-9]+)?([eE][-+]?[0-9]+)?")
 
 
 def csv_cell(value: Any) -> str:
@@ -460,6 +512,8 @@ def csv_cell(value: Any) -> str:
     if isinstance(value, float):
         return repr(value)
     text = str(value)
+    if _PLAIN_NUMBER.fullmatch(text):
+        return text
     return "'" + text if text.startswith(FORMULA_PREFIXES) else text
 
 
@@ -585,4 +639,6 @@ __all__ = ["receive", "assemble", "evaluate", "load_charts", "decide", "publish"
 
 def assemble_intake(intake: Intake, catalog: Catalog) -> Assembly:
     """The night's parsed exports grouped by lot and plate (see pipeline.assembly)."""
-    return assemble(intake.parsed, intake.quarantined, catalog)
+    assembly = assemble(intake.parsed, intake.quarantined, catalog)
+    assembly.notes[:0] = intake.notes
+    return assembly

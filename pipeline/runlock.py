@@ -57,6 +57,7 @@ def run_lock(root: Path, store: Store, wait_s: float = 0.0) -> Iterator[None]:
             try:
                 yield
             finally:
+                info_path.unlink(missing_ok=True)
                 connection.exec_driver_sql(f"SELECT pg_advisory_unlock({RUN_LOCK_KEY})")
                 connection.commit()
         finally:
@@ -72,6 +73,7 @@ def run_lock(root: Path, store: Store, wait_s: float = 0.0) -> Iterator[None]:
         _write_info(info_path)
         yield
     finally:
+        info_path.unlink(missing_ok=True)
         lock.release()
 
 

@@ -220,6 +220,17 @@ class Store:
             return s.scalars(select(InputFile).where(InputFile.sha256 == sha256,
                                                      InputFile.status == "archived").limit(1)).first()
 
+    def archived_files(self, sha256s: list[str]) -> dict[str, InputFile]:
+        """Files already archived with these SHA-256 values (chunked IN queries)."""
+        out: dict[str, InputFile] = {}
+        with self.session() as s:
+            for start in range(0, len(sha256s), 500):
+                rows = s.scalars(select(InputFile).where(InputFile.sha256.in_(sha256s[start:start + 500]),
+                                                         InputFile.status == "archived"))
+                for row in rows:
+                    out.setdefault(row.sha256, row)
+        return out
+
     def latest_decision(self, lot_id: str) -> DecisionRow | None:
         with self.session() as s:
             return s.scalars(select(DecisionRow).where(DecisionRow.lot_id == lot_id)

@@ -86,8 +86,6 @@ def test_free_text_with_markup_and_formulas_is_read_as_it_is():
     assert list(parsed.frame["analyst"]) == ANALYSTS[: len(UNITS)]
 
 
-@pytest.mark.xfail(strict=True, reason="pipeline.night.csv_cell puts an apostrophe before a negative number "
-                                        "given as text ('-0.1' becomes \"'-0.1\"), so the LIMS reads text, not a number")
 def test_csv_cell_keeps_a_plain_negative_number():
     assert csv_cell("-0.1") == "-0.1"
 

@@ -3,6 +3,7 @@
 import os
 import subprocess
 import sys
+import time
 
 import pytest
 from sqlalchemy import create_engine, text
@@ -48,8 +49,14 @@ def test_two_runs_at_once_exactly_one_processes(pg_url, tmp_path):
     for name, data in night.files.items():
         atomic_write(root / "inbox" / name, data)
     command = [sys.executable, "-m", "flows.cli", "run", "--workspace", str(root)]
-    runs = [subprocess.Popen(command, env=_env(pg_url), stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
-            for _ in range(2)]
+    first = subprocess.Popen(command, env=_env(pg_url), stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+    # Start the second run once the first holds the lock (it writes who holds it), so that the
+    # two overlap whatever the machine's load.
+    deadline = time.monotonic() + 120
+    while not (root / ".lotgate-run.json").exists() and first.poll() is None and time.monotonic() < deadline:
+        time.sleep(0.05)
+    second = subprocess.Popen(command, env=_env(pg_url), stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+    runs = [first, second]
     results = []
     for run in runs:
         stdout, stderr = run.communicate(timeout=600)

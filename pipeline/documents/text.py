@@ -36,6 +36,9 @@ DEFAULT_MAX_LEN = 400
 _BIDI = {chr(c) for c in (*range(0x202A, 0x202F), *range(0x2066, 0x206A), 0x200E, 0x200F)}
 
 
+_PRINTABLE_ASCII = frozenset(chr(c) for c in range(0x20, 0x7F))
+
+
 def clean(value: Any, max_len: int = DEFAULT_MAX_LEN) -> str:
     """Plain, printable, bounded text from any dossier value (no markup is added or removed).
 
@@ -46,15 +49,18 @@ def clean(value: Any, max_len: int = DEFAULT_MAX_LEN) -> str:
     if value is None:
         return DASH
     text = value if isinstance(value, str) else str(value)
-    out: list[str] = []
-    for ch in text:
-        if ch in "\t\n\r\x0b\x0c\u2028\u2029":
-            out.append(" ")
-        elif unicodedata.category(ch).startswith("C") or ch in _BIDI:
-            continue
-        else:
-            out.append(ch)
-    flat = " ".join("".join(out).split())
+    if _PRINTABLE_ASCII.issuperset(text):  # the common case: nothing to drop or fold
+        flat = " ".join(text.split()) if "  " in text or text[:1] == " " or text[-1:] == " " else text
+    else:
+        out: list[str] = []
+        for ch in text:
+            if ch in "\t\n\r\x0b\x0c\u2028\u2029":
+                out.append(" ")
+            elif unicodedata.category(ch).startswith("C") or ch in _BIDI:
+                continue
+            else:
+                out.append(ch)
+        flat = " ".join("".join(out).split())
     if len(flat) > max_len:
         flat = flat[: max(0, max_len - 1)].rstrip() + ELLIPSIS
     return flat
