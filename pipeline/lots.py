@@ -17,6 +17,8 @@ import numpy as np
 
 from pipeline import kinetics
 from pipeline.errors import CalculationError
+from pipeline.kinetics import KineticModelChoice
+from pipeline.kinetics_batch import choose_kinetic_models
 from pipeline.model import REPORTED, AttributeVerdict, Measurement, _clean
 from pipeline.plates import ActivityPlateResult, KineticSeries, ProteinPlateResult
 from pipeline.specs import KineticMethod, Specification
@@ -63,7 +65,19 @@ class LotEvaluation:
         return next(v for v in self.verdicts if v.code == code)
 
 
+def missing(name: str, unit: str, reason: str) -> Measurement:
+    """A result whose data did not arrive: the lot is incomplete, not its assay invalid."""
+    return Measurement(name, unit, None, valid=True, reasons=(reason,), detail={"missing": True})
+
+
+def is_missing(measurement: Measurement | None) -> bool:
+    return measurement is None or bool(measurement.detail.get("missing"))
+
+
 def _ratio(name: str, unit: str, top: Measurement, bottom: Measurement) -> Measurement:
+    if is_missing(top) or is_missing(bottom):
+        reasons = tuple(r for m in (top, bottom) if is_missing(m) for r in m.reasons)
+        return Measurement(name, unit, None, valid=True, reasons=reasons, detail={"missing": True})
     if not top.valid or not bottom.valid:
         reasons = tuple(dict.fromkeys((*(() if top.valid else top.reasons), *(() if bottom.valid else bottom.reasons))))
         return Measurement(name, unit, None, valid=False, reasons=reasons)
@@ -74,46 +88,59 @@ def _ratio(name: str, unit: str, top: Measurement, bottom: Measurement) -> Measu
     return Measurement(name, unit, value, se=abs(value) * rel, n=min(top.n, bottom.n))
 
 
-def _fit_batch(series: dict[str, KineticSeries]) -> dict[str, kinetics.MichaelisMentenFit | str]:
-    """One vectorised Michaelis–Menten solve over every lot's substrate series."""
+def _fit_batch(series: dict[str, KineticSeries], alpha: dict[str, float]) -> dict[str, KineticModelChoice | str]:
+    """The night's kinetic fits in vectorised solves: Michaelis–Menten for every lot's substrate
+    series, then the model choice (substrate inhibition by the F test) for those that fitted."""
     usable = {lot: s for lot, s in series.items() if s.valid and len(s.substrate_mm) >= 3}
-    out: dict[str, kinetics.MichaelisMentenFit | str] = {}
+    out: dict[str, KineticModelChoice | str] = {}
     if not usable:
         return out
+
+    def stack(lots: list[str]) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        width = max(len(usable[lot].substrate_mm) for lot in lots)
+        s = np.ones((len(lots), width))
+        v = np.zeros((len(lots), width))
+        mask = np.zeros((len(lots), width), dtype=bool)
+        for i, lot in enumerate(lots):
+            n = len(usable[lot].substrate_mm)
+            s[i, :n] = usable[lot].substrate_mm
+            v[i, :n] = usable[lot].rate_u_per_ml
+            mask[i, :n] = True
+        return s, v, mask
+
     lots = sorted(usable)
-    width = max(len(usable[lot].substrate_mm) for lot in lots)
-    s = np.ones((len(lots), width))
-    v = np.zeros((len(lots), width))
-    mask = np.zeros((len(lots), width), dtype=bool)
-    for i, lot in enumerate(lots):
-        n = len(usable[lot].substrate_mm)
-        s[i, :n] = usable[lot].substrate_mm
-        v[i, :n] = usable[lot].rate_u_per_ml
-        mask[i, :n] = True
-    batch = kinetics.fit_michaelis_menten_batch(s, v, mask=mask)
+    batch = kinetics.fit_michaelis_menten_batch(*stack(lots)[:2], mask=stack(lots)[2])
+    fitted = []
     for i, lot in enumerate(lots):
         try:
-            out[lot] = batch.fit(i)
+            batch.fit(i)
+            fitted.append(lot)
         except CalculationError as exc:
             out[lot] = str(exc)
+    for level in sorted({alpha[lot] for lot in fitted}):
+        group = [lot for lot in fitted if alpha[lot] == level]
+        s, v, mask = stack(group)
+        for lot, choice in zip(group, choose_kinetic_models(s, v, mask=mask, alpha=level), strict=True):
+            out[lot] = choice
     return out
 
 
-def _kinetic_measurements(lot: str, series: KineticSeries | None, fit: kinetics.MichaelisMentenFit | str | None,
+def _kinetic_measurements(lot: str, series: KineticSeries | None, choice: KineticModelChoice | str | None,
                           protein: Measurement, method: KineticMethod | None,
                           spec: Specification) -> tuple[dict[str, Measurement], dict[str, Any] | None]:
     names = {"km": "mM", "vmax": "U/mg", "kcat": "1/s", "kcat_over_km": "1/(M·s)"}
     if series is None or method is None:
-        return {k: Measurement(k, u, None, valid=False, reasons=("no kinetic data",)) for k, u in names.items()}, None
+        reason = f"no substrate series for lot {lot} arrived tonight"
+        return {k: missing(k, u, reason) for k, u in names.items()}, None
     if not series.valid:
         return {k: Measurement(k, u, None, valid=False, reasons=series.reasons) for k, u in names.items()}, {
             "model": None, "fit": None, "flagged": False, "reason": "; ".join(series.reasons),
             "points": {"substrate_mm": list(series.substrate_mm), "rate_u_per_ml": list(series.rate_u_per_ml)},
             "excluded": list(series.excluded), "km_quality": None}
-    if not isinstance(fit, kinetics.MichaelisMentenFit):
-        reason = f"the Michaelis–Menten fit failed: {fit}"
+    if not isinstance(choice, KineticModelChoice):
+        reason = f"the Michaelis–Menten fit failed: {choice}"
         return {k: Measurement(k, u, None, valid=False, reasons=(reason,)) for k, u in names.items()}, None
-    choice = kinetics.choose_kinetic_model(series.substrate_mm, series.rate_u_per_ml, alpha=method.model_selection_alpha)
+    fit = choice.michaelis_menten
     model = choice.model
     vmax, vmax_se, km, km_se, cov = fit.vmax, fit.vmax_se, fit.km, fit.km_se, fit.cov_vmax_km
     fit_dict = fit.to_dict()
@@ -134,10 +161,11 @@ def _kinetic_measurements(lot: str, series: KineticSeries | None, fit: kinetics.
                                 n=fit.n, reasons=tuple(notes))
     else:
         out["km"] = Measurement("km", "mM", None, reasons=(f"Km poorly determined: {quality.reason}",))
-    if not protein.valid or protein.value is None:
-        reason = ("Vmax per mg needs the protein result, which is not available",)
+    if is_missing(protein) or not protein.valid or protein.value is None:
+        reason = "Vmax per mg needs the protein result, which is not available"
         for k in ("vmax", "kcat", "kcat_over_km"):
-            out[k] = Measurement(k, names[k], None, valid=False, reasons=reason)
+            out[k] = missing(k, names[k], reason) if is_missing(protein) else \
+                Measurement(k, names[k], None, valid=False, reasons=(reason,))
         return out, detail
     p, rel_p = protein.value, protein.relative_se or 0.0
     vmax_mg = vmax / p
@@ -166,17 +194,20 @@ def evaluate_lots(lots: list[LotInputs], specifications: dict[str, Specification
                   methods: dict[str, Any]) -> list[LotEvaluation]:
     """Numbers and verdicts of every lot of the night (trend comes after, in pipeline.oot)."""
     series = {lot.lot_id: lot.activity_plate.kinetics.get(lot.lot_id) for lot in lots if lot.activity_plate}
-    fits = _fit_batch({k: v for k, v in series.items() if v is not None})
+    alpha = {}
+    for lot in lots:
+        method = methods.get(specifications[lot.product_code].activity_method)
+        alpha[lot.lot_id] = getattr(method, "model_selection_alpha", 0.05)
+    fits = _fit_batch({k: v for k, v in series.items() if v is not None}, alpha)
     evaluations = []
     for lot in lots:
         spec = specifications[lot.product_code]
         method = methods.get(spec.activity_method)
         plate = lot.activity_plate
-        no_plate = (f"no activity plate for lot {lot.lot_id} arrived tonight",)
-        activity = (plate.activity.get(lot.lot_id) if plate else None) or Measurement(
-            "activity", "U/mL", None, valid=True, reasons=no_plate)
-        protein = (lot.protein_plate.protein.get(lot.lot_id) if lot.protein_plate else None) or Measurement(
-            "protein", "mg/mL", None, valid=True, reasons=(f"no protein plate for lot {lot.lot_id} arrived tonight",))
+        activity = (plate.activity.get(lot.lot_id) if plate else None) or missing(
+            "activity", "U/mL", f"no activity plate for lot {lot.lot_id} arrived tonight")
+        protein = (lot.protein_plate.protein.get(lot.lot_id) if lot.protein_plate else None) or missing(
+            "protein", "mg/mL", f"no protein plate for lot {lot.lot_id} arrived tonight")
         specific = _ratio("specific_activity", "U/mg", activity, protein)
         kinetic_values, kinetic_detail = _kinetic_measurements(
             lot.lot_id, series.get(lot.lot_id), fits.get(lot.lot_id), protein, method, spec)
@@ -193,14 +224,9 @@ def evaluate_lots(lots: list[LotInputs], specifications: dict[str, Specification
                 continue
             measurement = measurements.get(attribute.source)
             method_label = (f"{spec.activity_method}" if attribute.source != "protein" else spec.protein_method)
-            if measurement is not None and measurement.value is None and measurement.valid and plate is None \
-                    and attribute.source != "protein":
-                measurement = None  # the data did not arrive: missing, not invalid
-            if measurement is not None and measurement.value is None and measurement.valid \
-                    and lot.protein_plate is None and attribute.source == "protein":
-                measurement = None
             verdict = judge_measurement(attribute, measurement, method_label)
-            if not attribute.has_limit and measurement is not None and measurement.valid and measurement.value is None:
+            if not attribute.has_limit and not is_missing(measurement) and measurement is not None \
+                    and measurement.valid and measurement.value is None:
                 verdict = AttributeVerdict(attribute.code, attribute.title, attribute.unit, None, "not determined",
                                            None, attribute.limit_text, REPORTED, measurement.reasons, method_label)
             verdicts.append(verdict)

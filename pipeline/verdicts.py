@@ -84,9 +84,11 @@ def judge_measurement(attribute: Attribute, measurement: Measurement | None, met
     """Verdict of a computed attribute (activity, protein, kinetics)."""
     base = dict(code=attribute.code, title=attribute.title, unit=attribute.unit,
                 limit_text=attribute.limit_text, method=method)
-    if measurement is None:
+    if measurement is None or measurement.detail.get("missing"):
+        why = "; ".join(measurement.reasons) if measurement is not None and measurement.reasons else \
+            "the assay data needed for it did not arrive"
         return AttributeVerdict(**base, value=None, reported=None, se=None, verdict=MISSING,
-                                reasons=(f"{attribute.title}: no result (the assay data needed for it did not arrive)",))
+                                reasons=(f"{attribute.title}: no result ({why})",))
     if not measurement.valid:
         return AttributeVerdict(**base, value=None, reported=None, se=None, verdict=INVALID,
                                 reasons=measurement.reasons or ("invalid",))
