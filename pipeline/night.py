@@ -38,7 +38,7 @@ from pipeline.plates import (
 )
 from pipeline.specs import KineticMethod, ProteinMethod
 from pipeline.store import Store
-from pipeline.workspace import Workspace, atomic_write, move_into, open_workspace
+from pipeline.workspace import Workspace, atomic_write, move_into, open_workspace, unique_target
 
 Progress = Callable[[str, int, int], None]
 
@@ -575,16 +575,20 @@ class NightSummary:
 def close(ws: Workspace, store: Store, intake: Intake, outcomes: list[Outcome], notes: list[str]) -> NightSummary:
     """Archive the used files, write the LIMS results, and count: received = archived + quarantined."""
     archive = ws.archive / f"night-{intake.night_id:04d}"
-    files, events = [], []
+    files, events, moves = [], [], []
     for parsed in intake.parsed:
-        target = move_into(intake.paths[parsed.file_name], archive)
+        target = unique_target(archive, parsed.file_name)
         stored_as = str(target.relative_to(ws.root))
         files.append(dict(file_name=parsed.file_name, sha256=parsed.sha256, kind=parsed.kind,
                           layout_version=parsed.layout_version, status="archived",
                           reason="; ".join(parsed.conversions) or None, stored_as=stored_as))
         events.append(audit.event("file-archived", time_zone=ws.time_zone, night_id=intake.night_id,
                                   file=parsed.file_name, sha256=parsed.sha256, stored_as=stored_as))
+        moves.append((intake.paths[parsed.file_name], target))
+    # Recorded first, moved after: a run killed in between finishes the moves when it restarts.
     store.record_files(intake.night_id, files, events)
+    for source, target in moves:
+        os.replace(source, target)
     lims_files = write_lims_results(ws, store)
     archived, quarantined = len(intake.parsed), len(intake.quarantined)
     decided = sum(o.new for o in outcomes)
@@ -624,6 +628,60 @@ def open_night(root: Path) -> tuple[Workspace, Store, IdentitySigner]:
     signer = signer_for(ws)
     store = Store(ws.database_url)
     return ws, store, signer
+
+
+def recover_interrupted(ws: Workspace, store: Store) -> list[str]:
+    """Finish what a killed run left: archive moves, unrecorded quarantined files, temporary files.
+
+    Returns notes for the summary. Decisions need no mending: each was committed with its
+    audit events in one transaction, and a lot whose fingerprint is stored is not decided again.
+    """
+    notes: list[str] = []
+    for folder in (ws.root, ws.inbox, ws.certificates, ws.reports, ws.lims, ws.archive, ws.quarantine):
+        for stale in folder.glob(".*.tmp"):
+            stale.unlink(missing_ok=True)
+    unfinished = store.unfinished_nights()
+    if not unfinished:
+        return notes
+    earliest = min(n.started_at_utc for n in unfinished).timestamp()
+    recorded = {(f.file_name, f.stored_as) for f in store.files_of_nights([n.id for n in unfinished])}
+    for row in store.files_of_nights([n.id for n in unfinished]):
+        if row.status != "archived":
+            continue
+        target, source = ws.root / row.stored_as, ws.inbox / row.file_name
+        if not target.exists() and source.exists() and sha256_file(source) == row.sha256:
+            target.parent.mkdir(parents=True, exist_ok=True)
+            os.replace(source, target)
+            notes.append(f"finished archiving {row.file_name}, left in the inbox by an interrupted run")
+    aside = []
+    for path in sorted(ws.quarantine.iterdir()):
+        if path.name.endswith(".reason.txt") or not path.is_file() or path.stat().st_mtime < earliest - 1:
+            continue
+        stored_as = str(path.relative_to(ws.root))
+        if any(stored == stored_as for _, stored in recorded):
+            continue
+        reason_file = path.with_name(path.name + ".reason.txt")
+        reason = reason_file.read_text(encoding="utf-8") if reason_file.exists() else \
+            f"File {path.name} was set aside by a run that was interrupted before it recorded why.\n"
+        if not reason_file.exists():
+            atomic_write(reason_file, reason.encode("utf-8"))
+        aside.append((path, reason))
+    night_id = unfinished[-1].id
+    for path, reason in aside:
+        digest, stored_as = sha256_file(path), str(path.relative_to(ws.root))
+        store.record_files(night_id, [dict(file_name=path.name, sha256=digest, kind=None, layout_version=None,
+                                           status="quarantined", reason=reason.strip(), stored_as=stored_as)],
+                           [audit.event("file-quarantined", time_zone=ws.time_zone, night_id=night_id,
+                                        file=path.name, sha256=digest, status="quarantined", stored_as=stored_as,
+                                        reason=reason.strip(), recovered=True)])
+        notes.append(f"recorded {path.name}, set aside by an interrupted run")
+    for night_run in unfinished:
+        store.finish_night(night_run.id)
+        store.add_events([audit.event("night-interrupted", time_zone=ws.time_zone, night_id=night_run.id,
+                                      started_utc=night_run.started_at_utc.isoformat())])
+        notes.append(f"night {night_run.id} had been interrupted; its decisions stand and this run completes it")
+    audit.sync_log(store, ws.log)
+    return notes
 
 
 def open_catalog_and_layouts() -> tuple[Catalog, dict[str, ExportLayout]]:

@@ -240,6 +240,16 @@ class Store:
         with self.session() as s:
             return s.scalars(select(DecisionRow).where(DecisionRow.fingerprint == fingerprint)).first()
 
+    def unfinished_nights(self) -> list[NightRun]:
+        with self.session() as s:
+            return list(s.scalars(select(NightRun).where(NightRun.finished_at_utc.is_(None)).order_by(NightRun.id)))
+
+    def files_of_nights(self, night_ids: list[int]) -> list[InputFile]:
+        if not night_ids:
+            return []
+        with self.session() as s:
+            return list(s.scalars(select(InputFile).where(InputFile.night_id.in_(night_ids)).order_by(InputFile.id)))
+
     def known_fingerprints(self, fingerprints: list[str]) -> dict[str, DecisionRow]:
         """Decisions already made with these fingerprints (chunked IN queries, no scan)."""
         out: dict[str, DecisionRow] = {}
