@@ -142,15 +142,17 @@ def cmd_bench(args: argparse.Namespace) -> int:
     try:
         flow_root = _workspace(base / "flow", files)
         wall, stages, summary = _run(flow_root, orchestrated=True)
-        plain_root = _workspace(base / "plain", files)
-        plain_wall, plain_stages, _ = _run(plain_root, orchestrated=False)
+        plain_wall, plain_stages = float("nan"), {}
+        if not args.skip_plain:
+            plain_root = _workspace(base / "plain", files)
+            plain_wall, plain_stages, _ = _run(plain_root, orchestrated=False)
         fit = _fit_comparison(files)
         signing = _signing_comparison(flow_root, min(200, lots)) if not args.skip_signing else {}
         result = {
             "lots": lots, "wall_s": wall, "lots_per_s": lots / wall, "peak_rss_mb": _peak_rss_mb(),
             "stage_s": stages, "simulate_s": simulate_s, "decided": sum(o.new for o in summary.outcomes),
-            "plain_wall_s": plain_wall, "plain_stage_s": plain_stages,
-            "orchestration_ratio": wall / plain_wall, "fit": fit, "signing": signing,
+            "plain_wall_s": plain_wall if plain_stages else None, "plain_stage_s": plain_stages,
+            "orchestration_ratio": wall / plain_wall if plain_stages else None, "fit": fit, "signing": signing,
         }
     finally:
         if not args.keep:
@@ -161,7 +163,8 @@ def cmd_bench(args: argparse.Namespace) -> int:
     print(f"{'stage':<14}{'flow (s)':>10}{'plain (s)':>11}")
     for name in STAGES:
         print(f"{name:<14}{stages.get(name, 0.0):>10.2f}{plain_stages.get(name, 0.0):>11.2f}")
-    print(f"{'whole night':<14}{wall:>10.2f}{plain_wall:>11.2f}   ratio flow/plain {wall / plain_wall:.2f}")
+    ratio = f"   ratio flow/plain {wall / plain_wall:.2f}" if plain_stages else ""
+    print(f"{'whole night':<14}{wall:>10.2f}{plain_wall:>11.2f}{ratio}")
     print(f"lots per second {lots / wall:.1f}; peak memory {result['peak_rss_mb']:.0f} MB")
     print(f"kinetic fit, {fit['curves']} curves: batched {fit['batched_s'] * 1e3:.1f} ms, curve_fit loop "
           f"{fit['curve_fit_loop_s'] * 1e3:.0f} ms, ratio {fit['speed_ratio']:.0f}x, "
@@ -184,4 +187,6 @@ def add_commands(sub: argparse._SubParsersAction) -> None:
     bench.add_argument("--json", action="store_true", help="end with one JSON line of the figures")
     bench.add_argument("--keep", action="store_true", help="keep the temporary workspaces")
     bench.add_argument("--skip-signing", action="store_true", help="leave out the signing comparison")
+    bench.add_argument("--skip-plain", action="store_true",
+                       help="leave out the plain-function run (halves the time of a large scaling run)")
     bench.set_defaults(func=cmd_bench)

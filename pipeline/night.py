@@ -369,9 +369,9 @@ def _record(ws: Workspace, store: Store, job: _Job, night_id: int, report_bytes:
     """Write the lot's documents (atomic), then its decision, results and audit events (one transaction)."""
     item, decision = job.item, job.item.decision
     report_path = ws.reports / f"{job.stem}_batch-report.pdf"
-    atomic_write(report_path, report_bytes)
+    atomic_write(report_path, report_bytes, durable=False)
     atomic_write(ws.reports / f"{job.stem}_dossier.json",
-                 json.dumps(job.dossier, ensure_ascii=False, sort_keys=True).encode("utf-8"))
+                 json.dumps(job.dossier, ensure_ascii=False, sort_keys=True).encode("utf-8"), durable=False)
     certificate = None
     if certificate_bytes is not None and job.signature is not None:
         certificate_path = ws.certificates / f"{job.stem}_certificate.pdf"

@@ -97,15 +97,21 @@ def write_settings(root: Path, settings: dict) -> None:
     atomic_write(root / SETTINGS_FILE, yaml.safe_dump(settings, sort_keys=False).encode("utf-8"))
 
 
-def atomic_write(path: Path, data: bytes) -> None:
-    """Write to a temporary file in the same folder, flush to disk, then rename over ``path``."""
+def atomic_write(path: Path, data: bytes, *, durable: bool = True) -> None:
+    """Write to a temporary file in the same folder, then rename over ``path``.
+
+    A reader (or a restart after a killed run) sees the old file or the new one, never a part.
+    ``durable`` also flushes the bytes to disk before the rename (survives a power cut); files
+    that can be made again from the store (batch reports, dossiers) skip that cost.
+    """
     path.parent.mkdir(parents=True, exist_ok=True)
     handle, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
     try:
         with os.fdopen(handle, "wb") as out:
             out.write(data)
             out.flush()
-            os.fsync(out.fileno())
+            if durable:
+                os.fsync(out.fileno())
         os.replace(tmp, path)
     except BaseException:
         Path(tmp).unlink(missing_ok=True)

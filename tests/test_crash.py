@@ -45,6 +45,31 @@ def _run(root, kill_after=None):
     return killed
 
 
+def _timeline(root):
+    """Run a night to the end, watching the store: when the first and last decisions were committed."""
+    import sqlite3
+
+    command = [sys.executable, "-m", "flows.cli", "run", "--workspace", str(root), "--no-orchestration"]
+    start = time.monotonic()
+    process = subprocess.Popen(command, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, text=True)
+    first = last = None
+    seen = 0
+    while process.poll() is None:
+        time.sleep(0.02)
+        try:
+            with sqlite3.connect(f"file:{root / 'lotgate.db'}?mode=ro", uri=True, timeout=0.1) as db:
+                count = db.execute("select count(*) from decisions").fetchone()[0]
+        except sqlite3.Error:
+            continue
+        if count and first is None:
+            first = time.monotonic() - start
+        if count > seen:
+            seen, last = count, time.monotonic() - start
+    assert process.returncode == 0, process.stderr.read()[-2000:]
+    assert first is not None and last is not None and last > first
+    return first, last, time.monotonic() - start
+
+
 @pytest.fixture(scope="module")
 def night():
     # Two nights of the demo: the second carries the deliberate problems (a quarantined export,
@@ -55,17 +80,23 @@ def night():
 def test_killed_nights_finish_with_nothing_lost_or_doubled(night, tmp_path):
     reference = tmp_path / "reference"
     _workspace(reference, night)
-    start = time.monotonic()
-    _run(reference)
-    duration = time.monotonic() - start
+    first, last, duration = _timeline(reference)
     expected = {row.lot_id: row.record["label"] for row in Store(open_workspace(reference).database_url).decisions()}
     rng = random.Random(SEED)
-    moments = sorted(rng.uniform(0.5, duration) for _ in range(KILLS))
+    # Half the kills anywhere in the run (start-up, reading, computing, closing), half while lots
+    # are being published (between the first and the last decision's commit).
+    moments = sorted([rng.uniform(0.3, 0.95 * duration) for _ in range(KILLS // 2)]
+                     + [rng.uniform(first, last) for _ in range(KILLS - KILLS // 2)])
     mid_publish = killed = 0
     for number, moment in enumerate(moments):
         root = tmp_path / f"kill-{number:02d}"
-        _workspace(root, night)
-        killed += _run(root, kill_after=moment)
+        for attempt in range(4):  # a run faster than the reference may end before the moment
+            _workspace(root, night)
+            if _run(root, kill_after=moment * 0.8**attempt):
+                killed += 1
+                break
+            import shutil
+            shutil.rmtree(root)
         store = Store(open_workspace(root).database_url)
         at_kill = len(store.decisions())
         mid_publish += 0 < at_kill < len(expected)
