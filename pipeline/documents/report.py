@@ -245,7 +245,7 @@ def _windows(wells: Any, traces: Any) -> list[Any]:
                      DASH if not isinstance(slope, float) else
                      f"{slope:.4f} ± {se:.4f}" if isinstance(se, float) else f"{slope:.4f}",
                      DASH if not isinstance(r2, float) or role == "blank" else f"{r2:.4f}",
-                     Paragraph(escape(f"{flag}: {note}" if flag else (note if "excluded" in note else "ok"), 160), st["cell"])])
+                     clean(f"{flag}: {note}" if flag else (note if "excluded" in note else "ok"), 160)])
     out.append(Paragraph("R² is not shown for substrate blanks: without enzyme their slope is near zero and R² "
                          "says nothing; blanks are judged by their rate against the method's limit.", st["small"]
                          if "small" in st else st["body"]))
