@@ -89,6 +89,11 @@ def load_catalog(root: Path | None = None) -> Catalog:
                 raise SpecificationError(
                     f"specs/products/{path.name}: refers to method '{method_id}', which is not under specs/methods"
                 )
+        protein = methods[spec.protein_method]
+        if isinstance(protein, ProteinMethod) and protein.kind == "uv280" and not spec.a280_extinction_ml_per_mg_per_cm:
+            raise SpecificationError(
+                f"specs/products/{path.name}: protein by A280 ({spec.protein_method}) needs the product's "
+                "'a280_extinction_ml_per_mg_per_cm' (absorbance of 1 mg/mL in 1 cm)")
         specifications[spec.product_code] = spec
     if not specifications:
         raise SpecificationError(f"no product specification found under {root / 'products'}")

@@ -165,7 +165,11 @@ def evaluate(assembly: Assembly, catalog: Catalog) -> tuple[list[LotEvaluation],
     for plate_id, (frame, reads, method_id, _) in assembly.activity_plates.items():
         activity[plate_id] = evaluate_activity_plate(plate_id, frame, reads, catalog.kinetic_method(method_id))
     for plate_id, (frame, reads, method_id, _) in assembly.protein_plates.items():
-        protein[plate_id] = evaluate_protein_plate(plate_id, frame, reads, catalog.protein_method(method_id))
+        extinction = {lot.lot_id: catalog.specifications[lot.product_code].a280_extinction_ml_per_mg_per_cm
+                      for lot in assembly.lots
+                      if catalog.specifications[lot.product_code].a280_extinction_ml_per_mg_per_cm}
+        protein[plate_id] = evaluate_protein_plate(plate_id, frame, reads, catalog.protein_method(method_id),
+                                                   extinction)
     lots = []
     for lot in assembly.lots:
         spec = catalog.specifications[lot.product_code]

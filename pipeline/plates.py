@@ -290,11 +290,55 @@ def _traces(plate: _Columns, time_min: np.ndarray, absorbance: np.ndarray,
     return out
 
 
+def evaluate_a280_plate(plate_id: str, merged: pd.DataFrame, method: ProteinMethod, lots: list[str],
+                        extinction_by_lot: dict[str, float]) -> ProteinPlateResult:
+    """Protein by absorbance at 280 nm, blank-corrected, inside the photometer's linear range only.
+
+    protein [mg/mL] = (A280 − mean buffer blank) / (ε [mL·mg⁻¹·cm⁻¹] · l [cm]) · DF
+    """
+    version = method.document.version
+    blanks = merged.loc[merged["role"] == "blank", "absorbance"].to_numpy(dtype=float)
+    if blanks.size == 0:
+        reasons = (f"plate {plate_id}: no buffer blank wells for the A280 reading",)
+        return ProteinPlateResult(plate_id, method.method_id, version, False, reasons,
+                                  {lot: Measurement("protein", "mg/mL", None, valid=False, reasons=reasons) for lot in lots},
+                                  {}, {})
+    blank = float(blanks.mean())
+    low, high = float(method.linear_min_au or 0.0), float(method.linear_max_au or 0.0)
+    result: dict[str, Measurement] = {}
+    samples_out: dict[str, list[dict[str, Any]]] = {}
+    for lot in lots:
+        wells = merged[(merged["role"] == "sample") & (merged["lot_id"] == lot)]
+        corrected = wells["absorbance"].to_numpy(dtype=float) - blank
+        dilution = wells["dilution_factor"].to_numpy(dtype=float)
+        epsilon = extinction_by_lot.get(lot)
+        inside = (corrected >= low) & (corrected <= high)
+        samples_out[lot] = [{"well": w, "absorbance": float(a), "dilution_factor": float(d), "in_range": bool(i)}
+                            for w, a, d, i in zip(wells["well"], corrected, dilution, inside, strict=True)]
+        if epsilon is None:
+            result[lot] = Measurement("protein", "mg/mL", None, valid=False,
+                                      reasons=(f"lot {lot}: the product gives no A280 extinction coefficient",))
+            continue
+        if not inside.all():
+            side = "above" if (corrected > high).any() else "below"
+            result[lot] = Measurement("protein", "mg/mL", None, valid=False, n=int(corrected.size), reasons=(
+                f"{int((~inside).sum())} of {corrected.size} replicates read {side} the linear range "
+                f"{low:g}–{high:g} AU at 280 nm: re-assay at another dilution",))
+            continue
+        values = np.asarray(protein.protein_from_a280(corrected, epsilon, float(method.path_length_cm or 0.0), dilution),
+                            dtype=float)
+        result[lot] = _replicates("protein", "mg/mL", values, method.replicate_cv_max_pct, f"lot {lot} protein")
+    curve = {"model": "A280", "blank_au": blank, "linear_range_au": [low, high],
+             "path_length_cm": method.path_length_cm, "accepted": True, "reasons": []}
+    return ProteinPlateResult(plate_id, method.method_id, version, True, (), result, curve, samples_out)
+
+
 def evaluate_protein_plate(plate_id: str, plate_map: pd.DataFrame, reads: pd.DataFrame,
-                           method: ProteinMethod) -> ProteinPlateResult:
+                           method: ProteinMethod, extinction_by_lot: dict[str, float] | None = None) -> ProteinPlateResult:
     """Standard curve acceptance, then protein of each lot inside the calibrated range only.
 
     protein [mg/mL] = in-well concentration from the curve · dilution factor
+    (or, for an A280 method, see ``evaluate_a280_plate``)
     """
     used = plate_map[plate_map["role"] != "empty"]
     lots = sorted({str(x) for x in used.loc[used["role"] == "sample", "lot_id"].dropna()})
@@ -311,6 +355,8 @@ def evaluate_protein_plate(plate_id: str, plate_map: pd.DataFrame, reads: pd.Dat
     wavelengths = sorted(set(int(x) for x in merged["wavelength_nm"]))
     if wavelengths != [int(method.wavelength_nm)]:
         return invalid([f"plate {plate_id}: read at {', '.join(map(str, wavelengths))} nm; method {method.method_id} requires {method.wavelength_nm:.0f} nm"])
+    if method.kind == "uv280":
+        return evaluate_a280_plate(plate_id, merged, method, lots, extinction_by_lot or {})
     standards = merged[merged["role"] == "standard"]
     if standards.empty:
         return invalid([f"plate {plate_id}: no standard curve wells"])

@@ -95,6 +95,7 @@ class Specification:
     activity_method: str
     protein_method: str
     attributes: tuple[Attribute, ...]
+    a280_extinction_ml_per_mg_per_cm: float | None = None  # for protein by A280
 
     def attribute(self, code: str) -> Attribute:
         for attribute in self.attributes:
@@ -141,6 +142,8 @@ class KineticMethod:
 
 @dataclass(frozen=True)
 class ProteinMethod:
+    """Protein by a dye or copper assay against a standard curve, or by A280 (``kind``)."""
+
     document: Document
     method_id: str
     title: str
@@ -152,6 +155,10 @@ class ProteinMethod:
     bias_limit_pct: float
     lowest_bias_limit_pct: float
     replicate_cv_max_pct: float
+    kind: str = "standard-curve"  # or "uv280"
+    path_length_cm: float | None = None  # A280 only
+    linear_min_au: float | None = None  # A280 only: the photometer's linear range
+    linear_max_au: float | None = None
 
 
 def _document(raw: dict[str, Any], where: str, name_key: str, sha256: str) -> Document:
@@ -224,6 +231,8 @@ def parse_specification(raw: dict[str, Any], where: str, sha256: str) -> Specifi
         activity_method=str(_require(raw, "activity_method", where)),
         protein_method=str(_require(raw, "protein_method", where)),
         attributes=attributes,
+        a280_extinction_ml_per_mg_per_cm=(None if raw.get("a280_extinction_ml_per_mg_per_cm") is None else _number(
+            raw["a280_extinction_ml_per_mg_per_cm"], "a280_extinction_ml_per_mg_per_cm", where)),
     )
 
 
@@ -272,6 +281,21 @@ def parse_method(raw: dict[str, Any], where: str, sha256: str) -> KineticMethod 
             km_max_relative_se=float(kin.get("km_max_relative_se", 0.25)),
             sample_preparation=raw.get("sample_preparation"),
         )
+    if measurement == "uv280":
+        suit = raw.get("suitability") or {}
+        linear = _require(raw, "linear_range_au", where)
+        path = num(raw, "path_length_cm")
+        if path <= 0:
+            raise SpecificationError(f"{where}: 'path_length_cm' must be above zero, found {path}")
+        low, high = num(linear, "min"), num(linear, "max")
+        if not 0 <= low < high:
+            raise SpecificationError(f"{where}: linear_range_au must have 0 ≤ min < max, found {low}–{high}")
+        return ProteinMethod(
+            document=document, method_id=document.name, title=str(raw.get("title", document.name)),
+            wavelength_nm=num(raw, "wavelength_nm"), standard="", curve_model="none", curve_weighting=None,
+            curve_min_r2=0.0, bias_limit_pct=0.0, lowest_bias_limit_pct=0.0,
+            replicate_cv_max_pct=float(suit.get("replicate_cv_max_pct", 10.0)), kind="uv280",
+            path_length_cm=path, linear_min_au=low, linear_max_au=high)
     if measurement == "endpoint":
         curve = _require(raw, "curve", where)
         model = str(_require(curve, "model", where))
@@ -294,4 +318,4 @@ def parse_method(raw: dict[str, Any], where: str, sha256: str) -> KineticMethod 
             lowest_bias_limit_pct=num(curve, "lowest_bias_limit_pct"),
             replicate_cv_max_pct=float(suit.get("replicate_cv_max_pct", 10.0)),
         )
-    raise SpecificationError(f"{where}: measurement must be kinetic or endpoint, found {measurement!r}")
+    raise SpecificationError(f"{where}: measurement must be kinetic, endpoint or uv280, found {measurement!r}")
