@@ -46,10 +46,18 @@ def _attribute(product: str, code: str) -> Any:
     from pipeline.catalog import load_catalog
 
     catalog = load_catalog()
+    method = catalog.methods.get(product)
+    if method is not None and hasattr(method, "recovery_attribute"):
+        if code != "reference_recovery":
+            raise SpecificationError(f"method {product} charts only 'reference_recovery' (its reference standard)")
+        from types import SimpleNamespace
+
+        return SimpleNamespace(product_name=method.title), method.recovery_attribute()
     spec = catalog.specifications.get(product)
     if spec is None:
         raise SpecificationError(f"unknown product '{product}'; known products: "
-                                 f"{', '.join(sorted(catalog.specifications))}")
+                                 f"{', '.join(sorted(catalog.specifications))}; or a kinetic method with "
+                                 "'reference_recovery'")
     trended = [a.code for a in spec.attributes if a.trend]
     if code not in {a.code for a in spec.attributes}:
         raise SpecificationError(f"product {product} has no attribute '{code}'; its charted attributes: "

@@ -54,6 +54,7 @@ class Chart:
     values: list[float] = field(default_factory=list)
     total: int = 0  # released lots on the chart, all time
     newly_frozen: FrozenLimits | None = None
+    pending_points: list[tuple[str, str, str, float]] = field(default_factory=list)  # not yet stored
 
     def snapshot(self) -> dict[str, Any]:
         return {"lots": list(self.lots[-CHART_TAIL:]), "values": list(self.values[-CHART_TAIL:]),
@@ -69,6 +70,56 @@ class LotDecision:
     trend: tuple[TrendFinding, ...]
     chart_values: dict[str, float]  # released: the values added to the charts
     charts: tuple[dict[str, Any], ...]  # chart pictures for the report of an out-of-trend lot
+    extra_points: tuple[tuple[str, str, str, float], ...] = ()  # (chart, attribute, point id, value): a plate's reference
+
+
+def _picture(chart: Chart, attribute: Attribute, point_id: str, value: float, label: str,
+             finding: TrendFinding) -> dict[str, Any]:
+    picture = chart.snapshot()
+    picture["lots"].append(point_id)
+    picture["values"].append(value)
+    picture.update(attribute=attribute.code, title=attribute.title, unit=attribute.unit,
+                   lsl=attribute.minimum, usl=attribute.maximum,
+                   dispositions=["released"] * (len(picture["lots"]) - 1) + [label],
+                   signal_indices=[len(picture["lots"]) - 1],
+                   signal_labels=[f"rule {r.split('Nelson rule ')[1].split(' ')[0]}" for r in finding.signals])
+    return picture
+
+
+def judge_reference_plates(evaluations: list[LotEvaluation], methods: dict[str, Any],
+                           charts: dict[tuple[str, str], Chart]) -> dict[str, tuple[TrendFinding, dict[str, Any] | None]]:
+    """Each valid activity plate's reference recovery on its method's chart, plates in id order.
+
+    A plate recovering inside its window but out of trend holds its lots as out of trend; its
+    point joins the chart only when it is in trend (the chart of accepted plates).
+    """
+    plates: dict[str, dict[str, Any]] = {}
+    for evaluation in evaluations:
+        for plate in evaluation.plates:
+            if plate.get("kind") == "activity":
+                plates.setdefault(plate["plate_id"], plate)
+    out: dict[str, tuple[TrendFinding, dict[str, Any] | None]] = {}
+    for plate_id in sorted(plates):
+        plate = plates[plate_id]
+        method = methods.get(plate.get("method_id"))
+        recovery = plate.get("reference_recovery_pct")
+        if method is None or not hasattr(method, "recovery_attribute"):
+            continue
+        attribute = method.recovery_attribute()
+        if not plate.get("valid") or not isinstance(recovery, float):
+            out[plate_id] = (TrendFinding(attribute.code, "not evaluated", signals=()), None)
+            continue
+        chart = charts.setdefault((method.method_id, attribute.code), Chart(method.method_id, attribute.code, None))
+        finding = _judge_point(chart, attribute, plate_id, recovery, attribute.digits, what="plate")
+        picture = _picture(chart, attribute, plate_id, recovery, "held: out of trend", finding) \
+            if finding.status == "out of trend" else None
+        if finding.status != "out of trend":
+            chart.lots.append(plate_id)
+            chart.values.append(recovery)
+            chart.total += 1
+            chart.pending_points.append((method.method_id, attribute.code, plate_id, recovery))
+        out[plate_id] = (finding, picture)
+    return out
 
 
 def _maybe_freeze(chart: Chart, attribute: Attribute) -> None:
@@ -81,7 +132,8 @@ def _maybe_freeze(chart: Chart, attribute: Attribute) -> None:
     chart.newly_frozen = chart.limits
 
 
-def _judge_point(chart: Chart, attribute: Attribute, lot_id: str, value: float, digits: int) -> TrendFinding:
+def _judge_point(chart: Chart, attribute: Attribute, lot_id: str, value: float, digits: int,
+                 what: str = "lot") -> TrendFinding:
     _maybe_freeze(chart, attribute)
     if chart.limits is None:
         return TrendFinding(attribute.code, "not yet established", baseline_n=attribute.baseline_n,
@@ -100,10 +152,10 @@ def _judge_point(chart: Chart, attribute: Attribute, lot_id: str, value: float, 
     for signal in signals:
         lots = sequence[signal.first_index: signal.index + 1]
         involved.extend(lots)
-        span = lots[0] if len(lots) == 1 else f"{lots[0]} … {lots[-1]} ({len(lots)} lots)"
+        span = lots[0] if len(lots) == 1 else f"{lots[0]} … {lots[-1]} ({len(lots)} {what}s)"
         reasons.append(
-            f"{attribute.title}: Nelson rule {signal.rule} ({RULE_NAMES[signal.rule]}) at lot {lot_id}, "
-            f"value {fmt.format(value)} {attribute.unit}; lots {span}; chart centre {fmt.format(limits.center)}, "
+            f"{attribute.title}: Nelson rule {signal.rule} ({RULE_NAMES[signal.rule]}) at {what} {lot_id}, "
+            f"value {fmt.format(value)} {attribute.unit}; {what}s {span}; chart centre {fmt.format(limits.center)}, "
             f"σ {fmt.format(limits.sigma)}, 3σ limits {fmt.format(limits.center - 3 * limits.sigma)}–"
             f"{fmt.format(limits.center + 3 * limits.sigma)} (limits v{limits.version})")
     status = "out of trend" if signals else "in trend"
@@ -128,6 +180,8 @@ def decide_night(evaluations: list[LotEvaluation], specifications: dict[str, Spe
     """
     earlier = earlier or {}
     out = []
+    references = judge_reference_plates(evaluations, methods, charts)
+    carried: set[str] = set()
     for evaluation in evaluations:
         spec = specifications[evaluation.product_code]
         used_methods = {m: methods[m] for m in (spec.activity_method, spec.protein_method) if m in methods}
@@ -148,6 +202,18 @@ def decide_night(evaluations: list[LotEvaluation], specifications: dict[str, Spe
                 continue
             findings.append(_judge_point(chart, attribute, evaluation.lot_id, value, attribute.digits))
             pending[attribute.code] = value
+        reference_pictures = []
+        extra_points: list[tuple[str, str, str, float]] = []
+        for plate in evaluation.plates:
+            if plate.get("plate_id") in references:
+                finding, picture = references[plate["plate_id"]]
+                findings.append(finding)
+                if picture is not None:
+                    reference_pictures.append(picture)
+                if plate["plate_id"] not in carried:  # the first lot of a plate carries its chart point
+                    carried.add(plate["plate_id"])
+                    chart = charts.get((str(plate.get("method_id")), "reference_recovery"))
+                    extra_points += [p for p in (chart.pending_points if chart else []) if p[2] == plate["plate_id"]]
         state, categories, reasons = disposition(evaluation.verdicts, findings, evaluation.incomplete)
         if evaluation.lot_id in earlier:
             categories = (*categories, REVIEW_REQUIRED)
@@ -162,20 +228,12 @@ def decide_night(evaluations: list[LotEvaluation], specifications: dict[str, Spe
             method_versions={m.method_id: m.document.version for m in used_methods.values()},
             method_sha256=method_sha, input_files=dict(sorted(evaluation.input_files.items())),
             code_version=code_version, fingerprint=fingerprint(evaluation, spec, method_sha, code_version))
-        chart_pictures = []
+        chart_pictures = list(reference_pictures)
         for finding in findings:
-            if finding.status == "out of trend":
+            if finding.status == "out of trend" and finding.attribute in pending:
                 chart = charts[(spec.product_code, finding.attribute)]
-                attribute = spec.attribute(finding.attribute)
-                picture = chart.snapshot()
-                picture["lots"].append(evaluation.lot_id)
-                picture["values"].append(pending[finding.attribute])
-                picture.update(attribute=attribute.code, title=attribute.title, unit=attribute.unit,
-                               lsl=attribute.minimum, usl=attribute.maximum,
-                               dispositions=["released"] * (len(picture["lots"]) - 1) + [decision.label],
-                               signal_indices=[len(picture["lots"]) - 1],
-                               signal_labels=[f"rule {r.split('Nelson rule ')[1].split(' ')[0]}" for r in finding.signals])
-                chart_pictures.append(picture)
+                chart_pictures.append(_picture(chart, spec.attribute(finding.attribute), evaluation.lot_id,
+                                               pending[finding.attribute], decision.label, finding))
         released = state == RELEASED
         if released:
             for code, value in pending.items():
@@ -184,5 +242,5 @@ def decide_night(evaluations: list[LotEvaluation], specifications: dict[str, Spe
                 chart.values.append(value)
                 chart.total += 1
         out.append(LotDecision(evaluation, decision, tuple(findings), pending if released else {},
-                               tuple(chart_pictures)))
+                               tuple(chart_pictures), tuple(extra_points)))
     return out

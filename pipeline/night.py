@@ -200,17 +200,22 @@ def evaluate(assembly: Assembly, catalog: Catalog) -> tuple[list[LotEvaluation],
 def load_charts(store: Store, catalog: Catalog, evaluations: list[LotEvaluation]) -> dict[tuple[str, str], Chart]:
     """Read each chart's state once per night: frozen limits and the recent released lots."""
     charts: dict[tuple[str, str], Chart] = {}
+    wanted: list[tuple[str, Any]] = []
     for product in sorted({e.product_code for e in evaluations}):
-        spec = catalog.specifications[product]
-        for attribute in (a for a in spec.attributes if a.trend):
-            limits_row = store.active_limits(product, attribute.code)
-            points = store.chart_points(product, attribute.code, tail=CHART_TAIL if limits_row else None)
-            limits = None if limits_row is None else FrozenLimits(
-                limits_row.version, limits_row.center, limits_row.sigma, limits_row.mr_bar,
-                tuple(limits_row.baseline_lots))
-            charts[(product, attribute.code)] = Chart(
-                product, attribute.code, limits, [p.lot_id for p in points], [p.value for p in points],
-                total=store.chart_count(product, attribute.code))
+        wanted += [(product, a) for a in catalog.specifications[product].attributes if a.trend]
+    for method_id in sorted({p.get("method_id") for e in evaluations for p in e.plates if p.get("kind") == "activity"}):
+        method = catalog.methods.get(str(method_id))
+        if isinstance(method, KineticMethod):
+            wanted.append((method.method_id, method.recovery_attribute()))
+    for product, attribute in wanted:
+        limits_row = store.active_limits(product, attribute.code)
+        points = store.chart_points(product, attribute.code, tail=CHART_TAIL if limits_row else None)
+        limits = None if limits_row is None else FrozenLimits(
+            limits_row.version, limits_row.center, limits_row.sigma, limits_row.mr_bar,
+            tuple(limits_row.baseline_lots))
+        charts[(product, attribute.code)] = Chart(
+            product, attribute.code, limits, [p.lot_id for p in points], [p.value for p in points],
+            total=store.chart_count(product, attribute.code))
     return charts
 
 
@@ -401,7 +406,7 @@ def _record(ws: Workspace, store: Store, job: _Job, night_id: int, report_bytes:
                        decision=record, results=[v.to_dict() for v in item.evaluation.verdicts],
                        chart_values=item.chart_values, decided_by=f"lotgate {__version__} (nightly job)",
                        change_note=None if job.previous_record is None else _change_note(job.previous_record, record),
-                       events=events)
+                       events=events, extra_points=item.extra_points)
     return Outcome(decision.lot_id, decision.product, decision.label, decision.reasons, job.revision, True,
                    None if certificate is None else f"certificates/{certificate['file']}",
                    str(report_path.relative_to(ws.root)))

@@ -49,6 +49,7 @@ class ActivityPlateResult:
 
     def summary(self) -> dict[str, Any]:
         return _clean({"plate_id": self.plate_id, "method": f"{self.method_id} v{self.method_version}",
+                       "method_id": self.method_id, "kind": "activity",
                        "valid": self.valid, "reasons": list(self.reasons),
                        "reference_recovery_pct": self.reference_recovery_pct,
                        "blank_rate_au_per_min": self.blank_rate_au_per_min})

@@ -138,6 +138,15 @@ class KineticMethod:
     model_selection_alpha: float
     km_max_relative_se: float
     sample_preparation: str | None = None
+    recovery_trend_rules: tuple[int, ...] = (1, 2, 3, 4)
+    recovery_baseline_n: int = 20
+
+    def recovery_attribute(self) -> Attribute:
+        """The reference standard's recovery as a charted attribute of this method."""
+        return Attribute(code="reference_recovery", title=f"Reference standard recovery ({self.method_id})",
+                         source="reference", unit="%", digits=1, minimum=self.recovery_min_pct,
+                         maximum=self.recovery_max_pct, trend=True, trend_rules=self.recovery_trend_rules,
+                         baseline_n=self.recovery_baseline_n, required=False)
 
 
 @dataclass(frozen=True)
@@ -280,6 +289,8 @@ def parse_method(raw: dict[str, Any], where: str, sha256: str) -> KineticMethod 
             model_selection_alpha=float(kin.get("model_selection_alpha", 0.05)),
             km_max_relative_se=float(kin.get("km_max_relative_se", 0.25)),
             sample_preparation=raw.get("sample_preparation"),
+            recovery_trend_rules=tuple(int(r) for r in (suit.get("recovery_trend") or {}).get("rules", (1, 2, 3, 4))),
+            recovery_baseline_n=int((suit.get("recovery_trend") or {}).get("baseline_n", 20)),
         )
     if measurement == "uv280":
         suit = raw.get("suitability") or {}

@@ -372,7 +372,8 @@ class Store:
     def add_decision(self, *, lot_id: str, product_code: str, manufactured_on: str | None, night_id: int | None,
                      decision: dict[str, Any], results: list[dict[str, Any]], chart_values: dict[str, float],
                      decided_by: str, change_note: str | None = None,
-                     events: list[dict[str, Any]] | None = None) -> DecisionRow:
+                     events: list[dict[str, Any]] | None = None,
+                     extra_points: tuple[tuple[str, str, str, float], ...] = ()) -> DecisionRow:
         """Store one lot's decision as a new revision with its audit events, in one transaction."""
         with self.session() as s:
             if s.get(Lot, lot_id) is None:
@@ -402,6 +403,9 @@ class Store:
                                 reported=result.get("reported"), verdict=result["verdict"]))
             for attribute, value in chart_values.items():
                 s.add(ChartPoint(product_code=product_code, attribute=attribute, lot_id=lot_id,
+                                 value=value, decision_id=row.id))
+            for chart_code, attribute, point_id, value in extra_points:
+                s.add(ChartPoint(product_code=chart_code, attribute=attribute, lot_id=point_id,
                                  value=value, decision_id=row.id))
             self.chain_events(s, [{**e, "revision": row.revision} for e in (events or [])])
             return row
