@@ -9,6 +9,7 @@ flow (flows/nightly.py) or as plain calls (benchmarks, tests).
 from __future__ import annotations
 
 import csv
+import dataclasses
 import datetime as dt
 import hashlib
 import io
@@ -87,7 +88,7 @@ def receive(ws: Workspace, store: Store, layouts: dict[str, ExportLayout], night
     files = [e for e in entries if e.is_symlink() or e.is_file()]
     intake.received = len(files)
     largest = max(layout.max_bytes for layout in layouts.values())
-    candidates: list[tuple[Path, bytes, str]] = []
+    candidates: list[tuple[Path, str]] = []
     seen: dict[str, str] = {}
     done = 0
     for path in files:
@@ -114,11 +115,10 @@ def receive(ws: Workspace, store: Store, layouts: dict[str, ExportLayout], night
             done += 1
             progress("receive", done, len(files))
             continue
-        data = path.read_bytes()
-        candidates.append((path, data, hashlib.sha256(data).hexdigest()))
-    archived = store.archived_files([sha for _, _, sha in candidates])
-    to_parse: list[tuple[Path, bytes, str]] = []
-    for path, data, sha in candidates:
+        candidates.append((path, sha256_file(path)))
+    archived = store.archived_files([sha for _, sha in candidates])
+    to_parse: list[tuple[Path, str]] = []
+    for path, sha in candidates:
         earlier = archived.get(sha)
         if earlier is not None or sha in seen:
             first = earlier.file_name if earlier is not None else seen[sha]
@@ -127,17 +127,17 @@ def receive(ws: Workspace, store: Store, layouts: dict[str, ExportLayout], night
                       f"identical (SHA-256 {sha[:16]}…) to {first}{when}, which was already processed\n")
             # A copy of a file used tonight takes nothing away; a copy of an earlier night's file
             # may be what a lot needed, so its text links it to the lots it names.
-            text = data.decode("utf-8", errors="replace") if earlier is not None else ""
+            text = path.read_bytes().decode("utf-8", errors="replace") if earlier is not None else ""
             _quarantine(ws, store, intake, path, sha, "duplicate", report, text)
             done += 1
             progress("receive", done, len(files))
         else:
             seen[sha] = path.name
-            to_parse.append((path, data, sha))
+            to_parse.append((path, sha))
     received = []
     batch = 200
     for start in range(0, len(to_parse), batch):
-        chunk = to_parse[start:start + batch]
+        chunk = [(path, path.read_bytes(), sha) for path, sha in to_parse[start:start + batch]]
         for (path, data, sha), result in zip(chunk, parse_exports([(p.name, d) for p, d, _ in chunk], layouts),
                                               strict=True):
             if isinstance(result, ExportRejected):
@@ -164,18 +164,28 @@ def evaluate(assembly: Assembly, catalog: Catalog) -> tuple[list[LotEvaluation],
     protein: dict[str, ProteinPlateResult] = {}
     for plate_id, (frame, reads, method_id, _) in assembly.activity_plates.items():
         activity[plate_id] = evaluate_activity_plate(plate_id, frame, reads, catalog.kinetic_method(method_id))
+    extinction = {lot.lot_id: catalog.specifications[lot.product_code].a280_extinction_ml_per_mg_per_cm
+                  for lot in assembly.lots if catalog.specifications[lot.product_code].a280_extinction_ml_per_mg_per_cm}
     for plate_id, (frame, reads, method_id, _) in assembly.protein_plates.items():
-        extinction = {lot.lot_id: catalog.specifications[lot.product_code].a280_extinction_ml_per_mg_per_cm
-                      for lot in assembly.lots
-                      if catalog.specifications[lot.product_code].a280_extinction_ml_per_mg_per_cm}
         protein[plate_id] = evaluate_protein_plate(plate_id, frame, reads, catalog.protein_method(method_id),
                                                    extinction)
+    # The night's tables are no longer needed: only file names and checksums go on from here.
+    assembly.activity_plates.clear()
+    assembly.protein_plates.clear()
+    on_activity: dict[str, list[ActivityPlateResult]] = {}
+    for plate in activity.values():
+        for lot_id in set(plate.activity) | set(plate.kinetics):
+            on_activity.setdefault(lot_id, []).append(plate)
+    on_protein: dict[str, list[ProteinPlateResult]] = {}
+    for plate in protein.values():
+        for lot_id in plate.protein:
+            on_protein.setdefault(lot_id, []).append(plate)
     lots = []
     for lot in assembly.lots:
         spec = catalog.specifications[lot.product_code]
         problems = list(lot.problems)
-        act = [p for p in activity.values() if lot.lot_id in p.activity or lot.lot_id in p.kinetics]
-        pro = [p for p in protein.values() if lot.lot_id in p.protein]
+        act = on_activity.get(lot.lot_id, [])
+        pro = on_protein.get(lot.lot_id, [])
         chosen_act = chosen_pro = None
         if len(act) > 1:
             problems.append(f"lot {lot.lot_id} is on {len(act)} activity plates ({', '.join(p.plate_id for p in act)}); "
@@ -708,4 +718,5 @@ def assemble_intake(intake: Intake, catalog: Catalog) -> Assembly:
     """The night's parsed exports grouped by lot and plate (see pipeline.assembly)."""
     assembly = assemble(intake.parsed, intake.quarantined, catalog)
     assembly.notes[:0] = intake.notes
+    intake.parsed = [dataclasses.replace(p, frame=p.frame.iloc[0:0]) for p in intake.parsed]  # keep names, not rows
     return assembly
