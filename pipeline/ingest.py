@@ -26,6 +26,7 @@ import hashlib
 import io
 import math
 import re
+import sys
 import unicodedata
 import warnings
 from collections import defaultdict
@@ -569,7 +570,9 @@ def _finish(prepared: _Prepared, validated: pd.DataFrame | None, errors: pa.erro
         raise ExportRejected(prepared.file_name, _sorted(problems, layout))
     for column in validated.columns:
         if validated[column].dtype == object:
-            validated[column] = validated[column].map(lambda v: v if v is None else str(v))
+            # One shared string per distinct value: a kinetic read repeats each plate and well name
+            # hundreds of times, and a large night holds thousands of reads.
+            validated[column] = validated[column].map(lambda v: v if v is None else sys.intern(str(v)))
     return ParsedExport(
         file_name=prepared.file_name, kind=layout.kind, layout_version=layout.version,
         layout_sha256=layout.sha256, sha256=prepared.sha256, frame=validated,

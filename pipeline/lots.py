@@ -242,5 +242,5 @@ def evaluate_lots(lots: list[LotInputs], specifications: dict[str, Specification
             lot_id=lot.lot_id, product_code=lot.product_code, manufactured_on=lot.manufactured_on,
             assay_date=lot.assay_date, measurements=measurements, verdicts=tuple(verdicts),
             incomplete=tuple(incomplete), kinetics=_clean(kinetic_detail) if kinetic_detail else None,
-            plates=plates, input_files=dict(lot.input_files), report=_clean(report)))
+            plates=plates, input_files=dict(lot.input_files), report=report))  # shared, already JSON-clean
     return evaluations

@@ -281,12 +281,11 @@ def _traces(plate: _Columns, time_min: np.ndarray, absorbance: np.ndarray,
         picks = idx[[0, idx.size // 2, idx.size - 1]]
         curves = []
         for i in picks:
-            rate = by_well[plate.wells[i]]
+            rate = by_well[plate.wells[i]].to_dict()  # JSON-clean: NaN already None
             curves.append({"well": plate.wells[i], "substrate_mm": float(plate.substrate[i]),
-                           "absorbance": [float(a) for a in absorbance[i]],
-                           "window_start_min": rate.window_start_min, "window_end_min": rate.window_end_min,
-                           "slope_au_per_min": rate.slope_au_per_min, "intercept_au": rate.intercept_au,
-                           "flag": rate.flag})
+                           "absorbance": [float(a) if np.isfinite(a) else None for a in absorbance[i]],
+                           **{k: rate[k] for k in ("window_start_min", "window_end_min", "slope_au_per_min",
+                                                   "intercept_au", "flag")}})
         out[str(lot)] = {"time_min": times, "curves": curves}
     return out
 
