@@ -700,7 +700,13 @@ def choose_kinetic_model(
         p_value = float(stats.f.sf(f_stat, df1 - df2, df2))
     else:
         f_stat, p_value = (float("inf"), 0.0) if gain > 0 else (0.0, 1.0)
-    test = f"F = {f_stat:.4g} on {df1 - df2} and {df2} df, p = {p_value:.3g}"
+    return model_choice(mm, si, float(f_stat), p_value, float(alpha))
+
+
+def model_choice(mm: MichaelisMentenFit, si: SubstrateInhibitionFit, f_stat: float, p_value: float,
+                 alpha: float) -> KineticModelChoice:
+    """The decision and its wording once both fits and the F test are known (one-curve and batch)."""
+    test = f"F = {f_stat:.4g} on {mm.dof - si.dof} and {si.dof} df, p = {p_value:.3g}"
     significant = p_value < alpha
     inhibits = si.converged and np.isfinite(si.ki) and si.ki > 0
     if significant and inhibits:
@@ -717,7 +723,7 @@ def choose_kinetic_model(
         reason = (
             f"Michaelis-Menten kept: substrate inhibition does not fit better ({test} >= {alpha:g})"
         )
-    return KineticModelChoice(model, mm, si, float(f_stat), p_value, float(alpha), flagged, reason)
+    return KineticModelChoice(model, mm, si, f_stat, p_value, alpha, flagged, reason)
 
 
 # --------------------------------------------------------------------------- quality, kcat

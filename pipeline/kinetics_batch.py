@@ -33,6 +33,7 @@ from pipeline.kinetics import (
     batch_inputs,
     fit_michaelis_menten_batch,
     michaelis_menten_start,
+    model_choice,
 )
 from pipeline.nls import jsonable
 
@@ -594,22 +595,4 @@ def _choice(
     if si_batch.start[i] < 0:
         reason = f"substrate inhibition could not be tested: {si_batch.failure[i]}"
         return KineticModelChoice(MICHAELIS_MENTEN, mm, None, None, None, alpha, False, reason)
-    si = si_batch.fit(i)
-    test = f"F = {f_stat:.4g} on {mm.dof - si.dof} and {si.dof} df, p = {p_value:.3g}"
-    significant = p_value < alpha
-    inhibits = si.converged and np.isfinite(si.ki) and si.ki > 0
-    if significant and inhibits:
-        model, flagged = SUBSTRATE_INHIBITION, True
-        reason = f"substrate inhibition chosen ({test} < {alpha:g}; Ki = {si.ki:.4g})"
-    elif significant:
-        model, flagged = MICHAELIS_MENTEN, True
-        reason = (
-            f"the rates depart from Michaelis-Menten ({test} < {alpha:g}) but not as substrate "
-            f"inhibition (1/Ki = {si.inverse_ki:.4g} is not positive): review the curve"
-        )
-    else:
-        model, flagged = MICHAELIS_MENTEN, False
-        reason = (
-            f"Michaelis-Menten kept: substrate inhibition does not fit better ({test} >= {alpha:g})"
-        )
-    return KineticModelChoice(model, mm, si, f_stat, p_value, alpha, flagged, reason)
+    return model_choice(mm, si_batch.fit(i), f_stat, p_value, alpha)
