@@ -54,7 +54,7 @@ def _run(root: Path, orchestrated: bool) -> tuple[float, dict[str, float], Any]:
     return time.perf_counter() - start, dict(nightly.STAGE_SECONDS), summary
 
 
-def _fit_comparison(files: dict[str, bytes]) -> dict[str, Any]:
+def _fit_comparison(lims_files: int) -> dict[str, Any]:
     import numpy as np
     from scipy.optimize import curve_fit
 
@@ -62,7 +62,7 @@ def _fit_comparison(files: dict[str, bytes]) -> dict[str, Any]:
     from pipeline.demo import LIPASE
 
     rng = np.random.default_rng(7)
-    n_curves = max(200, sum(1 for name in files if name.startswith("lims-")))
+    n_curves = max(200, lims_files)
     s = np.tile(np.array(LIPASE.kinetic_levels_mm).repeat(2), (n_curves, 1))
     vmax = rng.normal(1400, 60, (n_curves, 1))
     km = rng.normal(0.4, 0.02, (n_curves, 1))
@@ -139,14 +139,17 @@ def cmd_bench(args: argparse.Namespace) -> int:
     files = nights[0].files
     simulate_s = time.perf_counter() - started
     base = Path(tempfile.mkdtemp(prefix="lotgate-bench-"))
+    lims_files = sum(1 for name in files if name.startswith("lims-"))
     try:
         flow_root = _workspace(base / "flow", files)
+        if args.skip_plain:
+            del nights, files  # the night reads its inbox; the simulation's bytes need not stay in memory
         wall, stages, summary = _run(flow_root, orchestrated=True)
         plain_wall, plain_stages = float("nan"), {}
         if not args.skip_plain:
             plain_root = _workspace(base / "plain", files)
             plain_wall, plain_stages, _ = _run(plain_root, orchestrated=False)
-        fit = _fit_comparison(files)
+        fit = _fit_comparison(lims_files)
         signing = _signing_comparison(flow_root, min(200, lots)) if not args.skip_signing else {}
         result = {
             "lots": lots, "wall_s": wall, "lots_per_s": lots / wall, "peak_rss_mb": _peak_rss_mb(),

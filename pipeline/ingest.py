@@ -637,7 +637,7 @@ def parse_exports(files: list[tuple[str, bytes]], layouts: dict[str, ExportLayou
             if validated is None:
                 results[index] = _guarded(prepared.file_name, lambda p=prepared: _validate_one(p))
             else:
-                part = validated.xs(position, level=0)
+                part = validated.xs(position, level=0).copy()  # its own rows: the stacked table can go
                 results[index] = _guarded(prepared.file_name, lambda p=prepared, v=part: _finish(p, v, None))
     return results  # type: ignore[return-value]
 
