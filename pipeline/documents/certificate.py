@@ -136,8 +136,11 @@ def _result_rows(dossier: dict[str, Any]) -> tuple[list[list[Any]], list[tuple[A
     colours: list[tuple[Any, ...]] = []
     rows: list[list[Any]] = [["Attribute", "Method", "Specification", "Result", "Verdict"]]
     verdicts = [v for v in get(dossier, "verdicts", []) if isinstance(v, dict)]
-    limited = [v for v in verdicts if str(get(v, "limit_text", "")).strip()]
-    info = [v for v in verdicts if not str(get(v, "limit_text", "")).strip() and get(v, "code") in KINETIC_CODES]
+    def has_limit(v: dict[str, Any]) -> bool:  # "report" (or nothing): reported without a limit
+        return str(get(v, "limit_text", "")).strip() not in ("", "report")
+
+    limited = [v for v in verdicts if has_limit(v)]
+    info = [v for v in verdicts if not has_limit(v) and get(v, "code") in KINETIC_CODES]
     for v, is_info in [(v, False) for v in limited] + [(v, True) for v in info]:
         verdict = str(get(v, "verdict", ""))
         word = "for information" if is_info else _VERDICT_WORDS.get(verdict, verdict)
