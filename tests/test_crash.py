@@ -30,13 +30,27 @@ def _workspace(root, night):
         atomic_write(root / "inbox" / name, data)
 
 
-def _run(root, kill_after=None):
+def _decisions(root):
+    import sqlite3
+
+    try:
+        with sqlite3.connect(f"file:{root / 'lotgate.db'}?mode=ro", uri=True, timeout=0.1) as db:
+            return db.execute("select count(*) from decisions").fetchone()[0]
+    except sqlite3.Error:
+        return 0
+
+
+def _run(root, kill_after=None, after_decisions=None):
+    """Run a night; kill it ``kill_after`` seconds in, or that long after ``after_decisions`` commits."""
     command = [sys.executable, "-m", "flows.cli", "run", "--workspace", str(root), "--no-orchestration"]
     process = subprocess.Popen(command, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, text=True)
     if kill_after is None:
         _, err = process.communicate(timeout=300)
         assert process.returncode == 0, err[-2000:]
         return True
+    if after_decisions is not None:
+        while process.poll() is None and _decisions(root) < after_decisions:
+            time.sleep(0.005)
     time.sleep(kill_after)
     killed = process.poll() is None
     if killed:
@@ -83,16 +97,18 @@ def test_killed_nights_finish_with_nothing_lost_or_doubled(night, tmp_path):
     first, last, duration = _timeline(reference)
     expected = {row.lot_id: row.record["label"] for row in Store(open_workspace(reference).database_url).decisions()}
     rng = random.Random(SEED)
-    # Half the kills anywhere in the run (start-up, reading, computing, closing), half while lots
-    # are being published (between the first and the last decision's commit).
-    moments = sorted([rng.uniform(0.3, 0.95 * duration) for _ in range(KILLS // 2)]
-                     + [rng.uniform(first, last) for _ in range(KILLS - KILLS // 2)])
+    # Half the kills at a seeded moment anywhere in the run (start-up, reading, computing,
+    # closing), half while lots are being published: a seeded few milliseconds after a seeded
+    # number of decisions have been committed.
+    per_lot = (last - first) / max(1, len(expected) - 1)
+    points = [(rng.uniform(0.3, 0.95 * duration), None) for _ in range(KILLS // 2)]
+    points += [(rng.uniform(0.0, 0.8 * per_lot), rng.randint(1, len(expected) - 1)) for _ in range(KILLS - KILLS // 2)]
     mid_publish = killed = 0
-    for number, moment in enumerate(moments):
+    for number, (moment, after) in enumerate(points):
         root = tmp_path / f"kill-{number:02d}"
         for attempt in range(4):  # a run faster than the reference may end before the moment
             _workspace(root, night)
-            if _run(root, kill_after=moment * 0.8**attempt):
+            if _run(root, kill_after=moment * 0.8**attempt, after_decisions=after):
                 killed += 1
                 break
             import shutil
