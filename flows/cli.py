@@ -43,6 +43,10 @@ def _run_night(workspace: Path, *, orchestrated: bool = True):
 
     for noisy in ("pyhanko", "pyhanko_certvalidator"):
         logging.getLogger(noisy).setLevel(logging.CRITICAL)
+    from pipeline import night
+    from pipeline.runlock import run_lock
+
+    ws, store, signer = night.open_night(workspace)  # a bad set-up fails here, before any output
     labels = {"receive": "Reading and validating exports", "publish": "Reports, certificates and records"}
     console = _console()
     with Progress(TextColumn("{task.description:<36}"), BarColumn(), MofNCompleteColumn(), TimeElapsedColumn(),
@@ -54,10 +58,6 @@ def _run_night(workspace: Path, *, orchestrated: bool = True):
                 tasks[stage] = bar.add_task(labels.get(stage, stage), total=total)
             bar.update(tasks[stage], completed=done, total=total)
 
-        from pipeline import night
-        from pipeline.runlock import run_lock
-
-        ws, store, signer = night.open_night(workspace)
         nightly.set_progress(progress)
         try:
             with run_lock(ws.root, store):
