@@ -78,13 +78,13 @@ def _stages(ws: Workspace, store: Store, signer: night.CertificateSigner, step: 
     catalog, layouts = night.open_catalog_and_layouts()
     recovered = night.recover_interrupted(ws, store)
     night_id = store.start_night(night.__version__)
-    intake = timed("receive", ws, store, layouts, night_id, _progress)
+    intake = timed("receive", ws, store, layouts, night_id, _progress, recovered.quarantined)
     assembly = timed("assemble", intake, catalog)
     evaluations, _plates = timed("evaluate", assembly, catalog)
     charts = timed("load_charts", store, catalog, evaluations)
     decisions = timed("decide", evaluations, catalog, charts, night.earlier_decisions(store, evaluations))
     outcomes = timed("publish", ws, store, catalog, decisions, night_id, charts, signer, _progress)
-    return timed("close", ws, store, intake, outcomes, [*recovered, *assembly.notes])
+    return timed("close", ws, store, intake, outcomes, [*recovered.notes, *assembly.notes])
 
 
 @flow(name="lotgate-night", log_prints=False, persist_result=False)

@@ -57,6 +57,7 @@ class Intake:
     paths: dict[str, Path] = field(default_factory=dict)
     quarantined: list[QuarantinedFile] = field(default_factory=list)
     notes: list[str] = field(default_factory=list)
+    carried: list[QuarantinedFile] = field(default_factory=list)  # set aside by an interrupted run
 
 
 def _quarantine(ws: Workspace, store: Store, intake: Intake, path: Path, sha: str, status: str, report: str,
@@ -74,7 +75,7 @@ def _quarantine(ws: Workspace, store: Store, intake: Intake, path: Path, sha: st
 
 
 def receive(ws: Workspace, store: Store, layouts: dict[str, ExportLayout], night_id: int,
-            progress: Progress = _no_progress) -> Intake:
+            progress: Progress = _no_progress, carried: list[QuarantinedFile] | None = None) -> Intake:
     """Read and validate every file in the inbox; set aside, with its reason, what cannot be used.
 
     Every entry of the inbox is counted: hidden files and symbolic links are set aside too (a
@@ -82,6 +83,7 @@ def receive(ws: Workspace, store: Store, layouts: dict[str, ExportLayout], night
     """
     entries = sorted(ws.inbox.iterdir())
     intake = Intake(night_id=night_id, received=0)
+    intake.carried = list(carried or [])
     for entry in entries:
         if entry.is_dir() and not entry.is_symlink():
             intake.notes.append(f"the inbox holds a folder '{entry.name}'; lotgate reads files only, it was left in place")
@@ -649,11 +651,19 @@ def open_night(root: Path) -> tuple[Workspace, Store, IdentitySigner]:
     return ws, store, signer
 
 
-def recover_interrupted(ws: Workspace, store: Store) -> list[str]:
+@dataclass(frozen=True)
+class Recovery:
+    notes: list[str]
+    quarantined: list[QuarantinedFile]  # set aside by the interrupted night: still tonight's evidence
+
+
+def recover_interrupted(ws: Workspace, store: Store) -> Recovery:
     """Finish what a killed run left: archive moves, unrecorded quarantined files, temporary files.
 
-    Returns notes for the summary. Decisions need no mending: each was committed with its
-    audit events in one transaction, and a lot whose fingerprint is stored is not decided again.
+    Decisions need no mending: each was committed with its audit events in one transaction, and
+    a lot whose fingerprint is stored is not decided again. The files the interrupted night set
+    aside are handed on, so that the lots they name see the same inputs (and fingerprints) as
+    they would have in one uninterrupted run.
     """
     notes: list[str] = []
     for folder in (ws.root, ws.inbox, ws.certificates, ws.reports, ws.lims, ws.archive, ws.quarantine):
@@ -661,7 +671,7 @@ def recover_interrupted(ws: Workspace, store: Store) -> list[str]:
             stale.unlink(missing_ok=True)
     unfinished = store.unfinished_nights()
     if not unfinished:
-        return notes
+        return Recovery(notes, [])
     earliest = min(n.started_at_utc for n in unfinished).timestamp()
     recorded = {(f.file_name, f.stored_as) for f in store.files_of_nights([n.id for n in unfinished])}
     for row in store.files_of_nights([n.id for n in unfinished]):
@@ -699,8 +709,19 @@ def recover_interrupted(ws: Workspace, store: Store) -> list[str]:
         store.add_events([audit.event("night-interrupted", time_zone=ws.time_zone, night_id=night_run.id,
                                       started_utc=night_run.started_at_utc.isoformat())])
         notes.append(f"night {night_run.id} had been interrupted; its decisions stand and this run completes it")
+    carried = []
+    for row in store.files_of_nights([n.id for n in unfinished]):
+        if row.status not in ("quarantined", "duplicate"):
+            continue
+        path = ws.root / row.stored_as
+        text = ""
+        earlier_copy = row.status == "duplicate" and "tonight" not in (row.reason or "")
+        if (row.status == "quarantined" or earlier_copy) and path.is_file() and not path.is_symlink():
+            with open(path, "rb") as handle:
+                text = handle.read(1 << 16).decode("utf-8", errors="replace")
+        carried.append(QuarantinedFile(row.file_name, row.sha256, row.reason or "", text))
     audit.sync_log(store, ws.log)
-    return notes
+    return Recovery(notes, carried)
 
 
 def open_catalog_and_layouts() -> tuple[Catalog, dict[str, ExportLayout]]:
@@ -716,7 +737,7 @@ __all__ = ["receive", "assemble", "evaluate", "load_charts", "decide", "publish"
 
 def assemble_intake(intake: Intake, catalog: Catalog) -> Assembly:
     """The night's parsed exports grouped by lot and plate (see pipeline.assembly)."""
-    assembly = assemble(intake.parsed, intake.quarantined, catalog)
+    assembly = assemble(intake.parsed, [*intake.carried, *intake.quarantined], catalog)
     assembly.notes[:0] = intake.notes
     intake.parsed = [dataclasses.replace(p, frame=p.frame.iloc[0:0]) for p in intake.parsed]  # keep names, not rows
     return assembly

@@ -134,3 +134,28 @@ def test_killed_nights_finish_with_nothing_lost_or_doubled(night, tmp_path):
         assert check.valid, f"kill at {moment:.2f} s: {check.reason}"
     assert killed == KILLS
     assert mid_publish >= 3  # several kills landed between two lots' commits
+
+
+def test_a_night_cut_between_publishing_and_closing_decides_nothing_twice(night, tmp_path):
+    """Deterministic form of the kill above that once found a duplicate: the interrupted night
+    had already quarantined a lot's export, which the restart must still count as that lot's."""
+    from flows import nightly
+    from pipeline import night as stages
+
+    root = tmp_path / "cut"
+    _workspace(root, night)
+    ws, store, signer = stages.open_night(root)
+    catalog, layouts = stages.open_catalog_and_layouts()
+    night_id = store.start_night("test")
+    intake = stages.receive(ws, store, layouts, night_id)
+    assert intake.quarantined  # the scenario's malformed LIMS export
+    evaluations, _ = stages.evaluate(stages.assemble_intake(intake, catalog), catalog)
+    charts = stages.load_charts(store, catalog, evaluations)
+    decisions = stages.decide(evaluations, catalog, charts, stages.earlier_decisions(store, evaluations))
+    stages.publish(ws, store, catalog, decisions, night_id, charts, signer)
+    first = {row.lot_id: row.fingerprint for row in store.decisions()}
+    # ... the run dies here, before close: the exports are still in the inbox.
+    summary = nightly.run_stages(ws, store, signer, orchestrated=False)
+    assert not any(o.new for o in summary.outcomes)
+    assert {row.lot_id: row.fingerprint for row in store.decisions()} == first
+    assert audit.verify_trail(store, root / "decisions.jsonl").valid
