@@ -268,7 +268,7 @@ def render_certificate(dossier: dict[str, Any], signature: dict[str, Any]) -> by
                               t=get(decision, "decided_at_local"))),
     ], 34 * mm, CONTENT_W - 34 * mm))
     story += [Paragraph("Results", st["h2"]),
-              grid_table(rows, [44 * mm, 33 * mm, 32 * mm, 37 * mm, CONTENT_W - 146 * mm], zebra=True,
+              grid_table(rows, [50 * mm, 30 * mm, 30 * mm, 36 * mm, CONTENT_W - 146 * mm], zebra=True,
                          col_styles={0: "cellb", 4: "cellb"}, extra=colours),
               Spacer(1, 2),
               Paragraph("Results are rounded to the digits of the specification limit before comparison. "
@@ -289,7 +289,7 @@ def render_certificate(dossier: dict[str, Any], signature: dict[str, Any]) -> by
         ("Protein method", mpara("{t} ({m})", "cell", t=get(prot, "title"),
                                  m=method_label(dossier, get(prot, "method_id")))),
     ], 34 * mm, CONTENT_W - 34 * mm)]
-    story += [Spacer(1, 10), _caution_box(dossier), Spacer(1, 10), KeepTogether([_signature_block(signature)])]
+    story += [Spacer(1, 6), _caution_box(dossier), Spacer(1, 6), KeepTogether([_signature_block(signature)])]
     buffer = io.BytesIO()
     doc = doc_template(buffer, dossier, "Certificate of analysis", 22 * mm)
     build_pdf(doc, story, _footer(dossier, "Certificate of analysis"))
