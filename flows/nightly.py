@@ -93,6 +93,3 @@ def nightly(workspace: str, lock_held_by_caller: bool = False) -> NightSummary:
     ws, store, signer = night.open_night(Path(workspace))
     return run_stages(ws, store, signer, orchestrated=True, lock=not lock_held_by_caller)
 
-
-def workspace_path(value: str | Path) -> Path:
-    return Path(value).expanduser()

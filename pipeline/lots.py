@@ -109,7 +109,8 @@ def _fit_batch(series: dict[str, KineticSeries], alpha: dict[str, float]) -> dic
         return s, v, mask
 
     lots = sorted(usable)
-    batch = kinetics.fit_michaelis_menten_batch(*stack(lots)[:2], mask=stack(lots)[2])
+    s_all, v_all, mask_all = stack(lots)
+    batch = kinetics.fit_michaelis_menten_batch(s_all, v_all, mask=mask_all)
     fitted = []
     for i, lot in enumerate(lots):
         try:

@@ -728,11 +728,8 @@ def open_catalog_and_layouts() -> tuple[Catalog, dict[str, ExportLayout]]:
     return load_catalog(), load_layouts(schemas_dir())
 
 
-def workspace_paths_exist(ws: Workspace) -> bool:
-    return ws.inbox.is_dir()
 
 
-__all__ = ["receive", "assemble", "evaluate", "load_charts", "decide", "publish", "close", "Path"]
 
 
 def assemble_intake(intake: Intake, catalog: Catalog) -> Assembly:

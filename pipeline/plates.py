@@ -77,10 +77,9 @@ def _replicates(name: str, unit: str, values: np.ndarray, cv_max_pct: float, wha
     n = int(values.size)
     if n == 0:
         return Measurement(name, unit, None, valid=False, reasons=(f"no usable replicate of {what}",))
-    mean = float(values.mean())
-    sd = float(values.std(ddof=1)) if n > 1 else float("nan")
-    se = sd / np.sqrt(n) if n > 1 else None
-    cv = abs(sd / mean) * 100.0 if n > 1 and mean != 0 else float("nan")
+    summary = protein.replicate_summary(values)
+    mean, cv = summary.mean, summary.cv_pct
+    se = summary.se if n > 1 else None
     reasons: list[str] = []
     valid = True
     if n < 2:
