@@ -38,7 +38,7 @@ from pipeline.plates import (
     evaluate_protein_plate,
 )
 from pipeline.specs import KineticMethod, ProteinMethod
-from pipeline.store import Store
+from pipeline.store import DecisionWrite, Store
 from pipeline.workspace import Workspace, atomic_write, move_into, open_workspace, unique_target
 
 Progress = Callable[[str, int, int], None]
@@ -385,9 +385,9 @@ def _prepare(ws: Workspace, catalog: Catalog, item: LotDecision, previous: Any, 
                 decided_at, dossier, signature)
 
 
-def _record(ws: Workspace, store: Store, job: _Job, night_id: int, report_bytes: bytes,
-            certificate_bytes: bytes | None, signer: CertificateSigner) -> Outcome:
-    """Write the lot's documents (atomic), then its decision, results and audit events (one transaction)."""
+def _write_documents(ws: Workspace, job: _Job, night_id: int, report_bytes: bytes, certificate_bytes: bytes | None,
+                     signer: CertificateSigner) -> tuple[DecisionWrite, Outcome]:
+    """Write the lot's documents (atomic); return its decision, results and audit events to store."""
     item, decision = job.item, job.item.decision
     report_path = ws.reports / f"{job.stem}_batch-report.pdf"
     atomic_write(report_path, report_bytes, durable=False)
@@ -413,25 +413,29 @@ def _record(ws: Workspace, store: Store, job: _Job, night_id: int, report_bytes:
     events.append(audit.event("decision", time_zone=ws.time_zone, **record))
     if certificate is not None:
         events.append(audit.event("certificate-signed", time_zone=ws.time_zone, lot_id=decision.lot_id, **certificate))
-    store.add_decision(lot_id=decision.lot_id, product_code=decision.product,
-                       manufactured_on=item.evaluation.manufactured_on, night_id=night_id,
-                       decision=record, results=[v.to_dict() for v in item.evaluation.verdicts],
-                       chart_values=item.chart_values, decided_by=f"lotgate {__version__} (nightly job)",
-                       change_note=None if job.previous_record is None else _change_note(job.previous_record, record),
-                       events=events, extra_points=item.extra_points)
-    return Outcome(decision.lot_id, decision.product, decision.label, decision.reasons, job.revision, True,
-                   None if certificate is None else f"certificates/{certificate['file']}",
-                   str(report_path.relative_to(ws.root)))
+    write = DecisionWrite(
+        lot_id=decision.lot_id, product_code=decision.product, manufactured_on=item.evaluation.manufactured_on,
+        night_id=night_id, decision=record, results=tuple(v.to_dict() for v in item.evaluation.verdicts),
+        chart_values=dict(item.chart_values), decided_by=f"lotgate {__version__} (nightly job)",
+        change_note=None if job.previous_record is None else _change_note(job.previous_record, record),
+        events=tuple(events), extra_points=tuple(item.extra_points))
+    outcome = Outcome(decision.lot_id, decision.product, decision.label, decision.reasons, job.revision, True,
+                      None if certificate is None else f"certificates/{certificate['file']}",
+                      str(report_path.relative_to(ws.root)))
+    return write, outcome
 
 
 def publish(ws: Workspace, store: Store, catalog: Catalog, decisions: list[LotDecision], night_id: int,
             charts: dict[tuple[str, str], Chart], signer: CertificateSigner,
             progress: Progress = _no_progress, workers: int | None = None) -> list[Outcome]:
-    """Per lot: batch report and (released) signed certificate written atomically, then the
-    decision, its results and its audit events in one store transaction; the log file follows.
+    """Per lot: batch report and (released) signed certificate written atomically; then the
+    decisions, their results and their audit events in one store transaction; the log follows.
 
-    Documents are rendered and signed in rounds of WINDOW_LOTS lots, across all cores when the
-    night is large; the store and the log are written here, in the lots' order.
+    A large night is rendered and signed across all cores in windows of WINDOW_LOTS lots, and
+    each window is one transaction; a small night is rendered here and committed lot by lot.
+    The store and the log are written here, in the lots' order. A run killed mid-window leaves
+    that window's documents without decisions: the restart decides those lots again and
+    overwrites the documents (same revision, same file names).
     """
     _freeze_new_limits(ws, store, charts)
     audit.sync_log(store, ws.log)
@@ -450,7 +454,10 @@ def publish(ws: Workspace, store: Store, catalog: Catalog, decisions: list[LotDe
     done = len(outcomes)
     progress("publish", done, len(decisions))
     renderers = _Renderers(ws, signer, len(pending), workers)
-    windows = [pending[start:start + WINDOW_LOTS] for start in range(0, len(pending), WINDOW_LOTS)]
+    # One store transaction per window: a large night renders on the workers in windows of
+    # WINDOW_LOTS lots; a small one renders here, and commits lot by lot.
+    size = WINDOW_LOTS if renderers.pool is not None else 1
+    windows = [pending[start:start + size] for start in range(0, len(pending), size)]
 
     def start(window: list[tuple[int, LotDecision]]) -> tuple[list[_Job], Any]:
         jobs = [_prepare(ws, catalog, item, previous.get(item.decision.lot_id), signer) for _, item in window]
@@ -462,10 +469,13 @@ def publish(ws: Workspace, store: Store, catalog: Catalog, decisions: list[LotDe
             jobs, handle = running
             # The next window renders on the workers while this one is written to disk and store.
             running = start(windows[number + 1]) if number + 1 < len(windows) else None
-            for (index, _), job, (report, certificate) in zip(window, jobs, renderers.collect(handle), strict=True):
-                outcomes[index] = _record(ws, store, job, night_id, report, certificate, signer)
-                done += 1
-                progress("publish", done, len(decisions))
+            written = [_write_documents(ws, job, night_id, report, certificate, signer)
+                       for job, (report, certificate) in zip(jobs, renderers.collect(handle), strict=True)]
+            store.add_decisions([write for write, _ in written])
+            for (index, _), (_, outcome) in zip(window, written, strict=True):
+                outcomes[index] = outcome
+            done += len(window)
+            progress("publish", done, len(decisions))
             audit.sync_log(store, ws.log)
     finally:
         renderers.close()

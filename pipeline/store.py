@@ -10,6 +10,7 @@ import datetime as dt
 import json
 from collections.abc import Iterator
 from contextlib import contextmanager
+from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
@@ -168,6 +169,23 @@ class ChartPoint(Base):
     lot_id: Mapped[str] = mapped_column(String(40))
     value: Mapped[float] = mapped_column(Float)
     decision_id: Mapped[int] = mapped_column(ForeignKey("decisions.id"))
+
+
+@dataclass(frozen=True)
+class DecisionWrite:
+    """One lot's decision to store: the record, its results, chart points and audit events."""
+
+    lot_id: str
+    product_code: str
+    manufactured_on: str | None
+    night_id: int | None
+    decision: dict[str, Any]
+    results: tuple[dict[str, Any], ...]
+    chart_values: dict[str, float]
+    decided_by: str
+    change_note: str | None = None
+    events: tuple[dict[str, Any], ...] = ()
+    extra_points: tuple[tuple[str, str, str, float], ...] = ()
 
 
 class Store:
@@ -375,40 +393,76 @@ class Store:
                      events: list[dict[str, Any]] | None = None,
                      extra_points: tuple[tuple[str, str, str, float], ...] = ()) -> DecisionRow:
         """Store one lot's decision as a new revision with its audit events, in one transaction."""
+        return self.add_decisions([DecisionWrite(
+            lot_id=lot_id, product_code=product_code, manufactured_on=manufactured_on, night_id=night_id,
+            decision=decision, results=tuple(results), chart_values=dict(chart_values), decided_by=decided_by,
+            change_note=change_note, events=tuple(events or ()), extra_points=tuple(extra_points))])[0]
+
+    def add_decisions(self, writes: list[DecisionWrite]) -> list[DecisionRow]:
+        """Store several lots' decisions, each as a new revision with its audit events, in ONE transaction.
+
+        All or nothing: a failure (or a kill) stores none of them. Lots and latest revisions are
+        read with one query per 500 lots, rows are inserted in batches, and the audit events of
+        every lot are chained after one read of the chain's head, in the order of ``writes``.
+        """
+        if not writes:
+            return []
         with self.session() as s:
-            if s.get(Lot, lot_id) is None:
-                s.add(Lot(lot_id=lot_id, product_code=product_code, manufactured_on=manufactured_on,
-                          first_seen_utc=utcnow()))
-                s.flush()
-            previous = s.scalars(select(DecisionRow).where(DecisionRow.lot_id == lot_id)
-                                 .order_by(DecisionRow.revision.desc()).limit(1)).first()
-            row = DecisionRow(
-                lot_id=lot_id, revision=(previous.revision + 1) if previous else 1, night_id=night_id,
-                disposition=decision["disposition"], hold_categories=list(decision["hold_categories"]),
-                reasons=list(decision["reasons"]), spec_version=decision["spec_version"],
-                spec_sha256=decision["spec_sha256"], fingerprint=decision["fingerprint"],
-                decided_by=decided_by, change_note=change_note, decided_at_utc=utcnow(),
-                record=json.loads(json.dumps(decision)),
-            )
-            s.add(row)
+            lot_ids = list(dict.fromkeys(w.lot_id for w in writes))
+            known_lots: set[str] = set()
+            latest: dict[str, DecisionRow] = {}
+            for start in range(0, len(lot_ids), 500):
+                chunk = lot_ids[start:start + 500]
+                known_lots.update(s.scalars(select(Lot.lot_id).where(Lot.lot_id.in_(chunk))))
+                for row in s.scalars(select(DecisionRow).where(DecisionRow.lot_id.in_(chunk))
+                                     .order_by(DecisionRow.lot_id, DecisionRow.revision)):
+                    latest[row.lot_id] = row
+            new_lots = []
+            for w in writes:
+                if w.lot_id not in known_lots:
+                    known_lots.add(w.lot_id)
+                    new_lots.append(Lot(lot_id=w.lot_id, product_code=w.product_code,
+                                        manufactured_on=w.manufactured_on, first_seen_utc=utcnow()))
+            s.add_all(new_lots)
             s.flush()
-            if previous is not None:
-                previous.superseded_by = row.id
-            for result in results:
-                value = result.get("value")
-                s.add(ResultRow(decision_id=row.id, attribute=result["code"],
-                                value=value if isinstance(value, int | float) else None,
-                                value_text=value if isinstance(value, str) else None,
-                                se=result.get("se"), unit=result.get("unit") or "",
-                                reported=result.get("reported"), verdict=result["verdict"]))
-            for attribute, value in chart_values.items():
-                s.add(ChartPoint(product_code=product_code, attribute=attribute, lot_id=lot_id,
-                                 value=value, decision_id=row.id))
-            for chart_code, attribute, point_id, value in extra_points:
-                s.add(ChartPoint(product_code=chart_code, attribute=attribute, lot_id=point_id,
-                                 value=value, decision_id=row.id))
-            self.chain_events(s, [{**e, "revision": row.revision} for e in (events or [])])
-            return row
+            rows: list[DecisionRow] = []
+            for w in writes:
+                previous = latest.get(w.lot_id)
+                d = w.decision
+                row = DecisionRow(
+                    lot_id=w.lot_id, revision=(previous.revision + 1) if previous else 1, night_id=w.night_id,
+                    disposition=d["disposition"], hold_categories=list(d["hold_categories"]),
+                    reasons=list(d["reasons"]), spec_version=d["spec_version"], spec_sha256=d["spec_sha256"],
+                    fingerprint=d["fingerprint"], decided_by=w.decided_by, change_note=w.change_note,
+                    decided_at_utc=utcnow(), record=json.loads(json.dumps(d)))
+                s.add(row)
+                if previous is not None:
+                    s.flush()  # the same lot twice in one batch: the later revision needs the earlier id
+                latest[w.lot_id] = row
+                rows.append((row, previous))
+            s.flush()
+            children: list[Any] = []
+            events: list[dict[str, Any]] = []
+            for w, (row, previous) in zip(writes, rows, strict=True):
+                if previous is not None:
+                    previous.superseded_by = row.id
+                for result in w.results:
+                    value = result.get("value")
+                    children.append(ResultRow(decision_id=row.id, attribute=result["code"],
+                                              value=value if isinstance(value, int | float) else None,
+                                              value_text=value if isinstance(value, str) else None,
+                                              se=result.get("se"), unit=result.get("unit") or "",
+                                              reported=result.get("reported"), verdict=result["verdict"]))
+                for attribute, value in w.chart_values.items():
+                    children.append(ChartPoint(product_code=w.product_code, attribute=attribute, lot_id=w.lot_id,
+                                               value=value, decision_id=row.id))
+                for chart_code, attribute, point_id, value in w.extra_points:
+                    children.append(ChartPoint(product_code=chart_code, attribute=attribute, lot_id=point_id,
+                                               value=value, decision_id=row.id))
+                events.extend({**e, "revision": row.revision} for e in w.events)
+            s.add_all(children)
+            self.chain_events(s, events)
+            return [row for row, _ in rows]
 
     def record_files(self, night_id: int, files: list[dict[str, Any]], events: list[dict[str, Any]]) -> None:
         with self.session() as s:

@@ -1,5 +1,6 @@
 """A night killed with SIGKILL at 20 seeded moments, then restarted, loses and duplicates nothing."""
 
+import hashlib
 import os
 import random
 import signal
@@ -158,4 +159,51 @@ def test_a_night_cut_between_publishing_and_closing_decides_nothing_twice(night,
     summary = nightly.run_stages(ws, store, signer, orchestrated=False)
     assert not any(o.new for o in summary.outcomes)
     assert {row.lot_id: row.fingerprint for row in store.decisions()} == first
+    assert audit.verify_trail(store, root / "decisions.jsonl").valid
+
+
+def test_a_window_that_fails_to_commit_is_decided_once_on_the_restart(tmp_path, monkeypatch):
+    """A large night renders on all cores and stores each window of lots in one transaction.
+    A failure after a window's documents are written, before its commit, leaves documents
+    without decisions; the restart decides exactly those lots, once, and rewrites their files."""
+    from flows import nightly
+    from pipeline import night as stages
+
+    night = demo.build_scenario(nights=1, lipase_per_night=16, protease_per_night=10)[0]
+    root = tmp_path / "window"
+    _workspace(root, night)
+    monkeypatch.setattr(stages, "WINDOW_LOTS", 8)
+    commits = []
+    real = Store.add_decisions
+
+    def failing_second_window(self, writes):
+        commits.append(len(writes))
+        if len(commits) == 2:
+            raise RuntimeError("simulated failure before the second window's commit")
+        return real(self, writes)
+
+    monkeypatch.setattr(Store, "add_decisions", failing_second_window)
+    ws, store, signer = stages.open_night(root)
+    with pytest.raises(RuntimeError, match="simulated"):
+        nightly.run_stages(ws, store, signer, orchestrated=False)
+    stored = {row.lot_id for row in store.decisions()}
+    if (os.cpu_count() or 1) > 1:
+        assert commits[:2] == [8, 8] and len(stored) == 8  # one window committed, the next one not
+    reports_before = {p.name for p in (root / "reports").glob("*_batch-report.pdf")}
+    assert len(reports_before) > len(stored)  # the failed window's documents were written
+    monkeypatch.setattr(Store, "add_decisions", real)
+    summary = nightly.run_stages(ws, store, signer, orchestrated=False)
+    rows = store.decisions()
+    assert Counter(row.lot_id for row in rows).most_common(1)[0][1] == 1
+    assert {row.lot_id for row in rows} == {o.lot_id for o in summary.outcomes}
+    assert sum(o.new for o in summary.outcomes) == len(rows) - len(stored)
+    assert {p.name for p in (root / "reports").glob("*_batch-report.pdf")} == {
+        f"{row.lot_id}_r{row.revision}_batch-report.pdf" for row in rows}
+    for row in rows:
+        certificate = row.record.get("certificate")
+        if certificate:
+            path = root / "certificates" / certificate["file"]
+            assert hashlib.sha256(path.read_bytes()).hexdigest() == certificate["sha256"]
+            assert verify_pdf(path, trust_roots=[root / "keys" / "root-ca.pem"]).valid
+    assert not list(root.rglob(".*.tmp"))
     assert audit.verify_trail(store, root / "decisions.jsonl").valid

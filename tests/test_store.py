@@ -134,3 +134,55 @@ def test_a_crash_between_store_and_log_is_mended_on_the_next_write(url, tmp_path
         handle.write('{"half a line')  # and a partial line, as a kill during a write leaves
     assert audit.sync_log(store, log) == 1
     assert audit.verify_trail(store, log).valid
+
+
+def _write(lot, fingerprint, *, chart_value=None, events=True):
+    from pipeline.store import DecisionWrite
+
+    return DecisionWrite(
+        lot_id=lot, product_code="LLC-200", manufactured_on="2026-11-25", night_id=None,
+        decision=_decision(lot, fingerprint), results=({"code": "activity", "value": 1200.0, "se": 12.0,
+                                                        "unit": "U/mL", "reported": "1200", "verdict": "pass"},),
+        chart_values={} if chart_value is None else {"activity": chart_value}, decided_by="lotgate",
+        events=(audit.event("decision", time_zone="Europe/Berlin", lot_id=lot, fingerprint=fingerprint),)
+        if events else ())
+
+
+def test_a_batch_of_decisions_is_stored_in_order_with_revisions_and_one_chain(url, tmp_path):
+    # The night stores a window of lots in one transaction; it must equal storing them one by one.
+    store = Store(url)
+    store.add_decisions([_write("LLC-0001", "f1")])
+    rows = store.add_decisions([_write("LLC-0002", "f2", chart_value=1190.0), _write("LLC-0001", "f3"),
+                                _write("LLC-0003", "f4"), _write("LLC-0003", "f5")])
+    assert [(r.lot_id, r.revision) for r in rows] == [("LLC-0002", 1), ("LLC-0001", 2), ("LLC-0003", 1),
+                                                      ("LLC-0003", 2)]
+    by_lot = {lot: store.decisions(lot) for lot in ("LLC-0001", "LLC-0003")}
+    assert by_lot["LLC-0001"][0].superseded_by == by_lot["LLC-0001"][1].id
+    assert by_lot["LLC-0003"][0].superseded_by == by_lot["LLC-0003"][1].id
+    assert by_lot["LLC-0003"][1].superseded_by is None
+    assert [p.lot_id for p in store.chart_points("LLC-200", "activity")] == ["LLC-0002"]
+    with store.engine.connect() as connection:
+        results = connection.execute(text("select count(*) from results")).scalar()
+        bodies = [json.loads(b) for b in connection.execute(text("select body from audit_events order by seq"))
+                  .scalars()]
+    assert results == 5
+    assert [(b["lot_id"], b["fingerprint"], b["revision"]) for b in bodies] == [
+        ("LLC-0001", "f1", 1), ("LLC-0002", "f2", 1), ("LLC-0001", "f3", 2), ("LLC-0003", "f4", 1),
+        ("LLC-0003", "f5", 2)]
+    log = tmp_path / "decisions.jsonl"
+    audit.sync_log(store, log)
+    assert audit.verify_trail(store, log).valid
+
+
+def test_a_batch_that_fails_in_the_database_stores_nothing(url):
+    from pipeline.errors import StoreError
+
+    store = Store(url)
+    store.add_decisions([_write("LLC-0001", "f1", chart_value=1200.0)])
+    # The second write repeats LLC-0001's chart point (unique per product, attribute and lot).
+    with pytest.raises(StoreError):
+        store.add_decisions([_write("LLC-0002", "f2"), _write("LLC-0001", "f3", chart_value=1210.0)])
+    assert [(r.lot_id, r.revision) for r in store.decisions()] == [("LLC-0001", 1)]
+    with store.engine.connect() as connection:
+        assert connection.execute(text("select count(*) from audit_events")).scalar() == 1
+        assert connection.execute(text("select count(*) from lots")).scalar() == 1
