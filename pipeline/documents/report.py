@@ -14,7 +14,7 @@ from typing import Any
 from reportlab.lib import colors
 from reportlab.lib.units import mm
 from reportlab.pdfgen.canvas import Canvas
-from reportlab.platypus import CondPageBreak, KeepTogether, Paragraph, Spacer, Table, TableStyle
+from reportlab.platypus import CondPageBreak, KeepTogether, Spacer, Table, TableStyle
 
 from pipeline.documents import charts
 from pipeline.documents.certificate import (
@@ -35,6 +35,7 @@ from pipeline.documents.text import (
     PASS_FILL,
     PASS_INK,
     RULE,
+    Paragraph,
     Trusted,
     build_pdf,
     caution_markup,
@@ -370,19 +371,21 @@ FOOTER_H = 26 * mm
 def _footer(dossier: dict[str, Any]) -> Any:
     lot = get(dossier, "lot", {})
     revision = get(get(dossier, "decision", {}), "revision", 0)
-    caution = clean(get(dossier, "caution", ""), 600)  # four footer lines at most; page 1 has it whole
+    st = styles()
+    # The caution is the same on every page: parsed and wrapped once, drawn on each page.
+    caution = Paragraph(escape(get(dossier, "caution", ""), 600), st["footer"])  # four lines at most
+    line_style = st["footer"].clone("footer_b", fontSize=7, textColor=colors.black)
 
     def draw(canvas: Canvas, page: int, total: int) -> None:
-        st = styles()
         canvas.saveState()
         canvas.setStrokeColor(RULE)
         canvas.setLineWidth(0.5)
         top = FOOTER_H - 4 * mm
         canvas.line(MARGIN_X, top, PAGE_W - MARGIN_X, top)
-        used = draw_paragraph(canvas, Paragraph(escape(caution, 600), st["footer"]), MARGIN_X, top - 2, CONTENT_W)
+        used = draw_paragraph(canvas, caution, MARGIN_X, top - 2, CONTENT_W)
         line = Paragraph(markup("Batch report · lot {lot} · {code} · revision {rev} · page {p} of {t}",
                                 lot=get(lot, "lot_id", ""), code=get(lot, "product_code", ""), rev=revision,
-                                p=page, t=total), st["footer"].clone("footer_b", fontSize=7, textColor=colors.black))
+                                p=page, t=total), line_style)
         draw_paragraph(canvas, line, MARGIN_X, top - 4 - used, CONTENT_W)
         canvas.restoreState()
 

@@ -25,7 +25,7 @@ from reportlab.lib.styles import ParagraphStyle
 from reportlab.pdfbase import pdfmetrics
 from reportlab.pdfbase.ttfonts import TTFont
 from reportlab.pdfgen.canvas import Canvas
-from reportlab.platypus import Paragraph
+from reportlab.platypus import paragraph as _rl_paragraph
 
 ELLIPSIS = "…"
 DASH = "—"  # printed where a value is absent
@@ -102,6 +102,24 @@ def caution_markup(caution: Any) -> str:
         head, sep, rest = text.partition(":") if ":" in text[:12] else (text[:7], "", text[7:])
         return f"<b>{escape(head + sep, 20)}</b> {escape(rest, 1200)}"
     return f"<b>Caution.</b> {escape(text, 1200)}"
+
+
+class Paragraph(_rl_paragraph.Paragraph):
+    """reportlab's Paragraph, remembering its last wrap.
+
+    A table wraps each cell to find the row heights and again to draw it, and a flowable
+    may be wrapped more than once while a page is laid out; the line breaks depend only on
+    the width, so a repeated wrap to the same width returns the size already found (unless
+    ``split`` has dropped the line breaks, which it does when nothing fits).
+    """
+
+    def wrap(self, availWidth: float, availHeight: float) -> tuple[float, float]:  # noqa: N803 (reportlab's names)
+        memo = self.__dict__.get("_wrap_memo")
+        if memo is not None and memo[0] == availWidth and "blPara" in self.__dict__:
+            return memo[1]
+        size = super().wrap(availWidth, availHeight)
+        self._wrap_memo = (availWidth, size)
+        return size
 
 
 def para(value: Any, style: ParagraphStyle | str = "cell", max_len: int = DEFAULT_MAX_LEN) -> Paragraph:
