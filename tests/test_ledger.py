@@ -56,3 +56,18 @@ def test_hash_is_sha256_of_canonical_json():
     record = ledger.chain([{"a": 1}])[0]
     body = json.dumps({"a": 1, "prev_hash": "0" * 64, "seq": 1}, sort_keys=True, separators=(",", ":"))
     assert record["hash"] == hashlib.sha256(body.encode()).hexdigest()
+
+
+def test_results_become_json_values_whatever_their_numeric_type():
+    # JSON (RFC 8259) has no NaN or infinity: a non-finite number is stored as null. numpy
+    # scalars become Python numbers and tuples become lists, at any depth.
+    import numpy as np
+
+    from pipeline.model import _clean
+
+    value = {"a": np.float64(1.5), "b": (np.int64(2), float("nan")), 3: [np.float32(np.inf), {"c": True}],
+             "d": None, "e": "text", "f": -float("inf")}
+    cleaned = _clean(value)
+    assert cleaned == {"a": 1.5, "b": [2, None], "3": [None, {"c": True}], "d": None, "e": "text", "f": None}
+    assert type(cleaned["a"]) is float and type(cleaned["b"][0]) is int
+    assert json.loads(json.dumps(cleaned, allow_nan=False)) == cleaned
