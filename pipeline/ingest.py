@@ -94,6 +94,10 @@ class ExportRejected(InputError):
         tail = f"; and {more} more" if more > 0 else ""
         super().__init__(f"{_printable(file_name, 200)}: {shown}{tail}")
 
+    def __reduce__(self) -> tuple[Any, ...]:
+        # Verdicts come back from worker processes by pickling (the default would call __init__ with the message).
+        return (ExportRejected, (self.file_name, list(self.problems)))
+
     @property
     def codes(self) -> frozenset[str]:
         return frozenset(p.code for p in self.problems)

@@ -137,14 +137,11 @@ def receive(ws: Workspace, store: Store, layouts: dict[str, ExportLayout], night
             seen[sha] = path.name
             to_parse.append((path, sha))
     received = []
-    batch = 200
-    for start in range(0, len(to_parse), batch):
-        chunk = [(path, path.read_bytes(), sha) for path, sha in to_parse[start:start + batch]]
-        for (path, data, sha), result in zip(chunk, parse_exports([(p.name, d) for p, d, _ in chunk], layouts),
-                                              strict=True):
+    for chunk, results in _parse_in_chunks(to_parse, layouts):
+        for (path, sha), result in zip(chunk, results, strict=True):
             if isinstance(result, ExportRejected):
                 _quarantine(ws, store, intake, path, sha, "quarantined", result.report(),
-                            data.decode("utf-8", errors="replace"))
+                            path.read_bytes().decode("utf-8", errors="replace"))
             else:
                 intake.parsed.append(result)
                 intake.paths[path.name] = path
@@ -157,6 +154,53 @@ def receive(ws: Workspace, store: Store, layouts: dict[str, ExportLayout], night
     store.add_events(received)
     audit.sync_log(store, ws.log)
     return intake
+
+
+_WORKER: dict[str, Any] = {}  # a worker process's own state, set by its initializer
+
+PARSE_CHUNK_FILES = 50        # files read and validated per call of parse_exports
+PARALLEL_FROM_FILES = 100     # below this, worker processes cost more than they save
+
+
+def process_pool(cores: int, initializer: Callable[..., None] | None = None,
+                 initargs: tuple[Any, ...] = ()) -> Any:
+    """Worker processes forked from a fresh server process that has imported lotgate once.
+
+    A fork of the night's own process could inherit a lock held by one of the orchestrator's
+    threads; the fork server is a clean process, and its forks start in milliseconds.
+    """
+    import multiprocessing
+    from concurrent.futures import ProcessPoolExecutor
+
+    context = multiprocessing.get_context("forkserver")
+    context.set_forkserver_preload(["pipeline.night", "pipeline.documents.report", "pipeline.documents.certificate",
+                                    "pipeline.signing"])
+    return ProcessPoolExecutor(max_workers=cores, mp_context=context, initializer=initializer, initargs=initargs)
+
+
+def _parser_start(layouts: dict[str, ExportLayout]) -> None:
+    _WORKER["layouts"] = layouts
+
+
+def _parse_files(paths: list[str]) -> list[ParsedExport | ExportRejected]:
+    layouts = _WORKER["layouts"]
+    return parse_exports([(Path(p).name, Path(p).read_bytes()) for p in paths], layouts)
+
+
+def _parse_in_chunks(to_parse: list[tuple[Path, str]], layouts: dict[str, ExportLayout]) -> Any:
+    """(chunk, verdicts) in the inbox's order; a large inbox is parsed across all cores.
+
+    The tables come back to this process; the parsing's own working memory stays in the workers.
+    """
+    chunks = [to_parse[start:start + PARSE_CHUNK_FILES] for start in range(0, len(to_parse), PARSE_CHUNK_FILES)]
+    cores = os.cpu_count() or 1
+    if cores < 2 or len(to_parse) < PARALLEL_FROM_FILES:
+        for chunk in chunks:
+            yield chunk, parse_exports([(path.name, path.read_bytes()) for path, _ in chunk], layouts)
+        return
+    with process_pool(cores, _parser_start, (layouts,)) as pool:
+        yield from zip(chunks, pool.map(_parse_files, [[str(path) for path, _ in chunk] for chunk in chunks]),
+                       strict=True)
 
 
 # ------------------------------------------------------------------------------ evaluate
@@ -314,9 +358,6 @@ def _render(dossier: dict[str, Any], signature: dict[str, str] | None, signer: C
     return report, certificate
 
 
-_WORKER: dict[str, Any] = {}
-
-
 def _worker_start(root: str) -> None:
     import logging
 
@@ -341,11 +382,7 @@ class _Renderers:
         cores = workers if workers is not None else (os.cpu_count() or 1)
         self.pool = None
         if cores > 1 and lots >= PARALLEL_FROM_LOTS:
-            import multiprocessing
-            from concurrent.futures import ProcessPoolExecutor
-
-            self.pool = ProcessPoolExecutor(max_workers=cores, mp_context=multiprocessing.get_context("spawn"),
-                                            initializer=_worker_start, initargs=(str(ws.root),))
+            self.pool = process_pool(cores, _worker_start, (str(ws.root),))
 
     def submit(self, jobs: list[_Job]) -> Any:
         """Start rendering ``jobs``; ``collect`` returns their documents in order."""
