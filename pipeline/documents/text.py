@@ -104,14 +104,32 @@ def caution_markup(caution: Any) -> str:
     return f"<b>Caution.</b> {escape(text, 1200)}"
 
 
+@lru_cache(maxsize=4096)
+def _parsed(text: str, style: ParagraphStyle) -> _rl_paragraph.Paragraph:
+    """A paragraph parsed once and never laid out: the template of its copies (see Paragraph)."""
+    return _rl_paragraph.Paragraph(text, style)
+
+
 class Paragraph(_rl_paragraph.Paragraph):
-    """reportlab's Paragraph, remembering its last wrap.
+    """reportlab's Paragraph, parsing each distinct text once and remembering its last wrap.
+
+    Headings, notes, column heads and many cells repeat in every document of a night; the
+    markup of a (text, style) pair is parsed once and each new paragraph starts from copies
+    of the parsed fragments, exactly as if it had parsed them itself.
 
     A table wraps each cell to find the row heights and again to draw it, and a flowable
     may be wrapped more than once while a page is laid out; the line breaks depend only on
     the width, so a repeated wrap to the same width returns the size already found (unless
     ``split`` has dropped the line breaks, which it does when nothing fits).
     """
+
+    def __init__(self, text: str, style: ParagraphStyle, bulletText: Any = None, frags: Any = None,  # noqa: N803
+                 **kwargs: Any) -> None:
+        if frags is None and bulletText is None and not kwargs:
+            parsed = _parsed(text, style)
+            text, style, bulletText = parsed.text, parsed.style, parsed.bulletText
+            frags = [f.clone() for f in parsed.frags]
+        super().__init__(text, style, bulletText, frags, **kwargs)
 
     def wrap(self, availWidth: float, availHeight: float) -> tuple[float, float]:  # noqa: N803 (reportlab's names)
         memo = self.__dict__.get("_wrap_memo")
