@@ -9,6 +9,7 @@ and time, and the meaning of the signature.
 from __future__ import annotations
 
 import io
+from functools import lru_cache
 from typing import Any
 
 from reportlab.lib import colors
@@ -71,14 +72,23 @@ def _check(dossier: dict[str, Any], signature: dict[str, Any]) -> None:
                          f"all of {', '.join(SIGNATURE_KEYS)} are required")
 
 
+@lru_cache(maxsize=8192)
+def _cleaned_fit(cell: str, available: float, font: str, size: float) -> tuple[str, bool]:
+    """``clean(cell)`` and whether it fits on one line of ``available`` points.
+
+    Remembered: most cells of a night's tables ("ok", "—", "yes", window bounds, counts)
+    are values already seen.
+    """
+    text = clean(cell)
+    return text, stringWidth(text, font, size) <= available
+
+
 def _fit(cell: Any, available: float, style: Any) -> Any:
     """A plain-text cell stays a (cheap) string while it fits its column, else it wraps as a Paragraph."""
     if not isinstance(cell, str) or not cell:
         return cell
-    text = clean(cell)
-    if stringWidth(text, style.fontName, style.fontSize) <= available:
-        return text
-    return Paragraph(escape(text), style)
+    text, fits = _cleaned_fit(cell, available, style.fontName, style.fontSize)
+    return text if fits else Paragraph(escape(text), style)
 
 
 def grid_table(rows: list[list[Any]], widths: list[float], header: bool = True, zebra: bool = False,
