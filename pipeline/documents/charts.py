@@ -13,7 +13,18 @@ from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
-from reportlab.graphics.shapes import Circle, Drawing, Group, Line, Polygon, PolyLine, Rect, String
+from reportlab.graphics.shapes import (
+    FILL_NON_ZERO,
+    Circle,
+    Drawing,
+    Group,
+    Line,
+    Path,
+    Polygon,
+    PolyLine,
+    Rect,
+    String,
+)
 from reportlab.lib import colors
 from reportlab.pdfbase.pdfmetrics import stringWidth
 from scipy import stats
@@ -149,11 +160,11 @@ def _frame(d: Drawing, xr: tuple[float, float], yr: tuple[float, float], xlabel:
     yt, yd = _nice_ticks(*yr)
     f = _Frame(*box, xt[0] if xt else xr[0], xt[-1] if xt else xr[1], yt[0], yt[-1])
     d.add(Rect(f.x0, f.y0, f.w, f.h, fillColor=colors.white, strokeColor=None))
+    d.add(_segments([(f.x0, f.Y(v), f.x0 + f.w, f.Y(v)) for v in yt] +
+                    [(f.X(v), f.y0, f.X(v), f.y0 + f.h) for v in xt], C_GRID, 0.5))
     for v in yt:
-        d.add(Line(f.x0, f.Y(v), f.x0 + f.w, f.Y(v), strokeColor=C_GRID, strokeWidth=0.5))
         d.add(_text(f.x0 - 4, f.Y(v) - 2.5, f"{v:.{yd}f}", 6.5, "end", C_AXIS))
     for v in xt:
-        d.add(Line(f.X(v), f.y0, f.X(v), f.y0 + f.h, strokeColor=C_GRID, strokeWidth=0.5))
         d.add(_text(f.X(v), f.y0 - 9, f"{v:.{xd}f}", 6.5, "middle", C_AXIS))
     d.add(Rect(f.x0, f.y0, f.w, f.h, fillColor=None, strokeColor=C_AXIS, strokeWidth=0.6))
     if xlabel:
@@ -220,6 +231,31 @@ def _polyline(f: _Frame, xs: Sequence[float], ys: Sequence[float], colour: Any, 
     if len(pts) < 4:
         return None
     return PolyLine(pts, strokeColor=colour, strokeWidth=width, strokeDashArray=dash, strokeLineJoin=1)
+
+
+# Many marks of one style are drawn as one path: a drawing node costs far more to render than
+# a segment of a path, and marks of one colour look the same whichever is drawn first.
+
+
+def _segments(lines: Sequence[tuple[float, float, float, float]], colour: Any, width: float) -> Path:
+    """Straight lines (x1, y1, x2, y2) of one colour and width, as one stroked path."""
+    path = Path(strokeColor=colour, strokeWidth=width, fillColor=None)
+    for x1, y1, x2, y2 in lines:
+        path.moveTo(x1, y1)
+        path.lineTo(x2, y2)
+    return path
+
+
+def _squares(centres: Sequence[tuple[float, float]], half: float, colour: Any) -> Path:
+    """Filled squares of side ``2·half`` around ``centres``, as one path (overlaps stay filled)."""
+    path = Path(fillColor=colour, strokeColor=None, fillMode=FILL_NON_ZERO)
+    for x, y in centres:
+        path.moveTo(x - half, y - half)
+        path.lineTo(x + half, y - half)
+        path.lineTo(x + half, y + half)
+        path.lineTo(x - half, y + half)
+        path.closePath()
+    return path
 
 
 def _empty(title: str, message: str) -> Drawing:
@@ -436,9 +472,8 @@ def progress_curves_chart(traces: dict[str, Any] | None) -> Drawing:
         raw = _polyline(f, t[:n], a[:n], colour, 0.5)
         if raw is not None:
             d.add(raw)
-        for x, y in zip(t[:n], a[:n], strict=True):
-            if math.isfinite(x) and math.isfinite(y):
-                d.add(Rect(f.X(x) - 1.3, f.Y(f.clamp_y(y)) - 1.3, 2.6, 2.6, fillColor=colour, strokeColor=None))
+        d.add(_squares([(f.X(x), f.Y(f.clamp_y(y))) for x, y in zip(t[:n], a[:n], strict=True)
+                        if math.isfinite(x) and math.isfinite(y)], 1.3, colour))
         w0, w1 = get(c, "window_start_min"), get(c, "window_end_min")
         slope, icpt = get(c, "slope_au_per_min"), get(c, "intercept_au")
         if all(isinstance(x, int | float) for x in (w0, w1, slope, icpt)):
@@ -542,9 +577,7 @@ def imr_chart(chart: dict[str, Any] | None) -> Drawing:
     line = _polyline(m, mr_x, mr, C_ZONE, 0.7)
     if line is not None:
         d.add(line)
-    for x, y in zip(mr_x, mr, strict=True):
-        if math.isfinite(y):
-            d.add(Rect(m.X(x) - 1.4, m.Y(y) - 1.4, 2.8, 2.8, fillColor=C_INK, strokeColor=None))
+    d.add(_squares([(m.X(x), m.Y(y)) for x, y in zip(mr_x, mr, strict=True) if math.isfinite(y)], 1.4, C_INK))
     _legend(d, [(_dot(C_RELEASED, 2.5), "released lot"), (_dot(C_HELD, 2.5), "held lot"),
                 (_dot(C_OTHER, 2.5), "other / this lot pending"), (_ring(C_SIGNAL, 4), "run-rule signal"),
                 (_swatch(C_CONTROL, 1.0), "±3σ control limits"), (_swatch(C_ZONE, 0.6, [1, 2]), "±1σ, ±2σ zones"),
