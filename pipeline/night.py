@@ -611,8 +611,10 @@ def write_lims_results(ws: Workspace, store: Store) -> list[Path]:
     stem = f"results-{pending[0].id:06d}-{pending[-1].id:06d}"
     csv_path, json_path = ws.lims / f"{stem}.csv", ws.lims / f"{stem}.json"
     csv_bytes = buffer.getvalue().encode("utf-8")
-    json_bytes = json.dumps({"code_version": __version__, "decisions": [d.id for d in pending], "results": rows},
-                            indent=1, ensure_ascii=False).encode("utf-8")
+    # One result per line (json's indenting encoder is pure Python, ten times slower than this).
+    json_text = (f'{{"code_version": {json.dumps(__version__)}, "decisions": {json.dumps([d.id for d in pending])}, '
+                 f'"results": [\n' + ",\n".join(json.dumps(row, ensure_ascii=False) for row in rows) + "\n]}\n")
+    json_bytes = json_text.encode("utf-8")
     manifest = "".join(f"{hashlib.sha256(b).hexdigest()}  {p.name}\n"
                        for p, b in ((csv_path, csv_bytes), (json_path, json_bytes))).encode()
     manifest_path = ws.lims / f"{stem}.sha256"

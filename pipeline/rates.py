@@ -171,7 +171,7 @@ class WellRate:
         return self.flag is None
 
     def to_dict(self) -> dict[str, Any]:
-        out: dict[str, Any] = asdict(self)
+        out: dict[str, Any] = dict(vars(self))  # flat fields: no deep copy needed (a night has ~10^5 wells)
         for key, value in out.items():
             if isinstance(value, float):
                 out[key] = _json_float(value)

@@ -178,3 +178,26 @@ def test_revision_chain_original_reassay_and_a_persons_release(demo_workspace, t
     shown = buffer.getvalue()
     assert "held: invalid assay" in shown and "review required" in shown and "Jonas Brandt" in shown
     assert ledger.verify_file(root / "decisions.jsonl").valid
+
+
+def test_lims_results_files_agree_with_each_other_and_their_manifest(demo_workspace):
+    # The LIMS reads either file: the JSON (RFC 8259) and the CSV (RFC 4180) carry the same rows,
+    # and each night's manifest holds their SHA-256 in the sha256sum format (common practice).
+    import csv
+    import hashlib
+
+    root, _, summaries = demo_workspace
+    stems = sorted(path.stem for path in (root / "lims").glob("results-*.sha256"))
+    assert stems
+    decided = 0
+    for stem in stems:
+        data = json.loads((root / "lims" / f"{stem}.json").read_text(encoding="utf-8"))
+        with open(root / "lims" / f"{stem}.csv", newline="", encoding="utf-8") as handle:
+            table = list(csv.DictReader(handle))
+        assert [{k: "" if v is None else str(v) for k, v in row.items()} for row in data["results"]] == table
+        assert {row["lot_id"] for row in table} and len(data["decisions"]) >= 1
+        decided += len(data["decisions"])
+        for line in (root / "lims" / f"{stem}.sha256").read_text().splitlines():
+            digest, name = line.split("  ")
+            assert hashlib.sha256((root / "lims" / name).read_bytes()).hexdigest() == digest
+    assert decided == len(Store(open_workspace(root).database_url).decisions())
