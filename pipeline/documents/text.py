@@ -13,6 +13,7 @@ import math
 import os
 import threading
 import unicodedata
+import zlib
 from collections.abc import Callable, Mapping
 from functools import lru_cache, partial
 from importlib.util import find_spec
@@ -23,7 +24,7 @@ from reportlab import rl_config
 from reportlab.lib import colors
 from reportlab.lib.styles import ParagraphStyle
 from reportlab.pdfbase import pdfmetrics
-from reportlab.pdfbase.ttfonts import TTFont
+from reportlab.pdfbase.ttfonts import TTFont, TTFontFace
 from reportlab.pdfgen.canvas import Canvas
 from reportlab.platypus import paragraph as _rl_paragraph
 
@@ -241,6 +242,58 @@ def _font_dirs() -> list[str]:
     return dirs
 
 
+@lru_cache(maxsize=32)
+def _deflate(data: bytes) -> bytes:
+    return zlib.compress(data)
+
+
+class _RememberedFlate:
+    """reportlab's FlateDecode filter (the same zlib call) remembering the font files it compressed last."""
+
+    pdfname = "FlateDecode"
+
+    def encode(self, data: bytes) -> bytes:
+        return _deflate(data)
+
+    def decode(self, encoded: bytes) -> bytes:
+        return zlib.decompress(encoded)
+
+
+_REMEMBERED_FLATE = _RememberedFlate()
+
+
+class _SubsetMemoFace(TTFontFace):
+    """A TrueType face that keeps the font subsets it made last, and their compressed form.
+
+    Each document embeds, per font, the subset of glyphs it uses, in order of first use. The
+    documents of a night use the same characters in nearly the same order (certificates have
+    had three distinct subsets in a hundred), so making and compressing the subset font
+    files again would repeat the same work with the same result.
+    """
+
+    def __init__(self, filename: str) -> None:
+        super().__init__(filename)
+        self._subset_file = lru_cache(maxsize=16)(lambda subset: super(_SubsetMemoFace, self).makeSubset(list(subset)))
+
+    def makeSubset(self, subset: list[int]) -> bytes:  # noqa: N802 (reportlab's name)
+        return self._subset_file(tuple(subset))
+
+    def addSubsetObjects(self, doc: Any, fontname: str, subset: list[int]) -> Any:  # noqa: N802
+        descriptor = super().addSubsetObjects(doc, fontname, subset)
+        font_file = doc.idToObject.get(f"fontFile:{self.filename}({fontname})")  # the stream just made
+        if font_file is not None and font_file.filters:
+            font_file.filters = [_REMEMBERED_FLATE]
+        return descriptor
+
+
+class _SubsetMemoFont(TTFont):
+    """A TrueType font whose face is a :class:`_SubsetMemoFace`."""
+
+    def __init__(self, name: str, filename: str) -> None:
+        super().__init__(name, filename)
+        self.face = _SubsetMemoFace(filename)
+
+
 @lru_cache(maxsize=1)
 def fonts() -> tuple[str, str, str]:
     """Register a Unicode TrueType family (DejaVu) once; fall back to the PDF base fonts.
@@ -254,7 +307,7 @@ def fonts() -> tuple[str, str, str]:
         if all(os.path.isfile(p) for p in paths.values()):
             for name, path in paths.items():
                 if name not in pdfmetrics.getRegisteredFontNames():
-                    pdfmetrics.registerFont(TTFont(name, path))
+                    pdfmetrics.registerFont(_SubsetMemoFont(name, path))
             pdfmetrics.registerFontFamily(FONT, normal=FONT, bold=FONT_BOLD, italic=FONT, boldItalic=FONT_BOLD)
             return FONT, FONT_BOLD, FONT_MONO
     return "Helvetica", "Helvetica-Bold", "Courier"
