@@ -29,6 +29,7 @@ from sqlalchemy import (
     create_engine,
     event,
     func,
+    insert,
     select,
 )
 from sqlalchemy.exc import SQLAlchemyError
@@ -376,11 +377,11 @@ class Store:
         last = session.scalars(select(AuditEvent).order_by(AuditEvent.seq.desc()).limit(1)).first()
         chained = ledger.chain(events, prev_hash=last.hash if last else ledger.GENESIS,
                                start_seq=(last.seq + 1) if last else 1)
-        for record in chained:
-            session.add(AuditEvent(seq=record["seq"], time_utc=str(record.get("time_utc", "")), kind=record["kind"],
-                                   lot_id=record.get("lot_id"), body=ledger.canonical_json(record),
-                                   prev_hash=record["prev_hash"], hash=record["hash"]))
         session.flush()
+        session.execute(insert(AuditEvent), [
+            {"seq": record["seq"], "time_utc": str(record.get("time_utc", "")), "kind": record["kind"],
+             "lot_id": record.get("lot_id"), "body": ledger.canonical_json(record), "prev_hash": record["prev_hash"],
+             "hash": record["hash"]} for record in chained])
         return chained
 
     def add_events(self, events: list[dict[str, Any]]) -> list[dict[str, Any]]:
@@ -441,26 +442,28 @@ class Store:
                 latest[w.lot_id] = row
                 rows.append((row, previous))
             s.flush()
-            children: list[Any] = []
+            results: list[dict[str, Any]] = []
+            points: list[dict[str, Any]] = []
             events: list[dict[str, Any]] = []
             for w, (row, previous) in zip(writes, rows, strict=True):
                 if previous is not None:
                     previous.superseded_by = row.id
                 for result in w.results:
                     value = result.get("value")
-                    children.append(ResultRow(decision_id=row.id, attribute=result["code"],
-                                              value=value if isinstance(value, int | float) else None,
-                                              value_text=value if isinstance(value, str) else None,
-                                              se=result.get("se"), unit=result.get("unit") or "",
-                                              reported=result.get("reported"), verdict=result["verdict"]))
-                for attribute, value in w.chart_values.items():
-                    children.append(ChartPoint(product_code=w.product_code, attribute=attribute, lot_id=w.lot_id,
-                                               value=value, decision_id=row.id))
-                for chart_code, attribute, point_id, value in w.extra_points:
-                    children.append(ChartPoint(product_code=chart_code, attribute=attribute, lot_id=point_id,
-                                               value=value, decision_id=row.id))
+                    results.append({"decision_id": row.id, "attribute": result["code"],
+                                    "value": value if isinstance(value, int | float) else None,
+                                    "value_text": value if isinstance(value, str) else None,
+                                    "se": result.get("se"), "unit": result.get("unit") or "",
+                                    "reported": result.get("reported"), "verdict": result["verdict"]})
+                points += [{"product_code": w.product_code, "attribute": attribute, "lot_id": w.lot_id,
+                            "value": value, "decision_id": row.id} for attribute, value in w.chart_values.items()]
+                points += [{"product_code": chart_code, "attribute": attribute, "lot_id": point_id, "value": value,
+                            "decision_id": row.id} for chart_code, attribute, point_id, value in w.extra_points]
                 events.extend({**e, "revision": row.revision} for e in w.events)
-            s.add_all(children)
+            s.flush()
+            for model, values in ((ResultRow, results), (ChartPoint, points)):
+                if values:
+                    s.execute(insert(model), values)  # one multi-row statement per table, not one per row
             self.chain_events(s, events)
             return [row for row, _ in rows]
 
