@@ -122,7 +122,12 @@ def _registry(exports: list[ParsedExport], notes: list[str]) -> tuple[dict[str, 
 def _plate_groups(exports: list[ParsedExport]) -> dict[str, tuple[pd.DataFrame, list[tuple[str, str]]]]:
     out: dict[str, tuple[pd.DataFrame, list[tuple[str, str]]]] = {}
     for export in exports:
-        for plate_id, frame in export.frame.groupby("plate_id", sort=True):
+        ids = export.frame["plate_id"]
+        # A file of one plate (the usual case) is used as it is: grouping would copy every read of
+        # the night while the parsed tables are still held.
+        single = len(ids) > 0 and bool((ids == ids.iloc[0]).all())
+        groups = [(ids.iloc[0], export.frame)] if single else export.frame.groupby("plate_id", sort=True)
+        for plate_id, frame in groups:
             key = str(plate_id)
             if key in out:
                 out[key] = (pd.concat([out[key][0], frame]), [*out[key][1], (export.file_name, export.sha256)])

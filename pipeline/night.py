@@ -180,6 +180,7 @@ def process_pool(cores: int, initializer: Callable[..., None] | None = None,
 
 def _parser_start(layouts: dict[str, ExportLayout]) -> None:
     _WORKER["layouts"] = layouts
+    _settle()
 
 
 def _parse_files(paths: list[str]) -> list[ParsedExport | ExportRejected]:
@@ -366,6 +367,15 @@ def _worker_start(root: str) -> None:
     ws = open_workspace(Path(root))
     _WORKER["signer"] = signer_for(ws)
     _WORKER["location"] = ws.plant_name
+    _settle()
+
+
+def _settle() -> None:
+    """Leave the objects a worker starts with (modules, fonts, keys) out of every garbage collection."""
+    import gc
+
+    gc.collect()
+    gc.freeze()
 
 
 def _worker_render(job: tuple[dict[str, Any], dict[str, str] | None]) -> tuple[bytes, bytes | None]:
