@@ -13,6 +13,8 @@ import json
 import os
 import resource
 import shutil
+import subprocess
+import sys
 import tempfile
 import time
 from pathlib import Path
@@ -102,17 +104,43 @@ def _workspace(root: Path, files: dict[str, bytes]) -> Path:
     return root
 
 
-def _run(root: Path, orchestrated: bool) -> tuple[float, dict[str, float], Any]:
-    from flows import nightly
-    from pipeline import night
+def _night(root: str, mode: str) -> None:
+    """In a fresh process: one night on ``root`` as a Prefect flow or as plain calls; print its figures."""
+    from flows.cli import quiet_prefect, server_started_early
 
+    quiet_prefect()
+    import logging
+
+    for noisy in ("pyhanko", "pyhanko_certvalidator"):
+        logging.getLogger(noisy).setLevel(logging.CRITICAL)
     start = time.perf_counter()
-    if orchestrated:
-        summary = nightly.nightly(str(root))
+    with server_started_early(mode == "flow"):
+        from flows import nightly
+        from pipeline import night
+    if mode == "flow":
+        summary = nightly.nightly(root)
     else:
-        ws, store, signer = night.open_night(root)
+        ws, store, signer = night.open_night(Path(root))
         summary = nightly.run_stages(ws, store, signer, orchestrated=False)
-    return time.perf_counter() - start, dict(nightly.STAGE_SECONDS), summary
+    print(json.dumps({"night_s": time.perf_counter() - start, "stage_s": dict(nightly.STAGE_SECONDS),
+                      "stage_peak_mb": dict(nightly.STAGE_PEAK_MB), "peak_rss_mb": _peak_rss_mb(),
+                      "decided": sum(o.new for o in summary.outcomes)}))
+
+
+def _run(root: Path, mode: str) -> dict[str, Any]:
+    """One night in its own Python process, as a nightly run would be: start-up, imports, the
+    fork server and (for the flow) Prefect's temporary server all count. Its memory is watched."""
+    code = "import sys; from flows.bench import _night; _night(sys.argv[1], sys.argv[2])"
+    with _MemoryWatch() as watch:
+        start = time.perf_counter()
+        done = subprocess.run([sys.executable, "-c", code, str(root), mode],  # noqa: S603 - our own interpreter
+                              capture_output=True, text=True,
+                              check=False)
+        wall = time.perf_counter() - start
+    if done.returncode != 0:
+        raise RuntimeError(f"the {mode} night failed (exit {done.returncode}): {done.stderr[-3000:]}")
+    figures = json.loads(done.stdout.strip().splitlines()[-1])
+    return {**figures, "wall_s": wall, "peak_tree_mb": watch.peak_mb}
 
 
 def _fit_comparison(lims_files: int) -> dict[str, Any]:
@@ -181,9 +209,6 @@ def _signing_comparison(root: Path, count: int) -> dict[str, Any]:
 
 
 def cmd_bench(args: argparse.Namespace) -> int:
-    from flows.cli import quiet_prefect
-
-    quiet_prefect()
     import logging
 
     for noisy in ("pyhanko", "pyhanko_certvalidator"):
@@ -203,36 +228,39 @@ def cmd_bench(args: argparse.Namespace) -> int:
     lims_files = sum(1 for name in files if name.startswith("lims-"))
     try:
         flow_root = _workspace(base / "flow", files)
-        if args.skip_plain:
-            del nights, files  # the night reads its inbox; the simulation's bytes need not stay in memory
-        with _MemoryWatch() as watch:
-            wall, stages, summary = _run(flow_root, orchestrated=True)
-        plain_wall, plain_stages = float("nan"), {}
-        if not args.skip_plain:
-            plain_root = _workspace(base / "plain", files)
-            plain_wall, plain_stages, _ = _run(plain_root, orchestrated=False)
+        plain_root = None if args.skip_plain else _workspace(base / "plain", files)
+        del nights, files  # each night reads its inbox; the simulation's bytes need not stay in memory
+        flow = _run(flow_root, "flow")
+        plain = _run(plain_root, "plain") if plain_root is not None else None
         fit = _fit_comparison(lims_files)
         signing = _signing_comparison(flow_root, min(200, lots)) if not args.skip_signing else {}
-        result = {
-            "lots": lots, "wall_s": wall, "lots_per_s": lots / wall, "peak_rss_mb": _peak_rss_mb(),
-            "peak_tree_mb": watch.peak_mb,
-            "stage_s": stages, "simulate_s": simulate_s, "decided": sum(o.new for o in summary.outcomes),
-            "plain_wall_s": plain_wall if plain_stages else None, "plain_stage_s": plain_stages,
-            "orchestration_ratio": wall / plain_wall if plain_stages else None, "fit": fit, "signing": signing,
-        }
     finally:
         if not args.keep:
             shutil.rmtree(base, ignore_errors=True)
         else:
             print(f"workspaces kept in {base}")
+    wall, stages = flow["wall_s"], flow["stage_s"]
+    plain_stages = plain["stage_s"] if plain else {}
+    result = {
+        "lots": lots, "wall_s": wall, "lots_per_s": lots / wall, "night_s": flow["night_s"],
+        "peak_rss_mb": flow["peak_rss_mb"], "peak_tree_mb": flow["peak_tree_mb"], "stage_s": stages,
+        "stage_peak_mb": flow["stage_peak_mb"], "simulate_s": simulate_s, "decided": flow["decided"],
+        "plain_wall_s": plain["wall_s"] if plain else None, "plain_stage_s": plain_stages,
+        "orchestration_ratio": wall / plain["wall_s"] if plain else None, "fit": fit, "signing": signing,
+    }
     print(f"lotgate bench: {lots} simulated lots, one night, end to end (simulation {simulate_s:.1f} s, not counted)")
-    print(f"{'stage':<14}{'flow (s)':>10}{'plain (s)':>11}")
+    print("each night runs in a fresh process; 'whole run' counts its start-up, imports and, for the flow, "
+          "Prefect's temporary server")
+    print(f"{'stage':<14}{'flow (s)':>10}{'plain (s)':>11}{'peak MB':>9}")
     for name in STAGES:
-        print(f"{name:<14}{stages.get(name, 0.0):>10.2f}{plain_stages.get(name, 0.0):>11.2f}")
-    ratio = f"   ratio flow/plain {wall / plain_wall:.2f}" if plain_stages else ""
-    print(f"{'whole night':<14}{wall:>10.2f}{plain_wall:>11.2f}{ratio}")
+        print(f"{name:<14}{stages.get(name, 0.0):>10.2f}{plain_stages.get(name, 0.0):>11.2f}"
+              f"{flow['stage_peak_mb'].get(name, 0.0):>9.0f}")
+    plain_wall = plain["wall_s"] if plain else float("nan")
+    print(f"{'stages':<14}{sum(stages.values()):>10.2f}{sum(plain_stages.values()):>11.2f}")
+    ratio = f"   ratio flow/plain {wall / plain_wall:.2f}" if plain else ""
+    print(f"{'whole run':<14}{wall:>10.2f}{plain_wall:>11.2f}{ratio}")
     print(f"lots per second {lots / wall:.1f}; peak memory: {result['peak_rss_mb']:.0f} MB in the largest process, "
-          f"{watch.peak_mb:.0f} MB for all processes of the night together (PSS, sampled every 0.1 s)")
+          f"{flow['peak_tree_mb']:.0f} MB for all processes of the night together (PSS, sampled every 0.1 s)")
     print(f"kinetic fit, {fit['curves']} curves: batched {fit['batched_s'] * 1e3:.1f} ms, curve_fit loop "
           f"{fit['curve_fit_loop_s'] * 1e3:.0f} ms, ratio {fit['speed_ratio']:.0f}x, "
           f"max relative difference {fit['max_relative_difference']:.1e}")

@@ -10,6 +10,9 @@ from __future__ import annotations
 import argparse
 import os
 import sys
+import threading
+from collections.abc import Iterator
+from contextlib import contextmanager
 from pathlib import Path
 
 QUIET_PREFECT = {
@@ -27,6 +30,30 @@ def quiet_prefect() -> None:
         os.environ.setdefault(key, value)
 
 
+@contextmanager
+def server_started_early(orchestrated: bool = True) -> Iterator[None]:
+    """Boot Prefect's temporary local server in the background while the caller sets up.
+
+    Without a configured server (``PREFECT_API_URL``), a flow run starts Prefect's temporary
+    server and waits ~3–4 s for it; started here, that wait overlaps the night's own imports
+    and workspace checks. The flow then finds it running. Waits for it before returning.
+    """
+    from prefect.settings import PREFECT_API_URL
+
+    if not orchestrated or PREFECT_API_URL.value():
+        yield
+        return
+    from prefect.server.api.server import SubprocessASGIServer
+
+    server = SubprocessASGIServer()
+    booting = threading.Thread(target=server.start, name="prefect-server-boot", daemon=True)
+    booting.start()
+    try:
+        yield
+    finally:
+        booting.join()
+
+
 def _console():
     from rich.console import Console
 
@@ -39,14 +66,14 @@ def _run_night(workspace: Path, *, orchestrated: bool = True):
 
     from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeElapsedColumn
 
-    from flows import nightly
-
     for noisy in ("pyhanko", "pyhanko_certvalidator"):
         logging.getLogger(noisy).setLevel(logging.CRITICAL)
-    from pipeline import night
-    from pipeline.runlock import run_lock
+    with server_started_early(orchestrated):
+        from flows import nightly
+        from pipeline import night
+        from pipeline.runlock import run_lock
 
-    ws, store, signer = night.open_night(workspace)  # a bad set-up fails here, before any output
+        ws, store, signer = night.open_night(workspace)  # a bad set-up fails here, before any output
     labels = {"receive": "Reading and validating exports", "publish": "Reports, certificates and records"}
     console = _console()
     with Progress(TextColumn("{task.description:<36}"), BarColumn(), MofNCompleteColumn(), TimeElapsedColumn(),

@@ -6,6 +6,7 @@ cheap; results are kept in memory (no caching, no persistence of task results).
 
 from __future__ import annotations
 
+import resource
 import time
 from collections.abc import Callable
 from pathlib import Path
@@ -60,11 +61,13 @@ def run_stages(ws: Workspace, store: Store, signer: night.CertificateSigner, *, 
 
 
 STAGE_SECONDS: dict[str, float] = {}  # wall time of each stage of the last night in this process
+STAGE_PEAK_MB: dict[str, float] = {}  # this process's peak resident memory at the end of each stage
 
 
 def _stages(ws: Workspace, store: Store, signer: night.CertificateSigner, step: dict,
             orchestrated: bool) -> NightSummary:
     STAGE_SECONDS.clear()
+    STAGE_PEAK_MB.clear()
 
     def timed(name: str, *args):
         start = time.perf_counter()
@@ -74,6 +77,7 @@ def _stages(ws: Workspace, store: Store, signer: night.CertificateSigner, step: 
             return step[name](*(quote(a) for a in args)) if orchestrated else step[name](*args)
         finally:
             STAGE_SECONDS[name] = time.perf_counter() - start
+            STAGE_PEAK_MB[name] = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0
 
     catalog, layouts = night.open_catalog_and_layouts()
     recovered = night.recover_interrupted(ws, store)
