@@ -209,16 +209,17 @@ def evaluate(assembly: Assembly, catalog: Catalog) -> tuple[list[LotEvaluation],
     """Plate suitability and per-well maths, then each lot's numbers and verdicts."""
     activity: dict[str, ActivityPlateResult] = {}
     protein: dict[str, ProteinPlateResult] = {}
-    for plate_id, (frame, reads, method_id, _) in assembly.activity_plates.items():
+    # Each plate's tables are let go as soon as the plate is evaluated: the night's reads and its
+    # results are then never all in memory at once. Only file names and checksums go on.
+    for plate_id in list(assembly.activity_plates):
+        frame, reads, method_id, _ = assembly.activity_plates.pop(plate_id)
         activity[plate_id] = evaluate_activity_plate(plate_id, frame, reads, catalog.kinetic_method(method_id))
     extinction = {lot.lot_id: catalog.specifications[lot.product_code].a280_extinction_ml_per_mg_per_cm
                   for lot in assembly.lots if catalog.specifications[lot.product_code].a280_extinction_ml_per_mg_per_cm}
-    for plate_id, (frame, reads, method_id, _) in assembly.protein_plates.items():
+    for plate_id in list(assembly.protein_plates):
+        frame, reads, method_id, _ = assembly.protein_plates.pop(plate_id)
         protein[plate_id] = evaluate_protein_plate(plate_id, frame, reads, catalog.protein_method(method_id),
                                                    extinction)
-    # The night's tables are no longer needed: only file names and checksums go on from here.
-    assembly.activity_plates.clear()
-    assembly.protein_plates.clear()
     on_activity: dict[str, list[ActivityPlateResult]] = {}
     for plate in activity.values():
         for lot_id in set(plate.activity) | set(plate.kinetics):
@@ -601,28 +602,30 @@ def write_lims_results(ws: Workspace, store: Store) -> list[Path]:
     The file names come from the first and last decision exported, so a night re-run after a
     crash writes the same bytes to the same names, and a night with nothing new writes nothing.
     """
-    pending = store.unexported_decisions()
+    pending = store.unexported_decision_ids()
     if not pending:
         return []
     rows = []
-    for decision in pending:
-        for result in decision.record.get("results", []):
-            rows.append({"lot_id": decision.lot_id, "product_code": decision.record.get("product"),
-                         "attribute": result["code"], "value": result["reported"], "unit": result["unit"],
-                         "verdict": result["verdict"], "disposition": decision.record.get("label", decision.disposition),
-                         "revision": decision.revision, "spec_version": decision.spec_version,
-                         "decided_at_utc": decision.record.get("decided_at_utc")})
+    for start in range(0, len(pending), 500):  # 500 decision records at a time: a large night's would fill memory
+        for decision in store.decisions_by_id(pending[start:start + 500]):
+            for result in decision.record.get("results", []):
+                rows.append({"lot_id": decision.lot_id, "product_code": decision.record.get("product"),
+                             "attribute": result["code"], "value": result["reported"], "unit": result["unit"],
+                             "verdict": result["verdict"],
+                             "disposition": decision.record.get("label", decision.disposition),
+                             "revision": decision.revision, "spec_version": decision.spec_version,
+                             "decided_at_utc": decision.record.get("decided_at_utc")})
     header = list(rows[0])
     buffer = io.StringIO()
     writer = csv.writer(buffer, lineterminator="\n")
     writer.writerow(header)
     for row in rows:
         writer.writerow([csv_cell(row[h]) for h in header])
-    stem = f"results-{pending[0].id:06d}-{pending[-1].id:06d}"
+    stem = f"results-{pending[0]:06d}-{pending[-1]:06d}"
     csv_path, json_path = ws.lims / f"{stem}.csv", ws.lims / f"{stem}.json"
     csv_bytes = buffer.getvalue().encode("utf-8")
     # One result per line (json's indenting encoder is pure Python, ten times slower than this).
-    json_text = (f'{{"code_version": {json.dumps(__version__)}, "decisions": {json.dumps([d.id for d in pending])}, '
+    json_text = (f'{{"code_version": {json.dumps(__version__)}, "decisions": {json.dumps(pending)}, '
                  f'"results": [\n' + ",\n".join(json.dumps(row, ensure_ascii=False) for row in rows) + "\n]}\n")
     json_bytes = json_text.encode("utf-8")
     manifest = "".join(f"{hashlib.sha256(b).hexdigest()}  {p.name}\n"
@@ -633,7 +636,7 @@ def write_lims_results(ws: Workspace, store: Store) -> list[Path]:
         if not (path.exists() and path.read_bytes() == data):
             atomic_write(path, data)
         written.append(path)
-    store.mark_exported([d.id for d in pending], stem, [audit.event(
+    store.mark_exported(pending, stem, [audit.event(
         "lims-results-written", time_zone=ws.time_zone, files={p.name: hashlib.sha256(p.read_bytes()).hexdigest()
                                                                 for p in written},
         decisions=len(pending), rows=len(rows))])
@@ -795,5 +798,6 @@ def assemble_intake(intake: Intake, catalog: Catalog) -> Assembly:
     """The night's parsed exports grouped by lot and plate (see pipeline.assembly)."""
     assembly = assemble(intake.parsed, [*intake.carried, *intake.quarantined], catalog)
     assembly.notes[:0] = intake.notes
-    intake.parsed = [dataclasses.replace(p, frame=p.frame.iloc[0:0]) for p in intake.parsed]  # keep names, not rows
+    # Keep names, not rows: a copied empty table, since an empty slice would still hold the rows' memory.
+    intake.parsed = [dataclasses.replace(p, frame=p.frame.iloc[0:0].copy()) for p in intake.parsed]
     return assembly

@@ -31,6 +31,7 @@ from sqlalchemy import (
     func,
     insert,
     select,
+    update,
 )
 from sqlalchemy.exc import SQLAlchemyError
 from sqlalchemy.orm import DeclarativeBase, Mapped, Session, mapped_column, sessionmaker
@@ -477,10 +478,22 @@ class Store:
         with self.session() as s:
             return list(s.scalars(select(DecisionRow).where(DecisionRow.lims_export.is_(None)).order_by(DecisionRow.id)))
 
+    def unexported_decision_ids(self) -> list[int]:
+        with self.session() as s:
+            return list(s.scalars(select(DecisionRow.id).where(DecisionRow.lims_export.is_(None))
+                                  .order_by(DecisionRow.id)))
+
+    def decisions_by_id(self, decision_ids: list[int]) -> list[DecisionRow]:
+        """These decisions, in the order of ``decision_ids`` (read in chunks by the caller to bound memory)."""
+        with self.session() as s:
+            rows = {row.id: row for row in s.scalars(select(DecisionRow).where(DecisionRow.id.in_(decision_ids)))}
+        return [rows[i] for i in decision_ids]
+
     def mark_exported(self, decision_ids: list[int], export_name: str, events: list[dict[str, Any]]) -> None:
         with self.session() as s:
-            for row in s.scalars(select(DecisionRow).where(DecisionRow.id.in_(decision_ids))):
-                row.lims_export = export_name
+            for start in range(0, len(decision_ids), 500):  # an UPDATE, not the rows loaded and written back
+                s.execute(update(DecisionRow).where(DecisionRow.id.in_(decision_ids[start:start + 500]))
+                          .values(lims_export=export_name).execution_options(synchronize_session=False))
             self.chain_events(s, events)
 
     def previous_decisions(self, lot_ids: list[str]) -> dict[str, DecisionRow]:
