@@ -48,11 +48,19 @@ def sync_log(store: Store, log_path: Path) -> int:
     """Append to the log every stored event after its last line; returns how many were written."""
     line, _ = ledger.last_line(log_path)
     last_seq = json.loads(line)["seq"] if line else 0
-    with store.session() as session:
-        rows = list(session.scalars(select(AuditEvent).where(AuditEvent.seq > last_seq).order_by(AuditEvent.seq)))
-    if rows:
-        ledger.append_chained(log_path, [json.loads(row.body) for row in rows])
-    return len(rows)
+    written = 0
+    while True:  # in pages: a large night closes with tens of thousands of events
+        with store.session() as session:
+            page = list(session.execute(select(AuditEvent.seq, AuditEvent.body).where(AuditEvent.seq > last_seq)
+                                        .order_by(AuditEvent.seq).limit(SYNC_PAGE_EVENTS)))
+        if not page:
+            return written
+        ledger.append_chained(log_path, [json.loads(body) for _, body in page])
+        written += len(page)
+        last_seq = page[-1][0]
+
+
+SYNC_PAGE_EVENTS = 2000
 
 
 @dataclass(frozen=True)

@@ -470,8 +470,10 @@ class Store:
 
     def record_files(self, night_id: int, files: list[dict[str, Any]], events: list[dict[str, Any]]) -> None:
         with self.session() as s:
-            for fields in files:
-                s.add(InputFile(night_id=night_id, received_at_utc=utcnow(), **fields))
+            if files:
+                now = utcnow()
+                s.execute(insert(InputFile), [{"night_id": night_id, "received_at_utc": now, **fields}
+                                              for fields in files])
             self.chain_events(s, events)
 
     def unexported_decisions(self) -> list[DecisionRow]:

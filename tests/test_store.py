@@ -186,3 +186,15 @@ def test_a_batch_that_fails_in_the_database_stores_nothing(url):
     with store.engine.connect() as connection:
         assert connection.execute(text("select count(*) from audit_events")).scalar() == 1
         assert connection.execute(text("select count(*) from lots")).scalar() == 1
+
+
+def test_the_log_is_brought_up_to_date_page_by_page(url, tmp_path, monkeypatch):
+    store = Store(url)
+    log = tmp_path / "decisions.jsonl"
+    store.add_events([audit.event("decision", time_zone="Europe/Berlin", lot_id=f"L-{i:03d}", n=i) for i in range(7)])
+    monkeypatch.setattr(audit, "SYNC_PAGE_EVENTS", 2)
+    assert audit.sync_log(store, log) == 7
+    assert [json.loads(line)["n"] for line in log.read_text().splitlines()] == list(range(7))
+    assert audit.sync_log(store, log) == 0
+    check = audit.verify_trail(store, log)
+    assert check.valid and check.store_records == check.log_records == 7
