@@ -1,8 +1,9 @@
 """``lotgate bench``: a night of N simulated lots, end to end, with per-stage figures and ratios.
 
-Prints wall time per stage, lots per second and peak memory; then, side by side, the Prefect
-flow against the same stages as plain calls, the batched kinetic fit against a loop of
-``scipy.optimize.curve_fit``, and certificate signing across all cores against one process.
+Prints wall time and peak memory per stage, lots per second and the peak memory of the whole
+process tree; then, side by side, the Prefect flow against the same stages as plain calls (each
+night in a fresh process), the batched kinetic fit against a loop of ``scipy.optimize.curve_fit``,
+and certificate signing across all cores against one process.
 No test asserts a time: these are measurements to read.
 """
 
@@ -282,9 +283,10 @@ def cmd_bench(args: argparse.Namespace) -> int:
 def add_commands(sub: argparse._SubParsersAction) -> None:
     bench = sub.add_parser("bench", help="measure a night of N simulated lots end to end",
                            description="Generate N lots with the demo simulator in a temporary workspace and run the "
-                                       "whole night on them; print time per stage, lots per second, peak memory, and "
-                                       "side-by-side ratios (flow vs plain calls, batched fit vs curve_fit loop, "
-                                       "signing on all cores vs one).")
+                                       "whole night on them, once as the Prefect flow and once as plain calls, each in "
+                                       "a fresh process; print time and peak memory per stage, lots per second, the "
+                                       "whole process tree's peak memory, and side-by-side ratios (flow vs plain "
+                                       "calls, batched fit vs curve_fit loop, signing on all cores vs one).")
     bench.add_argument("--lots", type=int, default=200, metavar="N", help="number of lots (default 200)")
     bench.add_argument("--json", action="store_true", help="end with one JSON line of the figures")
     bench.add_argument("--keep", action="store_true", help="keep the temporary workspaces")
