@@ -1,4 +1,4 @@
-"""Shared fixtures: quiet Prefect settings and one Prefect test harness per session."""
+"""Shared fixtures: quiet Prefect settings, one Prefect test harness per session, the example dossier."""
 
 import os
 
@@ -16,3 +16,10 @@ def prefect_harness():
 
     with prefect_test_harness(server_startup_timeout=120):
         yield
+
+
+@pytest.fixture()
+def dossier():
+    from tests.dossiers import example_dossier
+
+    return example_dossier()

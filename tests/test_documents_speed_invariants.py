@@ -9,29 +9,13 @@ compare bytes; and they check that a paragraph copied from a parsed one is indep
 from __future__ import annotations
 
 import copy
-import json
-from pathlib import Path
 from typing import Any
 
-import pytest
 from reportlab.pdfbase import pdfmetrics
 
 from pipeline.documents import certificate, render_batch_report, render_certificate, text
 from pipeline.documents.text import Paragraph, fonts, styles
-
-FIXTURE = Path(__file__).parent / "fixtures" / "dossier_example.json"
-SIGNATURE = {
-    "signer_name": "Mira Castellan",
-    "signed_at_local": "2026-11-27 23:14:05 CET (UTC+01:00)",
-    "signed_at_utc": "2026-11-27 22:14:05 UTC",
-    "meaning": "Released for sale",
-    "certificate_fingerprint": "3f9a0c7d1b2e4f5061728394a5b6c7d8e9f00112233445566778899aabbccdd",
-}
-
-
-@pytest.fixture()
-def dossier() -> dict[str, Any]:
-    return json.loads(FIXTURE.read_text(encoding="utf-8"))
+from tests.dossiers import SIGNATURE
 
 
 def forget_everything() -> None:
