@@ -15,7 +15,7 @@ from pathlib import Path
 import numpy as np
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))  # run from a checkout, not installed
-from pipeline.trend import ChartState, ControlLimits, imr_limits, rule_signals  # noqa: E402
+from pipeline.science.control_charts import ChartState, ControlLimits, imr_limits, rule_signals  # noqa: E402
 
 HISTORY_SIZES = (100, 10_000)
 NEW_LOTS = 200

@@ -92,8 +92,8 @@ class _MemoryWatch:
 
 
 def _workspace(root: Path, files: dict[str, bytes]) -> Path:
-    from pipeline import demo
-    from pipeline.workspace import atomic_write, write_settings
+    from pipeline.demo import plant as demo
+    from pipeline.records.workspace import atomic_write, write_settings
 
     write_settings(root, {"plant_name": demo.PLANT_NAME, "time_zone": demo.PLANT_TIME_ZONE,
                           "signing": {"signer_name": demo.DEMO_SIGNER}})
@@ -117,7 +117,7 @@ def _night(root: str, mode: str) -> None:
     start = time.perf_counter()
     with server_started_early(mode == "flow"):
         from flows import nightly
-        from pipeline import night
+        from pipeline.night import stages as night
     if mode == "flow":
         summary = nightly.nightly(root)
     else:
@@ -158,8 +158,8 @@ def _fit_comparison(lims_files: int) -> dict[str, Any]:
     import numpy as np
     from scipy.optimize import curve_fit
 
-    from pipeline import kinetics
-    from pipeline.demo import LIPASE
+    from pipeline.demo.plant import LIPASE
+    from pipeline.science import kinetics
 
     rng = np.random.default_rng(7)
     n_curves = max(200, lims_files)
@@ -184,7 +184,7 @@ def _fit_comparison(lims_files: int) -> dict[str, Any]:
 def _sign_chunk(args: tuple[str, str, list[bytes]]) -> int:
     import datetime as dt
 
-    from pipeline import signing
+    from pipeline.records import signing
 
     p12, passphrase_file, pdfs = args
     identity = signing.load_identity(Path(p12), passphrase_file=Path(passphrase_file))
@@ -221,7 +221,7 @@ def cmd_bench(args: argparse.Namespace) -> int:
 
     for noisy in ("pyhanko", "pyhanko_certvalidator"):
         logging.getLogger(noisy).setLevel(logging.CRITICAL)
-    from pipeline import demo
+    from pipeline.demo import plant as demo
 
     lots = int(args.lots)
     if lots < 2:

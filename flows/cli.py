@@ -70,8 +70,8 @@ def _run_night(workspace: Path, *, orchestrated: bool = True):
         logging.getLogger(noisy).setLevel(logging.CRITICAL)
     with server_started_early(orchestrated):
         from flows import nightly
-        from pipeline import night
-        from pipeline.runlock import run_lock
+        from pipeline.night import stages as night
+        from pipeline.records.run_lock import run_lock
 
         ws, store, signer = night.open_night(workspace)  # a bad set-up fails here, before any output
     labels = {"receive": "Reading and validating exports", "publish": "Reports, certificates and records"}
@@ -131,8 +131,8 @@ def print_summary(summary, console=None) -> None:
 
 
 def cmd_demo(args: argparse.Namespace) -> int:
-    from pipeline import demo
-    from pipeline.workspace import atomic_write, write_settings
+    from pipeline.demo import plant as demo
+    from pipeline.records.workspace import atomic_write, write_settings
 
     root = Path(args.workspace).expanduser().resolve()
     console = _console()
@@ -165,8 +165,8 @@ def cmd_run(args: argparse.Namespace) -> int:
 def cmd_verify(args: argparse.Namespace) -> int:
     import logging
 
-    from pipeline import ledger
-    from pipeline.signing import verify_pdf
+    from pipeline.records import ledger
+    from pipeline.records.signing import verify_pdf
 
     for noisy in ("pyhanko", "pyhanko_certvalidator"):
         logging.getLogger(noisy).setLevel(logging.CRITICAL)
@@ -242,7 +242,7 @@ def build_parser() -> argparse.ArgumentParser:
 
 def main(argv: list[str] | None = None) -> int:
     from pipeline.errors import LotgateError
-    from pipeline.runlock import RunLocked
+    from pipeline.records.run_lock import RunLocked
 
     args = build_parser().parse_args(argv)
     try:

@@ -15,11 +15,11 @@ from prefect import flow, task
 from prefect.cache_policies import NONE
 from prefect.utilities.annotations import quote
 
-from pipeline import night
-from pipeline.night import NightSummary
-from pipeline.runlock import run_lock
-from pipeline.store import Store
-from pipeline.workspace import Workspace
+from pipeline.night import stages as night
+from pipeline.night.stages import NightSummary
+from pipeline.records.run_lock import run_lock
+from pipeline.records.store import Store
+from pipeline.records.workspace import Workspace
 
 _PROGRESS: dict[str, Callable[[str, int, int], None]] = {}
 

@@ -17,8 +17,8 @@ def _console() -> Console:
 
 
 def _open(workspace: str):
-    from pipeline.store import Store
-    from pipeline.workspace import open_workspace
+    from pipeline.records.store import Store
+    from pipeline.records.workspace import open_workspace
 
     ws = open_workspace(Path(workspace).expanduser())
     if not (ws.root / "workspace.yaml").exists() and not os.environ.get("LOTGATE_DATABASE_URL") \
@@ -30,8 +30,8 @@ def _open(workspace: str):
 
 
 def cmd_keys_demo(args: argparse.Namespace) -> int:
-    from pipeline import signing
-    from pipeline.workspace import open_workspace
+    from pipeline.records import signing
+    from pipeline.records.workspace import open_workspace
 
     ws = open_workspace(Path(args.workspace).expanduser())
     folder = Path(args.out).expanduser() if args.out else ws.keys
@@ -51,7 +51,7 @@ def cmd_keys_demo(args: argparse.Namespace) -> int:
 
 
 def cmd_history(args: argparse.Namespace) -> int:
-    from pipeline.dossier import local_time_text
+    from pipeline.release.dossier import local_time_text
 
     ws, store = _open(args.workspace)
     rows = store.decisions(args.lot)
@@ -82,9 +82,9 @@ def _passphrase(args: argparse.Namespace) -> bytes | None:
 
 
 def cmd_decide(args: argparse.Namespace) -> int:
-    from pipeline import signing
-    from pipeline.person import decide_lot
-    from pipeline.runlock import run_lock
+    from pipeline.night.person_decision import decide_lot
+    from pipeline.records import signing
+    from pipeline.records.run_lock import run_lock
 
     ws, store = _open(args.workspace)
     identity = signing.load_identity(Path(args.identity), passphrase=_passphrase(args),
@@ -101,9 +101,9 @@ def cmd_decide(args: argparse.Namespace) -> int:
 
 def verify_trail_text(log_path: Path) -> tuple[bool, str] | None:
     """Check the log against its workspace's store, when the store can be found."""
-    from pipeline import audit
-    from pipeline.store import Store
-    from pipeline.workspace import open_workspace
+    from pipeline.records import audit
+    from pipeline.records.store import Store
+    from pipeline.records.workspace import open_workspace
 
     root = log_path.resolve().parent
     if not ((root / "workspace.yaml").exists() or (root / "lotgate.db").exists()):

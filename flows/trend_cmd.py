@@ -27,8 +27,8 @@ def _refuse(command: str, exc: Exception | str) -> int:
 
 def _open(workspace: str) -> tuple[Any, Any]:
     """The workspace and its store; refuses a folder that holds no store yet."""
-    from pipeline.store import Store
-    from pipeline.workspace import open_workspace
+    from pipeline.records.store import Store
+    from pipeline.records.workspace import open_workspace
 
     root = Path(workspace).expanduser()
     if not root.is_dir():
@@ -43,7 +43,7 @@ def _open(workspace: str) -> tuple[Any, Any]:
 
 def _attribute(product: str, code: str) -> Any:
     """The trended attribute of a product's specification, or a SpecificationError naming the choices."""
-    from pipeline.catalog import load_catalog
+    from pipeline.records.controlled_files import load_catalog
 
     catalog = load_catalog()
     method = catalog.methods.get(product)
@@ -162,10 +162,10 @@ def _limit_text(view: Any) -> str:
 
 def cmd_trend(args: argparse.Namespace) -> int:
     """Print a chart's numbers and write its PNG and PDF."""
-    from pipeline.chart_queries import chart_history
-    from pipeline.chartview import build_chart_view
     from pipeline.documents.trend_figure import figure_pdf, figure_png
-    from pipeline.workspace import atomic_write
+    from pipeline.records.chart_queries import chart_history
+    from pipeline.records.workspace import atomic_write
+    from pipeline.release.chart_view import build_chart_view
 
     try:
         if args.window < 1:
@@ -213,10 +213,10 @@ def cmd_rebaseline(args: argparse.Namespace) -> int:
     DIR/decisions.jsonl, hash-chained like every record there. The night's run lock is held
     throughout, so a night cannot judge lots while the limits change.
     """
-    from pipeline import audit
-    from pipeline.chart_queries import active_limits, released_count, released_points
-    from pipeline.chartview import propose_limits, select_baseline
-    from pipeline.runlock import run_lock
+    from pipeline.records import audit
+    from pipeline.records.chart_queries import active_limits, released_count, released_points
+    from pipeline.records.run_lock import run_lock
+    from pipeline.release.chart_view import propose_limits, select_baseline
 
     try:
         reason = (args.reason or "").strip()

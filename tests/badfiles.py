@@ -29,7 +29,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from pipeline import demo
+from pipeline.demo import plant as demo
 
 # ------------------------------------------------------------------------------ expectations
 

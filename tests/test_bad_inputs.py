@@ -19,11 +19,11 @@ import pytest
 from badfiles import Catalogue, Held, Noted, Quarantined, Read, Released, build_catalogue
 
 from flows.nightly import run_stages
-from pipeline.ingest import ExportRejected, parse_export
-from pipeline.layouts import load_layouts
-from pipeline.night import open_night
-from pipeline.store import Store
-from pipeline.workspace import write_settings
+from pipeline.intake.layouts import load_layouts
+from pipeline.intake.validation import ExportRejected, parse_export
+from pipeline.night.stages import open_night
+from pipeline.records.store import Store
+from pipeline.records.workspace import write_settings
 
 LAYOUTS = load_layouts(Path(__file__).resolve().parents[1] / "schemas")
 CATALOGUE: Catalogue = build_catalogue()

@@ -12,7 +12,9 @@ import json
 
 import pytest
 
-from pipeline.chartview import (
+from pipeline.controlled.specs import Attribute
+from pipeline.errors import CalculationError
+from pipeline.release.chart_view import (
     OTHER_CHART_TREND,
     ChartHistory,
     HeldPoint,
@@ -24,9 +26,7 @@ from pipeline.chartview import (
     zone_of,
     zone_text,
 )
-from pipeline.errors import CalculationError
-from pipeline.model import INCOMPLETE, OUT_OF_SPECIFICATION, OUT_OF_TREND
-from pipeline.specs import Attribute
+from pipeline.vocabulary import INCOMPLETE, OUT_OF_SPECIFICATION, OUT_OF_TREND
 
 ATTRIBUTE = Attribute(code="specific_activity", title="Specific activity", source="specific_activity",
                       unit="U/mg", digits=1, minimum=5.0, maximum=20.0, trend=True,

@@ -11,10 +11,11 @@ from collections import Counter
 
 import pytest
 
-from pipeline import audit, demo
-from pipeline.signing import verify_pdf
-from pipeline.store import Store
-from pipeline.workspace import atomic_write, open_workspace, write_settings
+from pipeline.demo import plant as demo
+from pipeline.records import audit
+from pipeline.records.signing import verify_pdf
+from pipeline.records.store import Store
+from pipeline.records.workspace import atomic_write, open_workspace, write_settings
 
 pytestmark = pytest.mark.slow
 
@@ -141,7 +142,7 @@ def test_a_night_cut_between_publishing_and_closing_decides_nothing_twice(night,
     """Deterministic form of the kill above that once found a duplicate: the interrupted night
     had already quarantined a lot's export, which the restart must still count as that lot's."""
     from flows import nightly
-    from pipeline import night as stages
+    from pipeline.night import stages
 
     root = tmp_path / "cut"
     _workspace(root, night)
@@ -167,7 +168,7 @@ def test_a_window_that_fails_to_commit_is_decided_once_on_the_restart(tmp_path, 
     A failure after a window's documents are written, before its commit, leaves documents
     without decisions; the restart decides exactly those lots, once, and rewrites their files."""
     from flows import nightly
-    from pipeline import night as stages
+    from pipeline.night import stages
 
     night = demo.build_scenario(nights=1, lipase_per_night=16, protease_per_night=10)[0]
     root = tmp_path / "window"

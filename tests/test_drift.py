@@ -15,11 +15,12 @@ import datetime as dt
 import numpy as np
 import pytest
 
-from pipeline.decide import Chart, decide_night
-from pipeline.lots import LotEvaluation
-from pipeline.model import OUT_OF_SPECIFICATION, OUT_OF_TREND, RELEASED, AttributeVerdict
-from pipeline.specs import parse_specification
-from pipeline.verdicts import judge_numeric
+from pipeline.controlled.specs import parse_specification
+from pipeline.release.decision import Chart, decide_night
+from pipeline.release.lot_evaluation import LotEvaluation
+from pipeline.release.records import AttributeVerdict
+from pipeline.release.verdicts import judge_numeric
+from pipeline.vocabulary import OUT_OF_SPECIFICATION, OUT_OF_TREND, RELEASED
 
 SPEC = parse_specification({
     "kind": "product-specification", "product_code": "SIM-1", "product_name": "Simulated lipase",

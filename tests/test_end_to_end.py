@@ -8,10 +8,11 @@ import sys
 import pytest
 
 from flows import nightly
-from pipeline import demo, ledger
-from pipeline.signing import pdfsig_report, verify_pdf
-from pipeline.store import Store
-from pipeline.workspace import atomic_write, open_workspace, write_settings
+from pipeline.demo import plant as demo
+from pipeline.records import ledger
+from pipeline.records.signing import pdfsig_report, verify_pdf
+from pipeline.records.store import Store
+from pipeline.records.workspace import atomic_write, open_workspace, write_settings
 
 pytestmark = pytest.mark.slow
 
@@ -128,8 +129,8 @@ def test_revision_chain_original_reassay_and_a_persons_release(demo_workspace, t
     import datetime as dt
 
     from flows import records_cmd
-    from pipeline import signing
-    from pipeline.person import decide_lot
+    from pipeline.night.person_decision import decide_lot
+    from pipeline.records import signing
 
     root, nights, _ = demo_workspace
     lot = "LLC-2611-030"

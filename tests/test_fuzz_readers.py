@@ -30,9 +30,9 @@ from badfiles import (
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from pipeline import demo
-from pipeline.ingest import ExportRejected, ParsedExport, parse_export
-from pipeline.layouts import load_layouts
+from pipeline.demo import plant as demo
+from pipeline.intake.layouts import load_layouts
+from pipeline.intake.validation import ExportRejected, ParsedExport, parse_export
 
 LAYOUTS = load_layouts(Path(__file__).resolve().parents[1] / "schemas")
 TEMPLATES = {

@@ -28,11 +28,11 @@ from badfiles import (
 from pypdf import PdfReader
 
 from flows.nightly import run_stages
-from pipeline import demo
-from pipeline.ingest import ExportRejected, parse_export
-from pipeline.layouts import load_layouts
-from pipeline.night import csv_cell, open_night
-from pipeline.workspace import write_settings
+from pipeline.demo import plant as demo
+from pipeline.intake.layouts import load_layouts
+from pipeline.intake.validation import ExportRejected, parse_export
+from pipeline.night.stages import csv_cell, open_night
+from pipeline.records.workspace import write_settings
 
 LAYOUTS = load_layouts(Path(__file__).resolve().parents[1] / "schemas")
 DATE = dt.date(2027, 9, 6)

@@ -4,8 +4,8 @@ from pathlib import Path
 
 import pytest
 
-from pipeline.ingest import ExportRejected, parse_export
-from pipeline.layouts import load_layouts
+from pipeline.intake.layouts import load_layouts
+from pipeline.intake.validation import ExportRejected, parse_export
 
 LAYOUTS = load_layouts(Path(__file__).resolve().parents[1] / "schemas")
 LIMS_HEADER = "lot_id,test_code,result,unit,tested_on,analyst\n"

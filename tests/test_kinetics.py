@@ -8,7 +8,7 @@ import pytest
 from scipy.optimize import curve_fit
 
 from pipeline.errors import CalculationError
-from pipeline.kinetics import (
+from pipeline.science.kinetics import (
     MICHAELIS_MENTEN,
     SUBSTRATE_INHIBITION,
     MichaelisMentenFit,

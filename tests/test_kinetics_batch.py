@@ -7,14 +7,14 @@ import numpy as np
 import pytest
 
 from pipeline.errors import CalculationError
-from pipeline.kinetics import (
+from pipeline.science.kinetics import (
     MICHAELIS_MENTEN,
     SUBSTRATE_INHIBITION,
     SubstrateInhibitionFit,
     choose_kinetic_model,
     fit_substrate_inhibition,
 )
-from pipeline.kinetics_batch import (
+from pipeline.science.kinetics_batch import (
     BATCH_NOT_FITTED,
     choose_kinetic_models,
     fit_substrate_inhibition_batch,

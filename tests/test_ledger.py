@@ -4,7 +4,7 @@ import json
 
 import pytest
 
-from pipeline import ledger
+from pipeline.records import ledger
 
 
 @pytest.fixture
@@ -63,11 +63,11 @@ def test_results_become_json_values_whatever_their_numeric_type():
     # scalars become Python numbers and tuples become lists, at any depth.
     import numpy as np
 
-    from pipeline.model import _clean
+    from pipeline.plain_data import to_plain
 
     value = {"a": np.float64(1.5), "b": (np.int64(2), float("nan")), 3: [np.float32(np.inf), {"c": True}],
              "d": None, "e": "text", "f": -float("inf")}
-    cleaned = _clean(value)
+    cleaned = to_plain(value)
     assert cleaned == {"a": 1.5, "b": [2, None], "3": [None, {"c": True}], "d": None, "e": "text", "f": None}
     assert type(cleaned["a"]) is float and type(cleaned["b"][0]) is int
     assert json.loads(json.dumps(cleaned, allow_nan=False)) == cleaned

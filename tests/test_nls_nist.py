@@ -6,7 +6,7 @@ import numpy as np
 import pytest
 
 from pipeline.errors import CalculationError
-from pipeline.nls import fit_least_squares
+from pipeline.science.least_squares import fit_least_squares
 
 # NIST StRD nonlinear regression, data set MGH09 (Kowalik & Osborne 1978), "higher difficulty":
 # y = b1 (x^2 + x b2) / (x^2 + x b3 + b4). Data, start 2 and certified values as published by

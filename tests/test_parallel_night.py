@@ -2,8 +2,9 @@
 
 import pandas as pd
 
-from pipeline import demo, night
-from pipeline.ingest import ExportRejected
+from pipeline.demo import plant as demo
+from pipeline.intake.validation import ExportRejected
+from pipeline.night import stages as night
 
 
 def _inbox(tmp_path):

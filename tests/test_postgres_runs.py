@@ -8,8 +8,8 @@ import time
 import pytest
 from sqlalchemy import create_engine, text
 
-from pipeline import demo
-from pipeline.workspace import atomic_write, write_settings
+from pipeline.demo import plant as demo
+from pipeline.records.workspace import atomic_write, write_settings
 from tests.pg import fresh_database
 
 pytestmark = [pytest.mark.slow, pytest.mark.postgres]
@@ -51,8 +51,8 @@ def _workspace(root):
 
 
 def test_a_run_while_another_holds_the_lock_stops_before_touching_anything(pg_url, tmp_path):
-    from pipeline.runlock import run_lock
-    from pipeline.store import Store
+    from pipeline.records.run_lock import run_lock
+    from pipeline.records.store import Store
 
     root = tmp_path / "w"
     night = _workspace(root)

@@ -9,7 +9,7 @@ import numpy as np
 import pytest
 
 from pipeline.errors import CalculationError, SpecificationError
-from pipeline.protein import (
+from pipeline.science.standard_curves import (
     back_calculate,
     fit_standard_curve,
     protein_from_a280,

@@ -3,8 +3,8 @@
 import pandas as pd
 import pytest
 
-from pipeline.catalog import load_catalog
-from pipeline.plates import evaluate_protein_plate
+from pipeline.assay.plates import evaluate_protein_plate
+from pipeline.records.controlled_files import load_catalog
 
 METHOD = load_catalog().protein_method("PROT-A280")
 # A 1 mg/mL solution of bovine serum albumin has A280 ≈ 0.66 in 1 cm (common practice; the

@@ -15,7 +15,7 @@ from hypothesis import strategies as st
 from scipy.special import lambertw
 
 from pipeline.errors import CalculationError, InputError, SpecificationError
-from pipeline.rates import (
+from pipeline.science.rates import (
     RateWindowSettings,
     all_wells,
     blank_corrected,

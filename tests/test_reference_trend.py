@@ -7,10 +7,11 @@ The recoveries are SIMULATED (invented); the rule is Nelson's rule 1, one point 
 import dataclasses
 import datetime as dt
 
-from pipeline.catalog import load_catalog
-from pipeline.decide import Chart, decide_night
-from pipeline.lots import LotEvaluation
-from pipeline.model import OUT_OF_TREND, RELEASED, AttributeVerdict
+from pipeline.records.controlled_files import load_catalog
+from pipeline.release.decision import Chart, decide_night
+from pipeline.release.lot_evaluation import LotEvaluation
+from pipeline.release.records import AttributeVerdict
+from pipeline.vocabulary import OUT_OF_TREND, RELEASED
 
 CATALOG = load_catalog()
 SPEC = CATALOG.specifications["LLC-200"]

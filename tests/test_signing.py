@@ -28,7 +28,7 @@ from pyhanko.pdf_utils.incremental_writer import IncrementalPdfFileWriter
 from reportlab.pdfgen import canvas
 
 from pipeline.errors import SigningError
-from pipeline.signing import (
+from pipeline.records.signing import (
     DemoIdentity,
     create_demo_identity,
     load_identity,

@@ -5,8 +5,8 @@ import json
 import pytest
 from sqlalchemy import create_engine, text
 
-from pipeline import audit, ledger
-from pipeline.store import Store
+from pipeline.records import audit, ledger
+from pipeline.records.store import Store
 from tests.pg import fresh_database
 
 
@@ -42,7 +42,7 @@ def test_a_database_of_the_previous_version_upgrades_with_its_data(url):
     from alembic import command
     from alembic.config import Config
 
-    from pipeline.store import MIGRATIONS
+    from pipeline.records.store import MIGRATIONS
     config = Config()
     config.set_main_option("script_location", str(MIGRATIONS))
     with engine.begin() as connection:
@@ -137,7 +137,7 @@ def test_a_crash_between_store_and_log_is_mended_on_the_next_write(url, tmp_path
 
 
 def _write(lot, fingerprint, *, chart_value=None, events=True):
-    from pipeline.store import DecisionWrite
+    from pipeline.records.store import DecisionWrite
 
     return DecisionWrite(
         lot_id=lot, product_code="LLC-200", manufactured_on="2026-11-25", night_id=None,

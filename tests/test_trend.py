@@ -13,7 +13,7 @@ import numpy as np
 import pytest
 
 from pipeline.errors import CalculationError, SpecificationError
-from pipeline.trend import (
+from pipeline.science.control_charts import (
     D2_N2,
     D4_N2,
     ChartState,

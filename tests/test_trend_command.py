@@ -18,8 +18,8 @@ from pathlib import Path
 import pytest
 
 from flows.trend_cmd import add_commands, cmd_rebaseline, cmd_trend
-from pipeline import audit, ledger
-from pipeline.store import Store
+from pipeline.records import audit, ledger
+from pipeline.records.store import Store
 
 REPO = Path(__file__).resolve().parents[1]
 PRODUCT, ATTR = "LLC-200", "specific_activity"  # a charted attribute of specs/products/LLC-200.yaml

@@ -8,7 +8,7 @@ from hypothesis import given
 from hypothesis import strategies as st
 
 from pipeline.errors import CalculationError
-from pipeline.units import (
+from pipeline.science.units import (
     NKAT_PER_U,
     activity_u_per_ml,
     nkat_to_u,

@@ -2,9 +2,11 @@
 
 import pytest
 
-from pipeline.model import FAIL, INVALID, MISSING, PASS, Measurement, TrendFinding
-from pipeline.specs import Attribute
-from pipeline.verdicts import disposition, judge_lims, judge_measurement, round_half_up
+from pipeline.controlled.specs import Attribute
+from pipeline.release.records import TrendFinding
+from pipeline.release.verdicts import disposition, judge_lims, judge_measurement, round_half_up
+from pipeline.science.measurement import Measurement
+from pipeline.vocabulary import FAIL, INVALID, MISSING, PASS
 
 MIN_150 = Attribute(code="specific_activity", title="Specific activity", source="specific_activity",
                     unit="U/mg", digits=0, minimum=150.0, maximum=260.0)

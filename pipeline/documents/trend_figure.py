@@ -18,8 +18,14 @@ from matplotlib.lines import Line2D
 from matplotlib.patches import Patch
 from matplotlib.transforms import blended_transform_factory
 
-from pipeline.chartview import OTHER_CHART_TREND, ChartRow, ChartView
-from pipeline.model import INCOMPLETE, INVALID_ASSAY, OUT_OF_SPECIFICATION, OUT_OF_TREND, RELEASED
+from pipeline.release.chart_view import OTHER_CHART_TREND, ChartRow, ChartView
+from pipeline.vocabulary import (
+    INCOMPLETE,
+    INVALID_ASSAY,
+    OUT_OF_SPECIFICATION,
+    OUT_OF_TREND,
+    RELEASED,
+)
 
 
 @dataclass(frozen=True)

@@ -20,7 +20,7 @@ from numpy.typing import ArrayLike, NDArray
 from scipy import stats
 
 from pipeline.errors import CalculationError
-from pipeline.kinetics import (
+from pipeline.science.kinetics import (
     BATCH_CONVERGED,
     BATCH_NOT_CONVERGED,
     BATCH_TOO_FEW_LEVELS,
@@ -35,7 +35,7 @@ from pipeline.kinetics import (
     michaelis_menten_start,
     model_choice,
 )
-from pipeline.nls import jsonable
+from pipeline.science.least_squares import jsonable
 
 FloatArray = NDArray[np.float64]
 BoolArray = NDArray[np.bool_]

@@ -21,25 +21,33 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Protocol
 
-from pipeline import __version__, audit
-from pipeline.assembly import Assembly, QuarantinedFile, assemble
-from pipeline.catalog import Catalog, load_catalog, schemas_dir, sha256_file
-from pipeline.decide import CHART_TAIL, Chart, FrozenLimits, LotDecision, decide_night
-from pipeline.dossier import build_dossier, local_time_text
-from pipeline.errors import InputError, SigningError
-from pipeline.ingest import ExportRejected, ParsedExport, parse_exports
-from pipeline.layouts import ExportLayout, layout_for, load_layouts
-from pipeline.lots import LotEvaluation, LotInputs, evaluate_lots
-from pipeline.model import RELEASED
-from pipeline.plates import (
+from pipeline import __version__
+from pipeline.assay.plates import (
     ActivityPlateResult,
     ProteinPlateResult,
     evaluate_activity_plate,
     evaluate_protein_plate,
 )
-from pipeline.specs import KineticMethod, ProteinMethod
-from pipeline.store import DecisionWrite, Store
-from pipeline.workspace import Workspace, atomic_write, move_into, open_workspace, unique_target
+from pipeline.controlled.catalog import Catalog
+from pipeline.controlled.specs import KineticMethod, ProteinMethod
+from pipeline.errors import InputError, SigningError
+from pipeline.intake.assembly import Assembly, QuarantinedFile, assemble
+from pipeline.intake.layouts import ExportLayout, layout_for, load_layouts
+from pipeline.intake.validation import ExportRejected, ParsedExport, parse_exports
+from pipeline.records import audit
+from pipeline.records.controlled_files import load_catalog, schemas_dir, sha256_file
+from pipeline.records.store import DecisionWrite, Store
+from pipeline.records.workspace import (
+    Workspace,
+    atomic_write,
+    move_into,
+    open_workspace,
+    unique_target,
+)
+from pipeline.release.decision import CHART_TAIL, Chart, FrozenLimits, LotDecision, decide_night
+from pipeline.release.dossier import build_dossier, local_time_text
+from pipeline.release.lot_evaluation import LotEvaluation, LotInputs, evaluate_lots
+from pipeline.vocabulary import RELEASED
 
 Progress = Callable[[str, int, int], None]
 
@@ -173,8 +181,8 @@ def process_pool(cores: int, initializer: Callable[..., None] | None = None,
     from concurrent.futures import ProcessPoolExecutor
 
     context = multiprocessing.get_context("forkserver")
-    context.set_forkserver_preload(["pipeline.night", "pipeline.documents.report", "pipeline.documents.certificate",
-                                    "pipeline.signing"])
+    context.set_forkserver_preload(["pipeline.night.stages", "pipeline.documents.report", "pipeline.documents.certificate",
+                                    "pipeline.records.signing"])
     return ProcessPoolExecutor(max_workers=cores, mp_context=context, initializer=initializer, initargs=initargs)
 
 
@@ -570,7 +578,7 @@ class IdentitySigner:
         return str(self.identity.fingerprint_sha256)
 
     def sign(self, pdf: bytes, *, signed_at: dt.datetime, reason: str, location: str) -> bytes:
-        from pipeline.signing import sign_pdf
+        from pipeline.records.signing import sign_pdf
 
         return sign_pdf(pdf, self.identity, reason=reason, location=location, signed_at=signed_at)
 
@@ -688,7 +696,7 @@ def close(ws: Workspace, store: Store, intake: Intake, outcomes: list[Outcome], 
 
 def signer_for(ws: Workspace) -> IdentitySigner:
     """The workspace's signing identity: its own PKCS#12, or the demo identity when asked for."""
-    from pipeline import signing
+    from pipeline.records import signing
 
     settings_demo = ws.signing_p12 is None and (ws.keys / "use-demo-identity").exists()
     if ws.signing_p12 is not None:

@@ -19,11 +19,12 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from pipeline import trend
-from pipeline.decide import RULE_NAMES
+from pipeline.controlled.specs import Attribute
 from pipeline.errors import CalculationError
-from pipeline.model import HOLD_ORDER, OUT_OF_TREND, RELEASED, _clean
-from pipeline.specs import Attribute
+from pipeline.plain_data import to_plain
+from pipeline.release.decision import RULE_NAMES
+from pipeline.science import control_charts as trend
+from pipeline.vocabulary import HOLD_ORDER, OUT_OF_TREND, RELEASED
 
 _RULE_IN_TEXT = re.compile(r"Nelson rule (\d)")
 
@@ -59,7 +60,7 @@ class StoredLimits:
         return trend.D4_N2 * self.mr_bar
 
     def to_dict(self) -> dict[str, object]:
-        return _clean({"version": self.version, "center": self.center, "sigma": self.sigma,
+        return to_plain({"version": self.version, "center": self.center, "sigma": self.sigma,
                        "mr_bar": self.mr_bar, "ucl": self.ucl, "lcl": self.lcl,
                        "mr_ucl": self.mr_ucl, "baseline_lots": list(self.baseline_lots),
                        "frozen_at_utc": self.frozen_at_utc, "frozen_by": self.frozen_by,
@@ -124,7 +125,7 @@ class ChartRow:
     signal_notes: tuple[str, ...]
 
     def to_dict(self) -> dict[str, object]:
-        return _clean({"position": self.position, "lot_id": self.lot_id, "value": self.value,
+        return to_plain({"position": self.position, "lot_id": self.lot_id, "value": self.value,
                        "disposition": self.disposition, "category": self.category,
                        "released": self.released, "baseline": self.baseline, "zone": self.zone,
                        "zone_text": self.zone_text, "sigma_units": self.sigma_units,
@@ -142,7 +143,7 @@ class MovingRange:
     beyond_ucl: bool
 
     def to_dict(self) -> dict[str, object]:
-        return _clean({"position": self.position, "lot_id": self.lot_id,
+        return to_plain({"position": self.position, "lot_id": self.lot_id,
                        "moving_range": self.moving_range, "beyond_ucl": self.beyond_ucl})
 
 
@@ -193,7 +194,7 @@ class ChartView:
         return self.limits is not None
 
     def to_dict(self) -> dict[str, object]:
-        return _clean({
+        return to_plain({
             "product_code": self.product_code, "attribute": self.attribute, "title": self.title,
             "unit": self.unit, "digits": self.digits, "lsl": self.lsl, "usl": self.usl,
             "rules": list(self.rules), "baseline_n": self.baseline_n,
@@ -368,7 +369,7 @@ class RebaselineProposal:
     limits: trend.ControlLimits
 
     def to_dict(self) -> dict[str, object]:
-        return _clean({"lots": list(self.lots), "values": list(self.values),
+        return to_plain({"lots": list(self.lots), "values": list(self.values),
                        "limits": self.limits.to_dict()})
 
 

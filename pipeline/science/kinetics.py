@@ -23,7 +23,7 @@ from numpy.typing import ArrayLike, NDArray
 from scipy import stats
 
 from pipeline.errors import CalculationError
-from pipeline.nls import NLSResult, fit_least_squares, jsonable
+from pipeline.science.least_squares import NLSResult, fit_least_squares, jsonable
 
 FloatArray = NDArray[np.float64]
 

@@ -37,7 +37,7 @@ import pandas as pd
 import pandera.pandas as pa
 
 from pipeline.errors import InputError
-from pipeline.layouts import ExportLayout, layout_for
+from pipeline.intake.layouts import ExportLayout, layout_for
 
 MAX_PROBLEMS_LISTED = 20
 MAX_PER_KIND = 50  # problems of one code kept per file (a broken file is not listed row by row)

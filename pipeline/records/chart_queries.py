@@ -11,10 +11,10 @@ from typing import Any
 
 from sqlalchemy import func, select
 
-from pipeline.chartview import ChartHistory, HeldPoint, ReleasedPoint, StoredLimits
-from pipeline.model import OUT_OF_TREND, RELEASED
-from pipeline.store import ChartPoint, ControlLimitRow, DecisionRow, Lot, ResultRow, Store
-from pipeline.trend import HISTORY_POINTS
+from pipeline.records.store import ChartPoint, ControlLimitRow, DecisionRow, Lot, ResultRow, Store
+from pipeline.release.chart_view import ChartHistory, HeldPoint, ReleasedPoint, StoredLimits
+from pipeline.science.control_charts import HISTORY_POINTS
+from pipeline.vocabulary import OUT_OF_TREND, RELEASED
 
 
 def _utc_text(when: dt.datetime | None) -> str:

@@ -369,7 +369,7 @@ class Store:
 
     def chain_events(self, session: Session, events: list[dict[str, Any]]) -> list[dict[str, Any]]:
         """Chain audit ``events`` after the last stored one, inside the caller's transaction."""
-        from pipeline import ledger
+        from pipeline.records import ledger
 
         if not events:
             return []

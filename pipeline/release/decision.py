@@ -15,11 +15,12 @@ import json
 from dataclasses import dataclass, field
 from typing import Any
 
-from pipeline import trend
-from pipeline.lots import LotEvaluation
-from pipeline.model import HELD, PASS, RELEASED, REVIEW_REQUIRED, Decision, TrendFinding
-from pipeline.specs import Attribute, Specification
-from pipeline.verdicts import disposition
+from pipeline.controlled.specs import Attribute, Specification
+from pipeline.release.lot_evaluation import LotEvaluation
+from pipeline.release.records import Decision, TrendFinding
+from pipeline.release.verdicts import disposition
+from pipeline.science import control_charts as trend
+from pipeline.vocabulary import HELD, PASS, RELEASED, REVIEW_REQUIRED
 
 RULE_NAMES = {
     1: "one point beyond 3σ",

@@ -28,10 +28,10 @@ from typing import Any
 
 import pandas as pd
 
-from pipeline.catalog import Catalog
-from pipeline.ingest import PLATE_GEOMETRY, ParsedExport
-from pipeline.lots import LimsEntry, LotInputs
-from pipeline.specs import KineticMethod
+from pipeline.controlled.catalog import Catalog
+from pipeline.controlled.specs import KineticMethod
+from pipeline.intake.validation import PLATE_GEOMETRY, ParsedExport
+from pipeline.release.lot_evaluation import LimsEntry, LotInputs
 
 LOT_ID = re.compile(r"[A-Z0-9][A-Z0-9-]{2,31}")  # the lot_id pattern of the export layouts
 _TOKEN = re.compile(r"[A-Za-z0-9][A-Za-z0-9-]*")

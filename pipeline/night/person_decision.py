@@ -13,13 +13,13 @@ import json
 from dataclasses import dataclass
 from typing import Any
 
-from pipeline import audit, ledger
-from pipeline.dossier import local_time_text
 from pipeline.errors import InputError
-from pipeline.model import FAIL, REPORTED
-from pipeline.signing import SigningIdentity, sign_pdf, sign_record
-from pipeline.store import Store
-from pipeline.workspace import Workspace, atomic_write
+from pipeline.records import audit, ledger
+from pipeline.records.signing import SigningIdentity, sign_pdf, sign_record
+from pipeline.records.store import Store
+from pipeline.records.workspace import Workspace, atomic_write
+from pipeline.release.dossier import local_time_text
+from pipeline.vocabulary import FAIL, REPORTED
 
 RELEASE_MEANING = ("Release of the lot by an authorised person: I have reviewed the lot's results, its hold "
                    "and its investigation, and I approve its release against the stated specification")

@@ -6,9 +6,9 @@ import datetime as dt
 from typing import Any
 from zoneinfo import ZoneInfo
 
-from pipeline.decide import LotDecision
-from pipeline.model import _clean
-from pipeline.specs import KineticMethod, ProteinMethod, Specification
+from pipeline.controlled.specs import KineticMethod, ProteinMethod, Specification
+from pipeline.plain_data import to_plain
+from pipeline.release.decision import LotDecision
 
 CAUTION = (
     "Caution: this document supports, and never replaces, the authorised person who decides on a "
@@ -30,7 +30,7 @@ def build_dossier(item: LotDecision, spec: Specification, activity_method: Kinet
                   protein_method: ProteinMethod | None, *, plant_name: str, time_zone: str,
                   revision: int, decided_at: dt.datetime) -> dict[str, Any]:
     evaluation, decision = item.evaluation, item.decision
-    return _clean({
+    return to_plain({
         "plant": {"name": plant_name, "time_zone": time_zone},
         "lot": {"lot_id": evaluation.lot_id, "product_code": spec.product_code, "product_name": spec.product_name,
                 "manufactured_on": evaluation.manufactured_on, "assay_date": evaluation.assay_date},

@@ -15,14 +15,17 @@ from typing import Any
 
 import numpy as np
 
-from pipeline import kinetics
+from pipeline.assay.plates import ActivityPlateResult, KineticSeries, ProteinPlateResult
+from pipeline.controlled.specs import KineticMethod, Specification
 from pipeline.errors import CalculationError
-from pipeline.kinetics import KineticModelChoice
-from pipeline.kinetics_batch import choose_kinetic_models
-from pipeline.model import REPORTED, AttributeVerdict, Measurement, _clean
-from pipeline.plates import ActivityPlateResult, KineticSeries, ProteinPlateResult
-from pipeline.specs import KineticMethod, Specification
-from pipeline.verdicts import judge_lims, judge_measurement
+from pipeline.plain_data import to_plain
+from pipeline.release.records import AttributeVerdict
+from pipeline.release.verdicts import judge_lims, judge_measurement
+from pipeline.science import kinetics
+from pipeline.science.kinetics import KineticModelChoice
+from pipeline.science.kinetics_batch import choose_kinetic_models
+from pipeline.science.measurement import Measurement
+from pipeline.vocabulary import REPORTED
 
 
 @dataclass(frozen=True)
@@ -242,6 +245,6 @@ def evaluate_lots(lots: list[LotInputs], specifications: dict[str, Specification
         evaluations.append(LotEvaluation(
             lot_id=lot.lot_id, product_code=lot.product_code, manufactured_on=lot.manufactured_on,
             assay_date=lot.assay_date, measurements=measurements, verdicts=tuple(verdicts),
-            incomplete=tuple(incomplete), kinetics=_clean(kinetic_detail) if kinetic_detail else None,
+            incomplete=tuple(incomplete), kinetics=to_plain(kinetic_detail) if kinetic_detail else None,
             plates=plates, input_files=dict(lot.input_files), report=report))  # shared, already JSON-clean
     return evaluations

@@ -4,21 +4,21 @@ from __future__ import annotations
 
 import hashlib
 import os
-from dataclasses import dataclass
 from pathlib import Path
 
 import yaml
 
-from pipeline.errors import SpecificationError
-from pipeline.specs import (
+from pipeline.controlled.catalog import Catalog
+from pipeline.controlled.specs import (
     KineticMethod,
     ProteinMethod,
     Specification,
     parse_method,
     parse_specification,
 )
+from pipeline.errors import SpecificationError
 
-REPO_ROOT = Path(__file__).resolve().parents[1]
+REPO_ROOT = Path(__file__).resolve().parents[2]
 
 
 def specs_dir() -> Path:
@@ -46,26 +46,6 @@ def _read_yaml(path: Path) -> tuple[dict, str]:
     if not isinstance(raw, dict):
         raise SpecificationError(f"{path.name}: expected a mapping at the top level")
     return raw, hashlib.sha256(data).hexdigest()
-
-
-@dataclass(frozen=True)
-class Catalog:
-    """Every specification and method in force, keyed by product code and method id."""
-
-    specifications: dict[str, Specification]
-    methods: dict[str, KineticMethod | ProteinMethod]
-
-    def kinetic_method(self, method_id: str) -> KineticMethod:
-        method = self.methods.get(method_id)
-        if not isinstance(method, KineticMethod):
-            raise SpecificationError(f"no kinetic assay method '{method_id}' under specs/methods")
-        return method
-
-    def protein_method(self, method_id: str) -> ProteinMethod:
-        method = self.methods.get(method_id)
-        if not isinstance(method, ProteinMethod):
-            raise SpecificationError(f"no protein method '{method_id}' under specs/methods")
-        return method
 
 
 def load_catalog(root: Path | None = None) -> Catalog:

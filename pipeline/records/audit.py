@@ -17,8 +17,8 @@ from zoneinfo import ZoneInfo
 
 from sqlalchemy import select
 
-from pipeline import ledger
-from pipeline.store import AuditEvent, Store
+from pipeline.records import ledger
+from pipeline.records.store import AuditEvent, Store
 
 
 def now_utc_text() -> str:

@@ -24,7 +24,7 @@ import numpy.typing as npt
 from scipy.optimize import least_squares
 
 from pipeline.errors import CalculationError, SpecificationError
-from pipeline.units import FloatOrArray, as_result, require_positive
+from pipeline.science.units import FloatOrArray, as_result, require_positive
 
 FloatArray = npt.NDArray[np.float64]
 

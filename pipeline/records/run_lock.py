@@ -17,7 +17,7 @@ from pathlib import Path
 from filelock import FileLock, Timeout
 
 from pipeline.errors import LotgateError
-from pipeline.store import RUN_LOCK_KEY, Store
+from pipeline.records.store import RUN_LOCK_KEY, Store
 
 
 class RunLocked(LotgateError):

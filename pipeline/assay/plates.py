@@ -14,10 +14,12 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
-from pipeline import protein, rates, units
+from pipeline.controlled.specs import KineticMethod, ProteinMethod
 from pipeline.errors import CalculationError, LotgateError
-from pipeline.model import Measurement, _clean
-from pipeline.specs import KineticMethod, ProteinMethod
+from pipeline.plain_data import to_plain
+from pipeline.science import rates, units
+from pipeline.science import standard_curves as protein
+from pipeline.science.measurement import Measurement
 
 SUBSTRATE_MATCH_MM = 1e-6
 
@@ -48,7 +50,7 @@ class ActivityPlateResult:
     traces: dict[str, dict[str, Any]] = field(default_factory=dict)  # a few progress curves per lot
 
     def summary(self) -> dict[str, Any]:
-        return _clean({"plate_id": self.plate_id, "method": f"{self.method_id} v{self.method_version}",
+        return to_plain({"plate_id": self.plate_id, "method": f"{self.method_id} v{self.method_version}",
                        "method_id": self.method_id, "kind": "activity",
                        "valid": self.valid, "reasons": list(self.reasons),
                        "reference_recovery_pct": self.reference_recovery_pct,
@@ -67,7 +69,7 @@ class ProteinPlateResult:
     samples: dict[str, list[dict[str, Any]]]
 
     def summary(self) -> dict[str, Any]:
-        return _clean({"plate_id": self.plate_id, "method": f"{self.method_id} v{self.method_version}",
+        return to_plain({"plate_id": self.plate_id, "method": f"{self.method_id} v{self.method_version}",
                        "valid": self.valid, "reasons": list(self.reasons),
                        "curve_accepted": self.curve.get("accepted"), "curve_r2": self.curve.get("r2")})
 

@@ -10,7 +10,10 @@ import math
 from collections.abc import Iterable
 from decimal import ROUND_HALF_UP, Decimal
 
-from pipeline.model import (
+from pipeline.controlled.specs import Attribute
+from pipeline.release.records import AttributeVerdict, TrendFinding
+from pipeline.science.measurement import Measurement
+from pipeline.vocabulary import (
     FAIL,
     HELD,
     HOLD_ORDER,
@@ -23,11 +26,7 @@ from pipeline.model import (
     PASS,
     RELEASED,
     REPORTED,
-    AttributeVerdict,
-    Measurement,
-    TrendFinding,
 )
-from pipeline.specs import Attribute
 
 
 def round_half_up(value: float, digits: int) -> Decimal:
