@@ -117,11 +117,11 @@ def _night(root: str, mode: str) -> None:
     start = time.perf_counter()
     with server_started_early(mode == "flow"):
         from flows import nightly
-        from pipeline.night import stages as night
+        from pipeline.night.open import open_night
     if mode == "flow":
         summary = nightly.nightly(root)
     else:
-        ws, store, signer = night.open_night(Path(root))
+        ws, store, signer = open_night(Path(root))
         summary = nightly.run_stages(ws, store, signer, orchestrated=False)
     print(json.dumps({"night_s": time.perf_counter() - start, "stage_s": dict(nightly.STAGE_SECONDS),
                       "stage_peak_mb": dict(nightly.STAGE_PEAK_MB), "peak_rss_mb": _peak_rss_mb(),

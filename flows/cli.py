@@ -70,10 +70,10 @@ def _run_night(workspace: Path, *, orchestrated: bool = True):
         logging.getLogger(noisy).setLevel(logging.CRITICAL)
     with server_started_early(orchestrated):
         from flows import nightly
-        from pipeline.night import stages as night
+        from pipeline.night.open import open_night
         from pipeline.records.run_lock import run_lock
 
-        ws, store, signer = night.open_night(workspace)  # a bad set-up fails here, before any output
+        ws, store, signer = open_night(workspace)  # a bad set-up fails here, before any output
     labels = {"receive": "Reading and validating exports", "publish": "Reports, certificates and records"}
     console = _console()
     with Progress(TextColumn("{task.description:<36}"), BarColumn(), MofNCompleteColumn(), TimeElapsedColumn(),

@@ -1,4 +1,4 @@
-"""The nightly lot-release flow: Prefect tasks, one per stage, thin around ``pipeline.night``.
+"""The nightly lot-release flow: Prefect tasks, one per stage, thin around ``pipeline.night``'s use cases.
 
 Tasks are coarse (a stage each, the per-lot maths vectorised inside) so orchestration stays
 cheap; results are kept in memory (no caching, no persistence of task results).
@@ -15,8 +15,18 @@ from prefect import flow, task
 from prefect.cache_policies import NONE
 from prefect.utilities.annotations import quote
 
-from pipeline.night import stages as night
-from pipeline.night.stages import NightSummary
+from pipeline import __version__
+from pipeline.night.close import NightSummary
+from pipeline.night.close import close as close_night
+from pipeline.night.decide import decide as decide_lots
+from pipeline.night.decide import earlier_decisions
+from pipeline.night.decide import load_charts as read_charts
+from pipeline.night.evaluate import evaluate as evaluate_lots
+from pipeline.night.open import CertificateSigner, open_catalog_and_layouts, open_night
+from pipeline.night.publish import publish as publish_lots
+from pipeline.night.receive import assemble_intake
+from pipeline.night.receive import receive as receive_exports
+from pipeline.night.recovery import recover_interrupted
 from pipeline.records.run_lock import run_lock
 from pipeline.records.store import Store
 from pipeline.records.workspace import Workspace
@@ -37,16 +47,16 @@ def _progress(stage: str, done: int, total: int) -> None:
         callback(stage, done, total)
 
 
-receive = task(night.receive, name="receive exports", cache_policy=NONE, persist_result=False)
-assemble = task(night.assemble_intake, name="assemble lots", cache_policy=NONE, persist_result=False)
-evaluate = task(night.evaluate, name="compute results", cache_policy=NONE, persist_result=False)
-load_charts = task(night.load_charts, name="read control charts", cache_policy=NONE, persist_result=False)
-decide = task(night.decide, name="trend and disposition", cache_policy=NONE, persist_result=False)
-publish = task(night.publish, name="reports, certificates, store, log", cache_policy=NONE, persist_result=False)
-close = task(night.close, name="archive and LIMS results", cache_policy=NONE, persist_result=False)
+receive = task(receive_exports, name="receive exports", cache_policy=NONE, persist_result=False)
+assemble = task(assemble_intake, name="assemble lots", cache_policy=NONE, persist_result=False)
+evaluate = task(evaluate_lots, name="compute results", cache_policy=NONE, persist_result=False)
+load_charts = task(read_charts, name="read control charts", cache_policy=NONE, persist_result=False)
+decide = task(decide_lots, name="trend and disposition", cache_policy=NONE, persist_result=False)
+publish = task(publish_lots, name="reports, certificates, store, log", cache_policy=NONE, persist_result=False)
+close = task(close_night, name="archive and LIMS results", cache_policy=NONE, persist_result=False)
 
 
-def run_stages(ws: Workspace, store: Store, signer: night.CertificateSigner, *, orchestrated: bool = True,
+def run_stages(ws: Workspace, store: Store, signer: CertificateSigner, *, orchestrated: bool = True,
                lock: bool = True) -> NightSummary:
     """The night's stages in order, as Prefect tasks (default) or as plain function calls.
 
@@ -78,7 +88,7 @@ STAGE_SECONDS: dict[str, float] = {}  # wall time of each stage of the last nigh
 STAGE_PEAK_MB: dict[str, float] = {}  # this process's peak resident memory at the end of each stage
 
 
-def _stages(ws: Workspace, store: Store, signer: night.CertificateSigner, step: dict,
+def _stages(ws: Workspace, store: Store, signer: CertificateSigner, step: dict,
             orchestrated: bool) -> NightSummary:
     STAGE_SECONDS.clear()
     STAGE_PEAK_MB.clear()
@@ -95,21 +105,21 @@ def _stages(ws: Workspace, store: Store, signer: night.CertificateSigner, step: 
             STAGE_SECONDS[name] = time.perf_counter() - start
             STAGE_PEAK_MB[name] = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0
 
-    catalog, layouts = night.open_catalog_and_layouts()
-    recovered = night.recover_interrupted(ws, store)
-    night_id = store.start_night(night.__version__)
+    catalog, layouts = open_catalog_and_layouts()
+    recovered = recover_interrupted(ws, store)
+    night_id = store.start_night(__version__)
     intake = timed("receive", ws, store, layouts, night_id, _progress, recovered.quarantined)
     assembly = timed("assemble", intake, catalog)
     evaluations, _plates = timed("evaluate", assembly, catalog)
     charts = timed("load_charts", store, catalog, evaluations)
-    decisions = timed("decide", evaluations, catalog, charts, night.earlier_decisions(store, evaluations))
-    outcomes = timed("publish", ws, store, catalog, decisions, night_id, charts, signer, _progress)
+    decided = timed("decide", evaluations, catalog, charts, earlier_decisions(store, evaluations))
+    outcomes = timed("publish", ws, store, catalog, decided, night_id, signer, _progress)
     return timed("close", ws, store, intake, outcomes, [*recovered.notes, *assembly.notes])
 
 
 @flow(name="lotgate-night", log_prints=False, persist_result=False)
 def nightly(workspace: str, lock_held_by_caller: bool = False) -> NightSummary:
     """One night: every export in ``workspace/inbox`` to decisions, documents and records."""
-    ws, store, signer = night.open_night(Path(workspace))
+    ws, store, signer = open_night(Path(workspace))
     return run_stages(ws, store, signer, orchestrated=True, lock=not lock_held_by_caller)
 

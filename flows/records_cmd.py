@@ -17,16 +17,9 @@ def _console() -> Console:
 
 
 def _open(workspace: str):
-    from pipeline.records.store import Store
-    from pipeline.records.workspace import open_workspace
+    from pipeline.night.open import open_records
 
-    ws = open_workspace(Path(workspace).expanduser())
-    if not (ws.root / "workspace.yaml").exists() and not os.environ.get("LOTGATE_DATABASE_URL") \
-            and not (ws.root / "lotgate.db").exists():
-        from pipeline.errors import InputError
-
-        raise InputError(f"{ws.root} is not a lotgate workspace (no workspace.yaml, no lotgate.db)")
-    return ws, Store(ws.database_url)
+    return open_records(Path(workspace))
 
 
 def cmd_keys_demo(args: argparse.Namespace) -> int:
@@ -63,12 +56,11 @@ def cmd_history(args: argparse.Namespace) -> int:
     for column in ("Rev.", "Decided", "By", "Disposition", "What changed and why", "Reasons"):
         table.add_column(column)
     for row in rows:
-        record = row.record
         superseded = f"\n(superseded by rev. {next(r.revision for r in rows if r.id == row.superseded_by)})" \
             if row.superseded_by else "\n(current)"
         table.add_row(str(row.revision), local_time_text(row.decided_at_utc, ws.time_zone), row.decided_by,
-                      record.get("label", row.disposition) + superseded,
-                      row.change_note or "first decision", "\n".join(record.get("reasons", [])[:4]) or "—")
+                      row.record.label + superseded,
+                      row.change_note or "first decision", "\n".join(row.record.reasons[:4]) or "—")
     console.print(table)
     return 0
 
@@ -101,15 +93,14 @@ def cmd_decide(args: argparse.Namespace) -> int:
 
 def verify_trail_text(log_path: Path) -> tuple[bool, str] | None:
     """Check the log against its workspace's store, when the store can be found."""
+    from pipeline.errors import InputError
     from pipeline.records import audit
-    from pipeline.records.store import Store
-    from pipeline.records.workspace import open_workspace
 
-    root = log_path.resolve().parent
-    if not ((root / "workspace.yaml").exists() or (root / "lotgate.db").exists()):
+    try:
+        _, store = _open(str(log_path.resolve().parent))
+    except InputError:  # no store beside the log: the log is checked on its own
         return None
-    ws = open_workspace(root)
-    check = audit.verify_trail(Store(ws.database_url), log_path)
+    check = audit.verify_trail(store, log_path)
     return check.valid, check.reason
 
 

@@ -26,19 +26,9 @@ def _refuse(command: str, exc: Exception | str) -> int:
 
 
 def _open(workspace: str) -> tuple[Any, Any]:
-    """The workspace and its store; refuses a folder that holds no store yet."""
-    from pipeline.records.store import Store
-    from pipeline.records.workspace import open_workspace
+    from pipeline.night.open import open_records
 
-    root = Path(workspace).expanduser()
-    if not root.is_dir():
-        raise InputError(f"the workspace {root} does not exist")
-    ws = open_workspace(root)
-    if ws.database_url.startswith("sqlite:///"):
-        db = Path(ws.database_url.removeprefix("sqlite:///"))
-        if not db.exists():
-            raise InputError(f"no results store in {ws.root} (expected {db}); run a night there first")
-    return ws, Store(ws.database_url)
+    return open_records(Path(workspace))
 
 
 def _attribute(product: str, code: str) -> Any:
@@ -206,68 +196,26 @@ def _side_by_side(old: Any, new: Any, d: int, unit: str) -> str:
 
 
 def cmd_rebaseline(args: argparse.Namespace) -> int:
-    """Compute new limits from chosen released lots, store them as a new version, log it.
-
-    The limits and their ``limits-rebaselined`` audit event are written in one store transaction
-    (the store is the audit trail's source of truth); the event is then mirrored to
-    DIR/decisions.jsonl, hash-chained like every record there. The night's run lock is held
-    throughout, so a night cannot judge lots while the limits change.
-    """
-    from pipeline.records import audit
-    from pipeline.records.chart_queries import active_limits, released_count, released_points
-    from pipeline.records.run_lock import run_lock
-    from pipeline.release.chart_view import propose_limits, select_baseline
+    """Compute new limits from chosen released lots, store them as a new version, log it, print both."""
+    from pipeline.night.rebaseline import rebaseline
 
     try:
-        reason = (args.reason or "").strip()
-        by = (args.by or "").strip()
-        if not reason:
-            raise InputError("a re-baseline needs a reason (--reason TEXT): why the old limits no longer apply")
-        if not by:
-            raise InputError("a re-baseline needs the name of the person who decides it (--by NAME)")
         _, attribute = _attribute(args.product, args.attribute)
-        count = attribute.baseline_n if args.count is None else args.count
-        if count < 2:
-            raise InputError(f"--count must be at least 2 lots (one moving range), received {count}")
         ws, store = _open(args.workspace)
-        with run_lock(ws.root, store):
-            audit.sync_log(store, ws.log)  # mend a log left behind by an interrupted write
-            trail = audit.verify_trail(store, ws.log)
-            if not trail.valid:
-                raise InputError(f"the audit trail is broken ({trail.reason}); "
-                                 "no re-baseline is recorded on a broken trail")
-            if args.from_lot is not None:
-                points = released_points(store, args.product, args.attribute, from_lot=args.from_lot,
-                                         count=count)
-                if not points:
-                    raise InputError(f"lot {args.from_lot} is not among the released lots on the "
-                                     f"{args.product} {args.attribute} chart")
-            else:
-                points = released_points(store, args.product, args.attribute, tail=count)
-            proposal = propose_limits(select_baseline(points, args.from_lot, count))
-            old = active_limits(store, args.product, args.attribute)
-            lim = proposal.limits
-            event = audit.event("limits-rebaselined", time_zone=ws.time_zone, product=args.product,
-                                attribute=args.attribute, center=lim.center, sigma=lim.sigma,
-                                mr_bar=lim.mr_bar, baseline_lots=list(proposal.lots), by=by, reason=reason)
-            store.freeze_limits(args.product, args.attribute, lim.center, lim.sigma, lim.mr_bar,
-                                list(proposal.lots), frozen_by=by, reason=reason, events=[event])
-            audit.sync_log(store, ws.log)
-            new = active_limits(store, args.product, args.attribute)
-            total = released_count(store, args.product, args.attribute)
+        done = rebaseline(ws, store, args.product, attribute, by=args.by, reason=args.reason,
+                          from_lot=args.from_lot, count=args.count)
     except (LotgateError, OSError) as exc:
         return _refuse("rebaseline", exc)
-    if new is None:  # cannot happen after a committed freeze; say so rather than crash
-        return _refuse("rebaseline", "the new limits were not found in the store after writing them")
     d = attribute.digits + 2
+    new = done.after
     print(f"{args.product} {attribute.title} ({args.attribute}): control limits re-baselined "
-          f"by {by}, version {new.version}")
-    print(f"  reason: {reason}")
-    print(f"  from {len(proposal.lots)} released lots {_lots_text(proposal.lots)} "
-          f"(of {total} on the chart)")
-    if len(proposal.lots) < attribute.baseline_n:
+          f"by {new.frozen_by}, version {new.version}")
+    print(f"  reason: {new.reason}")
+    print(f"  from {len(done.baseline_lots)} released lots {_lots_text(done.baseline_lots)} "
+          f"(of {done.released_total} on the chart)")
+    if len(done.baseline_lots) < attribute.baseline_n:
         print(f"  note: fewer lots than the specification's baseline of {attribute.baseline_n}")
-    print(_side_by_side(old, new, d, attribute.unit))
+    print(_side_by_side(done.before, new, d, attribute.unit))
     print(f"Recorded in the store's audit trail and in {ws.log} (kind limits-rebaselined); "
           f"the next night judges lots against version {new.version}.")
     return 0

@@ -21,7 +21,7 @@ from badfiles import Catalogue, Held, Noted, Quarantined, Read, Released, build_
 from flows.nightly import run_stages
 from pipeline.intake.layouts import load_layouts
 from pipeline.intake.validation import ExportRejected, parse_export
-from pipeline.night.stages import open_night
+from pipeline.night.open import open_night
 from pipeline.records.store import Store
 from pipeline.records.workspace import write_settings
 

@@ -97,7 +97,7 @@ def test_killed_nights_finish_with_nothing_lost_or_doubled(night, tmp_path):
     reference = tmp_path / "reference"
     _workspace(reference, night)
     first, last, duration = _timeline(reference)
-    expected = {row.lot_id: row.record["label"] for row in Store(open_workspace(reference).database_url).decisions()}
+    expected = {row.lot_id: row.record.label for row in Store(open_workspace(reference).database_url).decisions()}
     rng = random.Random(SEED)
     # Half the kills at a seeded moment anywhere in the run (start-up, reading, computing,
     # closing), half while lots are being published: a seeded few milliseconds after a seeded
@@ -122,7 +122,7 @@ def test_killed_nights_finish_with_nothing_lost_or_doubled(night, tmp_path):
         rows = store.decisions()
         counts = Counter(row.lot_id for row in rows)
         assert counts and max(counts.values()) == 1, f"kill at {moment:.2f} s: a lot decided twice: {counts}"
-        assert {row.lot_id: row.record["label"] for row in rows} == expected, f"kill at {moment:.2f} s"
+        assert {row.lot_id: row.record.label for row in rows} == expected, f"kill at {moment:.2f} s"
         assert not any((root / "inbox").iterdir()), f"kill at {moment:.2f} s: files left in the inbox"
         archived = {p.name for p in (root / "archive").rglob("*") if p.is_file()}
         quarantined = {p.name for p in (root / "quarantine").iterdir() if not p.name.endswith(".reason.txt")}
@@ -142,19 +142,23 @@ def test_a_night_cut_between_publishing_and_closing_decides_nothing_twice(night,
     """Deterministic form of the kill above that once found a duplicate: the interrupted night
     had already quarantined a lot's export, which the restart must still count as that lot's."""
     from flows import nightly
-    from pipeline.night import stages
+    from pipeline.night.decide import decide, earlier_decisions, load_charts
+    from pipeline.night.evaluate import evaluate
+    from pipeline.night.open import open_catalog_and_layouts, open_night
+    from pipeline.night.publish import publish
+    from pipeline.night.receive import assemble_intake, receive
 
     root = tmp_path / "cut"
     _workspace(root, night)
-    ws, store, signer = stages.open_night(root)
-    catalog, layouts = stages.open_catalog_and_layouts()
+    ws, store, signer = open_night(root)
+    catalog, layouts = open_catalog_and_layouts()
     night_id = store.start_night("test")
-    intake = stages.receive(ws, store, layouts, night_id)
+    intake = receive(ws, store, layouts, night_id)
     assert intake.quarantined  # the scenario's malformed LIMS export
-    evaluations, _ = stages.evaluate(stages.assemble_intake(intake, catalog), catalog)
-    charts = stages.load_charts(store, catalog, evaluations)
-    decisions = stages.decide(evaluations, catalog, charts, stages.earlier_decisions(store, evaluations))
-    stages.publish(ws, store, catalog, decisions, night_id, charts, signer)
+    evaluations, _ = evaluate(assemble_intake(intake, catalog), catalog)
+    charts = load_charts(store, catalog, evaluations)
+    decided = decide(evaluations, catalog, charts, earlier_decisions(store, evaluations))
+    publish(ws, store, catalog, decided, night_id, signer)
     first = {row.lot_id: row.fingerprint for row in store.decisions()}
     # ... the run dies here, before close: the exports are still in the inbox.
     summary = nightly.run_stages(ws, store, signer, orchestrated=False)
@@ -168,12 +172,13 @@ def test_a_window_that_fails_to_commit_is_decided_once_on_the_restart(tmp_path, 
     A failure after a window's documents are written, before its commit, leaves documents
     without decisions; the restart decides exactly those lots, once, and rewrites their files."""
     from flows import nightly
-    from pipeline.night import stages
+    from pipeline.night import publish
+    from pipeline.night.open import open_night
 
     night = demo.build_scenario(nights=1, lipase_per_night=16, protease_per_night=10)[0]
     root = tmp_path / "window"
     _workspace(root, night)
-    monkeypatch.setattr(stages, "WINDOW_LOTS", 8)
+    monkeypatch.setattr(publish, "WINDOW_LOTS", 8)
     commits = []
     real = Store.add_decisions
 
@@ -184,7 +189,7 @@ def test_a_window_that_fails_to_commit_is_decided_once_on_the_restart(tmp_path, 
         return real(self, writes)
 
     monkeypatch.setattr(Store, "add_decisions", failing_second_window)
-    ws, store, signer = stages.open_night(root)
+    ws, store, signer = open_night(root)
     with pytest.raises(RuntimeError, match="simulated"):
         nightly.run_stages(ws, store, signer, orchestrated=False)
     stored = {row.lot_id for row in store.decisions()}
@@ -201,10 +206,10 @@ def test_a_window_that_fails_to_commit_is_decided_once_on_the_restart(tmp_path, 
     assert {p.name for p in (root / "reports").glob("*_batch-report.pdf")} == {
         f"{row.lot_id}_r{row.revision}_batch-report.pdf" for row in rows}
     for row in rows:
-        certificate = row.record.get("certificate")
+        certificate = row.record.certificate
         if certificate:
-            path = root / "certificates" / certificate["file"]
-            assert hashlib.sha256(path.read_bytes()).hexdigest() == certificate["sha256"]
+            path = root / "certificates" / certificate.file
+            assert hashlib.sha256(path.read_bytes()).hexdigest() == certificate.sha256
             assert verify_pdf(path, trust_roots=[root / "keys" / "root-ca.pem"]).valid
     assert not list(root.rglob(".*.tmp"))
     assert audit.verify_trail(store, root / "decisions.jsonl").valid

@@ -16,7 +16,7 @@ import numpy as np
 import pytest
 
 from pipeline.controlled.specs import parse_specification
-from pipeline.release.decision import Chart, decide_night
+from pipeline.release.decision import ChartState, decide_night
 from pipeline.release.lot_evaluation import LotEvaluation
 from pipeline.release.records import AttributeVerdict
 from pipeline.release.verdicts import judge_numeric
@@ -61,16 +61,17 @@ def evaluation(number: int, value: float) -> LotEvaluation:
 @pytest.mark.parametrize(("direction", "limit"), [(-1, "below"), (+1, "above")])
 def test_drift_is_held_out_of_trend_before_the_first_oos_lot(direction, limit):
     values = simulated_history(direction)
-    charts: dict[tuple[str, str], Chart] = {}
-    decisions = decide_night([evaluation(i, v) for i, v in enumerate(values)], {"SIM-1": SPEC}, {}, charts,
-                             "test")
+    charts: dict[tuple[str, str], ChartState] = {}
+    night = decide_night([evaluation(i, v) for i, v in enumerate(values)], {"SIM-1": SPEC}, {}, charts, "test")
+    decisions = night.lots
     categories = [d.decision.hold_categories for d in decisions]
     first_oot = next(i for i, c in enumerate(categories) if OUT_OF_TREND in c)
     first_oos = next(i for i, c in enumerate(categories) if OUT_OF_SPECIFICATION in c)
     # the baseline lots are released while the chart is "not yet established"
     assert all(d.decision.disposition == RELEASED for d in decisions[:BASELINE_LOTS])
     assert all(d.trend[0].status == "not yet established" for d in decisions[:BASELINE_LOTS])
-    frozen = charts[("SIM-1", "specific_activity")].limits
+    frozen = night.charts[("SIM-1", "specific_activity")].limits
+    assert night.newly_frozen == {("SIM-1", "specific_activity"): frozen} and charts == {}  # the given charts stay as given
     assert frozen is not None and frozen.baseline_lots[-1] == f"SIM-{BASELINE_LOTS - 1:03d}"
     # the first hold for trend comes first, on a lot still inside its specification, and well
     # before the drift reaches the limit

@@ -151,12 +151,12 @@ def test_revision_chain_original_reassay_and_a_persons_release(demo_workspace, t
     assert result.revision == 3 and result.certificate
     rows = store.decisions(lot)
     assert [r.revision for r in rows] == [1, 2, 3]
-    assert [r.record["label"] for r in rows] == ["held: invalid assay", "held: review required",
+    assert [r.record.label for r in rows] == ["held: invalid assay", "held: review required",
                                                  "released by Jonas Brandt (DEMO)"]
     assert rows[0].superseded_by == rows[1].id and rows[1].superseded_by == rows[2].id
     assert "new input files" in rows[1].change_note
     # The person's signature is linked to the record it signs (21 CFR 11.70).
-    record = dict(rows[2].record)
+    record = rows[2].record.to_json()
     signature = record.pop("person_signature")
     assert signing.verify_record(signature, ledger.canonical_json(record).encode())
     record["reasons"] = ["edited"]
@@ -202,4 +202,4 @@ def test_lims_results_files_agree_with_each_other_and_their_manifest(demo_worksp
             digest, name = line.split("  ")
             assert hashlib.sha256((root / "lims" / name).read_bytes()).hexdigest() == digest
     store = Store(open_workspace(root).database_url)
-    assert decided == len(store.decisions()) - len(store.unexported_decisions())  # each exported once
+    assert decided == len(store.decisions()) - len(store.unexported_decision_ids())  # each exported once

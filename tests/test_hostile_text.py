@@ -29,9 +29,10 @@ from pypdf import PdfReader
 
 from flows.nightly import run_stages
 from pipeline.demo import plant as demo
+from pipeline.documents.lims_results import csv_cell
 from pipeline.intake.layouts import load_layouts
 from pipeline.intake.validation import ExportRejected, parse_export
-from pipeline.night.stages import csv_cell, open_night
+from pipeline.night.open import open_night
 from pipeline.records.workspace import write_settings
 
 LAYOUTS = load_layouts(Path(__file__).resolve().parents[1] / "schemas")

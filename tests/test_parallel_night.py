@@ -4,7 +4,8 @@ import pandas as pd
 
 from pipeline.demo import plant as demo
 from pipeline.intake.validation import ExportRejected
-from pipeline.night import stages as night
+from pipeline.night import receive
+from pipeline.night.open import open_catalog_and_layouts
 
 
 def _inbox(tmp_path):
@@ -29,13 +30,13 @@ def _verdicts(pairs):
 
 def test_exports_parsed_on_workers_equal_those_parsed_here(tmp_path, monkeypatch):
     to_parse, commas = _inbox(tmp_path)
-    _, layouts = night.open_catalog_and_layouts()
-    monkeypatch.setattr(night, "PARALLEL_FROM_FILES", 10**9)
-    here = _verdicts(night._parse_in_chunks(to_parse, layouts))
-    monkeypatch.setattr(night, "PARALLEL_FROM_FILES", 1)
-    monkeypatch.setattr(night, "PARSE_CHUNK_FILES", 7)
-    monkeypatch.setattr(night.os, "cpu_count", lambda: 2)
-    workers = _verdicts(night._parse_in_chunks(to_parse, layouts))
+    _, layouts = open_catalog_and_layouts()
+    monkeypatch.setattr(receive, "PARALLEL_FROM_FILES", 10**9)
+    here = _verdicts(receive.parse_in_chunks(to_parse, layouts))
+    monkeypatch.setattr(receive, "PARALLEL_FROM_FILES", 1)
+    monkeypatch.setattr(receive, "PARSE_CHUNK_FILES", 7)
+    monkeypatch.setattr(receive.os, "cpu_count", lambda: 2)
+    workers = _verdicts(receive.parse_in_chunks(to_parse, layouts))
     assert list(workers) == list(here) == [path.name for path, _ in to_parse]
     rejected = [name for name, result in here.items() if isinstance(result, ExportRejected)]
     assert {commas, "lims-empty.csv"} <= set(rejected) and len(rejected) < len(here)

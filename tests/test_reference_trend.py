@@ -8,7 +8,7 @@ import dataclasses
 import datetime as dt
 
 from pipeline.records.controlled_files import load_catalog
-from pipeline.release.decision import Chart, decide_night
+from pipeline.release.decision import ChartState, decide_night
 from pipeline.release.lot_evaluation import LotEvaluation
 from pipeline.release.records import AttributeVerdict
 from pipeline.vocabulary import OUT_OF_TREND, RELEASED
@@ -36,8 +36,9 @@ def test_a_reference_out_of_trend_holds_the_plates_lots():
     lots = [lot(i, f"AK-T-{i:02d}", r) for i, r in enumerate(BASELINE)]
     # Plate 9 recovers 106.5 %: inside the method's 90–110 % window, far beyond 3σ of the baseline.
     lots += [lot(8, "AK-T-08", 106.5), lot(9, "AK-T-08", 106.5), lot(10, "AK-T-10", 100.1)]
-    charts: dict[tuple[str, str], Chart] = {}
-    decisions = decide_night(lots, {"LLC-200": SPEC}, METHODS, charts, "test")
+    charts: dict[tuple[str, str], ChartState] = {}
+    night = decide_night(lots, {"LLC-200": SPEC}, METHODS, charts, "test")
+    decisions = night.lots
     assert all(d.decision.disposition == RELEASED for d in decisions[:8])
     for held in decisions[8:10]:
         assert held.decision.hold_categories == (OUT_OF_TREND,)
@@ -45,7 +46,8 @@ def test_a_reference_out_of_trend_holds_the_plates_lots():
         assert "at plate AK-T-08" in held.decision.reasons[0]
         assert held.charts and held.charts[0]["attribute"] == "reference_recovery"
     assert decisions[10].decision.disposition == RELEASED
-    chart = charts[("LIP-PNPB", "reference_recovery")]
+    chart = night.charts[("LIP-PNPB", "reference_recovery")]
+    assert ("LIP-PNPB", "reference_recovery") in night.newly_frozen and charts == {}
     assert chart.limits is not None and chart.limits.baseline_lots == tuple(f"AK-T-{i:02d}" for i in range(8))
     assert "AK-T-08" not in chart.lots and chart.lots[-1] == "AK-T-10"
     # the plate's point is stored once, with the first lot recorded from it

@@ -7,6 +7,8 @@ from sqlalchemy import create_engine, text
 
 from pipeline.records import audit, ledger
 from pipeline.records.store import Store
+from pipeline.records.stored import DecisionWrite
+from pipeline.release.records import DecisionRecord, RecordedResult
 from tests.pg import fresh_database
 
 
@@ -21,10 +23,9 @@ def url(request, tmp_path):
 
 
 def _decision(lot, fingerprint, disposition="released"):
-    return {"disposition": disposition, "hold_categories": [], "reasons": [], "spec_version": "1.0",
-            "spec_sha256": "a" * 64, "fingerprint": fingerprint, "label": disposition, "product": "LLC-200",
-            "input_files": {"lots-1.csv": "b" * 64}, "results": [
-                {"code": "activity", "value": 1200.0, "reported": "1200", "unit": "U/mL", "verdict": "pass"}]}
+    return DecisionRecord(lot, "LLC-200", disposition, (), (), "1.0", "a" * 64, fingerprint, disposition,
+                          input_files={"lots-1.csv": "b" * 64},
+                          results=(RecordedResult("activity", 1200.0, "1200", "U/mL", "pass"),))
 
 
 def test_migrations_bring_a_new_database_to_the_current_version(url):
@@ -60,14 +61,14 @@ def test_a_database_of_the_previous_version_upgrades_with_its_data(url):
 
 def test_revisions_supersede_and_stay_readable(url):
     store = Store(url)
-    first = store.add_decision(lot_id="LLC-0001", product_code="LLC-200", manufactured_on="2026-11-25",
-                               night_id=None, decision=_decision("LLC-0001", "f1", "held"), results=[],
-                               chart_values={}, decided_by="lotgate")
-    second = store.add_decision(lot_id="LLC-0001", product_code="LLC-200", manufactured_on="2026-11-25",
-                                night_id=None, decision=_decision("LLC-0001", "f2"), results=[],
-                                chart_values={}, decided_by="lotgate", change_note="re-assay")
+    [first] = store.add_decisions([DecisionWrite(_decision("LLC-0001", "f1", "held"), "lotgate",
+                                                 manufactured_on="2026-11-25")])
+    [second] = store.add_decisions([DecisionWrite(_decision("LLC-0001", "f2"), "lotgate",
+                                                  manufactured_on="2026-11-25", change_note="re-assay")])
     rows = store.decisions("LLC-0001")
     assert [r.revision for r in rows] == [1, 2]
+    # the record comes back as it was written, as the same type
+    assert rows[1].record == _decision("LLC-0001", "f2") and rows[1].change_note == "re-assay"
     assert rows[0].superseded_by == second.id and rows[0].disposition == "held"
     assert store.latest_decision("LLC-0001").id == second.id and first.id != second.id
 
@@ -76,7 +77,8 @@ def _trail(url, tmp_path, n=6):
     store = Store(url)
     log = tmp_path / "decisions.jsonl"
     for i in range(n):
-        audit.record(store, log, [audit.event("decision", time_zone="Europe/Berlin", lot_id=f"L-{i:03d}", n=i)])
+        store.add_events([audit.event("decision", time_zone="Europe/Berlin", lot_id=f"L-{i:03d}", n=i)])
+        audit.sync_log(store, log)
     return store, log
 
 
@@ -137,13 +139,9 @@ def test_a_crash_between_store_and_log_is_mended_on_the_next_write(url, tmp_path
 
 
 def _write(lot, fingerprint, *, chart_value=None, events=True):
-    from pipeline.records.store import DecisionWrite
-
     return DecisionWrite(
-        lot_id=lot, product_code="LLC-200", manufactured_on="2026-11-25", night_id=None,
-        decision=_decision(lot, fingerprint), results=({"code": "activity", "value": 1200.0, "se": 12.0,
-                                                        "unit": "U/mL", "reported": "1200", "verdict": "pass"},),
-        chart_values={} if chart_value is None else {"activity": chart_value}, decided_by="lotgate",
+        _decision(lot, fingerprint), "lotgate", manufactured_on="2026-11-25", standard_errors={"activity": 12.0},
+        chart_values={} if chart_value is None else {"activity": chart_value},
         events=(audit.event("decision", time_zone="Europe/Berlin", lot_id=lot, fingerprint=fingerprint),)
         if events else ())
 
@@ -160,7 +158,7 @@ def test_a_batch_of_decisions_is_stored_in_order_with_revisions_and_one_chain(ur
     assert by_lot["LLC-0001"][0].superseded_by == by_lot["LLC-0001"][1].id
     assert by_lot["LLC-0003"][0].superseded_by == by_lot["LLC-0003"][1].id
     assert by_lot["LLC-0003"][1].superseded_by is None
-    assert [p.lot_id for p in store.chart_points("LLC-200", "activity")] == ["LLC-0002"]
+    assert [p.lot_id for p in store.released_points("LLC-200", "activity")] == ["LLC-0002"]
     with store.engine.connect() as connection:
         results = connection.execute(text("select count(*) from results")).scalar()
         bodies = [json.loads(b) for b in connection.execute(text("select body from audit_events order by seq"))

@@ -19,7 +19,10 @@ import pytest
 
 from flows.trend_cmd import add_commands, cmd_rebaseline, cmd_trend
 from pipeline.records import audit, ledger
+from pipeline.records.chart_queries import active_limits
 from pipeline.records.store import Store
+from pipeline.records.stored import DecisionWrite
+from pipeline.release.records import DecisionRecord, RecordedResult, TrendFinding
 
 REPO = Path(__file__).resolve().parents[1]
 PRODUCT, ATTR = "LLC-200", "specific_activity"  # a charted attribute of specs/products/LLC-200.yaml
@@ -41,17 +44,12 @@ def run(argv: list[str]) -> int:
 def add_lot(store: Store, lot: str, value: float | None, *, held: tuple[str, ...] = (),
             trend_signals: tuple[str, ...] = ()) -> None:
     label = "released" if not held else f"held: {', '.join(held)}"
-    record = {"disposition": "held" if held else "released", "hold_categories": list(held),
-              "reasons": list(trend_signals), "spec_version": "3.1", "spec_sha256": "0" * 64,
-              "fingerprint": f"{lot:0>64}"[-64:], "label": label,
-              "trend": [{"attribute": ATTR, "status": "out of trend" if trend_signals else "in trend",
-                         "signals": list(trend_signals)}]}
-    store.add_decision(lot_id=lot, product_code=PRODUCT, manufactured_on=None, night_id=None,
-                       decision=record,
-                       results=[{"code": ATTR, "value": value, "unit": "U/mg",
-                                 "verdict": "pass" if value is not None else "invalid"}],
-                       chart_values={} if held or value is None else {ATTR: value},
-                       decided_by="test fixture")
+    record = DecisionRecord(
+        lot, PRODUCT, "held" if held else "released", held, trend_signals, "3.1", "0" * 64, f"{lot:0>64}"[-64:],
+        label, results=(RecordedResult(ATTR, value, None, "U/mg", "pass" if value is not None else "invalid"),),
+        trend=(TrendFinding(ATTR, "out of trend" if trend_signals else "in trend", signals=trend_signals),))
+    store.add_decisions([DecisionWrite(record, "test fixture",
+                                       chart_values={} if held or value is None else {ATTR: value})])
 
 
 def workspace(root: Path, values=VALUES, freeze: bool = True) -> Path:
@@ -183,7 +181,7 @@ def test_rebaseline_refusals_change_nothing(tmp_path, capsys, extra, message):
     err = capsys.readouterr().err
     assert message in err and err.count("\n") == 1
     assert (ws / "decisions.jsonl").read_bytes() == before
-    assert Store(f"sqlite:///{ws / 'lotgate.db'}").active_limits(PRODUCT, ATTR).version == 1
+    assert active_limits(Store(f"sqlite:///{ws / 'lotgate.db'}"), PRODUCT, ATTR).version == 1
 
 
 @pytest.mark.parametrize(("product", "attr", "message"),
@@ -207,11 +205,11 @@ def test_rebaseline_is_stored_and_logged_with_who_and_why(tmp_path, capsys):
     centre = next(line for line in out.splitlines() if line.strip().startswith("centre"))
     assert "203.20" in centre and "204.00" in centre  # old and new side by side
     store = Store(f"sqlite:///{ws / 'lotgate.db'}")
-    active = store.active_limits(PRODUCT, ATTR)
+    active = active_limits(store, PRODUCT, ATTR)
     assert (active.version, active.frozen_by, active.reason) == (2, "Dana Whitlock (QA)", reason)
     assert active.center == pytest.approx(204.0)
     assert active.sigma == pytest.approx(2.659574, rel=1e-6)
-    assert active.baseline_lots == ["T-002", "T-003", "T-004"]
+    assert active.baseline_lots == ("T-002", "T-003", "T-004")
     records = _log(ws)
     last = records[-1]
     assert last["kind"] == "limits-rebaselined"
@@ -237,7 +235,7 @@ def test_rebaseline_refuses_a_broken_log(tmp_path, capsys):
     assert run(["rebaseline", PRODUCT, ATTR, "--workspace", str(ws), "--reason", "r", "--by", "b",
                 "--count", "3"]) == 2
     assert "audit trail is broken" in capsys.readouterr().err
-    assert Store(f"sqlite:///{ws / 'lotgate.db'}").active_limits(PRODUCT, ATTR).version == 1
+    assert active_limits(Store(f"sqlite:///{ws / 'lotgate.db'}"), PRODUCT, ATTR).version == 1
 
 
 # --------------------------------------------------------------------------- the demo workspace

@@ -28,6 +28,7 @@ from typing import Any
 
 import pandas as pd
 
+from pipeline.assay.plate_reads import PlateReads
 from pipeline.controlled.catalog import Catalog
 from pipeline.controlled.specs import KineticMethod
 from pipeline.intake.validation import PLATE_GEOMETRY, ParsedExport
@@ -51,8 +52,8 @@ class QuarantinedFile:
 @dataclass
 class Assembly:
     lots: list[LotInputs]
-    activity_plates: dict[str, tuple[pd.DataFrame, pd.DataFrame, str, list[str]]]
-    protein_plates: dict[str, tuple[pd.DataFrame, pd.DataFrame, str, list[str]]]
+    activity_plates: dict[str, PlateReads]
+    protein_plates: dict[str, PlateReads]
     notes: list[str]  # lots or files that get no decision, and why
     registry_files: dict[str, str]
 
@@ -205,7 +206,7 @@ def assemble(parsed_exports: list[ParsedExport], quarantined: list[QuarantinedFi
             plate_problem[plate_id] = problem
             continue
         target = activity_plates if kind == "kinetic" else protein_plates
-        target[plate_id] = (frame.reset_index(drop=True), reads[0].reset_index(drop=True), method.method_id, [])
+        target[plate_id] = PlateReads(frame.reset_index(drop=True), reads[0].reset_index(drop=True), method.method_id)
     for kind, groups in read_groups.items():
         for plate_id in sorted(set(groups) - set(maps)):
             aside = _naming(setaside, plate_id)

@@ -15,10 +15,8 @@ from pathlib import Path
 from typing import Any
 from zoneinfo import ZoneInfo
 
-from sqlalchemy import select
-
 from pipeline.records import ledger
-from pipeline.records.store import AuditEvent, Store
+from pipeline.records.store import Store
 
 
 def now_utc_text() -> str:
@@ -37,27 +35,18 @@ def event(event_kind: str, /, *, time_zone: str, lot_id: str | None = None, **fi
     return body
 
 
-def record(store: Store, log_path: Path, events: list[dict[str, Any]]) -> list[dict[str, Any]]:
-    """Chain and commit ``events`` on their own, then bring the log file up to date."""
-    chained = store.add_events(events)
-    sync_log(store, log_path)
-    return chained
-
-
 def sync_log(store: Store, log_path: Path) -> int:
     """Append to the log every stored event after its last line; returns how many were written."""
     line, _ = ledger.last_line(log_path)
     last_seq = json.loads(line)["seq"] if line else 0
     written = 0
     while True:  # in pages: a large night closes with tens of thousands of events
-        with store.session() as session:
-            page = list(session.execute(select(AuditEvent.seq, AuditEvent.body).where(AuditEvent.seq > last_seq)
-                                        .order_by(AuditEvent.seq).limit(SYNC_PAGE_EVENTS)))
+        page = store.audit_events(after_seq=last_seq, limit=SYNC_PAGE_EVENTS)
         if not page:
             return written
-        ledger.append_chained(log_path, [json.loads(body) for _, body in page])
+        ledger.append_chained(log_path, [json.loads(e.body) for e in page])
         written += len(page)
-        last_seq = page[-1][0]
+        last_seq = page[-1].seq
 
 
 SYNC_PAGE_EVENTS = 2000
@@ -72,8 +61,7 @@ class TrailCheck:
 
 
 def verify_store(store: Store) -> ledger.ChainCheck:
-    with store.session() as session:
-        rows = list(session.scalars(select(AuditEvent).order_by(AuditEvent.seq)))
+    rows = store.audit_events()
     check = ledger.verify_records([row.body for row in rows])
     if check.valid:
         for row in rows:
@@ -95,8 +83,7 @@ def verify_trail(store: Store, log_path: Path) -> TrailCheck:
         return TrailCheck(False, in_store.records, in_log.records, in_store.reason)
     if not in_log.valid:
         return TrailCheck(False, in_store.records, in_log.records, f"in the log file: {in_log.reason}")
-    with store.session() as session:
-        hashes = [h for h in session.scalars(select(AuditEvent.hash).order_by(AuditEvent.seq))]
+    hashes = [e.hash for e in store.audit_events()]
     log_hashes = [json.loads(line)["hash"] for line in ledger.read_lines(log_path)]
     for number, (a, b) in enumerate(zip(hashes, log_hashes, strict=False), start=1):
         if a != b:

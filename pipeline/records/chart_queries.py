@@ -6,39 +6,16 @@ whole table, except for a re-baseline, which reads the released lots from the ch
 
 from __future__ import annotations
 
-import datetime as dt
-from typing import Any
-
-from sqlalchemy import func, select
-
-from pipeline.records.store import ChartPoint, ControlLimitRow, DecisionRow, Lot, ResultRow, Store
+from pipeline.records.store import Store
 from pipeline.release.chart_view import ChartHistory, HeldPoint, ReleasedPoint, StoredLimits
+from pipeline.release.records import DecisionRecord, TrendFinding
 from pipeline.science.control_charts import HISTORY_POINTS
-from pipeline.vocabulary import OUT_OF_TREND, RELEASED
-
-
-def _utc_text(when: dt.datetime | None) -> str:
-    if when is None:
-        return ""
-    if when.tzinfo is None:  # SQLite gives back naive datetimes; they were written in UTC
-        when = when.replace(tzinfo=dt.UTC)
-    return when.astimezone(dt.UTC).isoformat(timespec="seconds")
-
-
-def _limits(row: ControlLimitRow) -> StoredLimits:
-    return StoredLimits(version=row.version, center=row.center, sigma=row.sigma, mr_bar=row.mr_bar,
-                        baseline_lots=tuple(row.baseline_lots or ()),
-                        frozen_at_utc=_utc_text(row.frozen_at_utc), frozen_by=row.frozen_by,
-                        reason=row.reason, active=bool(row.active))
+from pipeline.vocabulary import OUT_OF_TREND
 
 
 def limit_versions(store: Store, product_code: str, attribute: str) -> tuple[StoredLimits, ...]:
     """Every stored version of a chart's limits, oldest first."""
-    with store.session() as s:
-        rows = s.scalars(select(ControlLimitRow).where(
-            ControlLimitRow.product_code == product_code, ControlLimitRow.attribute == attribute)
-            .order_by(ControlLimitRow.version))
-        return tuple(_limits(r) for r in rows)
+    return store.limit_versions(product_code, attribute)
 
 
 def active_limits(store: Store, product_code: str, attribute: str) -> StoredLimits | None:
@@ -47,38 +24,17 @@ def active_limits(store: Store, product_code: str, attribute: str) -> StoredLimi
 
 
 def released_count(store: Store, product_code: str, attribute: str) -> int:
-    with store.session() as s:
-        return int(s.scalar(select(func.count(ChartPoint.id)).where(
-            ChartPoint.product_code == product_code, ChartPoint.attribute == attribute)) or 0)
+    return store.released_count(product_code, attribute)
 
 
 def released_points(store: Store, product_code: str, attribute: str, *, tail: int | None = None,
                     from_lot: str | None = None, count: int | None = None) -> tuple[ReleasedPoint, ...]:
-    """Released lots on a chart in release order: the last ``tail``, or ``count`` from ``from_lot``.
-
-    ``from_lot`` not on the chart gives an empty tuple.
-    """
-    where = (ChartPoint.product_code == product_code, ChartPoint.attribute == attribute)
-    with store.session() as s:
-        query = select(ChartPoint).where(*where)
-        if from_lot is not None:
-            start = s.scalar(select(ChartPoint.id).where(*where, ChartPoint.lot_id == from_lot))
-            if start is None:
-                return ()
-            query = query.where(ChartPoint.id >= start).order_by(ChartPoint.id)
-            rows = list(s.scalars(query.limit(count) if count is not None else query))
-        elif tail is not None:
-            rows = list(reversed(list(s.scalars(query.order_by(ChartPoint.id.desc()).limit(tail)))))
-        else:
-            rows = list(s.scalars(query.order_by(ChartPoint.id)))
-        return tuple(ReleasedPoint(r.lot_id, float(r.value), int(r.decision_id)) for r in rows)
+    """Released lots on a chart in release order: the last ``tail``, or ``count`` from ``from_lot``."""
+    return store.released_points(product_code, attribute, tail=tail, from_lot=from_lot, count=count)
 
 
-def _finding(record: dict[str, Any], attribute: str) -> dict[str, Any] | None:
-    for finding in record.get("trend") or ():
-        if isinstance(finding, dict) and finding.get("attribute") == attribute:
-            return finding
-    return None
+def _finding(record: DecisionRecord, attribute: str) -> TrendFinding | None:
+    return next((f for f in record.trend if f.attribute == attribute), None)
 
 
 def held_points(store: Store, product_code: str, attribute: str, *, after_order: int | None,
@@ -89,34 +45,18 @@ def held_points(store: Store, product_code: str, attribute: str, *, after_order:
     invalid assay). Out of trend on this chart: the decision's finding for the attribute says
     so, or, for a record without findings, its hold categories include out of trend.
     """
-    charted = select(ChartPoint.lot_id).where(ChartPoint.product_code == product_code,
-                                              ChartPoint.attribute == attribute)
-    with store.session() as s:
-        query = (select(DecisionRow).join(Lot, Lot.lot_id == DecisionRow.lot_id)
-                 .where(Lot.product_code == product_code, DecisionRow.superseded_by.is_(None),
-                        DecisionRow.disposition != RELEASED, DecisionRow.lot_id.not_in(charted)))
-        if after_order is not None:
-            query = query.where(DecisionRow.id > after_order)
-        decisions = list(reversed(list(s.scalars(query.order_by(DecisionRow.id.desc()).limit(limit)))))
-        ids = [d.id for d in decisions]
-        values: dict[int, float | None] = {}
-        if ids:
-            for r in s.scalars(select(ResultRow).where(ResultRow.decision_id.in_(ids),
-                                                       ResultRow.attribute == attribute)):
-                values[r.decision_id] = None if r.value is None else float(r.value)
-        out = []
-        for d in decisions:
-            record = d.record or {}
-            finding = _finding(record, attribute)
-            categories = tuple(d.hold_categories or ())
-            if finding is not None:
-                oot = finding.get("status") == "out of trend"
-                signals = tuple(str(x) for x in finding.get("signals") or ())
-            else:
-                oot, signals = OUT_OF_TREND in categories, ()
-            label = str(record.get("label") or f"held: {', '.join(categories)}")
-            out.append(HeldPoint(d.lot_id, values.get(d.id), int(d.id), label, categories, oot, signals))
-        return tuple(out)
+    out = []
+    for decision, value in store.held_decisions(product_code, attribute, after_order=after_order, limit=limit):
+        record = decision.record
+        finding = _finding(record, attribute)
+        categories = tuple(record.hold_categories)
+        if finding is not None:
+            oot, signals = finding.status == "out of trend", tuple(str(x) for x in finding.signals)
+        else:
+            oot, signals = OUT_OF_TREND in categories, ()
+        label = record.label or f"held: {', '.join(categories)}"
+        out.append(HeldPoint(decision.lot_id, value, decision.id, label, categories, oot, signals))
+    return tuple(out)
 
 
 def chart_history(store: Store, product_code: str, attribute: str, window: int) -> ChartHistory:
@@ -131,3 +71,4 @@ def chart_history(store: Store, product_code: str, attribute: str, window: int) 
     held = held_points(store, product_code, attribute, after_order=after, limit=window)
     return ChartHistory(product_code, attribute, max(active, key=lambda v: v.version) if active else None,
                         versions, total, released, held)
+

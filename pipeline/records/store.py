@@ -1,47 +1,54 @@
-"""The results store (adapter): SQLAlchemy models; SQLite by default, PostgreSQL by URL.
+"""The results store (adapter): SQLite by default, PostgreSQL by URL; runs the migrations on open.
 
-Decisions are never overwritten: a changed input set for a lot makes a new revision that
-supersedes the earlier one, which stays readable.
+Its methods take and return frozen records (``pipeline.records.stored``, ``DecisionRecord``,
+the chart types); its ORM rows (``pipeline.records.tables``) never leave it.
 """
 
 from __future__ import annotations
 
 import datetime as dt
-import json
 from collections.abc import Iterator
 from contextlib import contextmanager
-from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
 from alembic import command
 from alembic.config import Config
 from filelock import FileLock
-from sqlalchemy import (
-    JSON,
-    DateTime,
-    Float,
-    ForeignKey,
-    Integer,
-    String,
-    Text,
-    UniqueConstraint,
-    create_engine,
-    event,
-    func,
-    insert,
-    select,
-    update,
-)
+from sqlalchemy import create_engine, event, func, insert, select, update
 from sqlalchemy.exc import SQLAlchemyError
-from sqlalchemy.orm import DeclarativeBase, Mapped, Session, mapped_column, sessionmaker
+from sqlalchemy.orm import Session, sessionmaker
 
 from pipeline.errors import StoreError
+from pipeline.records.stored import (
+    DecisionWrite,
+    StoredDecision,
+    StoredEvent,
+    StoredFile,
+    StoredNight,
+    decision_of,
+    file_of,
+    limits_of,
+    night_of,
+)
+from pipeline.records.tables import (
+    AuditEvent,
+    ChartPoint,
+    ControlLimitRow,
+    DecisionRow,
+    InputFile,
+    Lot,
+    NightRun,
+    ResultRow,
+)
+from pipeline.release.chart_view import ReleasedPoint, StoredLimits
+from pipeline.vocabulary import RELEASED
 
 MIGRATIONS = Path(__file__).resolve().parent / "migrations"
 MIGRATION_LOCK_KEY = 472_901_001
 RUN_LOCK_KEY = 472_901_002
 AUDIT_LOCK_KEY = 472_901_003
+CHUNK = 500  # values per IN (...) query
 
 
 def _sqlite_pragmas(connection: Any, _record: Any) -> None:
@@ -53,141 +60,13 @@ def _sqlite_pragmas(connection: Any, _record: Any) -> None:
     cursor.close()
 
 
-class Base(DeclarativeBase):
-    pass
-
-
 def utcnow() -> dt.datetime:
     return dt.datetime.now(dt.UTC)
 
 
-class NightRun(Base):
-    __tablename__ = "night_runs"
-    id: Mapped[int] = mapped_column(Integer, primary_key=True)
-    started_at_utc: Mapped[dt.datetime] = mapped_column(DateTime(timezone=True))
-    finished_at_utc: Mapped[dt.datetime | None] = mapped_column(DateTime(timezone=True), nullable=True)
-    code_version: Mapped[str] = mapped_column(String(40))
-    files_received: Mapped[int] = mapped_column(Integer, default=0)
-    files_archived: Mapped[int] = mapped_column(Integer, default=0)
-    files_quarantined: Mapped[int] = mapped_column(Integer, default=0)
-    lots_decided: Mapped[int] = mapped_column(Integer, default=0)
-
-
-class InputFile(Base):
-    __tablename__ = "input_files"
-    id: Mapped[int] = mapped_column(Integer, primary_key=True)
-    night_id: Mapped[int] = mapped_column(ForeignKey("night_runs.id"))
-    file_name: Mapped[str] = mapped_column(String(255))
-    sha256: Mapped[str] = mapped_column(String(64), index=True)
-    kind: Mapped[str | None] = mapped_column(String(40), nullable=True)
-    layout_version: Mapped[str | None] = mapped_column(String(20), nullable=True)
-    status: Mapped[str] = mapped_column(String(20))  # archived, quarantined, duplicate
-    reason: Mapped[str | None] = mapped_column(Text, nullable=True)
-    stored_as: Mapped[str] = mapped_column(String(400))
-    received_at_utc: Mapped[dt.datetime] = mapped_column(DateTime(timezone=True))
-
-
-class Lot(Base):
-    __tablename__ = "lots"
-    lot_id: Mapped[str] = mapped_column(String(40), primary_key=True)
-    product_code: Mapped[str] = mapped_column(String(20), index=True)
-    manufactured_on: Mapped[str | None] = mapped_column(String(10), nullable=True)
-    first_seen_utc: Mapped[dt.datetime] = mapped_column(DateTime(timezone=True))
-
-
-class DecisionRow(Base):
-    __tablename__ = "decisions"
-    __table_args__ = (UniqueConstraint("lot_id", "revision"),)
-    id: Mapped[int] = mapped_column(Integer, primary_key=True)
-    lot_id: Mapped[str] = mapped_column(ForeignKey("lots.lot_id"), index=True)
-    revision: Mapped[int] = mapped_column(Integer)
-    night_id: Mapped[int | None] = mapped_column(ForeignKey("night_runs.id"), nullable=True)
-    disposition: Mapped[str] = mapped_column(String(20))
-    hold_categories: Mapped[list[str]] = mapped_column(JSON)
-    reasons: Mapped[list[str]] = mapped_column(JSON)
-    spec_version: Mapped[str] = mapped_column(String(20))
-    spec_sha256: Mapped[str] = mapped_column(String(64))
-    fingerprint: Mapped[str] = mapped_column(String(64), unique=True)
-    decided_by: Mapped[str] = mapped_column(String(120))
-    change_note: Mapped[str | None] = mapped_column(Text, nullable=True)
-    decided_at_utc: Mapped[dt.datetime] = mapped_column(DateTime(timezone=True))
-    record: Mapped[dict[str, Any]] = mapped_column(JSON)
-    superseded_by: Mapped[int | None] = mapped_column(ForeignKey("decisions.id"), nullable=True)
-    lims_export: Mapped[str | None] = mapped_column(String(120), nullable=True)
-
-
-class ResultRow(Base):
-    __tablename__ = "results"
-    id: Mapped[int] = mapped_column(Integer, primary_key=True)
-    decision_id: Mapped[int] = mapped_column(ForeignKey("decisions.id"), index=True)
-    attribute: Mapped[str] = mapped_column(String(40))
-    value: Mapped[float | None] = mapped_column(Float, nullable=True)
-    value_text: Mapped[str | None] = mapped_column(String(80), nullable=True)
-    se: Mapped[float | None] = mapped_column(Float, nullable=True)
-    unit: Mapped[str] = mapped_column(String(20))
-    reported: Mapped[str | None] = mapped_column(String(40), nullable=True)
-    verdict: Mapped[str] = mapped_column(String(20))
-
-
-class ControlLimitRow(Base):
-    __tablename__ = "control_limits"
-    __table_args__ = (UniqueConstraint("product_code", "attribute", "version"),)
-    id: Mapped[int] = mapped_column(Integer, primary_key=True)
-    product_code: Mapped[str] = mapped_column(String(20))
-    attribute: Mapped[str] = mapped_column(String(40))
-    version: Mapped[int] = mapped_column(Integer)
-    center: Mapped[float] = mapped_column(Float)
-    sigma: Mapped[float] = mapped_column(Float)
-    mr_bar: Mapped[float] = mapped_column(Float)
-    baseline_n: Mapped[int] = mapped_column(Integer)
-    baseline_lots: Mapped[list[str]] = mapped_column(JSON)
-    frozen_at_utc: Mapped[dt.datetime] = mapped_column(DateTime(timezone=True))
-    frozen_by: Mapped[str] = mapped_column(String(120))
-    reason: Mapped[str] = mapped_column(Text)
-    active: Mapped[int] = mapped_column(Integer, default=1)
-
-
-class AuditEvent(Base):
-    """One hash-chained audit record (the decision log's lines are copies of these)."""
-
-    __tablename__ = "audit_events"
-    seq: Mapped[int] = mapped_column(Integer, primary_key=True, autoincrement=False)
-    time_utc: Mapped[str] = mapped_column(String(32))
-    kind: Mapped[str] = mapped_column(String(40), index=True)
-    lot_id: Mapped[str | None] = mapped_column(String(40), nullable=True, index=True)
-    body: Mapped[str] = mapped_column(Text)
-    prev_hash: Mapped[str] = mapped_column(String(64))
-    hash: Mapped[str] = mapped_column(String(64), unique=True)
-
-
-class ChartPoint(Base):
-    """A released lot's value on a product/attribute chart, in the order lots were released."""
-
-    __tablename__ = "chart_points"
-    __table_args__ = (UniqueConstraint("product_code", "attribute", "lot_id"),)
-    id: Mapped[int] = mapped_column(Integer, primary_key=True)
-    product_code: Mapped[str] = mapped_column(String(20), index=True)
-    attribute: Mapped[str] = mapped_column(String(40))
-    lot_id: Mapped[str] = mapped_column(String(40))
-    value: Mapped[float] = mapped_column(Float)
-    decision_id: Mapped[int] = mapped_column(ForeignKey("decisions.id"))
-
-
-@dataclass(frozen=True)
-class DecisionWrite:
-    """One lot's decision to store: the record, its results, chart points and audit events."""
-
-    lot_id: str
-    product_code: str
-    manufactured_on: str | None
-    night_id: int | None
-    decision: dict[str, Any]
-    results: tuple[dict[str, Any], ...]
-    chart_values: dict[str, float]
-    decided_by: str
-    change_note: str | None = None
-    events: tuple[dict[str, Any], ...] = ()
-    extra_points: tuple[tuple[str, str, str, float], ...] = ()
+def _chunks(values: list[Any]) -> Iterator[list[Any]]:
+    for start in range(0, len(values), CHUNK):
+        yield values[start:start + CHUNK]
 
 
 class Store:
@@ -246,88 +125,7 @@ class Store:
         finally:
             session.close()
 
-    # --- reads -------------------------------------------------------------------------
-    def known_file(self, sha256: str) -> InputFile | None:
-        with self.session() as s:
-            return s.scalars(select(InputFile).where(InputFile.sha256 == sha256,
-                                                     InputFile.status == "archived").limit(1)).first()
-
-    def archived_files(self, sha256s: list[str]) -> dict[str, InputFile]:
-        """Files already archived with these SHA-256 values (chunked IN queries)."""
-        out: dict[str, InputFile] = {}
-        with self.session() as s:
-            for start in range(0, len(sha256s), 500):
-                rows = s.scalars(select(InputFile).where(InputFile.sha256.in_(sha256s[start:start + 500]),
-                                                         InputFile.status == "archived"))
-                for row in rows:
-                    out.setdefault(row.sha256, row)
-        return out
-
-    def latest_decision(self, lot_id: str) -> DecisionRow | None:
-        with self.session() as s:
-            return s.scalars(select(DecisionRow).where(DecisionRow.lot_id == lot_id)
-                             .order_by(DecisionRow.revision.desc()).limit(1)).first()
-
-    def decision_by_fingerprint(self, fingerprint: str) -> DecisionRow | None:
-        with self.session() as s:
-            return s.scalars(select(DecisionRow).where(DecisionRow.fingerprint == fingerprint)).first()
-
-    def unfinished_nights(self) -> list[NightRun]:
-        with self.session() as s:
-            return list(s.scalars(select(NightRun).where(NightRun.finished_at_utc.is_(None)).order_by(NightRun.id)))
-
-    def files_of_nights(self, night_ids: list[int]) -> list[InputFile]:
-        if not night_ids:
-            return []
-        with self.session() as s:
-            return list(s.scalars(select(InputFile).where(InputFile.night_id.in_(night_ids)).order_by(InputFile.id)))
-
-    def known_fingerprints(self, fingerprints: list[str]) -> dict[str, DecisionRow]:
-        """Decisions already made with these fingerprints (chunked IN queries, no scan)."""
-        out: dict[str, DecisionRow] = {}
-        with self.session() as s:
-            for start in range(0, len(fingerprints), 500):
-                chunk = fingerprints[start:start + 500]
-                for row in s.scalars(select(DecisionRow).where(DecisionRow.fingerprint.in_(chunk))):
-                    out[row.fingerprint] = row
-        return out
-
-    def decisions(self, lot_id: str | None = None) -> list[DecisionRow]:
-        with self.session() as s:
-            query = select(DecisionRow).order_by(DecisionRow.id)
-            if lot_id is not None:
-                query = query.where(DecisionRow.lot_id == lot_id)
-            return list(s.scalars(query))
-
-    def chart_points(self, product_code: str, attribute: str, tail: int | None = None) -> list[ChartPoint]:
-        """Released lots on a chart, oldest first; only the last ``tail`` when given (no full scan)."""
-        with self.session() as s:
-            query = select(ChartPoint).where(ChartPoint.product_code == product_code,
-                                             ChartPoint.attribute == attribute)
-            if tail is None:
-                return list(s.scalars(query.order_by(ChartPoint.id)))
-            return list(reversed(list(s.scalars(query.order_by(ChartPoint.id.desc()).limit(tail)))))
-
-    def chart_count(self, product_code: str, attribute: str) -> int:
-        with self.session() as s:
-            return int(s.scalar(select(func.count(ChartPoint.id)).where(
-                ChartPoint.product_code == product_code, ChartPoint.attribute == attribute)) or 0)
-
-    def active_limits(self, product_code: str, attribute: str) -> ControlLimitRow | None:
-        with self.session() as s:
-            return s.scalars(select(ControlLimitRow).where(ControlLimitRow.product_code == product_code,
-                                                           ControlLimitRow.attribute == attribute,
-                                                           ControlLimitRow.active == 1)
-                             .order_by(ControlLimitRow.version.desc()).limit(1)).first()
-
-    def files(self, night_id: int | None = None) -> list[InputFile]:
-        with self.session() as s:
-            query = select(InputFile).order_by(InputFile.id)
-            if night_id is not None:
-                query = query.where(InputFile.night_id == night_id)
-            return list(s.scalars(query))
-
-    # --- writes ------------------------------------------------------------------------
+    # --- nights and files ----------------------------------------------------------------
     def start_night(self, code_version: str) -> int:
         with self.session() as s:
             night = NightRun(started_at_utc=utcnow(), code_version=code_version)
@@ -338,25 +136,176 @@ class Store:
     def finish_night(self, night_id: int, **counts: int) -> None:
         with self.session() as s:
             night = s.get(NightRun, night_id)
-            assert night is not None
+            if night is None:
+                raise StoreError(f"night {night_id} is not in the results store")
             for key, value in counts.items():
                 setattr(night, key, value)
             night.finished_at_utc = utcnow()
 
-    def record_file(self, night_id: int, **fields: Any) -> None:
+    def unfinished_nights(self) -> list[StoredNight]:
         with self.session() as s:
-            s.add(InputFile(night_id=night_id, received_at_utc=utcnow(), **fields))
+            return [night_of(n) for n in s.scalars(select(NightRun).where(NightRun.finished_at_utc.is_(None))
+                                                   .order_by(NightRun.id))]
 
+    def record_files(self, night_id: int, files: list[dict[str, Any]], events: list[dict[str, Any]]) -> None:
+        """Input files (name, SHA-256, status, reason, where stored) and their audit events, in one transaction."""
+        with self.session() as s:
+            if files:
+                now = utcnow()
+                s.execute(insert(InputFile), [{"night_id": night_id, "received_at_utc": now, **fields}
+                                              for fields in files])
+            self.chain_events(s, events)
+
+    def files(self, night_id: int | None = None) -> list[StoredFile]:
+        return self.files_of_nights(None if night_id is None else [night_id])
+
+    def files_of_nights(self, night_ids: list[int] | None) -> list[StoredFile]:
+        """The files recorded by these nights (every night: None), in the order recorded."""
+        if night_ids == []:
+            return []
+        with self.session() as s:
+            query = select(InputFile).order_by(InputFile.id)
+            if night_ids is not None:
+                query = query.where(InputFile.night_id.in_(night_ids))
+            return [file_of(row) for row in s.scalars(query)]
+
+    def archived_files(self, sha256s: list[str]) -> dict[str, StoredFile]:
+        """Files already archived with these SHA-256 values, the first of each."""
+        out: dict[str, StoredFile] = {}
+        with self.session() as s:
+            for chunk in _chunks(sha256s):
+                for row in s.scalars(select(InputFile).where(InputFile.sha256.in_(chunk), InputFile.status == "archived")
+                                     .order_by(InputFile.id)):
+                    out.setdefault(row.sha256, file_of(row))
+        return out
+
+    # --- decisions -------------------------------------------------------------------------
+    def decisions(self, lot_id: str | None = None) -> list[StoredDecision]:
+        """Every revision (of one lot, or of all), in the order stored."""
+        with self.session() as s:
+            query = select(DecisionRow).order_by(DecisionRow.id)
+            if lot_id is not None:
+                query = query.where(DecisionRow.lot_id == lot_id)
+            return [decision_of(row) for row in s.scalars(query)]
+
+    def latest_decision(self, lot_id: str) -> StoredDecision | None:
+        return self.previous_decisions([lot_id]).get(lot_id)
+
+    def previous_decisions(self, lot_ids: list[str]) -> dict[str, StoredDecision]:
+        """The latest decision of each lot that has one (one query per 500 lots)."""
+        out: dict[str, StoredDecision] = {}
+        with self.session() as s:
+            for chunk in _chunks(lot_ids):
+                rows = s.scalars(select(DecisionRow).where(DecisionRow.lot_id.in_(chunk),
+                                                           DecisionRow.superseded_by.is_(None)))
+                out.update({row.lot_id: decision_of(row) for row in rows})
+        return out
+
+    def known_fingerprints(self, fingerprints: list[str]) -> dict[str, StoredDecision]:
+        """Decisions already made with these fingerprints (one query per 500, no scan)."""
+        out: dict[str, StoredDecision] = {}
+        with self.session() as s:
+            for chunk in _chunks(fingerprints):
+                out.update({row.fingerprint: decision_of(row)
+                            for row in s.scalars(select(DecisionRow).where(DecisionRow.fingerprint.in_(chunk)))})
+        return out
+
+    def decisions_by_id(self, decision_ids: list[int]) -> list[StoredDecision]:
+        """These decisions, in the order of ``decision_ids`` (read in chunks by the caller to bound memory)."""
+        with self.session() as s:
+            rows = {row.id: row for row in s.scalars(select(DecisionRow).where(DecisionRow.id.in_(decision_ids)))}
+            return [decision_of(rows[i]) for i in decision_ids]
+
+    def unexported_decision_ids(self) -> list[int]:
+        with self.session() as s:
+            return list(s.scalars(select(DecisionRow.id).where(DecisionRow.lims_export.is_(None))
+                                  .order_by(DecisionRow.id)))
+
+    def mark_exported(self, decision_ids: list[int], export_name: str, events: list[dict[str, Any]]) -> None:
+        with self.session() as s:
+            for chunk in _chunks(decision_ids):  # an UPDATE, not the rows loaded and written back
+                s.execute(update(DecisionRow).where(DecisionRow.id.in_(chunk))
+                          .values(lims_export=export_name).execution_options(synchronize_session=False))
+            self.chain_events(s, events)
+
+    def add_decisions(self, writes: list[DecisionWrite]) -> list[StoredDecision]:
+        """Store several lots' decisions, each as a new revision with its audit events, in ONE transaction.
+
+        All or nothing: a failure (or a kill) stores none of them. Lots and latest revisions are
+        read with one query per 500 lots, rows are inserted in batches, and the audit events of
+        every lot are chained after one read of the chain's head, in the order of ``writes``.
+        """
+        if not writes:
+            return []
+        with self.session() as s:
+            latest = self._new_lots_and_latest(s, writes)
+            rows: list[tuple[DecisionRow, DecisionRow | None]] = []
+            for w in writes:
+                previous = latest.get(w.record.lot_id)
+                r = w.record
+                row = DecisionRow(
+                    lot_id=r.lot_id, revision=(previous.revision + 1) if previous else 1, night_id=w.night_id,
+                    disposition=r.disposition, hold_categories=list(r.hold_categories), reasons=list(r.reasons),
+                    spec_version=r.spec_version, spec_sha256=r.spec_sha256, fingerprint=r.fingerprint,
+                    decided_by=w.decided_by, change_note=w.change_note, decided_at_utc=utcnow(), record=r.to_json())
+                s.add(row)
+                if previous is not None:
+                    s.flush()  # the same lot twice in one batch: the later revision needs the earlier id
+                latest[r.lot_id] = row
+                rows.append((row, previous))
+            s.flush()
+            results: list[dict[str, Any]] = []
+            points: list[dict[str, Any]] = []
+            events: list[dict[str, Any]] = []
+            for w, (row, previous) in zip(writes, rows, strict=True):
+                if previous is not None:
+                    previous.superseded_by = row.id
+                results += [{"decision_id": row.id, "attribute": r.code,
+                             "value": r.value if isinstance(r.value, int | float) else None,
+                             "value_text": r.value if isinstance(r.value, str) else None,
+                             "se": w.standard_errors.get(r.code), "unit": r.unit or "", "reported": r.reported,
+                             "verdict": r.verdict} for r in w.record.results]
+                points += [{"product_code": w.record.product, "attribute": attribute, "lot_id": w.record.lot_id,
+                            "value": value, "decision_id": row.id} for attribute, value in w.chart_values.items()]
+                points += [{"product_code": chart_code, "attribute": attribute, "lot_id": point_id, "value": value,
+                            "decision_id": row.id} for chart_code, attribute, point_id, value in w.extra_points]
+                events.extend({**e, "revision": row.revision} for e in w.events)
+            s.flush()
+            for model, values in ((ResultRow, results), (ChartPoint, points)):
+                if values:
+                    s.execute(insert(model), values)  # one multi-row statement per table, not one per row
+            self.chain_events(s, events)
+            return [decision_of(row) for row, _ in rows]
+
+    @staticmethod
+    def _new_lots_and_latest(s: Session, writes: list[DecisionWrite]) -> dict[str, DecisionRow]:
+        """Add the lots not yet known; return the latest revision of each lot already decided."""
+        lot_ids = list(dict.fromkeys(w.record.lot_id for w in writes))
+        known_lots: set[str] = set()
+        latest: dict[str, DecisionRow] = {}
+        for chunk in _chunks(lot_ids):
+            known_lots.update(s.scalars(select(Lot.lot_id).where(Lot.lot_id.in_(chunk))))
+            for row in s.scalars(select(DecisionRow).where(DecisionRow.lot_id.in_(chunk))
+                                 .order_by(DecisionRow.lot_id, DecisionRow.revision)):
+                latest[row.lot_id] = row
+        for w in writes:
+            if w.record.lot_id not in known_lots:
+                known_lots.add(w.record.lot_id)
+                s.add(Lot(lot_id=w.record.lot_id, product_code=w.record.product,
+                          manufactured_on=w.manufactured_on, first_seen_utc=utcnow()))
+        s.flush()
+        return latest
+
+    # --- control charts ----------------------------------------------------------------------
     def freeze_limits(self, product_code: str, attribute: str, center: float, sigma: float, mr_bar: float,
                       baseline_lots: list[str], frozen_by: str, reason: str,
-                      events: list[dict[str, Any]] | None = None) -> ControlLimitRow:
-        """A new version of a chart's limits (earlier ones deactivated), with its audit event."""
+                      events: list[dict[str, Any]] | None = None) -> StoredLimits:
+        """A new version of a chart's limits (earlier ones deactivated), with its audit events."""
         with self.session() as s:
             current = s.scalar(select(func.max(ControlLimitRow.version)).where(
                 ControlLimitRow.product_code == product_code, ControlLimitRow.attribute == attribute)) or 0
-            for row in s.scalars(select(ControlLimitRow).where(ControlLimitRow.product_code == product_code,
-                                                               ControlLimitRow.attribute == attribute)):
-                row.active = 0
+            s.execute(update(ControlLimitRow).where(ControlLimitRow.product_code == product_code,
+                                                    ControlLimitRow.attribute == attribute).values(active=0))
             row = ControlLimitRow(product_code=product_code, attribute=attribute, version=current + 1,
                                   center=center, sigma=sigma, mr_bar=mr_bar, baseline_n=len(baseline_lots),
                                   baseline_lots=baseline_lots, frozen_at_utc=utcnow(), frozen_by=frozen_by,
@@ -365,8 +314,62 @@ class Store:
             s.flush()
             self.chain_events(s, [{**e, "version": row.version, "previous_version": current or None}
                                   for e in (events or [])])
-            return row
+            return limits_of(row)
 
+    def limit_versions(self, product_code: str, attribute: str) -> tuple[StoredLimits, ...]:
+        """Every stored version of a chart's limits, oldest first."""
+        with self.session() as s:
+            return tuple(limits_of(r) for r in s.scalars(select(ControlLimitRow).where(
+                ControlLimitRow.product_code == product_code, ControlLimitRow.attribute == attribute)
+                .order_by(ControlLimitRow.version)))
+
+    def released_count(self, product_code: str, attribute: str) -> int:
+        with self.session() as s:
+            return int(s.scalar(select(func.count(ChartPoint.id)).where(
+                ChartPoint.product_code == product_code, ChartPoint.attribute == attribute)) or 0)
+
+    def released_points(self, product_code: str, attribute: str, *, tail: int | None = None,
+                        from_lot: str | None = None, count: int | None = None) -> tuple[ReleasedPoint, ...]:
+        """Released lots on a chart in release order: all, the last ``tail``, or ``count`` from ``from_lot``.
+
+        ``from_lot`` not on the chart gives an empty tuple.
+        """
+        where = (ChartPoint.product_code == product_code, ChartPoint.attribute == attribute)
+        with self.session() as s:
+            query = select(ChartPoint).where(*where)
+            if from_lot is not None:
+                start = s.scalar(select(ChartPoint.id).where(*where, ChartPoint.lot_id == from_lot))
+                if start is None:
+                    return ()
+                query = query.where(ChartPoint.id >= start).order_by(ChartPoint.id)
+                rows = list(s.scalars(query.limit(count) if count is not None else query))
+            elif tail is not None:
+                rows = list(reversed(list(s.scalars(query.order_by(ChartPoint.id.desc()).limit(tail)))))
+            else:
+                rows = list(s.scalars(query.order_by(ChartPoint.id)))
+            return tuple(ReleasedPoint(r.lot_id, float(r.value), int(r.decision_id)) for r in rows)
+
+    def held_decisions(self, product_code: str, attribute: str, *, after_order: int | None,
+                       limit: int) -> list[tuple[StoredDecision, float | None]]:
+        """Latest decisions of the product's lots that hold them (not on the chart), newest ``limit``,
+        oldest first, each with its value of ``attribute`` (None when it has none)."""
+        charted = select(ChartPoint.lot_id).where(ChartPoint.product_code == product_code,
+                                                  ChartPoint.attribute == attribute)
+        with self.session() as s:
+            query = (select(DecisionRow).join(Lot, Lot.lot_id == DecisionRow.lot_id)
+                     .where(Lot.product_code == product_code, DecisionRow.superseded_by.is_(None),
+                            DecisionRow.disposition != RELEASED, DecisionRow.lot_id.not_in(charted)))
+            if after_order is not None:
+                query = query.where(DecisionRow.id > after_order)
+            rows = list(reversed(list(s.scalars(query.order_by(DecisionRow.id.desc()).limit(limit)))))
+            values: dict[int, float | None] = {}
+            if rows:
+                for r in s.scalars(select(ResultRow).where(ResultRow.decision_id.in_([d.id for d in rows]),
+                                                           ResultRow.attribute == attribute)):
+                    values[r.decision_id] = None if r.value is None else float(r.value)
+            return [(decision_of(d), values.get(d.id)) for d in rows]
+
+    # --- audit events ------------------------------------------------------------------------
     def chain_events(self, session: Session, events: list[dict[str, Any]]) -> list[dict[str, Any]]:
         """Chain audit ``events`` after the last stored one, inside the caller's transaction."""
         from pipeline.records import ledger
@@ -389,126 +392,12 @@ class Store:
         with self.session() as s:
             return self.chain_events(s, events)
 
-    def add_decision(self, *, lot_id: str, product_code: str, manufactured_on: str | None, night_id: int | None,
-                     decision: dict[str, Any], results: list[dict[str, Any]], chart_values: dict[str, float],
-                     decided_by: str, change_note: str | None = None,
-                     events: list[dict[str, Any]] | None = None,
-                     extra_points: tuple[tuple[str, str, str, float], ...] = ()) -> DecisionRow:
-        """Store one lot's decision as a new revision with its audit events, in one transaction."""
-        return self.add_decisions([DecisionWrite(
-            lot_id=lot_id, product_code=product_code, manufactured_on=manufactured_on, night_id=night_id,
-            decision=decision, results=tuple(results), chart_values=dict(chart_values), decided_by=decided_by,
-            change_note=change_note, events=tuple(events or ()), extra_points=tuple(extra_points))])[0]
-
-    def add_decisions(self, writes: list[DecisionWrite]) -> list[DecisionRow]:
-        """Store several lots' decisions, each as a new revision with its audit events, in ONE transaction.
-
-        All or nothing: a failure (or a kill) stores none of them. Lots and latest revisions are
-        read with one query per 500 lots, rows are inserted in batches, and the audit events of
-        every lot are chained after one read of the chain's head, in the order of ``writes``.
-        """
-        if not writes:
-            return []
+    def audit_events(self, after_seq: int = 0, limit: int | None = None) -> list[StoredEvent]:
+        """Chained events after ``after_seq``, in chain order; at most ``limit`` when given."""
         with self.session() as s:
-            lot_ids = list(dict.fromkeys(w.lot_id for w in writes))
-            known_lots: set[str] = set()
-            latest: dict[str, DecisionRow] = {}
-            for start in range(0, len(lot_ids), 500):
-                chunk = lot_ids[start:start + 500]
-                known_lots.update(s.scalars(select(Lot.lot_id).where(Lot.lot_id.in_(chunk))))
-                for row in s.scalars(select(DecisionRow).where(DecisionRow.lot_id.in_(chunk))
-                                     .order_by(DecisionRow.lot_id, DecisionRow.revision)):
-                    latest[row.lot_id] = row
-            new_lots = []
-            for w in writes:
-                if w.lot_id not in known_lots:
-                    known_lots.add(w.lot_id)
-                    new_lots.append(Lot(lot_id=w.lot_id, product_code=w.product_code,
-                                        manufactured_on=w.manufactured_on, first_seen_utc=utcnow()))
-            s.add_all(new_lots)
-            s.flush()
-            rows: list[DecisionRow] = []
-            for w in writes:
-                previous = latest.get(w.lot_id)
-                d = w.decision
-                row = DecisionRow(
-                    lot_id=w.lot_id, revision=(previous.revision + 1) if previous else 1, night_id=w.night_id,
-                    disposition=d["disposition"], hold_categories=list(d["hold_categories"]),
-                    reasons=list(d["reasons"]), spec_version=d["spec_version"], spec_sha256=d["spec_sha256"],
-                    fingerprint=d["fingerprint"], decided_by=w.decided_by, change_note=w.change_note,
-                    decided_at_utc=utcnow(), record=json.loads(json.dumps(d)))
-                s.add(row)
-                if previous is not None:
-                    s.flush()  # the same lot twice in one batch: the later revision needs the earlier id
-                latest[w.lot_id] = row
-                rows.append((row, previous))
-            s.flush()
-            results: list[dict[str, Any]] = []
-            points: list[dict[str, Any]] = []
-            events: list[dict[str, Any]] = []
-            for w, (row, previous) in zip(writes, rows, strict=True):
-                if previous is not None:
-                    previous.superseded_by = row.id
-                for result in w.results:
-                    value = result.get("value")
-                    results.append({"decision_id": row.id, "attribute": result["code"],
-                                    "value": value if isinstance(value, int | float) else None,
-                                    "value_text": value if isinstance(value, str) else None,
-                                    "se": result.get("se"), "unit": result.get("unit") or "",
-                                    "reported": result.get("reported"), "verdict": result["verdict"]})
-                points += [{"product_code": w.product_code, "attribute": attribute, "lot_id": w.lot_id,
-                            "value": value, "decision_id": row.id} for attribute, value in w.chart_values.items()]
-                points += [{"product_code": chart_code, "attribute": attribute, "lot_id": point_id, "value": value,
-                            "decision_id": row.id} for chart_code, attribute, point_id, value in w.extra_points]
-                events.extend({**e, "revision": row.revision} for e in w.events)
-            s.flush()
-            for model, values in ((ResultRow, results), (ChartPoint, points)):
-                if values:
-                    s.execute(insert(model), values)  # one multi-row statement per table, not one per row
-            self.chain_events(s, events)
-            return [row for row, _ in rows]
-
-    def record_files(self, night_id: int, files: list[dict[str, Any]], events: list[dict[str, Any]]) -> None:
-        with self.session() as s:
-            if files:
-                now = utcnow()
-                s.execute(insert(InputFile), [{"night_id": night_id, "received_at_utc": now, **fields}
-                                              for fields in files])
-            self.chain_events(s, events)
-
-    def unexported_decisions(self) -> list[DecisionRow]:
-        with self.session() as s:
-            return list(s.scalars(select(DecisionRow).where(DecisionRow.lims_export.is_(None)).order_by(DecisionRow.id)))
-
-    def unexported_decision_ids(self) -> list[int]:
-        with self.session() as s:
-            return list(s.scalars(select(DecisionRow.id).where(DecisionRow.lims_export.is_(None))
-                                  .order_by(DecisionRow.id)))
-
-    def decisions_by_id(self, decision_ids: list[int]) -> list[DecisionRow]:
-        """These decisions, in the order of ``decision_ids`` (read in chunks by the caller to bound memory)."""
-        with self.session() as s:
-            rows = {row.id: row for row in s.scalars(select(DecisionRow).where(DecisionRow.id.in_(decision_ids)))}
-        return [rows[i] for i in decision_ids]
-
-    def mark_exported(self, decision_ids: list[int], export_name: str, events: list[dict[str, Any]]) -> None:
-        with self.session() as s:
-            for start in range(0, len(decision_ids), 500):  # an UPDATE, not the rows loaded and written back
-                s.execute(update(DecisionRow).where(DecisionRow.id.in_(decision_ids[start:start + 500]))
-                          .values(lims_export=export_name).execution_options(synchronize_session=False))
-            self.chain_events(s, events)
-
-    def previous_decisions(self, lot_ids: list[str]) -> dict[str, DecisionRow]:
-        """The latest decision of each lot that has one (one query for the night)."""
-        if not lot_ids:
-            return {}
-        out: dict[str, DecisionRow] = {}
-        with self.session() as s:
-            for start in range(0, len(lot_ids), 500):
-                rows = s.scalars(select(DecisionRow).where(DecisionRow.lot_id.in_(lot_ids[start:start + 500]))
-                                 .order_by(DecisionRow.lot_id, DecisionRow.revision))
-                out.update({row.lot_id: row for row in rows})
-        return out
+            query = select(AuditEvent).where(AuditEvent.seq > after_seq).order_by(AuditEvent.seq)
+            return [StoredEvent(r.seq, r.body, r.prev_hash, r.hash)
+                    for r in s.scalars(query if limit is None else query.limit(limit))]
 
 
 def safe_url(url: str) -> str:

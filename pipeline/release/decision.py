@@ -12,7 +12,8 @@ from __future__ import annotations
 
 import hashlib
 import json
-from dataclasses import dataclass, field
+from collections.abc import Mapping
+from dataclasses import dataclass, replace
 from typing import Any
 
 from pipeline.controlled.specs import Attribute, Specification
@@ -44,24 +45,32 @@ class FrozenLimits:
     baseline_lots: tuple[str, ...]
 
 
-@dataclass
-class Chart:
+@dataclass(frozen=True)
+class ChartState:
     """A product/attribute chart as the night sees it: limits and the recent released lots."""
 
     product_code: str
     attribute: str
     limits: FrozenLimits | None
-    lots: list[str] = field(default_factory=list)
-    values: list[float] = field(default_factory=list)
+    lots: tuple[str, ...] = ()
+    values: tuple[float, ...] = ()
     total: int = 0  # released lots on the chart, all time
-    newly_frozen: FrozenLimits | None = None
-    pending_points: list[tuple[str, str, str, float]] = field(default_factory=list)  # not yet stored
 
     def snapshot(self) -> dict[str, Any]:
         return {"lots": list(self.lots[-CHART_TAIL:]), "values": list(self.values[-CHART_TAIL:]),
                 "center": self.limits.center if self.limits else None,
                 "sigma": self.limits.sigma if self.limits else None,
                 "limits_version": self.limits.version if self.limits else None}
+
+    def with_point(self, point_id: str, value: float) -> ChartState:
+        """The chart with one more released point; once limits are frozen only the tail is kept."""
+        keep = CHART_TAIL if self.limits is not None else None
+        lots, values = (*self.lots, point_id), (*self.values, value)
+        return replace(self, lots=lots[-keep:] if keep else lots, values=values[-keep:] if keep else values,
+                       total=self.total + 1)
+
+
+ChartKey = tuple[str, str]  # (product code or method id, attribute code)
 
 
 @dataclass(frozen=True)
@@ -74,7 +83,16 @@ class LotDecision:
     extra_points: tuple[tuple[str, str, str, float], ...] = ()  # (chart, attribute, point id, value): a plate's reference
 
 
-def _picture(chart: Chart, attribute: Attribute, point_id: str, value: float, label: str,
+@dataclass(frozen=True)
+class NightDecisions:
+    """The night's decisions in order, the charts as they stand after them, and the limits frozen tonight."""
+
+    lots: tuple[LotDecision, ...]
+    charts: dict[ChartKey, ChartState]
+    newly_frozen: dict[ChartKey, FrozenLimits]
+
+
+def _picture(chart: ChartState, attribute: Attribute, point_id: str, value: float, label: str,
              finding: TrendFinding) -> dict[str, Any]:
     picture = chart.snapshot()
     picture["lots"].append(point_id)
@@ -87,19 +105,21 @@ def _picture(chart: Chart, attribute: Attribute, point_id: str, value: float, la
     return picture
 
 
-def judge_reference_plates(evaluations: list[LotEvaluation], methods: dict[str, Any],
-                           charts: dict[tuple[str, str], Chart]) -> dict[str, tuple[TrendFinding, dict[str, Any] | None]]:
+def _judge_reference_plates(evaluations: list[LotEvaluation], methods: dict[str, Any],
+                            charts: dict[ChartKey, ChartState], frozen: list[ChartKey]) -> dict[str, tuple[
+                                TrendFinding, dict[str, Any] | None, tuple[str, str, str, float] | None]]:
     """Each valid activity plate's reference recovery on its method's chart, plates in id order.
 
     A plate recovering inside its window but out of trend holds its lots as out of trend; its
-    point joins the chart only when it is in trend (the chart of accepted plates).
+    point joins the chart only when it is in trend (the chart of accepted plates). ``charts`` is
+    the night's working copy: each chart is replaced by its new state.
     """
     plates: dict[str, dict[str, Any]] = {}
     for evaluation in evaluations:
         for plate in evaluation.plates:
             if plate.get("kind") == "activity":
                 plates.setdefault(plate["plate_id"], plate)
-    out: dict[str, tuple[TrendFinding, dict[str, Any] | None]] = {}
+    out: dict[str, tuple[TrendFinding, dict[str, Any] | None, tuple[str, str, str, float] | None]] = {}
     for plate_id in sorted(plates):
         plate = plates[plate_id]
         method = methods.get(plate.get("method_id"))
@@ -108,42 +128,44 @@ def judge_reference_plates(evaluations: list[LotEvaluation], methods: dict[str, 
             continue
         attribute = method.recovery_attribute()
         if not plate.get("valid") or not isinstance(recovery, float):
-            out[plate_id] = (TrendFinding(attribute.code, "not evaluated", signals=()), None)
+            out[plate_id] = (TrendFinding(attribute.code, "not evaluated", signals=()), None, None)
             continue
-        chart = charts.setdefault((method.method_id, attribute.code), Chart(method.method_id, attribute.code, None))
-        finding = _judge_point(chart, attribute, plate_id, recovery, attribute.digits, what="plate")
-        picture = _picture(chart, attribute, plate_id, recovery, "held: out of trend", finding) \
-            if finding.status == "out of trend" else None
-        if finding.status != "out of trend":
-            chart.lots.append(plate_id)
-            chart.values.append(recovery)
-            chart.total += 1
-            chart.pending_points.append((method.method_id, attribute.code, plate_id, recovery))
-        out[plate_id] = (finding, picture)
+        key = (method.method_id, attribute.code)
+        chart, finding = _judge_point(charts.get(key) or ChartState(*key, None), attribute, plate_id, recovery,
+                                      attribute.digits, frozen, what="plate")
+        picture = point = None
+        if finding.status == "out of trend":
+            picture = _picture(chart, attribute, plate_id, recovery, "held: out of trend", finding)
+        else:
+            chart = chart.with_point(plate_id, recovery)
+            point = (method.method_id, attribute.code, plate_id, recovery)
+        charts[key] = chart
+        out[plate_id] = (finding, picture, point)
     return out
 
 
-def _maybe_freeze(chart: Chart, attribute: Attribute) -> None:
+def _maybe_freeze(chart: ChartState, attribute: Attribute, frozen: list[ChartKey]) -> ChartState:
+    """The chart with limits frozen from its first baseline lots once it has them (centre = mean, σ̂ = MR̄/d₂)."""
     if chart.limits is not None or chart.total < attribute.baseline_n or len(chart.values) < attribute.baseline_n:
-        return
-    base_values = chart.values[: attribute.baseline_n]
+        return chart
+    base_values = list(chart.values[: attribute.baseline_n])
     limits = trend.imr_limits(base_values, min_baseline=attribute.baseline_n)
-    chart.limits = FrozenLimits(1, limits.center, limits.sigma, limits.mr_bar,
-                                tuple(chart.lots[: attribute.baseline_n]))
-    chart.newly_frozen = chart.limits
+    frozen.append((chart.product_code, chart.attribute))
+    return replace(chart, limits=FrozenLimits(1, limits.center, limits.sigma, limits.mr_bar,
+                                              tuple(chart.lots[: attribute.baseline_n])))
 
 
-def _judge_point(chart: Chart, attribute: Attribute, lot_id: str, value: float, digits: int,
-                 what: str = "lot") -> TrendFinding:
-    _maybe_freeze(chart, attribute)
+def _judge_point(chart: ChartState, attribute: Attribute, lot_id: str, value: float, digits: int,
+                 frozen: list[ChartKey], what: str = "lot") -> tuple[ChartState, TrendFinding]:
+    chart = _maybe_freeze(chart, attribute, frozen)
     if chart.limits is None:
-        return TrendFinding(attribute.code, "not yet established", baseline_n=attribute.baseline_n,
-                            signals=(), lots_involved=())
+        return chart, TrendFinding(attribute.code, "not yet established", baseline_n=attribute.baseline_n,
+                                   signals=(), lots_involved=())
     limits = chart.limits
     tail_lots = chart.lots[-CHART_TAIL:]
     tail_values = chart.values[-CHART_TAIL:]
     state = trend.ChartState.from_history(
-        tail_values, trend.ControlLimits(center=limits.center, sigma=limits.sigma, mr_bar=limits.mr_bar,
+        list(tail_values), trend.ControlLimits(center=limits.center, sigma=limits.sigma, mr_bar=limits.mr_bar,
                                          mr_ucl=trend.D4_N2 * limits.mr_bar, ucl=limits.center + 3 * limits.sigma,
                                          lcl=limits.center - 3 * limits.sigma, n=len(limits.baseline_lots)))
     _, signals = state.push(value, attribute.trend_rules)
@@ -160,8 +182,8 @@ def _judge_point(chart: Chart, attribute: Attribute, lot_id: str, value: float, 
             f"σ {fmt.format(limits.sigma)}, 3σ limits {fmt.format(limits.center - 3 * limits.sigma)}–"
             f"{fmt.format(limits.center + 3 * limits.sigma)} (limits v{limits.version})")
     status = "out of trend" if signals else "in trend"
-    return TrendFinding(attribute.code, status, limits.center, limits.sigma, limits.version,
-                        len(limits.baseline_lots), tuple(reasons), tuple(dict.fromkeys(involved)))
+    return chart, TrendFinding(attribute.code, status, limits.center, limits.sigma, limits.version,
+                               len(limits.baseline_lots), tuple(reasons), tuple(dict.fromkeys(involved)))
 
 
 def fingerprint(evaluation: LotEvaluation, spec: Specification, method_sha: dict[str, str], code_version: str) -> str:
@@ -172,16 +194,19 @@ def fingerprint(evaluation: LotEvaluation, spec: Specification, method_sha: dict
 
 
 def decide_night(evaluations: list[LotEvaluation], specifications: dict[str, Specification],
-                 methods: dict[str, Any], charts: dict[tuple[str, str], Chart],
-                 code_version: str, earlier: dict[str, str] | None = None) -> list[LotDecision]:
-    """Trend and disposition for each lot, in the given order; ``charts`` advance as lots release.
+                 methods: dict[str, Any], charts: Mapping[ChartKey, ChartState],
+                 code_version: str, earlier: dict[str, str] | None = None) -> NightDecisions:
+    """Trend and disposition for each lot, in the given order; the charts advance as lots release.
 
+    ``charts`` is left as given: the charts' new states and the limits frozen tonight are returned.
     ``earlier`` names lots whose latest decision was a hold or a person's decision: the nightly
     job never releases such a lot on its own; it is held for an authorised person's review.
     """
     earlier = earlier or {}
     out = []
-    references = judge_reference_plates(evaluations, methods, charts)
+    working = dict(charts)
+    frozen: list[ChartKey] = []
+    references = _judge_reference_plates(evaluations, methods, working, frozen)
     carried: set[str] = set()
     for evaluation in evaluations:
         spec = specifications[evaluation.product_code]
@@ -193,28 +218,29 @@ def decide_night(evaluations: list[LotEvaluation], specifications: dict[str, Spe
                 continue
             verdict = evaluation.verdict(attribute.code)
             value = verdict.value
-            chart = charts.setdefault((spec.product_code, attribute.code),
-                                      Chart(spec.product_code, attribute.code, None))
+            key = (spec.product_code, attribute.code)
+            chart = working.get(key) or ChartState(*key, None)
+            working[key] = chart
             if verdict.verdict != PASS and not (verdict.verdict == "reported" and isinstance(value, float)):
                 findings.append(TrendFinding(attribute.code, "not evaluated", signals=()))
                 continue
             if not isinstance(value, float):
                 findings.append(TrendFinding(attribute.code, "not evaluated", signals=()))
                 continue
-            findings.append(_judge_point(chart, attribute, evaluation.lot_id, value, attribute.digits))
+            working[key], finding = _judge_point(chart, attribute, evaluation.lot_id, value, attribute.digits, frozen)
+            findings.append(finding)
             pending[attribute.code] = value
         reference_pictures = []
         extra_points: list[tuple[str, str, str, float]] = []
         for plate in evaluation.plates:
             if plate.get("plate_id") in references:
-                finding, picture = references[plate["plate_id"]]
+                finding, picture, point = references[plate["plate_id"]]
                 findings.append(finding)
                 if picture is not None:
                     reference_pictures.append(picture)
                 if plate["plate_id"] not in carried:  # the first lot of a plate carries its chart point
                     carried.add(plate["plate_id"])
-                    chart = charts.get((str(plate.get("method_id")), "reference_recovery"))
-                    extra_points += [p for p in (chart.pending_points if chart else []) if p[2] == plate["plate_id"]]
+                    extra_points += [point] if point is not None else []
         state, categories, reasons = disposition(evaluation.verdicts, findings, evaluation.incomplete)
         if evaluation.lot_id in earlier:
             categories = (*categories, REVIEW_REQUIRED)
@@ -232,16 +258,16 @@ def decide_night(evaluations: list[LotEvaluation], specifications: dict[str, Spe
         chart_pictures = list(reference_pictures)
         for finding in findings:
             if finding.status == "out of trend" and finding.attribute in pending:
-                chart = charts[(spec.product_code, finding.attribute)]
+                chart = working[(spec.product_code, finding.attribute)]
                 chart_pictures.append(_picture(chart, spec.attribute(finding.attribute), evaluation.lot_id,
                                                pending[finding.attribute], decision.label, finding))
         released = state == RELEASED
         if released:
             for code, value in pending.items():
-                chart = charts[(spec.product_code, code)]
-                chart.lots.append(evaluation.lot_id)
-                chart.values.append(value)
-                chart.total += 1
+                key = (spec.product_code, code)
+                working[key] = working[key].with_point(evaluation.lot_id, value)
         out.append(LotDecision(evaluation, decision, tuple(findings), pending if released else {},
                                tuple(chart_pictures), tuple(extra_points)))
-    return out
+    newly_frozen = {key: limits for key, state in working.items()
+                    if key in frozen and (limits := state.limits) is not None}
+    return NightDecisions(tuple(out), working, newly_frozen)

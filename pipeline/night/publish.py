@@ -1,0 +1,197 @@
+"""Publishing the night's decisions: documents written, then decisions, results and audit events stored.
+
+A large night is rendered and signed across all cores in windows of WINDOW_LOTS lots, and each
+window is one store transaction; a small night is rendered here and committed lot by lot. The
+store and the log are written here, in the lots' order. A run killed mid-window leaves that
+window's documents without decisions: the restart decides those lots again and overwrites the
+documents (same revision, same file names).
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+from dataclasses import dataclass
+from typing import Any
+
+from pipeline import __version__
+from pipeline.controlled.catalog import Catalog
+from pipeline.controlled.specs import KineticMethod, ProteinMethod
+from pipeline.night.lot_documents import render_documents, write_documents
+from pipeline.night.open import CertificateSigner
+from pipeline.night.progress import Progress, no_progress
+from pipeline.night.workers import process_pool, render, renderer_start
+from pipeline.records import audit
+from pipeline.records.store import Store
+from pipeline.records.stored import DecisionWrite, StoredDecision
+from pipeline.records.workspace import Workspace
+from pipeline.release.change_note import change_note
+from pipeline.release.decision import ChartKey, FrozenLimits, LotDecision, NightDecisions
+from pipeline.release.dossier import build_dossier
+from pipeline.release.records import DecisionRecord
+from pipeline.release.signature import NIGHTLY_RELEASE_MEANING, signature_block
+from pipeline.vocabulary import RELEASED
+
+WINDOW_LOTS = 64          # lots rendered per round: bounds memory whatever the night's size
+PARALLEL_FROM_LOTS = 24   # below this, a process pool costs more than it saves
+NIGHTLY_JOB = f"lotgate {__version__} (nightly job)"
+
+
+@dataclass(frozen=True)
+class Outcome:
+    lot_id: str
+    product: str
+    label: str
+    reasons: tuple[str, ...]
+    revision: int
+    new: bool
+    certificate: str | None
+    report: str | None
+
+
+def _store_new_limits(ws: Workspace, store: Store, newly_frozen: dict[ChartKey, FrozenLimits]) -> None:
+    """Each chart whose baseline was reached tonight gets its first limits version, with its audit event."""
+    by = "lotgate (baseline reached)"
+    for (chart, attribute), frozen in newly_frozen.items():
+        reason = f"baseline of {len(frozen.baseline_lots)} released lots reached"
+        store.freeze_limits(chart, attribute, frozen.center, frozen.sigma, frozen.mr_bar, list(frozen.baseline_lots),
+                            frozen_by=by, reason=reason,
+                            events=[audit.event("limits-frozen", time_zone=ws.time_zone, product=chart,
+                                                attribute=attribute, center=frozen.center, sigma=frozen.sigma,
+                                                mr_bar=frozen.mr_bar, baseline_lots=list(frozen.baseline_lots),
+                                                by=by, reason=reason)])
+
+
+@dataclass(frozen=True)
+class _Job:
+    item: LotDecision
+    revision: int
+    previous: DecisionRecord | None
+    stem: str
+    decided_at: dt.datetime
+    dossier: dict[str, Any]
+    signature: dict[str, str] | None  # the visible signature block, for a released lot
+
+
+class _Renderers:
+    """Renders and signs documents in this process, or across all cores for a large night."""
+
+    def __init__(self, ws: Workspace, signer: CertificateSigner, lots: int, workers: int | None):
+        import os
+
+        self.ws, self.signer = ws, signer
+        cores = workers if workers is not None else (os.cpu_count() or 1)
+        self.pool = None
+        if cores > 1 and lots >= PARALLEL_FROM_LOTS:
+            self.pool = process_pool(cores, renderer_start, (str(ws.root),))
+
+    def submit(self, jobs: list[_Job]) -> Any:
+        """Start rendering ``jobs``; ``collect`` returns their documents in order."""
+        payloads = [(job.dossier, job.signature) for job in jobs]
+        if self.pool is None:
+            return payloads
+        return [self.pool.submit(render, payload) for payload in payloads]
+
+    def collect(self, handle: Any) -> list[tuple[bytes, bytes | None]]:
+        if self.pool is None:
+            return [render_documents(d, sig, self.signer, self.ws.plant_name) for d, sig in handle]
+        return [future.result() for future in handle]
+
+    def close(self) -> None:
+        if self.pool is not None:
+            self.pool.shutdown()
+
+
+def _prepare(ws: Workspace, catalog: Catalog, item: LotDecision, previous: StoredDecision | None,
+             signer: CertificateSigner) -> _Job:
+    decision = item.decision
+    revision = previous.revision + 1 if previous else 1
+    spec = catalog.specifications[decision.product]
+    activity_method = catalog.methods.get(spec.activity_method)
+    protein_method = catalog.methods.get(spec.protein_method)
+    decided_at = dt.datetime.now(dt.UTC)
+    dossier = build_dossier(item, spec, activity_method if isinstance(activity_method, KineticMethod) else None,
+                            protein_method if isinstance(protein_method, ProteinMethod) else None,
+                            plant_name=ws.plant_name, time_zone=ws.time_zone, revision=revision,
+                            decided_at=decided_at)
+    signature = None
+    if decision.disposition == RELEASED:
+        signature = signature_block(signer.signer_name, signer.fingerprint_sha256, decided_at.replace(microsecond=0),
+                                    ws.time_zone, NIGHTLY_RELEASE_MEANING)
+    return _Job(item, revision, None if previous is None else previous.record, f"{decision.lot_id}_r{revision}",
+                decided_at, dossier, signature)
+
+
+def _write(ws: Workspace, job: _Job, night_id: int, report_bytes: bytes, certificate_bytes: bytes | None,
+           signer: CertificateSigner) -> tuple[DecisionWrite, Outcome]:
+    """Write the lot's documents; return its decision record, results and audit events to store."""
+    item, decision = job.item, job.item.decision
+    written = write_documents(ws, job.stem, job.dossier, report_bytes, certificate_bytes, job.signature, signer)
+    record = DecisionRecord.of(decision, item.evaluation.verdicts, revision=job.revision, night_id=night_id,
+                               decided_at_utc=job.decided_at.isoformat(timespec="seconds"), trend=item.trend,
+                               certificate=written.certificate, report=written.report)
+    events = [audit.event("results-computed", time_zone=ws.time_zone, lot_id=decision.lot_id, night_id=night_id,
+                          results=[{"code": v.code, "value": v.value, "se": v.se, "unit": v.unit,
+                                    "reported": v.reported, "verdict": v.verdict} for v in item.evaluation.verdicts],
+                          plates=list(item.evaluation.plates)),
+              audit.event("decision", time_zone=ws.time_zone, **record.to_json())]
+    if written.certificate is not None:
+        events.append(audit.event("certificate-signed", time_zone=ws.time_zone, lot_id=decision.lot_id,
+                                  **vars(written.certificate)))
+    write = DecisionWrite(
+        record, NIGHTLY_JOB, night_id=night_id, manufactured_on=item.evaluation.manufactured_on,
+        standard_errors={v.code: v.se for v in item.evaluation.verdicts}, chart_values=dict(item.chart_values),
+        change_note=None if job.previous is None else change_note(job.previous, record),
+        events=tuple(events), extra_points=tuple(item.extra_points))
+    outcome = Outcome(decision.lot_id, decision.product, decision.label, decision.reasons, job.revision, True,
+                      None if written.certificate is None else f"certificates/{written.certificate.file}",
+                      f"reports/{written.report.file}")
+    return write, outcome
+
+
+def publish(ws: Workspace, store: Store, catalog: Catalog, decided: NightDecisions, night_id: int,
+            signer: CertificateSigner, progress: Progress = no_progress, workers: int | None = None) -> list[Outcome]:
+    """Per lot: batch report and (released) signed certificate written atomically; then the
+    decisions, their results and their audit events in one store transaction; the log follows.
+    The limits frozen tonight are stored first.
+    """
+    _store_new_limits(ws, store, decided.newly_frozen)
+    audit.sync_log(store, ws.log)
+    decisions = decided.lots
+    known = store.known_fingerprints([d.decision.fingerprint for d in decisions])
+    previous = store.previous_decisions([d.decision.lot_id for d in decisions])
+    outcomes: dict[int, Outcome] = {}
+    pending: list[tuple[int, LotDecision]] = []
+    for index, item in enumerate(decisions):
+        existing = known.get(item.decision.fingerprint)
+        if existing is not None:
+            outcomes[index] = Outcome(item.decision.lot_id, item.decision.product, existing.record.label,
+                                      existing.record.reasons, existing.revision, False, None, None)
+        else:
+            pending.append((index, item))
+    done = len(outcomes)
+    progress("publish", done, len(decisions))
+    renderers = _Renderers(ws, signer, len(pending), workers)
+    size = WINDOW_LOTS if renderers.pool is not None else 1
+    windows = [pending[start:start + size] for start in range(0, len(pending), size)]
+
+    def start(window: list[tuple[int, LotDecision]]) -> tuple[list[_Job], Any]:
+        jobs = [_prepare(ws, catalog, item, previous.get(item.decision.lot_id), signer) for _, item in window]
+        return jobs, renderers.submit(jobs)
+
+    try:
+        running = start(windows[0]) if windows else None
+        for number, window in enumerate(windows):
+            jobs, handle = running
+            # The next window renders on the workers while this one is written to disk and store.
+            running = start(windows[number + 1]) if number + 1 < len(windows) else None
+            written = [_write(ws, job, night_id, report, certificate, signer)
+                       for job, (report, certificate) in zip(jobs, renderers.collect(handle), strict=True)]
+            store.add_decisions([write for write, _ in written])
+            for (index, _), (_, outcome) in zip(window, written, strict=True):
+                outcomes[index] = outcome
+            done += len(window)
+            progress("publish", done, len(decisions))
+            audit.sync_log(store, ws.log)
+    finally:
+        renderers.close()
+    return [outcomes[i] for i in range(len(decisions))]

@@ -1,0 +1,85 @@
+"""Recovering from an interrupted night: finishing its file moves and recording what it set aside."""
+
+from __future__ import annotations
+
+import os
+from dataclasses import dataclass
+
+from pipeline.intake.assembly import QuarantinedFile
+from pipeline.night.receive import quarantine_record
+from pipeline.records import audit
+from pipeline.records.controlled_files import sha256_file
+from pipeline.records.store import Store
+from pipeline.records.workspace import Workspace, atomic_write
+
+
+@dataclass(frozen=True)
+class Recovery:
+    notes: list[str]
+    quarantined: list[QuarantinedFile]  # set aside by the interrupted night: still tonight's evidence
+
+
+def recover_interrupted(ws: Workspace, store: Store) -> Recovery:
+    """Finish what a killed run left: archive moves, unrecorded quarantined files, temporary files.
+
+    Decisions need no mending: each was committed with its audit events in one transaction, and
+    a lot whose fingerprint is stored is not decided again. The files the interrupted night set
+    aside are handed on, so that the lots they name see the same inputs (and fingerprints) as
+    they would have in one uninterrupted run.
+    """
+    notes: list[str] = []
+    for folder in (ws.root, ws.inbox, ws.certificates, ws.reports, ws.lims, ws.archive, ws.quarantine):
+        for stale in folder.glob(".*.tmp"):
+            stale.unlink(missing_ok=True)
+    unfinished = store.unfinished_nights()
+    if not unfinished:
+        return Recovery(notes, [])
+    earliest = min(n.started_at_utc for n in unfinished).timestamp()
+    night_files = store.files_of_nights([n.id for n in unfinished])
+    recorded = {f.stored_as for f in night_files}
+    for row in night_files:
+        if row.status != "archived":
+            continue
+        target, source = ws.root / row.stored_as, ws.inbox / row.file_name
+        if not target.exists() and source.exists() and sha256_file(source) == row.sha256:
+            target.parent.mkdir(parents=True, exist_ok=True)
+            os.replace(source, target)
+            notes.append(f"finished archiving {row.file_name}, left in the inbox by an interrupted run")
+    aside = []
+    for path in sorted(ws.quarantine.iterdir()):
+        if path.name.endswith(".reason.txt") or not path.is_file() or path.stat().st_mtime < earliest - 1:
+            continue
+        stored_as = str(path.relative_to(ws.root))
+        if stored_as in recorded:
+            continue
+        reason_file = path.with_name(path.name + ".reason.txt")
+        reason = reason_file.read_text(encoding="utf-8") if reason_file.exists() else \
+            f"File {path.name} was set aside by a run that was interrupted before it recorded why.\n"
+        if not reason_file.exists():
+            atomic_write(reason_file, reason.encode("utf-8"))
+        aside.append((path, reason))
+    night_id = unfinished[-1].id
+    for path, reason in aside:
+        digest, stored_as = sha256_file(path), str(path.relative_to(ws.root))
+        row, event = quarantine_record(ws, night_id, path.name, digest, "quarantined", reason.strip(), stored_as,
+                                       recovered=True)
+        store.record_files(night_id, [row], [event])
+        notes.append(f"recorded {path.name}, set aside by an interrupted run")
+    for night_run in unfinished:
+        store.finish_night(night_run.id)
+        store.add_events([audit.event("night-interrupted", time_zone=ws.time_zone, night_id=night_run.id,
+                                      started_utc=night_run.started_at_utc.isoformat())])
+        notes.append(f"night {night_run.id} had been interrupted; its decisions stand and this run completes it")
+    carried = []
+    for row in store.files_of_nights([n.id for n in unfinished]):
+        if row.status not in ("quarantined", "duplicate"):
+            continue
+        path = ws.root / row.stored_as
+        text = ""
+        earlier_copy = row.status == "duplicate" and "tonight" not in (row.reason or "")
+        if (row.status == "quarantined" or earlier_copy) and path.is_file() and not path.is_symlink():
+            with open(path, "rb") as handle:
+                text = handle.read(1 << 16).decode("utf-8", errors="replace")
+        carried.append(QuarantinedFile(row.file_name, row.sha256, row.reason or "", text))
+    audit.sync_log(store, ws.log)
+    return Recovery(notes, carried)
