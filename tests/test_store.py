@@ -43,7 +43,7 @@ def test_a_database_of_the_previous_version_upgrades_with_its_data(url):
     from alembic import command
     from alembic.config import Config
 
-    from pipeline.records.store import MIGRATIONS
+    from pipeline.records.database import MIGRATIONS
     config = Config()
     config.set_main_option("script_location", str(MIGRATIONS))
     with engine.begin() as connection:

@@ -10,7 +10,7 @@ from __future__ import annotations
 import dataclasses
 import hashlib
 import os
-from collections.abc import Iterator
+from collections.abc import Callable, Iterator
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -68,60 +68,36 @@ def receive(ws: Workspace, store: Store, layouts: dict[str, ExportLayout], night
     link's target could change after it is archived); a folder is left in place and named.
     """
     entries = sorted(ws.inbox.iterdir())
-    intake = Intake(night_id=night_id, received=0)
-    intake.carried = list(carried or [])
-    for entry in entries:
-        if entry.is_dir() and not entry.is_symlink():
-            intake.notes.append(f"the inbox holds a folder '{entry.name}'; lotgate reads files only, it was left in place")
+    intake = Intake(night_id=night_id, received=0, carried=list(carried or []))
+    intake.notes += [f"the inbox holds a folder '{e.name}'; lotgate reads files only, it was left in place"
+                     for e in entries if e.is_dir() and not e.is_symlink()]
     files = [e for e in entries if e.is_symlink() or e.is_file()]
     intake.received = len(files)
+    done = 0
+
+    def one_more() -> None:
+        nonlocal done
+        done += 1
+        progress("receive", done, len(files))
+
     largest = max(layout.max_bytes for layout in layouts.values())
     candidates: list[tuple[Path, str]] = []
-    seen: dict[str, str] = {}
-    done = 0
     for path in files:
-        reason = None
-        if path.is_symlink():
-            reason = "it is a symbolic link; export the file itself into the inbox (a link's target can change later)"
-        elif path.name.startswith("."):
-            reason = "it is a hidden file (its name starts with '.'), not an export"
-        else:
-            layout = layout_for(path.name, layouts)
-            limit = layout.max_bytes if layout is not None else largest
-            size = path.stat().st_size
-            if size > limit:
-                reason = f"the file has {size:,} bytes; {'a ' + layout.kind + ' export' if layout else 'an export'} may have at most {limit:,}"
-        if reason is not None:
-            report = f"File {path.name} was set aside (quarantined) and not used.\n\n- {reason}\n"
-            head = b""
-            if not path.is_symlink():
-                with open(path, "rb") as handle:  # the start only: enough to name the lots it mentions
-                    head = handle.read(1 << 16)
-            digest = (hashlib.sha256(os.readlink(path).encode()).hexdigest() if path.is_symlink()
-                      else sha256_file(path))  # streamed: a large file is never held in memory
-            _quarantine(ws, store, intake, path, digest, "quarantined", report, head.decode("utf-8", errors="replace"))
-            done += 1
-            progress("receive", done, len(files))
+        reason = _unusable(path, layouts, largest)
+        if reason is None:
+            candidates.append((path, sha256_file(path)))
             continue
-        candidates.append((path, sha256_file(path)))
-    archived = store.archived_files([sha for _, sha in candidates])
-    to_parse: list[tuple[Path, str]] = []
-    for path, sha in candidates:
-        earlier = archived.get(sha)
-        if earlier is not None or sha in seen:
-            first = earlier.file_name if earlier is not None else seen[sha]
-            when = f" (received {earlier.received_at_utc:%Y-%m-%d %H:%M} UTC)" if earlier is not None else " tonight"
-            report = (f"File {path.name} was set aside (quarantined) and not used.\n\n- it is byte for byte "
-                      f"identical (SHA-256 {sha[:16]}…) to {first}{when}, which was already processed\n")
-            # A copy of a file used tonight takes nothing away; a copy of an earlier night's file
-            # may be what a lot needed, so its text links it to the lots it names.
-            text = path.read_bytes().decode("utf-8", errors="replace") if earlier is not None else ""
-            _quarantine(ws, store, intake, path, sha, "duplicate", report, text)
-            done += 1
-            progress("receive", done, len(files))
-        else:
-            seen[sha] = path.name
-            to_parse.append((path, sha))
+        head = b""
+        if not path.is_symlink():
+            with open(path, "rb") as handle:  # the start only: enough to name the lots it mentions
+                head = handle.read(1 << 16)
+        digest = (hashlib.sha256(os.readlink(path).encode()).hexdigest() if path.is_symlink()
+                  else sha256_file(path))  # streamed: a large file is never held in memory
+        _quarantine(ws, store, intake, path, digest, "quarantined",
+                    f"File {path.name} was set aside (quarantined) and not used.\n\n- {reason}\n",
+                    head.decode("utf-8", errors="replace"))
+        one_more()
+    to_parse = _set_aside_copies(ws, store, intake, candidates, one_more)
     received = []
     for chunk, results in parse_in_chunks(to_parse, layouts):
         for (path, sha), result in zip(chunk, results, strict=True):
@@ -135,11 +111,48 @@ def receive(ws: Workspace, store: Store, layouts: dict[str, ExportLayout], night
                                             file=path.name, sha256=sha, export_kind=result.kind,
                                             layout_version=result.layout_version, rows=len(result.frame),
                                             conversions=list(result.conversions)))
-            done += 1
-            progress("receive", done, len(files))
+            one_more()
     store.add_events(received)
     audit.sync_log(store, ws.log)
     return intake
+
+
+def _unusable(path: Path, layouts: dict[str, ExportLayout], largest: int) -> str | None:
+    """Why a file cannot be an export (a link, hidden, too large), or None."""
+    if path.is_symlink():
+        return "it is a symbolic link; export the file itself into the inbox (a link's target can change later)"
+    if path.name.startswith("."):
+        return "it is a hidden file (its name starts with '.'), not an export"
+    layout = layout_for(path.name, layouts)
+    limit = layout.max_bytes if layout is not None else largest
+    size = path.stat().st_size
+    if size > limit:
+        return f"the file has {size:,} bytes; {'a ' + layout.kind + ' export' if layout else 'an export'} may have at most {limit:,}"
+    return None
+
+
+def _set_aside_copies(ws: Workspace, store: Store, intake: Intake, candidates: list[tuple[Path, str]],
+                      one_more: Callable[[], None]) -> list[tuple[Path, str]]:
+    """Set aside byte-for-byte copies of a file archived earlier or received tonight; return the rest."""
+    archived = store.archived_files([sha for _, sha in candidates])
+    seen: dict[str, str] = {}
+    to_parse: list[tuple[Path, str]] = []
+    for path, sha in candidates:
+        earlier = archived.get(sha)
+        if earlier is None and sha not in seen:
+            seen[sha] = path.name
+            to_parse.append((path, sha))
+            continue
+        first = earlier.file_name if earlier is not None else seen[sha]
+        when = f" (received {earlier.received_at_utc:%Y-%m-%d %H:%M} UTC)" if earlier is not None else " tonight"
+        report = (f"File {path.name} was set aside (quarantined) and not used.\n\n- it is byte for byte "
+                  f"identical (SHA-256 {sha[:16]}…) to {first}{when}, which was already processed\n")
+        # A copy of a file used tonight takes nothing away; a copy of an earlier night's file
+        # may be what a lot needed, so its text links it to the lots it names.
+        text = path.read_bytes().decode("utf-8", errors="replace") if earlier is not None else ""
+        _quarantine(ws, store, intake, path, sha, "duplicate", report, text)
+        one_more()
+    return to_parse
 
 
 def parse_in_chunks(to_parse: list[tuple[Path, str]],

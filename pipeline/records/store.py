@@ -9,17 +9,14 @@ from __future__ import annotations
 import datetime as dt
 from collections.abc import Iterator
 from contextlib import contextmanager
-from pathlib import Path
 from typing import Any
 
-from alembic import command
-from alembic.config import Config
-from filelock import FileLock
-from sqlalchemy import create_engine, event, func, insert, select, update
+from sqlalchemy import func, insert, select, update
 from sqlalchemy.exc import SQLAlchemyError
 from sqlalchemy.orm import Session, sessionmaker
 
 from pipeline.errors import StoreError
+from pipeline.records.database import migrate, open_engine, safe_url
 from pipeline.records.stored import (
     DecisionWrite,
     StoredDecision,
@@ -44,20 +41,9 @@ from pipeline.records.tables import (
 from pipeline.release.chart_view import ReleasedPoint, StoredLimits
 from pipeline.vocabulary import RELEASED
 
-MIGRATIONS = Path(__file__).resolve().parent / "migrations"
-MIGRATION_LOCK_KEY = 472_901_001
 RUN_LOCK_KEY = 472_901_002
 AUDIT_LOCK_KEY = 472_901_003
 CHUNK = 500  # values per IN (...) query
-
-
-def _sqlite_pragmas(connection: Any, _record: Any) -> None:
-    """Write-ahead log: readers never block the writer, and a commit costs one sync, not three."""
-    cursor = connection.cursor()
-    cursor.execute("PRAGMA journal_mode=WAL")
-    cursor.execute("PRAGMA synchronous=NORMAL")
-    cursor.execute("PRAGMA busy_timeout=30000")
-    cursor.close()
 
 
 def utcnow() -> dt.datetime:
@@ -75,10 +61,8 @@ class Store:
     def __init__(self, url: str):
         self.url = url
         try:
-            self.engine = create_engine(url, future=True)
-            if self.engine.dialect.name == "sqlite":
-                event.listen(self.engine, "connect", _sqlite_pragmas)
-            self.migrate()
+            self.engine = open_engine(url)
+            migrate(self.engine)
         except SQLAlchemyError as exc:
             raise StoreError(f"cannot open the results store at {safe_url(url)}: {exc.__class__.__name__}: {exc}") from exc
         self._sessions = sessionmaker(self.engine, expire_on_commit=False)
@@ -86,29 +70,6 @@ class Store:
     @property
     def is_postgresql(self) -> bool:
         return self.engine.dialect.name == "postgresql"
-
-    def migrate(self, revision: str = "head") -> None:
-        """Bring the database to ``revision`` with Alembic; one process at a time."""
-        config = Config()
-        config.set_main_option("script_location", str(MIGRATIONS))
-        if self.is_postgresql:
-            with self.engine.begin() as connection:
-                connection.exec_driver_sql(f"SELECT pg_advisory_xact_lock({MIGRATION_LOCK_KEY})")
-                config.attributes["connection"] = connection
-                command.upgrade(config, revision)
-            return
-        database = self.engine.url.database
-        lock = FileLock(f"{database}.migrate.lock") if database and database != ":memory:" else None
-        if lock is not None:
-            Path(database).parent.mkdir(parents=True, exist_ok=True)
-            lock.acquire(timeout=60)
-        try:
-            with self.engine.begin() as connection:
-                config.attributes["connection"] = connection
-                command.upgrade(config, revision)
-        finally:
-            if lock is not None:
-                lock.release()
 
     @contextmanager
     def session(self) -> Iterator[Session]:
@@ -398,13 +359,3 @@ class Store:
             query = select(AuditEvent).where(AuditEvent.seq > after_seq).order_by(AuditEvent.seq)
             return [StoredEvent(r.seq, r.body, r.prev_hash, r.hash)
                     for r in s.scalars(query if limit is None else query.limit(limit))]
-
-
-def safe_url(url: str) -> str:
-    """The URL with any password hidden, for messages."""
-    if "@" in url and "://" in url:
-        scheme, rest = url.split("://", 1)
-        credentials, host = rest.rsplit("@", 1)
-        user = credentials.split(":", 1)[0]
-        return f"{scheme}://{user}:***@{host}" if ":" in credentials else url
-    return url

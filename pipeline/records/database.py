@@ -1,0 +1,65 @@
+"""The results store's database: engine, SQLite settings and Alembic migrations (adapter)."""
+
+from __future__ import annotations
+
+from pathlib import Path
+from typing import Any
+
+from alembic import command
+from alembic.config import Config
+from filelock import FileLock
+from sqlalchemy import Engine, create_engine, event
+
+MIGRATIONS = Path(__file__).resolve().parent / "migrations"
+MIGRATION_LOCK_KEY = 472_901_001
+
+
+def _sqlite_pragmas(connection: Any, _record: Any) -> None:
+    """Write-ahead log: readers never block the writer, and a commit costs one sync, not three."""
+    cursor = connection.cursor()
+    cursor.execute("PRAGMA journal_mode=WAL")
+    cursor.execute("PRAGMA synchronous=NORMAL")
+    cursor.execute("PRAGMA busy_timeout=30000")
+    cursor.close()
+
+
+def open_engine(url: str) -> Engine:
+    """The SQLAlchemy engine for ``url``; SQLite connections get the write-ahead log."""
+    engine = create_engine(url, future=True)
+    if engine.dialect.name == "sqlite":
+        event.listen(engine, "connect", _sqlite_pragmas)
+    return engine
+
+
+def migrate(engine: Engine, revision: str = "head") -> None:
+    """Bring the database to ``revision`` with Alembic; one process at a time."""
+    config = Config()
+    config.set_main_option("script_location", str(MIGRATIONS))
+    if engine.dialect.name == "postgresql":
+        with engine.begin() as connection:
+            connection.exec_driver_sql(f"SELECT pg_advisory_xact_lock({MIGRATION_LOCK_KEY})")
+            config.attributes["connection"] = connection
+            command.upgrade(config, revision)
+        return
+    database = engine.url.database
+    lock = FileLock(f"{database}.migrate.lock") if database and database != ":memory:" else None
+    if lock is not None:
+        Path(database).parent.mkdir(parents=True, exist_ok=True)
+        lock.acquire(timeout=60)
+    try:
+        with engine.begin() as connection:
+            config.attributes["connection"] = connection
+            command.upgrade(config, revision)
+    finally:
+        if lock is not None:
+            lock.release()
+
+
+def safe_url(url: str) -> str:
+    """The URL with any password hidden, for messages."""
+    if "@" in url and "://" in url:
+        scheme, rest = url.split("://", 1)
+        credentials, host = rest.rsplit("@", 1)
+        user = credentials.split(":", 1)[0]
+        return f"{scheme}://{user}:***@{host}" if ":" in credentials else url
+    return url
