@@ -166,7 +166,7 @@ def cmd_verify(args: argparse.Namespace) -> int:
     import logging
 
     from pipeline.records import ledger
-    from pipeline.records.signing import verify_pdf
+    from pipeline.records.pdf_verification import verify_pdf
 
     for noisy in ("pyhanko", "pyhanko_certvalidator"):
         logging.getLogger(noisy).setLevel(logging.CRITICAL)

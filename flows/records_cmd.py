@@ -24,12 +24,13 @@ def _open(workspace: str):
 
 def cmd_keys_demo(args: argparse.Namespace) -> int:
     from pipeline.records import signing
+    from pipeline.records.demo_identity import create_demo_identity
     from pipeline.records.workspace import open_workspace
 
     ws = open_workspace(Path(args.workspace).expanduser())
     folder = Path(args.out).expanduser() if args.out else ws.keys
     name = args.name or ws.signer_name
-    identity = signing.create_demo_identity(folder, ws.plant_name, name)
+    identity = create_demo_identity(folder, ws.plant_name, name)
     if not args.out:
         (ws.keys / "use-demo-identity").touch()
     loaded = signing.load_identity(identity.p12_path, passphrase=identity.passphrase_path.read_bytes().strip())

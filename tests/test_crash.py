@@ -13,7 +13,7 @@ import pytest
 
 from pipeline.demo import plant as demo
 from pipeline.records import audit
-from pipeline.records.signing import verify_pdf
+from pipeline.records.pdf_verification import verify_pdf
 from pipeline.records.store import Store
 from pipeline.records.workspace import atomic_write, open_workspace, write_settings
 

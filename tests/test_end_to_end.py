@@ -10,7 +10,7 @@ import pytest
 from flows import nightly
 from pipeline.demo import plant as demo
 from pipeline.records import ledger
-from pipeline.records.signing import pdfsig_report, verify_pdf
+from pipeline.records.pdf_verification import pdfsig_report, verify_pdf
 from pipeline.records.store import Store
 from pipeline.records.workspace import atomic_write, open_workspace, write_settings
 
@@ -131,6 +131,7 @@ def test_revision_chain_original_reassay_and_a_persons_release(demo_workspace, t
     from flows import records_cmd
     from pipeline.night.person_decision import decide_lot
     from pipeline.records import signing
+    from pipeline.records.demo_identity import create_demo_identity
 
     root, nights, _ = demo_workspace
     lot = "LLC-2611-030"
@@ -142,7 +143,7 @@ def test_revision_chain_original_reassay_and_a_persons_release(demo_workspace, t
     # The re-assay's numbers are valid: the only reason left is the earlier hold awaiting a person.
     assert len(outcome.reasons) == 1 and outcome.reasons[0].startswith("the lot's earlier decision")
 
-    person = signing.create_demo_identity(tmp_path / "person", demo.PLANT_NAME, "Jonas Brandt")
+    person = create_demo_identity(tmp_path / "person", demo.PLANT_NAME, "Jonas Brandt")
     identity = signing.load_identity(person.p12_path, passphrase_file=person.passphrase_path)
     ws = open_workspace(root)
     store = Store(ws.database_url)

@@ -28,14 +28,9 @@ from pyhanko.pdf_utils.incremental_writer import IncrementalPdfFileWriter
 from reportlab.pdfgen import canvas
 
 from pipeline.errors import SigningError
-from pipeline.records.signing import (
-    DemoIdentity,
-    create_demo_identity,
-    load_identity,
-    pdfsig_report,
-    sign_pdf,
-    verify_pdf,
-)
+from pipeline.records.demo_identity import DemoIdentity, create_demo_identity
+from pipeline.records.pdf_verification import pdfsig_report, verify_pdf
+from pipeline.records.signing import load_identity, sign_pdf
 
 MARKER = b"LOT-MARKER-4711"
 REASON = "Lot released: all results within specification"

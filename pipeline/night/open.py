@@ -45,11 +45,12 @@ class IdentitySigner:
 def signer_for(ws: Workspace) -> IdentitySigner:
     """The workspace's signing identity: its own PKCS#12, or the demo identity when asked for."""
     from pipeline.records import signing
+    from pipeline.records.demo_identity import create_demo_identity
 
     if ws.signing_p12 is not None:
         return IdentitySigner(signing.load_identity(ws.signing_p12, passphrase_file=ws.signing_passphrase_file))
     if (ws.keys / "use-demo-identity").exists():
-        demo = signing.create_demo_identity(ws.keys, ws.plant_name, ws.signer_name)
+        demo = create_demo_identity(ws.keys, ws.plant_name, ws.signer_name)
         return IdentitySigner(signing.load_identity(demo.p12_path, passphrase_file=demo.passphrase_path))
     raise SigningError(
         f"no signing identity is set up for the workspace {ws.root}: put 'signing: {{p12: FILE, passphrase_file: FILE}}' "

@@ -19,10 +19,6 @@ from pipeline.records import ledger
 from pipeline.records.store import Store
 
 
-def now_utc_text() -> str:
-    return dt.datetime.now(dt.UTC).isoformat(timespec="milliseconds")
-
-
 def event(event_kind: str, /, *, time_zone: str, lot_id: str | None = None, **fields: Any) -> dict[str, Any]:
     """A new audit event: kind, UTC time and the same moment in the plant's time zone."""
     moment = dt.datetime.now(dt.UTC)
