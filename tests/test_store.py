@@ -196,3 +196,24 @@ def test_the_log_is_brought_up_to_date_page_by_page(url, tmp_path, monkeypatch):
     assert audit.sync_log(store, log) == 0
     check = audit.verify_trail(store, log)
     assert check.valid and check.store_records == check.log_records == 7
+
+
+def test_orm_rows_never_leave_the_store():
+    # Ports and adapters (common practice): only the store's own modules name its tables or
+    # SQLAlchemy; audit, chart queries, the night's use cases and the commands get records.
+    import ast
+    from pathlib import Path
+
+    root = Path(__file__).resolve().parents[1]
+    own = {"pipeline/records/store.py", "pipeline/records/stored.py", "pipeline/records/tables.py",
+           "pipeline/records/database.py"}
+    offenders = []
+    for path in [*root.joinpath("pipeline").rglob("*.py"), *root.joinpath("flows").rglob("*.py")]:
+        name = str(path.relative_to(root))
+        if name in own or name.startswith("pipeline/records/migrations/"):
+            continue
+        for node in ast.walk(ast.parse(path.read_text(encoding="utf-8"))):
+            modules = ([a.name for a in node.names] if isinstance(node, ast.Import)
+                       else [node.module or ""] if isinstance(node, ast.ImportFrom) else [])
+            offenders += [f"{name}: {m}" for m in modules if m.startswith(("sqlalchemy", "pipeline.records.tables"))]
+    assert offenders == []

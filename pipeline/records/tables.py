@@ -1,4 +1,4 @@
-"""The results store's tables (SQLAlchemy models); only ``pipeline.records.store`` uses them.
+"""The results store's tables (SQLAlchemy models); only the store and its converters (``stored.py``) use them.
 
 Decisions are never overwritten: a changed input set for a lot makes a new revision that
 supersedes the earlier one, which stays readable. The schema itself is made by the Alembic

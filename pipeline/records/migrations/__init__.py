@@ -1,1 +1,1 @@
-"""Alembic migrations of the results store (run by pipeline.store.Store on open)."""
+"""Alembic migrations of the results store (run by pipeline.records.database.migrate when a Store opens)."""
