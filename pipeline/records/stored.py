@@ -73,31 +73,28 @@ class DecisionWrite:
     extra_points: tuple[tuple[str, str, str, float], ...] = ()  # (chart, attribute, point id, value)
 
 
-def utc(when: dt.datetime | None) -> dt.datetime | None:
+def utc(when: dt.datetime) -> dt.datetime:
     """A stored time as an aware UTC datetime (SQLite gives back naive ones; they were written in UTC)."""
-    if when is None:
-        return None
     return when.replace(tzinfo=dt.UTC) if when.tzinfo is None else when.astimezone(dt.UTC)
 
 
 def night_of(row: NightRun) -> StoredNight:
-    return StoredNight(row.id, utc(row.started_at_utc) or row.started_at_utc)
+    return StoredNight(row.id, utc(row.started_at_utc))
 
 
 def file_of(row: InputFile) -> StoredFile:
     return StoredFile(row.night_id, row.file_name, row.sha256, row.status, row.stored_as,
-                      utc(row.received_at_utc) or row.received_at_utc, row.reason, row.kind, row.layout_version)
+                      utc(row.received_at_utc), row.reason, row.kind, row.layout_version)
 
 
 def decision_of(row: DecisionRow) -> StoredDecision:
     return StoredDecision(row.id, row.lot_id, row.revision, row.disposition, row.fingerprint, row.decided_by,
-                          utc(row.decided_at_utc) or row.decided_at_utc, DecisionRecord.from_json(row.record or {}),
+                          utc(row.decided_at_utc), DecisionRecord.from_json(row.record or {}),
                           row.change_note, row.superseded_by)
 
 
 def limits_of(row: ControlLimitRow) -> StoredLimits:
-    frozen = utc(row.frozen_at_utc)
     return StoredLimits(version=row.version, center=row.center, sigma=row.sigma, mr_bar=row.mr_bar,
                         baseline_lots=tuple(row.baseline_lots or ()),
-                        frozen_at_utc="" if frozen is None else frozen.isoformat(timespec="seconds"),
+                        frozen_at_utc=utc(row.frozen_at_utc).isoformat(timespec="seconds"),
                         frozen_by=row.frozen_by, reason=row.reason, active=bool(row.active))
