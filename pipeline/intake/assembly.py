@@ -30,7 +30,8 @@ import pandas as pd
 
 from pipeline.controlled.catalog import Catalog
 from pipeline.controlled.specs import KineticMethod
-from pipeline.intake.validation import PLATE_GEOMETRY, ParsedExport
+from pipeline.intake.row_checks import PLATE_GEOMETRY
+from pipeline.intake.validation import ParsedExport
 from pipeline.release.lot_evaluation import LimsEntry, LotInputs
 
 LOT_ID = re.compile(r"[A-Z0-9][A-Z0-9-]{2,31}")  # the lot_id pattern of the export layouts

@@ -19,7 +19,7 @@ from pipeline.records.signing import SigningIdentity, sign_pdf, sign_record
 from pipeline.records.store import Store
 from pipeline.records.workspace import Workspace, atomic_write
 from pipeline.release.dossier import local_time_text
-from pipeline.vocabulary import FAIL, REPORTED
+from pipeline.vocabulary import Disposition, Verdict
 
 RELEASE_MEANING = ("Release of the lot by an authorised person: I have reviewed the lot's results, its hold "
                    "and its investigation, and I approve its release against the stated specification")
@@ -38,7 +38,7 @@ class PersonOutcome:
 def _blocking_results(record: dict[str, Any]) -> list[str]:
     """Results that leave nothing to certify: missing or invalid ones with a limit."""
     return [r["code"] for r in record.get("results", [])
-            if r.get("verdict") not in ("pass", FAIL, REPORTED)]
+            if r.get("verdict") not in (Verdict.PASS, Verdict.FAIL, Verdict.REPORTED)]
 
 
 def decide_lot(ws: Workspace, store: Store, lot_id: str, *, release: bool, reason: str,
@@ -56,7 +56,7 @@ def decide_lot(ws: Workspace, store: Store, lot_id: str, *, release: bool, reaso
                          "result. Re-assay first, or reject the lot.")
     decided_at = dt.datetime.now(dt.UTC).replace(microsecond=0)
     revision = latest.revision + 1
-    disposition = "released" if release else "rejected"
+    disposition = Disposition.RELEASED if release else Disposition.REJECTED
     meaning = RELEASE_MEANING if release else REJECT_MEANING
     label = f"{disposition} by {identity.signer_name}"
     record = {**{k: v for k, v in base.items() if k not in ("certificate", "report", "person_signature")},

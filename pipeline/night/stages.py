@@ -47,7 +47,7 @@ from pipeline.records.workspace import (
 from pipeline.release.decision import CHART_TAIL, Chart, FrozenLimits, LotDecision, decide_night
 from pipeline.release.dossier import build_dossier, local_time_text
 from pipeline.release.lot_evaluation import LotEvaluation, LotInputs, evaluate_lots
-from pipeline.vocabulary import RELEASED
+from pipeline.vocabulary import Disposition
 
 Progress = Callable[[str, int, int], None]
 
@@ -290,7 +290,7 @@ def earlier_decisions(store: Store, evaluations: list[LotEvaluation]) -> dict[st
     rows = store.previous_decisions([e.lot_id for e in evaluations])
     return {lot: f"revision {row.revision}: {row.record.get('label', row.disposition)} (decided by {row.decided_by})"
             for lot, row in rows.items()
-            if row.disposition != RELEASED or not row.decided_by.startswith("lotgate")}
+            if row.disposition != Disposition.RELEASED or not row.decided_by.startswith("lotgate")}
 
 
 def decide(evaluations: list[LotEvaluation], catalog: Catalog, charts: dict[tuple[str, str], Chart],
@@ -432,7 +432,7 @@ def _prepare(ws: Workspace, catalog: Catalog, item: LotDecision, previous: Any, 
                             plant_name=ws.plant_name, time_zone=ws.time_zone, revision=revision,
                             decided_at=decided_at)
     signature = None
-    if decision.disposition == RELEASED:
+    if decision.disposition == Disposition.RELEASED:
         signed_at = decided_at.replace(microsecond=0)
         signature = {"signer_name": signer.signer_name, "signed_at_local": local_time_text(signed_at, ws.time_zone),
                      "signed_at_utc": signed_at.isoformat(), "meaning": SIGNATURE_MEANING,

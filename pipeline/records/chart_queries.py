@@ -14,7 +14,7 @@ from sqlalchemy import func, select
 from pipeline.records.store import ChartPoint, ControlLimitRow, DecisionRow, Lot, ResultRow, Store
 from pipeline.release.chart_view import ChartHistory, HeldPoint, ReleasedPoint, StoredLimits
 from pipeline.science.control_charts import HISTORY_POINTS
-from pipeline.vocabulary import OUT_OF_TREND, RELEASED
+from pipeline.vocabulary import Disposition, HoldCategory, TrendStatus
 
 
 def _utc_text(when: dt.datetime | None) -> str:
@@ -94,7 +94,7 @@ def held_points(store: Store, product_code: str, attribute: str, *, after_order:
     with store.session() as s:
         query = (select(DecisionRow).join(Lot, Lot.lot_id == DecisionRow.lot_id)
                  .where(Lot.product_code == product_code, DecisionRow.superseded_by.is_(None),
-                        DecisionRow.disposition != RELEASED, DecisionRow.lot_id.not_in(charted)))
+                        DecisionRow.disposition != Disposition.RELEASED, DecisionRow.lot_id.not_in(charted)))
         if after_order is not None:
             query = query.where(DecisionRow.id > after_order)
         decisions = list(reversed(list(s.scalars(query.order_by(DecisionRow.id.desc()).limit(limit)))))
@@ -110,10 +110,10 @@ def held_points(store: Store, product_code: str, attribute: str, *, after_order:
             finding = _finding(record, attribute)
             categories = tuple(d.hold_categories or ())
             if finding is not None:
-                oot = finding.get("status") == "out of trend"
+                oot = finding.get("status") == TrendStatus.OUT_OF_TREND
                 signals = tuple(str(x) for x in finding.get("signals") or ())
             else:
-                oot, signals = OUT_OF_TREND in categories, ()
+                oot, signals = HoldCategory.OUT_OF_TREND in categories, ()
             label = str(record.get("label") or f"held: {', '.join(categories)}")
             out.append(HeldPoint(d.lot_id, values.get(d.id), int(d.id), label, categories, oot, signals))
         return tuple(out)
