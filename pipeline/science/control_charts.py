@@ -16,7 +16,7 @@ Conventions used by every rule (in the batch scan and in the incremental state a
 from __future__ import annotations
 
 from collections.abc import Iterable, Sequence
-from dataclasses import dataclass
+from dataclasses import asdict, dataclass
 
 import numpy as np
 from numpy.lib.stride_tricks import sliding_window_view
@@ -50,15 +50,7 @@ class ControlLimits:
     n: int
 
     def to_dict(self) -> dict[str, float | int]:
-        return {
-            "center": self.center,
-            "sigma": self.sigma,
-            "mr_bar": self.mr_bar,
-            "mr_ucl": self.mr_ucl,
-            "ucl": self.ucl,
-            "lcl": self.lcl,
-            "n": self.n,
-        }
+        return asdict(self)
 
 
 @dataclass(frozen=True)
@@ -72,13 +64,7 @@ class Signal:
     description: str  # the rule's wording, then where the pattern lies
 
     def to_dict(self) -> dict[str, int | str | None]:
-        return {
-            "rule": self.rule,
-            "index": self.index,
-            "first_index": self.first_index,
-            "side": self.side,
-            "description": self.description,
-        }
+        return asdict(self)
 
 
 @dataclass(frozen=True)
@@ -95,16 +81,7 @@ class Capability:
     usl: float | None
 
     def to_dict(self) -> dict[str, float | int | None]:
-        return {
-            "cpk": self.cpk,
-            "ppk": self.ppk,
-            "mean": self.mean,
-            "n": self.n,
-            "sigma_within": self.sigma_within,
-            "sigma_overall": self.sigma_overall,
-            "lsl": self.lsl,
-            "usl": self.usl,
-        }
+        return asdict(self)
 
 
 # --------------------------------------------------------------------------- validation
