@@ -1,5 +1,6 @@
 """Reading exports: every problem reported as line, column and expectation; nothing guessed."""
 
+import pickle
 from pathlib import Path
 
 import pytest
@@ -102,3 +103,12 @@ def test_an_export_of_a_kind_no_method_uses_is_noted_not_dropped_silently(tmp_pa
     assert assembly.notes == ["export balance-20261127.csv was read but no method uses exports of kind "
                               "'balance-weights': it is archived and not used"]
     assert assembly.lots == []
+
+
+def test_problem_codes_stay_typed_across_worker_processes():
+    # Verdicts come back from worker processes by pickling; the codes must stay members that code compares.
+    error = reject("lims-a.csv", LIMS_HEADER.encode())
+    back = pickle.loads(pickle.dumps(error))  # noqa: S301 - our own object
+    assert back.codes == error.codes == {ProblemCode.NO_ROWS}
+    assert all(type(code) is ProblemCode for code in back.codes)
+    assert back.report() == error.report()

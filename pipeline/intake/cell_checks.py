@@ -12,6 +12,7 @@ import math
 import re
 import warnings
 from collections import defaultdict
+from collections.abc import Set as AbstractSet
 
 import pandas as pd
 import pandera.pandas as pa
@@ -119,7 +120,7 @@ def _duplicate_problems(frame: pd.DataFrame, indices: set[int], layout: ExportLa
 
 
 def schema_problems(errors: pa.errors.SchemaErrors, frame: pd.DataFrame, layout: ExportLayout,
-                    lines: list[int], reported: set[tuple[str, int]] = frozenset()) -> list[Problem]:
+                    lines: list[int], reported: AbstractSet[tuple[str, int]] = frozenset()) -> list[Problem]:
     """The schema's failures as problems, one per cell (cells in ``reported`` are told already)."""
     problems: list[Problem] = []
     seen = set(reported)
