@@ -100,6 +100,8 @@ def _run_night(workspace: Path, *, orchestrated: bool = True):
 def print_summary(summary, console=None) -> None:
     from rich.table import Table
 
+    from pipeline.vocabulary import Disposition
+
     console = console or _console()
     table = Table(title=f"Night {summary.night_id}: lot dispositions", show_lines=False)
     table.add_column("Lot", no_wrap=True)
@@ -108,7 +110,7 @@ def print_summary(summary, console=None) -> None:
     table.add_column("Disposition", no_wrap=True)
     table.add_column("Reasons")
     for outcome in summary.outcomes:
-        style = "green" if outcome.label == "released" else "yellow"
+        style = "green" if outcome.label == Disposition.RELEASED else "yellow"
         reasons = "\n".join(outcome.reasons[:4]) + (f"\n… and {len(outcome.reasons) - 4} more" if len(outcome.reasons) > 4 else "")
         label = outcome.label if outcome.new else f"{outcome.label} (unchanged, decided earlier)"
         table.add_row(outcome.lot_id, outcome.product, str(outcome.revision), f"[{style}]{label}[/]", reasons)
@@ -116,8 +118,8 @@ def print_summary(summary, console=None) -> None:
         console.print(table)
     else:
         console.print("No lot to decide tonight.")
-    released = sum(o.label == "released" and o.new for o in summary.outcomes)
-    held = sum(o.label != "released" and o.new for o in summary.outcomes)
+    released = sum(o.label == Disposition.RELEASED and o.new for o in summary.outcomes)
+    held = sum(o.label != Disposition.RELEASED and o.new for o in summary.outcomes)
     console.print(f"Files received {summary.received} = archived {summary.archived} + quarantined {summary.quarantined}.  "
                   f"Lots decided {released + held}: released {released}, held {held}; "
                   f"unchanged {sum(not o.new for o in summary.outcomes)}.")

@@ -1,19 +1,118 @@
-"""The words lotgate decides with: dispositions, hold categories, verdicts."""
+"""The words lotgate decides with: dispositions, hold categories, verdicts, trend status, Nelson
+rules and the reasons an export is rejected.
 
-RELEASED = "released"
-HELD = "held"
+Each is an enum that code compares. The string enums' values are the words stored and printed
+(a member is a ``str``, so stored JSON and text read exactly as before); text for a person is
+made from a member only where a person reads it.
+"""
 
-# Hold categories, in the order a reviewer should read them (DOMAIN.md §6).
-OUT_OF_SPECIFICATION = "out of specification"
-INVALID_ASSAY = "invalid assay"
-INCOMPLETE = "incomplete"
-OUT_OF_TREND = "out of trend"
-REVIEW_REQUIRED = "review required"  # an earlier hold or a person's decision stands
-HOLD_ORDER = (OUT_OF_SPECIFICATION, INVALID_ASSAY, INCOMPLETE, OUT_OF_TREND, REVIEW_REQUIRED)
+from __future__ import annotations
 
-# Verdicts of one attribute.
-PASS = "pass"
-FAIL = "fail"
-INVALID = "invalid"
-MISSING = "missing"
-REPORTED = "reported"  # reported without a limit
+from collections.abc import Iterable
+from enum import IntEnum, StrEnum
+
+
+class Disposition(StrEnum):
+    """What became of a lot."""
+
+    RELEASED = "released"
+    HELD = "held"
+    REJECTED = "rejected"  # by an authorised person
+
+
+class HoldCategory(StrEnum):
+    """Why a lot is held. Members are declared in the order a reviewer should read them."""
+
+    OUT_OF_SPECIFICATION = "out of specification"
+    INVALID_ASSAY = "invalid assay"
+    INCOMPLETE = "incomplete"
+    OUT_OF_TREND = "out of trend"
+    REVIEW_REQUIRED = "review required"  # an earlier hold or a person's decision stands
+
+    @classmethod
+    def in_reading_order(cls, found: Iterable[str]) -> tuple[HoldCategory, ...]:
+        """The known categories among ``found``, each once, in reading order."""
+        present = set(found)
+        return tuple(category for category in cls if category in present)
+
+
+class Verdict(StrEnum):
+    """The verdict on one attribute of one lot."""
+
+    PASS = "pass"
+    FAIL = "fail"
+    INVALID = "invalid"
+    MISSING = "missing"
+    REPORTED = "reported"  # reported without a limit
+
+
+class TrendStatus(StrEnum):
+    """What the control chart said about one attribute of one lot."""
+
+    IN_TREND = "in trend"
+    OUT_OF_TREND = "out of trend"
+    NOT_YET_ESTABLISHED = "not yet established"  # fewer released lots than the baseline needs
+    NOT_EVALUATED = "not evaluated"  # no valid value to chart
+
+
+class NelsonRule(IntEnum):
+    """The eight Nelson run rules, by number (Nelson, J. Quality Technology 16(4), 1984)."""
+
+    ONE_BEYOND_3_SIGMA = 1
+    NINE_ON_ONE_SIDE = 2
+    SIX_RISING_OR_FALLING = 3
+    FOURTEEN_ALTERNATING = 4
+    TWO_OF_THREE_BEYOND_2_SIGMA = 5
+    FOUR_OF_FIVE_BEYOND_1_SIGMA = 6
+    FIFTEEN_WITHIN_1_SIGMA = 7
+    EIGHT_BEYOND_1_SIGMA = 8
+
+
+class ProblemCode(StrEnum):
+    """Every reason an export can be rejected for (``Problem.code``); the values are stable."""
+
+    # the file as a whole
+    FILE_NAME = "file-name"
+    UNKNOWN_KIND = "unknown-kind"
+    EXTENSION = "extension"
+    TOO_LARGE = "too-large"
+    BINARY = "binary"
+    ENCODING = "encoding"
+    LINE_ENDS = "line-ends"
+    EMPTY = "empty"
+    LINE_TOO_LONG = "line-too-long"
+    DELIMITER = "delimiter"
+    CSV = "csv"
+    EMBEDDED_NEWLINE = "embedded-newline"
+    CONTROL_CHARACTER = "control-character"
+    MISSING_COLUMN = "missing-column"
+    EXTRA_COLUMN = "extra-column"
+    DUPLICATE_COLUMN = "duplicate-column"
+    LAYOUT = "layout"
+    FIELD_COUNT = "field-count"
+    NO_FINAL_LINE_END = "no-final-line-end"
+    NO_ROWS = "no-rows"
+    TOO_MANY_ROWS = "too-many-rows"
+    # every cell
+    NOT_A_NUMBER = "not-a-number"
+    DATE = "date"
+    PATTERN = "pattern"
+    NOT_ALLOWED = "not-allowed"
+    OUT_OF_RANGE = "out-of-range"
+    LENGTH = "length"
+    MISSING_VALUE = "missing-value"
+    DUPLICATE_VALUE = "duplicate-value"
+    DUPLICATE_WELL = "duplicate-well"
+    REPEATED_TIME = "repeated-time"
+    DUPLICATE_TEST = "duplicate-test"
+    DUPLICATE_KEY = "duplicate-key"
+    VALUE = "value"
+    # rows against each other
+    WELL_OUTSIDE_PLATE = "well-outside-plate"
+    ROLE_FIELDS = "role-fields"
+    PLATE_INCONSISTENT = "plate-inconsistent"
+    TIME_ORDER = "time-order"
+    DATE_ORDER = "date-order"
+    # the report itself, and lotgate's own defects
+    MORE = "more"  # further problems of the kinds listed are not listed
+    INTERNAL_ERROR = "internal-error"  # a defect of lotgate, never of the file

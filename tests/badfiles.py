@@ -8,7 +8,7 @@ month of its own, so its lot and plate ids are unique).
 Each case says what it expects:
 
 - ``Quarantined(file, code, phrase)``: the file is set aside; its reason carries the problem
-  code (``pipeline.ingest.Problem.code``; None for the night's duplicate check) and the phrase;
+  code (``pipeline.intake.problems.Problem.code``; None for the night's duplicate check) and the phrase;
 - ``Read(file, phrase)``: the file is archived, with the recorded conversion named by the phrase
   (None: read as it is);
 - ``Held(lot, category, phrase)`` / ``Released(lot)``: the lot is held with (at least) this
@@ -25,11 +25,15 @@ from __future__ import annotations
 import csv
 import datetime as dt
 import io
+import shutil
 from dataclasses import dataclass, field
+from pathlib import Path
 
 import numpy as np
+import yaml
 
 from pipeline.demo import plant as demo
+from pipeline.vocabulary import HoldCategory, ProblemCode
 
 # ------------------------------------------------------------------------------ expectations
 
@@ -37,7 +41,7 @@ from pipeline.demo import plant as demo
 @dataclass(frozen=True)
 class Quarantined:
     file: str
-    code: str | None
+    code: ProblemCode | None
     phrase: str
 
 
@@ -50,7 +54,7 @@ class Read:
 @dataclass(frozen=True)
 class Held:
     lot: str
-    category: str  # one of the lot's hold categories (pipeline.model HOLD_ORDER)
+    category: HoldCategory  # one of the lot's hold categories
     phrase: str
 
 
@@ -166,123 +170,123 @@ def _single_file_cases() -> list[Case]:
     def lot() -> str:
         return f"LLC-2699-{next(serial):03d}"
 
-    def add(name: str, decision: str, file_name: str, data: bytes, code: str, phrase: str, lots: tuple[str, ...]) -> None:
+    def add(name: str, decision: str, file_name: str, data: bytes, code: ProblemCode, phrase: str, lots: tuple[str, ...]) -> None:
         cases.append(Case(name, decision, {file_name: data}, (Quarantined(file_name, code, phrase),), lots))
 
     q = "quarantined"
     # --- the file as a whole
     a = lot()
-    add("empty file", q, f"lims-{a}.csv", b"", "empty", "the file is empty", ())
-    add("only blank lines", q, "lims-blank-lines.csv", b"\n  \n\n", "empty", "the file is empty", ())
-    add("header only", q, "lims-header-only.csv", to_csv(LIMS_HEADER, []), "no-rows", "header but no data rows", ())
+    add("empty file", q, f"lims-{a}.csv", b"", ProblemCode.EMPTY, "the file is empty", ())
+    add("only blank lines", q, "lims-blank-lines.csv", b"\n  \n\n", ProblemCode.EMPTY, "the file is empty", ())
+    add("header only", q, "lims-header-only.csv", to_csv(LIMS_HEADER, []), ProblemCode.NO_ROWS, "header but no data rows", ())
     a = lot()
     text = lims_text(a)
-    add("truncated last line (fields missing)", q, f"lims-{a}.csv", text[: text.rindex(",2026")].encode(), "field-count",
+    add("truncated last line (fields missing)", q, f"lims-{a}.csv", text[: text.rindex(",2026")].encode(), ProblemCode.FIELD_COUNT,
         "cut off", (a,))
     a = lot()
     text = lims_text(a)
     add("truncated last line (no line end)", q + " (a cut inside the last value cannot be told from a whole one)",
-        f"lims-{a}.csv", text.rstrip("\n").encode(), "no-final-line-end", "cut off", (a,))
+        f"lims-{a}.csv", text.rstrip("\n").encode(), ProblemCode.NO_FINAL_LINE_END, "cut off", (a,))
     a = lot()
-    add("tab-separated", q, f"lims-{a}.csv", lims_text(a).replace(",", "\t").encode(), "delimiter", "tabs", (a,))
+    add("tab-separated", q, f"lims-{a}.csv", lims_text(a).replace(",", "\t").encode(), ProblemCode.DELIMITER, "tabs", (a,))
     a = lot()
     add("semicolons and decimal comma", q + " (never re-guessed)", f"lims-{a}.csv",
-        lims_text(a).replace(",", ";").replace("7.02", "7,02").encode(), "delimiter", "decimal comma", (a,))
+        lims_text(a).replace(",", ";").replace("7.02", "7,02").encode(), ProblemCode.DELIMITER, "decimal comma", (a,))
     a = lot()
-    add("vertical bars", q, f"lims-{a}.csv", lims_text(a).replace(",", "|").encode(), "delimiter", "vertical bars", (a,))
+    add("vertical bars", q, f"lims-{a}.csv", lims_text(a).replace(",", "|").encode(), ProblemCode.DELIMITER, "vertical bars", (a,))
     a = lot()
     latin = to_csv(LIMS_HEADER, [[a, "PH", "7.02", "", "2026-11-24", "J. Müller"]]).decode().encode("latin-1")
-    add("Latin-1 bytes", q, f"lims-{a}.csv", latin, "encoding", "not UTF-8", (a,))
+    add("Latin-1 bytes", q, f"lims-{a}.csv", latin, ProblemCode.ENCODING, "not UTF-8", (a,))
     a = lot()
-    add("UTF-16 text", q + " (its lots cannot be read)", f"lims-{a}.csv", lims_text(a).encode("utf-16"), "encoding", "UTF-16", ())
+    add("UTF-16 text", q + " (its lots cannot be read)", f"lims-{a}.csv", lims_text(a).encode("utf-16"), ProblemCode.ENCODING, "UTF-16", ())
     a = lot()
-    add("bare CR line ends", q, f"lims-{a}.csv", lims_text(a).replace("\n", "\r").encode(), "line-ends", "bare carriage returns", (a,))
+    add("bare CR line ends", q, f"lims-{a}.csv", lims_text(a).replace("\n", "\r").encode(), ProblemCode.LINE_ENDS, "bare carriage returns", (a,))
     add("binary file", q, "kinread-BIN-1.csv", bytes(np.random.default_rng(7).integers(0, 256, 3000, dtype=np.uint8)),
-        "binary", "binary file", ())
-    add("workbook renamed .csv", q, "lims-workbook.csv", b"PK\x03\x04\x14\x00\x06\x00" + b"\x00" * 40, "binary", "ZIP archive", ())
+        ProblemCode.BINARY, "binary file", ())
+    add("workbook renamed .csv", q, "lims-workbook.csv", b"PK\x03\x04\x14\x00\x06\x00" + b"\x00" * 40, ProblemCode.BINARY, "ZIP archive", ())
     a = lot()
     add("line longer than the limit", q, f"lims-{a}.csv",
-        to_csv(LIMS_HEADER, [[a, "PH", "7.02", "", "2026-11-24", "K" * 520]]), "line-too-long", "at most 512", (a,))
+        to_csv(LIMS_HEADER, [[a, "PH", "7.02", "", "2026-11-24", "K" * 520]]), ProblemCode.LINE_TOO_LONG, "at most 512", (a,))
     a = lot()
     big = to_csv(LIMS_HEADER, [[a, "PH", "7.02", "", "2026-11-24", "K" * 60]] * 16000)
-    add("file over the size limit", q, f"lims-{a}.csv", big, "too-large", "at most 1,000,000", (a,))
+    add("file over the size limit", q, f"lims-{a}.csv", big, ProblemCode.TOO_LARGE, "at most 1,000,000", (a,))
     a = lot()
     many = to_csv(LIMS_HEADER, [[a, "PH", "7.02", "", "2026-11-24", "K"]] * 20001)
-    add("too many rows", q, f"lims-{a}.csv", many, "too-many-rows", "at most 20,000", (a,))
+    add("too many rows", q, f"lims-{a}.csv", many, ProblemCode.TOO_MANY_ROWS, "at most 20,000", (a,))
     a = lot()
-    add("unknown file prefix", q, f"results-{a}.csv", lims_text(a).encode(), "unknown-kind", "known export prefix", (a,))
+    add("unknown file prefix", q, f"results-{a}.csv", lims_text(a).encode(), ProblemCode.UNKNOWN_KIND, "known export prefix", (a,))
     a = lot()
-    add("not a .csv file", q, f"lims-{a}.xlsx", lims_text(a).encode(), "extension", "expected a .csv file", (a,))
+    add("not a .csv file", q, f"lims-{a}.xlsx", lims_text(a).encode(), ProblemCode.EXTENSION, "expected a .csv file", (a,))
     a = lot()
-    add("control character in the file name", q, f"lims-{a}\x1b.csv", lims_text(a).encode(), "file-name", "U+001B", (a,))
+    add("control character in the file name", q, f"lims-{a}\x1b.csv", lims_text(a).encode(), ProblemCode.FILE_NAME, "U+001B", (a,))
     # --- header
     a = lot()
     add("extra header column", q, f"lims-{a}.csv", to_csv([*LIMS_HEADER, "comment"], [[*r, "x"] for r in lims_rows(a)]),
-        "extra-column", "unknown 'comment'", (a,))
+        ProblemCode.EXTRA_COLUMN, "unknown 'comment'", (a,))
     a = lot()
     add("missing header column", q, f"lims-{a}.csv", to_csv(LIMS_HEADER[:-1], [r[:-1] for r in lims_rows(a)]),
-        "missing-column", "lacks 'analyst'", (a,))
+        ProblemCode.MISSING_COLUMN, "lacks 'analyst'", (a,))
     a = lot()
     add("duplicated header column", q, f"lims-{a}.csv", to_csv([*LIMS_HEADER, "unit"], [[*r, ""] for r in lims_rows(a)]),
-        "duplicate-column", "'unit' more than once", (a,))
+        ProblemCode.DUPLICATE_COLUMN, "'unit' more than once", (a,))
     # --- quoting and characters
     a = lot()
     add("quoted field with an embedded newline", q, f"lims-{a}.csv",
-        to_csv(LIMS_HEADER, [[a, "PH", "7.02", "", "2026-11-24", "K.\nLindqvist"]]), "embedded-newline", "more than one line", (a,))
+        to_csv(LIMS_HEADER, [[a, "PH", "7.02", "", "2026-11-24", "K.\nLindqvist"]]), ProblemCode.EMBEDDED_NEWLINE, "more than one line", (a,))
     a = lot()
-    add("unbalanced quote", q, f"lims-{a}.csv", (lims_text(a) + f'{a},COLI,"3,CFU/g,2026-11-24,K\n').encode(), "csv",
+    add("unbalanced quote", q, f"lims-{a}.csv", (lims_text(a) + f'{a},COLI,"3,CFU/g,2026-11-24,K\n').encode(), ProblemCode.CSV,
         "not well-formed CSV", (a,))
     a = lot()
     add("control character in a text field", q, f"lims-{a}.csv",
-        to_csv(LIMS_HEADER, [[a, "PH", "7.02", "", "2026-11-24", "K.\x07Lindqvist"]]), "control-character", "U+0007", (a,))
+        to_csv(LIMS_HEADER, [[a, "PH", "7.02", "", "2026-11-24", "K.\x07Lindqvist"]]), ProblemCode.CONTROL_CHARACTER, "U+0007", (a,))
     a = lot()
     add("bidirectional override in a text field", q, f"lims-{a}.csv",
-        to_csv(LIMS_HEADER, [[a, "PH", "7.02", "", "2026-11-24", "K.\u202eLindqvist"]]), "control-character", "U+202E", (a,))
+        to_csv(LIMS_HEADER, [[a, "PH", "7.02", "", "2026-11-24", "K.\u202eLindqvist"]]), ProblemCode.CONTROL_CHARACTER, "U+202E", (a,))
     # --- cells: LIMS and registry
     a = lot()
     add("decimal comma in a LIMS result", q, f"lims-{a}.csv",
-        to_csv(LIMS_HEADER, [[a, "DM", "94,4", "%", "2026-11-24", "K"]]), "pattern", "'94,4' does not have the expected form", (a,))
+        to_csv(LIMS_HEADER, [[a, "DM", "94,4", "%", "2026-11-24", "K"]]), ProblemCode.PATTERN, "'94,4' does not have the expected form", (a,))
     a = lot()
     add("LIMS test reported twice in one file", q, f"lims-{a}.csv",
-        to_csv(LIMS_HEADER, [*lims_rows(a), [a, "PH", "7.40", "", "2026-11-24", "K"]]), "duplicate-test", "appears more than once", (a,))
+        to_csv(LIMS_HEADER, [*lims_rows(a), [a, "PH", "7.40", "", "2026-11-24", "K"]]), ProblemCode.DUPLICATE_TEST, "appears more than once", (a,))
     a = lot()
     add("unit longer than 40 characters", q, f"lims-{a}.csv",
-        to_csv(LIMS_HEADER, [[a, "PB", "<0.5", "mg/kg " * 10, "2026-11-24", "K"]]), "length", "length outside the allowed range", (a,))
+        to_csv(LIMS_HEADER, [[a, "PB", "<0.5", "mg/kg " * 10, "2026-11-24", "K"]]), ProblemCode.LENGTH, "length outside the allowed range", (a,))
     a = lot()
     add("required value empty", q, f"lims-{a}.csv", to_csv(LIMS_HEADER, [[a, "PH", "7.02", "", "2026-11-24", ""]]),
-        "missing-value", "the value is empty", (a,))
+        ProblemCode.MISSING_VALUE, "the value is empty", (a,))
     a = lot()
     add("date that is not a calendar date", q, f"lots-{a}.csv", to_csv(REGISTRY_HEADER, registry_rows(a, made="2026-02-30")),
-        "date", "'2026-02-30' is not a calendar date", (a,))
+        ProblemCode.DATE, "'2026-02-30' is not a calendar date", (a,))
     a = lot()
     add("assay date before the manufacturing date", q, f"lots-{a}.csv",
-        to_csv(REGISTRY_HEADER, registry_rows(a, made="2026-11-24", assayed="2026-11-20")), "date-order",
+        to_csv(REGISTRY_HEADER, registry_rows(a, made="2026-11-24", assayed="2026-11-20")), ProblemCode.DATE_ORDER,
         "before the manufacturing date", (a,))
     a = lot()
     add("lot registered twice in one registry", q, f"lots-{a}.csv", to_csv(REGISTRY_HEADER, registry_rows(a) * 2),
-        "duplicate-value", "appears more than once", (a,))
+        ProblemCode.DUPLICATE_VALUE, "appears more than once", (a,))
     a = lot()
-    add("lot number in lower case", q, f"lots-{a}.csv", to_csv(REGISTRY_HEADER, registry_rows(a.lower())), "pattern",
+    add("lot number in lower case", q, f"lots-{a}.csv", to_csv(REGISTRY_HEADER, registry_rows(a.lower())), ProblemCode.PATTERN,
         "does not have the expected form", ())
     # --- plate maps
     for label, change, code, phrase in (
-        ("duplicated well in a plate map", lambda r: [*r, r[2]], "duplicate-well", "well A03 of plate BADMAP-DUP appears more than once"),
-        ("well I01 outside a 96-well plate", lambda r: [*r[:4], [*r[4][:3], "I01", *r[4][4:]]], "well-outside-plate",
+        ("duplicated well in a plate map", lambda r: [*r, r[2]], ProblemCode.DUPLICATE_WELL, "well A03 of plate BADMAP-DUP appears more than once"),
+        ("well I01 outside a 96-well plate", lambda r: [*r[:4], [*r[4][:3], "I01", *r[4][4:]]], ProblemCode.WELL_OUTSIDE_PLATE,
          "well I01 is outside a 96-well plate"),
-        ("well A13 outside a 96-well plate", lambda r: [*r[:4], [*r[4][:3], "A13", *r[4][4:]]], "well-outside-plate",
+        ("well A13 outside a 96-well plate", lambda r: [*r[:4], [*r[4][:3], "A13", *r[4][4:]]], ProblemCode.WELL_OUTSIDE_PLATE,
          "well A13 is outside a 96-well plate"),
-        ("well Q01 outside any plate", lambda r: [*r[:4], [*r[4][:3], "Q01", *r[4][4:]]], "pattern", "'Q01' does not have the expected form"),
-        ("plate format 48", lambda r: [[x[0], 48, *x[2:]] for x in r], "not-allowed", "is not one of the allowed values"),
-        ("two formats for one plate", lambda r: [*r[:4], [r[4][0], 384, *r[4][2:]]], "plate-inconsistent", "more than one plate_format"),
-        ("sample well without a lot", lambda r: [*r[:2], [*r[2][:5], "", *r[2][6:]], *r[3:]], "role-fields", "needs a value in 'lot_id'"),
-        ("kinetic well without substrate", lambda r: [*r[:3], [*r[3][:6], "", *r[3][7:]], r[4]], "role-fields",
+        ("well Q01 outside any plate", lambda r: [*r[:4], [*r[4][:3], "Q01", *r[4][4:]]], ProblemCode.PATTERN, "'Q01' does not have the expected form"),
+        ("plate format 48", lambda r: [[x[0], 48, *x[2:]] for x in r], ProblemCode.NOT_ALLOWED, "is not one of the allowed values"),
+        ("two formats for one plate", lambda r: [*r[:4], [r[4][0], 384, *r[4][2:]]], ProblemCode.PLATE_INCONSISTENT, "more than one plate_format"),
+        ("sample well without a lot", lambda r: [*r[:2], [*r[2][:5], "", *r[2][6:]], *r[3:]], ProblemCode.ROLE_FIELDS, "needs a value in 'lot_id'"),
+        ("kinetic well without substrate", lambda r: [*r[:3], [*r[3][:6], "", *r[3][7:]], r[4]], ProblemCode.ROLE_FIELDS,
          "needs a value in 'substrate_mm'"),
-        ("standard well without a nominal concentration", lambda r: [*r[:4], [*r[4][:8], ""]], "role-fields",
+        ("standard well without a nominal concentration", lambda r: [*r[:4], [*r[4][:8], ""]], ProblemCode.ROLE_FIELDS,
          "needs a value in 'nominal_mg_per_ml'"),
     ):
         a = lot()
         number = next(serial)
-        plate = "BADMAP-DUP" if code == "duplicate-well" else f"BADMAP-{number}"
+        plate = "BADMAP-DUP" if code == ProblemCode.DUPLICATE_WELL else f"BADMAP-{number}"
         rows = change(map_rows(plate, a))
         mentioned = (a,) if any(len(r) > 5 and r[5] == a for r in rows) else ()
         add(label, q, f"platemap-{plate}.csv", to_csv(MAP_HEADER, rows), code, phrase, mentioned)
@@ -293,34 +297,34 @@ def _single_file_cases() -> list[Case]:
         return to_csv(KINETIC_HEADER, rows)
 
     for label, value, code, phrase in (
-        ("absorbance 'nan'", "nan", "not-a-number", "'nan' is not a number"),
-        ("absorbance 'NaN'", "NaN", "not-a-number", "'NaN' is not a number"),
-        ("absorbance 'inf'", "inf", "not-a-number", "'inf' is not a number"),
-        ("absorbance '-Infinity'", "-Infinity", "not-a-number", "'-Infinity' is not a number"),
-        ("reader overflow marker", "OVER", "not-a-number", "'OVER' is not a number"),
-        ("absorbance with a decimal comma", "0,512", "not-a-number", "decimal comma"),
-        ("absorbance above the reader's range", "5.200", "out-of-range", "'5.200' is outside the allowed range"),
+        ("absorbance 'nan'", "nan", ProblemCode.NOT_A_NUMBER, "'nan' is not a number"),
+        ("absorbance 'NaN'", "NaN", ProblemCode.NOT_A_NUMBER, "'NaN' is not a number"),
+        ("absorbance 'inf'", "inf", ProblemCode.NOT_A_NUMBER, "'inf' is not a number"),
+        ("absorbance '-Infinity'", "-Infinity", ProblemCode.NOT_A_NUMBER, "'-Infinity' is not a number"),
+        ("reader overflow marker", "OVER", ProblemCode.NOT_A_NUMBER, "'OVER' is not a number"),
+        ("absorbance with a decimal comma", "0,512", ProblemCode.NOT_A_NUMBER, "decimal comma"),
+        ("absorbance above the reader's range", "5.200", ProblemCode.OUT_OF_RANGE, "'5.200' is outside the allowed range"),
     ):
         data = with_absorbance(value)
         add(label, q, f"kinread-cell-{next(serial)}.csv", data, code, phrase, ())
     rows = kinetic_rows("BADTIME-1")
     rows[1][2] = -30
-    add("negative time", q, "kinread-negative-time.csv", to_csv(KINETIC_HEADER, rows), "out-of-range", "'-30' is outside the allowed range", ())
+    add("negative time", q, "kinread-negative-time.csv", to_csv(KINETIC_HEADER, rows), ProblemCode.OUT_OF_RANGE, "'-30' is outside the allowed range", ())
     rows = kinetic_rows("BADTIME-2")
     rows[1][2], rows[2][2] = 60, 30
-    add("time not increasing within a well", q, "kinread-time-back.csv", to_csv(KINETIC_HEADER, rows), "time-order",
+    add("time not increasing within a well", q, "kinread-time-back.csv", to_csv(KINETIC_HEADER, rows), ProblemCode.TIME_ORDER,
         "read times must increase", ())
     rows = kinetic_rows("BADTIME-3")
     rows[2][2] = "30.0"
-    add("repeated time within a well", q, "kinread-time-twice.csv", to_csv(KINETIC_HEADER, rows), "repeated-time",
+    add("repeated time within a well", q, "kinread-time-twice.csv", to_csv(KINETIC_HEADER, rows), ProblemCode.REPEATED_TIME,
         "at 30 s appears more than once", ())
     rows = kinetic_rows("BADREAD-WL")
     rows[0][4] = "405.0"
-    add("wavelength not a whole number", q, "kinread-wavelength.csv", to_csv(KINETIC_HEADER, rows), "not-a-number",
+    add("wavelength not a whole number", q, "kinread-wavelength.csv", to_csv(KINETIC_HEADER, rows), ProblemCode.NOT_A_NUMBER,
         "'405.0' is not a whole number", ())
     rows = endpoint_rows("BADEND-1")
     add("duplicated well in an endpoint read", q, "protread-BADEND-1.csv", to_csv(ENDPOINT_HEADER, [*rows, rows[0]]),
-        "duplicate-well", "well A01 of plate BADEND-1 appears more than once", ())
+        ProblemCode.DUPLICATE_WELL, "well A01 of plate BADEND-1 appears more than once", ())
     return cases
 
 
@@ -370,7 +374,7 @@ def _cross_file_cases() -> tuple[list[Case], dict[str, bytes], list[str]]:
     cases: list[Case] = []
     untouched: dict[str, bytes] = {}
     lots: list[str] = []
-    incomplete, invalid = "incomplete", "invalid assay"
+    incomplete, invalid = HoldCategory.INCOMPLETE, HoldCategory.INVALID_ASSAY
 
     # C1: files read with an explicit, recorded conversion; both lots are released.
     s = _scenario(dt.date(2027, 1, 6))
@@ -483,14 +487,14 @@ def _cross_file_cases() -> tuple[list[Case], dict[str, bytes], list[str]]:
     header, rows = from_csv(s.take("lmap"))
     cases.append(Case("plate map quarantined (duplicated well)", "map quarantined; its read noted; lot held: incomplete",
                       {s.name("lmap"): to_csv(header, [*rows, rows[-1]])},
-                      (Quarantined(s.name("lmap"), "duplicate-well", "appears more than once"),
+                      (Quarantined(s.name("lmap"), ProblemCode.DUPLICATE_WELL, "appears more than once"),
                        Held(s.lipase, incomplete, "which mentions this lot, was quarantined"),
                        Noted(f"AK-{s.tag}-L1", "which names this plate, was quarantined")), (s.lipase,)))
     header, rows = from_csv(s.take("pread"))
     rows[5][3] = "nan"
     cases.append(Case("kinetic read quarantined ('nan')", "read quarantined; lot held: incomplete",
                       {s.name("pread"): to_csv(header, rows)},
-                      (Quarantined(s.name("pread"), "not-a-number", "'nan' is not a number"),
+                      (Quarantined(s.name("pread"), ProblemCode.NOT_A_NUMBER, "'nan' is not a number"),
                        Held(s.protease, incomplete, "its kinetic read was not used"))))
     untouched.update(s.files)
     lots += [s.lipase, s.protease]
@@ -546,3 +550,19 @@ def build_catalogue() -> Catalogue:
     return Catalogue(good=good, good_lots=tuple(lot.lot_id for lot in good_night.lots),
                      scenario_lots=tuple(scenario_lots), scenario_files=untouched,
                      cases=cases, earlier_night=earlier)
+
+
+SCHEMAS = Path(__file__).resolve().parents[1] / "schemas"
+
+
+def schemas_with(directory: Path, name: str, kind: str, prefix: str) -> Path:
+    """A copy of schemas/ under ``directory``, plus the LIMS layout saved as ``name``: a layout of
+    ``kind`` for the files whose names start with ``prefix`` (a layout dropped in by a person)."""
+    target = directory / "schemas"
+    target.mkdir()
+    for path in SCHEMAS.glob("*.yaml"):
+        shutil.copy(path, target / path.name)
+    raw = yaml.safe_load((SCHEMAS / "lims-results.yaml").read_text(encoding="utf-8"))
+    raw["lotgate_export"].update(kind=kind, file_prefix=prefix)
+    (target / name).write_text(yaml.safe_dump(raw, sort_keys=False), encoding="utf-8")
+    return target

@@ -16,14 +16,26 @@ import re
 from pathlib import Path
 
 import pytest
-from badfiles import Catalogue, Held, Noted, Quarantined, Read, Released, build_catalogue
+from badfiles import (
+    Catalogue,
+    Held,
+    Noted,
+    Quarantined,
+    Read,
+    Released,
+    build_catalogue,
+    lims_text,
+    schemas_with,
+)
 
 from flows.nightly import run_stages
 from pipeline.intake.layouts import load_layouts
-from pipeline.intake.validation import ExportRejected, parse_export
+from pipeline.intake.problems import ExportRejected
+from pipeline.intake.validation import parse_export
 from pipeline.night.open import open_night
 from pipeline.records.store import Store
 from pipeline.records.workspace import write_settings
+from pipeline.vocabulary import Disposition, ProblemCode
 
 LAYOUTS = load_layouts(Path(__file__).resolve().parents[1] / "schemas")
 CATALOGUE: Catalogue = build_catalogue()
@@ -49,7 +61,7 @@ def test_parse_export_alone_rejects_the_file_with_its_code(case):
         parse_export(name, data, LAYOUTS)
     error = info.value
     assert error.problems[0].code == expected.code, error.report()
-    assert error.codes <= {expected.code, "layout"}, error.report()  # the template is otherwise valid
+    assert error.codes <= {expected.code, ProblemCode.LAYOUT}, error.report()  # the template is otherwise valid
     assert expected.phrase in error.report()
     assert error.report().startswith(f"File {name.replace(chr(27), '?')} was set aside")
 
@@ -123,7 +135,7 @@ def test_each_case_gets_its_stated_outcome(night, case, expected):
         assert outcome.label.startswith("held: ") and expected.category in outcome.label, outcome.label
         assert any(expected.phrase in reason for reason in outcome.reasons), outcome.reasons
     elif isinstance(expected, Released):
-        assert outcomes[expected.lot].label == "released", outcomes[expected.lot].reasons
+        assert outcomes[expected.lot].label == Disposition.RELEASED, outcomes[expected.lot].reasons
     elif isinstance(expected, Noted):
         assert any(expected.subject in note and expected.phrase in note for note in summary.notes), summary.notes
     else:  # pragma: no cover - a new kind of expectation must be handled above
@@ -135,7 +147,7 @@ def test_the_good_lots_are_still_released(night):
     _root, _files, summary, _records = night
     outcomes = _held_or_released(summary)
     for lot in CATALOGUE.good_lots:
-        assert outcomes[lot].label == "released", outcomes[lot].reasons
+        assert outcomes[lot].label == Disposition.RELEASED, outcomes[lot].reasons
 
 
 @pytest.mark.slow
@@ -160,5 +172,22 @@ def test_every_lot_mentioned_has_a_decision_or_a_stated_reason(night):
         word = re.compile(rf"(?<![A-Za-z0-9-]){re.escape(lot)}(?![A-Za-z0-9-])")
         assert lot in decided or any(word.search(note) for note in summary.notes), f"lot {lot}: no decision, no note"
     for outcome in summary.outcomes:
-        if outcome.label != "released":
+        if outcome.label != Disposition.RELEASED:
             assert outcome.reasons, f"lot {outcome.lot_id} is held without a reason"
+
+
+@pytest.mark.slow
+def test_an_export_of_a_kind_no_method_uses_is_archived_with_a_note(tmp_path, monkeypatch):
+    # A person drops a new layout under schemas/ and its first export arrives before any method reads it.
+    monkeypatch.setenv("LOTGATE_SCHEMAS_DIR", str(schemas_with(tmp_path, "balance-weights.yaml", "balance-weights",
+                                                               "balance-")))
+    root = tmp_path / "plant"
+    write_settings(root, {"plant_name": "New kind plant (test)", "signing": {"signer_name": "Q. A. Tester"}})
+    (root / "keys").mkdir()
+    (root / "keys" / "use-demo-identity").touch()
+    (root / "inbox").mkdir()
+    (root / "inbox" / "balance-20261127.csv").write_text(lims_text("LLC-2611-001"), encoding="utf-8")
+    summary = run_stages(*open_night(root), orchestrated=False)
+    assert (summary.archived, summary.quarantined, summary.outcomes) == (1, 0, [])
+    assert ("export balance-20261127.csv was read but no method uses exports of kind 'balance-weights': it is "
+            "archived and not used") in summary.notes

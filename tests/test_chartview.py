@@ -26,7 +26,7 @@ from pipeline.release.chart_view import (
     zone_of,
     zone_text,
 )
-from pipeline.vocabulary import INCOMPLETE, OUT_OF_SPECIFICATION, OUT_OF_TREND
+from pipeline.vocabulary import HoldCategory, NelsonRule
 
 ATTRIBUTE = Attribute(code="specific_activity", title="Specific activity", source="specific_activity",
                       unit="U/mg", digits=1, minimum=5.0, maximum=20.0, trend=True,
@@ -103,7 +103,7 @@ def test_capability_over_the_window_counts_held_lots_worked_by_hand():
     # sigma within = 3.2/1.128 = 2.836879; squared deviations sum 31.333333, s = sqrt(31.333333/5)
     # = 2.503331. Nearest limit LSL 5: 5.666667. Cpk = 5.666667 / 8.510638 = 0.665833;
     # Ppk = 5.666667 / 7.509993 = 0.754550 (worked by hand).
-    held = HeldPoint("H1", 6.0, 25, "held: out of trend", (OUT_OF_TREND,), True,
+    held = HeldPoint("H1", 6.0, 25, "held: out of trend", (HoldCategory.OUT_OF_TREND,), True,
                      ("Specific activity: Nelson rule 1 (one point beyond 3σ) at lot H1, value 6.0 U/mg",))
     view = build_chart_view(history(released(), [held]), ATTRIBUTE)
     assert [r.lot_id for r in view.rows] == ["A1", "A2", "A3", "H1", "A4", "A5"]
@@ -119,10 +119,13 @@ def test_capability_over_the_window_counts_held_lots_worked_by_hand():
     # the held lot stays off the charted series: the moving range at A4 is |13 - 11| = 2
     assert [m.moving_range for m in view.moving_ranges] == pytest.approx([2.0, 1.0, 2.0, 1.0])
     row = view.rows[3]
-    assert (row.released, row.category, row.zone, row.signal_rules) == (False, OUT_OF_TREND, -4, (1,))
+    assert (row.released, row.category, row.zone, row.signal_rules) == (False, HoldCategory.OUT_OF_TREND, -4,
+                                                                         (NelsonRule.ONE_BEYOND_3_SIGMA,))
     assert row.zone_text == ">3σ below"  # 6.0 < LCL 7.610638
-    assert [(s.lot_id, s.rule, s.source) for s in view.signals] == [("H1", 1, "decision")]
-    assert "at lot H1" in view.signals[0].detail
+    assert row.signal_notes == ("rule 1: one point beyond 3σ (when held)",)
+    assert [(s.lot_id, s.rule, s.source) for s in view.signals] == [("H1", NelsonRule.ONE_BEYOND_3_SIGMA, "decision")]
+    assert view.signals[0].detail == held.trend_signals[0]
+    assert view.signals[0].description == "rule 1: one point beyond 3σ"
 
 
 def test_no_capability_without_specification_limits():
@@ -143,10 +146,10 @@ def test_rule_signals_on_the_released_series_inside_the_window():
     points = released(values, lots)
     view = build_chart_view(history(points, limits=lim), ATTRIBUTE, window=4)
     assert [r.lot_id for r in view.rows] == ["R6", "R7", "R8", "R9"]
-    assert [(s.rule, s.lot_id, s.first_lot) for s in view.signals] == [(2, "R8", "R0")]
+    assert [(s.rule, s.lot_id, s.first_lot) for s in view.signals] == [(NelsonRule.NINE_ON_ONE_SIDE, "R8", "R0")]
     assert view.signals[0].description == ("rule 2: nine points in a row on one side of the centre "
                                            "(R0 … R8)")
-    assert view.rows[2].signal_rules == (2,)
+    assert view.rows[2].signal_rules == (NelsonRule.NINE_ON_ONE_SIDE,)
     # the window's first moving range uses the released lot before it (R5 -> R6: 0)
     assert view.moving_ranges[0].lot_id == "R6"
     # a signal completing before the window is not listed
@@ -163,7 +166,7 @@ def test_moving_range_beyond_its_upper_limit_is_flagged():
     view = build_chart_view(history(points, limits=lim), ATTRIBUTE)
     assert view.moving_ranges[-1].moving_range == pytest.approx(6.0)
     assert view.moving_ranges[-1].beyond_ucl
-    assert view.rows[-1].signal_rules == (1,)  # 18 > UCL 15.589
+    assert view.rows[-1].signal_rules == (NelsonRule.ONE_BEYOND_3_SIGMA,)  # 18 > UCL 15.589
 
 
 def test_before_limits_are_frozen_the_points_are_still_there():
@@ -179,18 +182,18 @@ def test_before_limits_are_frozen_the_points_are_still_there():
 
 def test_held_lot_categories_concern_this_chart():
     lim = limits_from(released())
-    other = HeldPoint("H2", 11.0, 33, "held: out of trend", (OUT_OF_TREND,), False, ())
+    other = HeldPoint("H2", 11.0, 33, "held: out of trend", (HoldCategory.OUT_OF_TREND,), False, ())
     oos = HeldPoint("H3", 4.0, 34, "held: out of specification, incomplete",
-                    (OUT_OF_SPECIFICATION, INCOMPLETE), False, ())
-    blank = HeldPoint("H4", None, 35, "held: invalid assay", ("invalid assay",), False, ())
+                    (HoldCategory.OUT_OF_SPECIFICATION, HoldCategory.INCOMPLETE), False, ())
+    blank = HeldPoint("H4", None, 35, "held: invalid assay", (HoldCategory.INVALID_ASSAY,), False, ())
     view = build_chart_view(history(released(), [other, oos, blank], limits=lim), ATTRIBUTE)
     by_lot = {r.lot_id: r for r in view.rows}
     assert by_lot["H2"].category == OTHER_CHART_TREND
     assert by_lot["H2"].signal_rules == ()
-    assert by_lot["H3"].category == OUT_OF_SPECIFICATION
+    assert by_lot["H3"].category == HoldCategory.OUT_OF_SPECIFICATION
     assert by_lot["H4"].value is None and by_lot["H4"].zone_text == "—"
     # a held lot already on the chart (released earlier) is shown once, as charted
-    dup = HeldPoint("A2", 30.0, 99, "held: review required", ("review required",), False, ())
+    dup = HeldPoint("A2", 30.0, 99, "held: review required", (HoldCategory.REVIEW_REQUIRED,), False, ())
     again = build_chart_view(history(released(), [dup], limits=lim), ATTRIBUTE)
     assert [r.lot_id for r in again.rows] == list(LOTS)
 

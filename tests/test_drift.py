@@ -20,7 +20,7 @@ from pipeline.release.decision import ChartState, decide_night
 from pipeline.release.lot_evaluation import LotEvaluation
 from pipeline.release.records import AttributeVerdict
 from pipeline.release.verdicts import judge_numeric
-from pipeline.vocabulary import OUT_OF_SPECIFICATION, OUT_OF_TREND, RELEASED
+from pipeline.vocabulary import Disposition, HoldCategory, TrendStatus, Verdict
 
 SPEC = parse_specification({
     "kind": "product-specification", "product_code": "SIM-1", "product_name": "Simulated lipase",
@@ -65,11 +65,11 @@ def test_drift_is_held_out_of_trend_before_the_first_oos_lot(direction, limit):
     night = decide_night([evaluation(i, v) for i, v in enumerate(values)], {"SIM-1": SPEC}, {}, charts, "test")
     decisions = night.lots
     categories = [d.decision.hold_categories for d in decisions]
-    first_oot = next(i for i, c in enumerate(categories) if OUT_OF_TREND in c)
-    first_oos = next(i for i, c in enumerate(categories) if OUT_OF_SPECIFICATION in c)
+    first_oot = next(i for i, c in enumerate(categories) if HoldCategory.OUT_OF_TREND in c)
+    first_oos = next(i for i, c in enumerate(categories) if HoldCategory.OUT_OF_SPECIFICATION in c)
     # the baseline lots are released while the chart is "not yet established"
-    assert all(d.decision.disposition == RELEASED for d in decisions[:BASELINE_LOTS])
-    assert all(d.trend[0].status == "not yet established" for d in decisions[:BASELINE_LOTS])
+    assert all(d.decision.disposition == Disposition.RELEASED for d in decisions[:BASELINE_LOTS])
+    assert all(d.trend[0].status == TrendStatus.NOT_YET_ESTABLISHED for d in decisions[:BASELINE_LOTS])
     frozen = night.charts[("SIM-1", "specific_activity")].limits
     assert night.newly_frozen == {("SIM-1", "specific_activity"): frozen} and charts == {}  # the given charts stay as given
     assert frozen is not None and frozen.baseline_lots[-1] == f"SIM-{BASELINE_LOTS - 1:03d}"
@@ -77,11 +77,11 @@ def test_drift_is_held_out_of_trend_before_the_first_oos_lot(direction, limit):
     # before the drift reaches the limit
     assert BASELINE_LOTS <= first_oot < first_oos
     held = decisions[first_oot]
-    assert held.decision.hold_categories == (OUT_OF_TREND,)
-    assert held.evaluation.verdicts[0].verdict == "pass"
+    assert held.decision.hold_categories == (HoldCategory.OUT_OF_TREND,)
+    assert held.evaluation.verdicts[0].verdict == Verdict.PASS
     assert first_oos - first_oot >= 30
     assert first_oot - BASELINE_LOTS < 40  # caught while the mean has moved by less than 4 SD
-    assert all(OUT_OF_SPECIFICATION not in c for c in categories[:first_oos])
+    assert all(HoldCategory.OUT_OF_SPECIFICATION not in c for c in categories[:first_oos])
     assert f"is {limit} the limit" in decisions[first_oos].decision.reasons[0]
     reason = held.decision.reasons[0]
     assert "Nelson rule" in reason and held.evaluation.lot_id in reason

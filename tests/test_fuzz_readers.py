@@ -32,7 +32,9 @@ from hypothesis import strategies as st
 
 from pipeline.demo import plant as demo
 from pipeline.intake.layouts import load_layouts
-from pipeline.intake.validation import ExportRejected, ParsedExport, parse_export
+from pipeline.intake.problems import ExportRejected
+from pipeline.intake.validation import ParsedExport, parse_export
+from pipeline.vocabulary import ProblemCode
 
 LAYOUTS = load_layouts(Path(__file__).resolve().parents[1] / "schemas")
 TEMPLATES = {
@@ -55,7 +57,7 @@ def _outcome(name: str, data: bytes) -> ParsedExport | ExportRejected:
         return parse_export(name, data, LAYOUTS)
     except ExportRejected as error:
         assert error.problems, "a rejection lists at least one problem"
-        assert "internal-error" not in error.codes, error.report()
+        assert ProblemCode.INTERNAL_ERROR not in error.codes, error.report()
         assert all(p.message for p in error.problems)
         assert error.report().count("\n") >= 2
         return error

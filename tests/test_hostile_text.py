@@ -31,9 +31,11 @@ from flows.nightly import run_stages
 from pipeline.demo import plant as demo
 from pipeline.documents.lims_results import csv_cell
 from pipeline.intake.layouts import load_layouts
-from pipeline.intake.validation import ExportRejected, parse_export
+from pipeline.intake.problems import ExportRejected
+from pipeline.intake.validation import parse_export
 from pipeline.night.open import open_night
 from pipeline.records.workspace import write_settings
+from pipeline.vocabulary import Disposition, ProblemCode
 
 LAYOUTS = load_layouts(Path(__file__).resolve().parents[1] / "schemas")
 DATE = dt.date(2027, 9, 6)
@@ -75,7 +77,7 @@ def _hostile_files() -> dict[str, bytes]:
 def test_a_lot_number_with_path_parts_is_refused_by_the_layout(lot):
     with pytest.raises(ExportRejected) as info:
         parse_export("lots-x.csv", to_csv(REGISTRY_HEADER, registry_rows(lot)), LAYOUTS)
-    assert info.value.codes == {"pattern"}
+    assert info.value.codes == {ProblemCode.PATTERN}
     assert "column 'lot_id'" in info.value.report()
 
 
@@ -159,7 +161,7 @@ def test_the_batch_report_shows_hostile_units_literally(night):
 def test_hostile_file_names_appear_literally_in_the_documents(night):
     _outer, root, _before, _outside, _files, summary = night
     outcome = next(o for o in summary.outcomes if o.lot_id == PROTEASE)
-    assert outcome.label == "released", outcome.reasons
+    assert outcome.label == Disposition.RELEASED, outcome.reasons
     report = _pdf_text(root / outcome.report)
     assert HOSTILE_NAME in report
     assert "Hostile <b>plant</b> & co (test)" in report

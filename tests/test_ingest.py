@@ -1,11 +1,18 @@
 """Reading exports: every problem reported as line, column and expectation; nothing guessed."""
 
+import pickle
 from pathlib import Path
 
 import pytest
+from badfiles import schemas_with
 
+from pipeline.controlled.catalog import Catalog
+from pipeline.errors import SpecificationError
+from pipeline.intake.assembly import assemble
 from pipeline.intake.layouts import load_layouts
-from pipeline.intake.validation import ExportRejected, parse_export
+from pipeline.intake.problems import ExportRejected
+from pipeline.intake.validation import parse_export
+from pipeline.vocabulary import ProblemCode
 
 LAYOUTS = load_layouts(Path(__file__).resolve().parents[1] / "schemas")
 LIMS_HEADER = "lot_id,test_code,result,unit,tested_on,analyst\n"
@@ -41,16 +48,16 @@ def test_every_failure_is_collected_lazily():
 
 
 @pytest.mark.parametrize(("name", "data", "code", "words"), [
-    ("lims-a.csv", b"", "empty", "the file is empty"),
-    ("lims-a.csv", LIMS_HEADER.encode(), "no-rows", "header but no data rows"),
-    ("lims-a.csv", (LIMS_HEADER + "LLC-2611-001,PH,7.0,,2026-11-27").encode(), "field-count", "cut off"),
-    ("lims-a.csv", LIMS_HEADER.replace(",", ";").encode() + b"LLC-2611-001;PH;7,0;;2026-11-27;K\n", "delimiter", "semicolons"),
-    ("lims-a.csv", (LIMS_HEADER + "LLC-2611-001,PH,7.0,,2026-11-27,J. M\xfcller\n").encode("latin-1"), "encoding", "not UTF-8"),
-    ("lims-a.csv", b"\x00\x01\x02binary", "binary", "binary file"),
-    ("unknown-a.csv", GOOD_LIMS.encode(), "unknown-kind", "known export prefix"),
-    ("lims-a.txt", GOOD_LIMS.encode(), "extension", ".csv"),
-    ("lims-a.csv", b"lot_id,test_code,result\nLLC-1,PH,7.0\n", "missing-column", "lacks"),
-    ("lims-a.csv", (LIMS_HEADER + "LLC-2611-001,PH," + "9" * 600 + ",,2026-11-27,K\n").encode(), "line-too-long", "at most 512"),
+    ("lims-a.csv", b"", ProblemCode.EMPTY, "the file is empty"),
+    ("lims-a.csv", LIMS_HEADER.encode(), ProblemCode.NO_ROWS, "header but no data rows"),
+    ("lims-a.csv", (LIMS_HEADER + "LLC-2611-001,PH,7.0,,2026-11-27").encode(), ProblemCode.FIELD_COUNT, "cut off"),
+    ("lims-a.csv", LIMS_HEADER.replace(",", ";").encode() + b"LLC-2611-001;PH;7,0;;2026-11-27;K\n", ProblemCode.DELIMITER, "semicolons"),
+    ("lims-a.csv", (LIMS_HEADER + "LLC-2611-001,PH,7.0,,2026-11-27,J. M\xfcller\n").encode("latin-1"), ProblemCode.ENCODING, "not UTF-8"),
+    ("lims-a.csv", b"\x00\x01\x02binary", ProblemCode.BINARY, "binary file"),
+    ("unknown-a.csv", GOOD_LIMS.encode(), ProblemCode.UNKNOWN_KIND, "known export prefix"),
+    ("lims-a.txt", GOOD_LIMS.encode(), ProblemCode.EXTENSION, ".csv"),
+    ("lims-a.csv", b"lot_id,test_code,result\nLLC-1,PH,7.0\n", ProblemCode.MISSING_COLUMN, "lacks"),
+    ("lims-a.csv", (LIMS_HEADER + "LLC-2611-001,PH," + "9" * 600 + ",,2026-11-27,K\n").encode(), ProblemCode.LINE_TOO_LONG, "at most 512"),
 ])
 def test_bad_files_are_rejected_with_their_reason(name, data, code, words):
     error = reject(name, data)
@@ -71,3 +78,37 @@ def test_duplicate_lot_in_registry_is_refused():
             "LLC-2611-001,LLC-200,2026-11-25,2026-11-27,J. F.\nLLC-2611-001,LLC-200,2026-11-25,2026-11-27,J. F.\n")
     error = reject("lots-20261127.csv", text)
     assert any(p.column == "lot_id" and "more than once" in p.message for p in error.problems)
+
+
+# --------------------------------------------------------------------------- layouts under schemas/
+def test_a_second_layout_of_one_kind_is_refused_naming_both_files(tmp_path):
+    schemas = schemas_with(tmp_path, "lims-results-edited.yaml", "lims-results", "limsnew-")
+    with pytest.raises(SpecificationError, match=r"schemas/lims-results-edited\.yaml and schemas/lims-results\.yaml "
+                                                 r"both describe exports of kind 'lims-results'"):
+        load_layouts(schemas)
+
+
+def test_two_layouts_with_one_file_prefix_are_refused_naming_both_files(tmp_path):
+    schemas = schemas_with(tmp_path, "balance-weights.yaml", "balance-weights", "lims-")
+    with pytest.raises(SpecificationError, match=r"schemas/balance-weights\.yaml and schemas/lims-results\.yaml "
+                                                 r"both claim the files whose names start with 'lims-'"):
+        load_layouts(schemas)
+
+
+def test_an_export_of_a_kind_no_method_uses_is_noted_not_dropped_silently(tmp_path):
+    schemas = schemas_with(tmp_path, "balance-weights.yaml", "balance-weights", "balance-")
+    parsed = parse_export("balance-20261127.csv", GOOD_LIMS.encode(), load_layouts(schemas))
+    assert parsed.kind == "balance-weights"
+    assembly = assemble([parsed], [], Catalog(specifications={}, methods={}))
+    assert assembly.notes == ["export balance-20261127.csv was read but no method uses exports of kind "
+                              "'balance-weights': it is archived and not used"]
+    assert assembly.lots == []
+
+
+def test_problem_codes_stay_typed_across_worker_processes():
+    # Verdicts come back from worker processes by pickling; the codes must stay members that code compares.
+    error = reject("lims-a.csv", LIMS_HEADER.encode())
+    back = pickle.loads(pickle.dumps(error))  # noqa: S301 - our own object
+    assert back.codes == error.codes == {ProblemCode.NO_ROWS}
+    assert all(type(code) is ProblemCode for code in back.codes)
+    assert back.report() == error.report()

@@ -3,7 +3,7 @@
 import pandas as pd
 
 from pipeline.demo import plant as demo
-from pipeline.intake.validation import ExportRejected
+from pipeline.intake.problems import ExportRejected
 from pipeline.night import receive
 from pipeline.night.open import open_catalog_and_layouts
 

@@ -11,7 +11,7 @@ from pipeline.records.controlled_files import load_catalog
 from pipeline.release.decision import ChartState, decide_night
 from pipeline.release.lot_evaluation import LotEvaluation
 from pipeline.release.records import AttributeVerdict
-from pipeline.vocabulary import OUT_OF_TREND, RELEASED
+from pipeline.vocabulary import Disposition, HoldCategory, Verdict
 
 CATALOG = load_catalog()
 SPEC = CATALOG.specifications["LLC-200"]
@@ -24,7 +24,7 @@ def lot(number: int, plate: str, recovery: float) -> LotEvaluation:
     day = (dt.date(2026, 1, 1) + dt.timedelta(days=number)).isoformat()
     # Every attribute passes; the lot's own charts stay out of this test (no value to chart).
     verdicts = tuple(AttributeVerdict(a.code, a.title, a.unit, None, None, None, a.limit_text,
-                                      "reported" if a.trend else "pass", ()) for a in SPEC.attributes)
+                                      Verdict.REPORTED if a.trend else Verdict.PASS, ()) for a in SPEC.attributes)
     return LotEvaluation(lot_id=f"LLC-T-{number:03d}", product_code="LLC-200", manufactured_on=day, assay_date=day,
                          measurements={}, verdicts=verdicts, incomplete=(), kinetics=None,
                          plates=({"plate_id": plate, "kind": "activity", "method_id": "LIP-PNPB", "valid": True,
@@ -39,13 +39,13 @@ def test_a_reference_out_of_trend_holds_the_plates_lots():
     charts: dict[tuple[str, str], ChartState] = {}
     night = decide_night(lots, {"LLC-200": SPEC}, METHODS, charts, "test")
     decisions = night.lots
-    assert all(d.decision.disposition == RELEASED for d in decisions[:8])
+    assert all(d.decision.disposition == Disposition.RELEASED for d in decisions[:8])
     for held in decisions[8:10]:
-        assert held.decision.hold_categories == (OUT_OF_TREND,)
+        assert held.decision.hold_categories == (HoldCategory.OUT_OF_TREND,)
         assert "Reference standard recovery (LIP-PNPB): Nelson rule 1" in held.decision.reasons[0]
         assert "at plate AK-T-08" in held.decision.reasons[0]
         assert held.charts and held.charts[0]["attribute"] == "reference_recovery"
-    assert decisions[10].decision.disposition == RELEASED
+    assert decisions[10].decision.disposition == Disposition.RELEASED
     chart = night.charts[("LIP-PNPB", "reference_recovery")]
     assert ("LIP-PNPB", "reference_recovery") in night.newly_frozen and charts == {}
     assert chart.limits is not None and chart.limits.baseline_lots == tuple(f"AK-T-{i:02d}" for i in range(8))

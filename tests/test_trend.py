@@ -20,8 +20,12 @@ from pipeline.science.control_charts import (
     ControlLimits,
     capability,
     imr_limits,
+    named_rule,
     rule_signals,
+    rule_text,
+    rules_named_in,
 )
+from pipeline.vocabulary import NelsonRule
 
 
 def hits(values: list[float], rule: int, center: float = 0.0, sigma: float = 1.0):
@@ -97,7 +101,7 @@ def test_rule_2_nine_in_a_row_on_one_side():
     assert hits(seq, 2) == [(11, 3, "above")]
     assert hits(seq[:-1], 2) == []
     desc = [s.description for s in rule_signals(seq, 0.0, 1.0) if s.rule == 2]
-    assert desc == ["rule 2: 9 points in a row above the centre line (points 3–11)"]
+    assert desc == ["rule 2: nine points in a row on one side of the centre (above the centre line, points 3–11)"]
 
 
 def test_rule_2_run_of_ten_signals_at_both_completing_points():
@@ -117,7 +121,7 @@ def test_rule_3_six_points_steadily_increasing_or_decreasing():
     down = [-v for v in up]
     assert hits(down, 3) == [(6, 1, None)]
     descs = [s.description for s in rule_signals(down, 0.0, 1.0) if s.rule == 3]
-    assert descs == ["rule 3: 6 points in a row steadily decreasing (points 1–6)"]
+    assert descs == ["rule 3: six points in a row steadily rising or falling (falling, points 1–6)"]
 
 
 def test_rule_3_tie_breaks_the_run():
@@ -181,7 +185,7 @@ def test_rules_are_switchable_and_signals_are_json_able():
     assert rule_signals(seq, 0.0, 1.0, rules=()) == ()
     d = only1[0].to_dict()
     assert json.loads(json.dumps(d)) == d
-    assert d["description"] == "rule 1: 1 point beyond 3 sigma above the centre line (point 4)"
+    assert d["description"] == "rule 1: one point beyond 3σ (above the centre line, point 4)"
 
 
 def test_centre_and_sigma_scale_the_zones():
@@ -323,3 +327,24 @@ def test_capability_rejects_bad_input(kwargs, error, match):
     args = {"values": [9.8, 10.2, 10.0, 10.4, 9.6]} | kwargs
     with pytest.raises(error, match=match):
         capability(**args)
+
+
+def test_signals_carry_their_rule_typed():
+    signals = rule_signals([0.0, 0.5, -3.5], 0.0, 1.0)
+    assert [(s.rule, type(s.rule)) for s in signals] == [(NelsonRule.ONE_BEYOND_3_SIGMA, NelsonRule)]
+
+
+def test_one_wording_per_rule_in_legends_and_hold_reasons():
+    # The words a reviewer has read since the first release (tests/golden/demo, lot LLC-2611-027).
+    rule = NelsonRule.ONE_BEYOND_3_SIGMA
+    assert rule_text(rule) == "rule 1: one point beyond 3σ"
+    assert named_rule(rule) == "Nelson rule 1 (one point beyond 3σ)"
+    assert rule_text(NelsonRule(8)) == "rule 8: eight points in a row beyond 1σ on either side"
+
+
+def test_a_recorded_reason_gives_back_the_rules_it_names():
+    reason = ("Specific activity: Nelson rule 1 (one point beyond 3σ) at lot LLC-2611-027, value 177.4 U/mg; "
+              "lots LLC-2611-027; chart centre 205.3, σ 6.3, 3σ limits 186.4–224.2 (limits v1)")
+    assert rules_named_in(reason) == (NelsonRule.ONE_BEYOND_3_SIGMA,)
+    assert rules_named_in("Specific activity: 177 U/mg is below the limit 180") == ()
+    assert all(rules_named_in(f"x: {named_rule(r)} at lot y") == (r,) for r in NelsonRule)

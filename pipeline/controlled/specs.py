@@ -12,9 +12,9 @@ from dataclasses import dataclass
 from typing import Any
 
 from pipeline.errors import SpecificationError
+from pipeline.vocabulary import NelsonRule
 
 COMPUTED_SOURCES = ("activity", "protein", "specific_activity", "km", "vmax", "kcat", "kcat_over_km")
-NELSON_RULES = (1, 2, 3, 4, 5, 6, 7, 8)
 
 
 def _require(mapping: dict[str, Any], key: str, where: str) -> Any:
@@ -198,7 +198,7 @@ def _attribute(raw: dict[str, Any], defaults: dict[str, Any], where: str) -> Att
     if minimum is not None and maximum is not None and minimum > maximum:
         raise SpecificationError(f"{here}: min {minimum} is above max {maximum}")
     rules = tuple(int(r) for r in raw.get("rules", defaults.get("rules", (1, 2, 3, 4))))
-    if not set(rules) <= set(NELSON_RULES):
+    if not set(rules) <= set(NelsonRule):
         raise SpecificationError(f"{here}: trend rules must be among 1–8, found {list(rules)}")
     baseline_n = int(raw.get("baseline_n", defaults.get("baseline_n", 20)))
     if baseline_n < 2:
@@ -214,7 +214,7 @@ def _attribute(raw: dict[str, Any], defaults: dict[str, Any], where: str) -> Att
         expect=None if raw.get("expect") is None else str(raw["expect"]),
         test_code=None if raw.get("test_code") is None else str(raw["test_code"]),
         trend=bool(raw.get("trend", False)),
-        trend_rules=rules,
+        trend_rules=tuple(NelsonRule(r) for r in rules),
         baseline_n=baseline_n,
         scientific=bool(raw.get("scientific", False)),
         required=bool(raw.get("required", True)),

@@ -49,6 +49,7 @@ from pipeline.documents.text import (
     styles,
 )
 from pipeline.errors import InputError
+from pipeline.vocabulary import Disposition, Verdict
 
 KINETIC_CODES = ("km", "vmax", "kcat", "kcat_over_km")
 SIGNATURE_KEYS = ("signer_name", "signed_at_local", "signed_at_utc", "meaning", "certificate_fingerprint")
@@ -61,7 +62,7 @@ def _check(dossier: dict[str, Any], signature: dict[str, Any]) -> None:
     decision = get(dossier, "decision", {})
     disposition = get(decision, "disposition")
     lot = clean(get(get(dossier, "lot", {}), "lot_id", "?"), 60)
-    if disposition != "released":
+    if disposition != Disposition.RELEASED:
         raise InputError(f"lot {lot}: a certificate of analysis is issued only for a released lot; "
                          f"this lot's disposition is {clean(disposition, 60)!r}")
     if not isinstance(signature, dict):
@@ -138,8 +139,8 @@ def method_label(dossier: dict[str, Any], method_id: Any) -> str:
     return f"{clean(method_id, 40)} v{clean(version, 20)}" if version is not None else clean(method_id, 40)
 
 
-_VERDICT_WORDS = {"pass": "complies", "reported": "for information", "fail": "DOES NOT COMPLY",
-                  "invalid": "INVALID ASSAY", "missing": "NOT TESTED"}
+_VERDICT_WORDS = {Verdict.PASS: "complies", Verdict.REPORTED: "for information", Verdict.FAIL: "DOES NOT COMPLY",
+                  Verdict.INVALID: "INVALID ASSAY", Verdict.MISSING: "NOT TESTED"}
 
 
 def _result_rows(dossier: dict[str, Any]) -> tuple[list[list[Any]], list[tuple[Any, ...]]]:
@@ -154,7 +155,7 @@ def _result_rows(dossier: dict[str, Any]) -> tuple[list[list[Any]], list[tuple[A
     for v, is_info in [(v, False) for v in limited] + [(v, True) for v in info]:
         verdict = str(get(v, "verdict", ""))
         word = "for information" if is_info else _VERDICT_WORDS.get(verdict, verdict)
-        colour = PASS_INK if verdict == "pass" else (MUTED if is_info or verdict == "reported" else HOLD_INK)
+        colour = PASS_INK if verdict == Verdict.PASS else (MUTED if is_info or verdict == Verdict.REPORTED else HOLD_INK)
         unit = clean(get(v, "unit", ""), 30)
         result = f"{clean(get(v, 'reported', num(get(v, 'value'))), 60)} {unit}".strip()
         if get(v, "code") == "km" and get(get(get(dossier, "kinetics", {}), "km_quality", {}), "well_determined") is False:
@@ -274,7 +275,7 @@ def render_certificate(dossier: dict[str, Any], signature: dict[str, Any]) -> by
         ("Product", mpara("{n} ({c})", "cell", n=get(lot, "product_name"), c=get(lot, "product_code"))),
         ("Manufactured on", para(get(lot, "manufactured_on"), "cell", 60)),
         ("Assay date", para(get(lot, "assay_date"), "cell", 60)),
-        ("Disposition", mpara("<b>{d}</b>, decided {t}", "cell", d=get(decision, "label", "released"),
+        ("Disposition", mpara("<b>{d}</b>, decided {t}", "cell", d=get(decision, "label", Disposition.RELEASED),
                               t=get(decision, "decided_at_local"))),
     ], 34 * mm, CONTENT_W - 34 * mm))
     story += [Paragraph("Results", st["h2"]),

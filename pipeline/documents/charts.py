@@ -30,6 +30,7 @@ from reportlab.pdfbase.pdfmetrics import stringWidth
 from scipy import stats
 
 from pipeline.documents.text import clean, fonts, get, num
+from pipeline.vocabulary import Disposition
 
 WIDTH = 480.0
 HEIGHT = 235.0
@@ -494,9 +495,9 @@ def progress_curves_chart(traces: dict[str, Any] | None) -> Drawing:
 
 def _disposition_colour(value: Any) -> Any:
     text = str(value or "").lower()
-    if text.startswith("released"):
+    if text.startswith(Disposition.RELEASED):
         return C_RELEASED
-    if text.startswith("held"):
+    if text.startswith(Disposition.HELD):
         return C_HELD
     return C_OTHER
 

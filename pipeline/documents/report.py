@@ -51,8 +51,9 @@ from pipeline.documents.text import (
     styles,
     value_pm,
 )
+from pipeline.vocabulary import Disposition, TrendStatus, Verdict
 
-_VERDICT_COLOURS = {"pass": PASS_INK, "reported": MUTED}
+_VERDICT_COLOURS = {Verdict.PASS: PASS_INK, Verdict.REPORTED: MUTED}
 
 
 def _items(values: Any) -> list[Any]:
@@ -80,7 +81,7 @@ def _reasons_cell(reasons: list[Any]) -> Any:
 def _disposition_box(dossier: dict[str, Any]) -> Table:
     st = styles()
     decision = get(dossier, "decision", {})
-    released = get(decision, "disposition") == "released"
+    released = get(decision, "disposition") == Disposition.RELEASED
     ink, fill = (PASS_INK, PASS_FILL) if released else (HOLD_INK, HOLD_FILL)
     label = get(decision, "label", get(decision, "disposition", "undecided"))
     rows: list[list[Any]] = [[mpara("<font color='#{c}'>Disposition: {label}</font>", st["boxtitle"],
@@ -320,7 +321,7 @@ def _trend(dossier: dict[str, Any]) -> list[Any]:
         extra: list[tuple[Any, ...]] = []
         for f in findings:
             status = str(get(f, "status", ""))
-            colour = HOLD_INK if status == "out of trend" else (PASS_INK if status == "in trend" else MUTED)
+            colour = HOLD_INK if status == TrendStatus.OUT_OF_TREND else (PASS_INK if status == TrendStatus.IN_TREND else MUTED)
             signals = _items(get(f, "signals", []))
             lots = _items(get(f, "lots_involved", []))
             text = "<br/>".join(["• " + escape(s, 300) for s in signals] +

@@ -19,13 +19,7 @@ from matplotlib.patches import Patch
 from matplotlib.transforms import blended_transform_factory
 
 from pipeline.release.chart_view import OTHER_CHART_TREND, ChartRow, ChartView
-from pipeline.vocabulary import (
-    INCOMPLETE,
-    INVALID_ASSAY,
-    OUT_OF_SPECIFICATION,
-    OUT_OF_TREND,
-    RELEASED,
-)
+from pipeline.vocabulary import Disposition, HoldCategory, NelsonRule
 
 
 @dataclass(frozen=True)
@@ -37,11 +31,11 @@ class Style:
 
 
 STYLES: dict[str, Style] = {
-    RELEASED: Style("#1f5f99", "o", "released", 40.0),
-    OUT_OF_SPECIFICATION: Style("#c1272d", "s", "held: out of specification", 64.0),
-    OUT_OF_TREND: Style("#e07b00", "D", "held: out of trend (this chart)", 64.0),
-    INCOMPLETE: Style("#0f8b8d", "^", "held: incomplete", 80.0),
-    INVALID_ASSAY: Style("#7b4f9d", "v", "held: invalid assay", 80.0),
+    Disposition.RELEASED: Style("#1f5f99", "o", "released", 40.0),
+    HoldCategory.OUT_OF_SPECIFICATION: Style("#c1272d", "s", "held: out of specification", 64.0),
+    HoldCategory.OUT_OF_TREND: Style("#e07b00", "D", "held: out of trend (this chart)", 64.0),
+    HoldCategory.INCOMPLETE: Style("#0f8b8d", "^", "held: incomplete", 80.0),
+    HoldCategory.INVALID_ASSAY: Style("#7b4f9d", "v", "held: invalid assay", 80.0),
     OTHER_CHART_TREND: Style("#9c6644", "h", "held: out of trend on another chart", 80.0),
 }
 OTHER_HOLD = Style("#5c6670", "P", "held: other reason", 80.0)
@@ -174,10 +168,10 @@ def _draw_individuals(ax, view: ChartView, rows: tuple[ChartRow, ...]) -> list:
         st = style_of(row.category)
         ax.scatter([row.position], [0.035], s=48, marker="x", color=st.colour, linewidths=1.6,
                    transform=bottom, zorder=5, clip_on=False)
-    order = [RELEASED, OUT_OF_SPECIFICATION, OUT_OF_TREND, INCOMPLETE, INVALID_ASSAY, OTHER_CHART_TREND]
+    order = list(STYLES)  # the legend lists the categories in the order of their styles
     for category in sorted(seen, key=lambda c: order.index(c) if c in order else len(order)):
         st = seen[category]
-        label = f"{st.label} lot" if category == RELEASED else st.label
+        label = f"{st.label} lot" if category == Disposition.RELEASED else st.label
         if st is OTHER_HOLD:
             label = f"held: {category}"
         handles.append(Line2D([], [], ls="", marker=st.marker, color=st.colour, markeredgecolor="white",
@@ -190,7 +184,7 @@ def _draw_individuals(ax, view: ChartView, rows: tuple[ChartRow, ...]) -> list:
     ringed = False
     span = yhi - ylo
     ring = max(110.0, 290.0 * min(1.0, 40.0 / max(n, 1)))
-    last_label: tuple[int, tuple[int, ...]] | None = None
+    last_label: tuple[int, tuple[NelsonRule, ...]] | None = None
     for row in rows:
         if not row.signal_rules or row.value is None:
             continue
@@ -246,7 +240,7 @@ def _draw_moving_range(ax, view: ChartView, n: int) -> None:
                 fontsize=8, color=CONTROL, fontweight="bold")
     if xs:
         ax.plot(xs, ys, color=SERIES_LINE, lw=0.9, zorder=2)
-        colours = [CONTROL if m.beyond_ucl else STYLES[RELEASED].colour for m in view.moving_ranges]
+        colours = [CONTROL if m.beyond_ucl else STYLES[Disposition.RELEASED].colour for m in view.moving_ranges]
         ax.scatter(xs, ys, s=18, marker="s", c=colours, zorder=3)
     ax.set_ylabel("moving range", fontsize=9.5, color=INK)
     ax.grid(axis="y", color="#d5dbe1", lw=0.5)

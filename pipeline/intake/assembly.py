@@ -14,6 +14,8 @@ dropped silently. Cross-file rules:
   holds the lot; so does a LIMS test dated before the lot was manufactured;
 - a quarantined export that names a lot (or one of its plates) holds that lot; a lot named
   only in quarantined exports is noted as not decided.
+- an export of a kind that no part of the night uses (a layout added under schemas/ that
+  nothing reads yet) is noted: it is archived but not used.
 """
 
 from __future__ import annotations
@@ -31,10 +33,15 @@ import pandas as pd
 from pipeline.assay.plate_reads import PlateReads
 from pipeline.controlled.catalog import Catalog
 from pipeline.controlled.specs import KineticMethod
-from pipeline.intake.validation import PLATE_GEOMETRY, ParsedExport
+from pipeline.intake.row_checks import PLATE_GEOMETRY
+from pipeline.intake.validation import ParsedExport
 from pipeline.release.lot_evaluation import LimsEntry, LotInputs
 
 LOT_ID = re.compile(r"[A-Z0-9][A-Z0-9-]{2,31}")  # the lot_id pattern of the export layouts
+# The kinds of export (``lotgate_export.kind`` of a layout under schemas/) that a night uses.
+REGISTRY, PLATE_MAP, KINETIC_READ, ENDPOINT_READ, LIMS_RESULTS = (
+    "lot-registry", "plate-map", "kinetic-read", "endpoint-read", "lims-results")
+USED_KINDS = (REGISTRY, PLATE_MAP, KINETIC_READ, ENDPOINT_READ, LIMS_RESULTS)
 _TOKEN = re.compile(r"[A-Za-z0-9][A-Za-z0-9-]*")
 WELLS_LISTED = 8
 
@@ -164,11 +171,12 @@ def assemble(parsed_exports: list[ParsedExport], quarantined: list[QuarantinedFi
     for parsed in parsed_exports:
         by_kind[parsed.kind].append(parsed)
     setaside = _quarantined(quarantined)
-    notes: list[str] = []
-    registry, registry_file = _registry(by_kind["lot-registry"], notes)
+    notes = [f"export {parsed.file_name} was read but no method uses exports of kind '{kind}': it is archived "
+             "and not used" for kind in sorted(set(by_kind) - set(USED_KINDS)) for parsed in by_kind[kind]]
+    registry, registry_file = _registry(by_kind[REGISTRY], notes)
 
-    maps = _plate_groups(by_kind["plate-map"])
-    read_groups = {"kinetic": _plate_groups(by_kind["kinetic-read"]), "endpoint": _plate_groups(by_kind["endpoint-read"])}
+    maps = _plate_groups(by_kind[PLATE_MAP])
+    read_groups = {"kinetic": _plate_groups(by_kind[KINETIC_READ]), "endpoint": _plate_groups(by_kind[ENDPOINT_READ])}
     activity_plates: dict[str, Any] = {}
     protein_plates: dict[str, Any] = {}
     plate_files: dict[str, dict[str, str]] = {}
@@ -218,7 +226,7 @@ def assemble(parsed_exports: list[ParsedExport], quarantined: list[QuarantinedFi
     lims_files: dict[str, dict[str, str]] = defaultdict(dict)
     lims_problems: dict[str, list[str]] = defaultdict(list)
     conflicting: set[tuple[str, str]] = set()
-    for export in by_kind["lims-results"]:
+    for export in by_kind[LIMS_RESULTS]:
         for row in export.frame.to_dict("records"):
             lot, test = row["lot_id"], row["test_code"]
             lims_files[lot][export.file_name] = export.sha256

@@ -67,15 +67,26 @@ def load_layout(path: Path) -> ExportLayout:
 
 
 def load_layouts(directory: Path) -> dict[str, ExportLayout]:
-    layouts = {}
+    """Every layout under ``directory``, by kind: one file per kind, and no two with one file prefix.
+
+    A second layout of a kind (an edited copy left beside the first, say) would silently
+    replace the first; it is refused, naming both files, so that a person chooses one.
+    """
+    layouts: dict[str, ExportLayout] = {}
+    files: dict[str, str] = {}  # kind -> the layout file that defines it
     for path in sorted(directory.glob("*.yaml")):
         layout = load_layout(path)
+        if layout.kind in layouts:
+            raise SpecificationError(f"schemas/{files[layout.kind]} and schemas/{path.name} both describe exports of "
+                                     f"kind '{layout.kind}'; one layout per kind: remove or rename one of them")
+        for kind, other in layouts.items():
+            if other.file_prefix == layout.file_prefix:
+                raise SpecificationError(f"schemas/{files[kind]} and schemas/{path.name} both claim the files whose "
+                                         f"names start with '{layout.file_prefix}'; each layout needs its own prefix")
         layouts[layout.kind] = layout
+        files[layout.kind] = path.name
     if not layouts:
         raise SpecificationError(f"no export layout found under {directory}")
-    prefixes = [layout.file_prefix for layout in layouts.values()]
-    if len(set(prefixes)) != len(prefixes):
-        raise SpecificationError(f"two export layouts share a file prefix: {prefixes}")
     return layouts
 
 

@@ -18,7 +18,7 @@ from pipeline.release.decision import (
     decide_night,
 )
 from pipeline.release.lot_evaluation import LotEvaluation
-from pipeline.vocabulary import RELEASED
+from pipeline.vocabulary import Disposition
 
 
 def load_charts(store: Store, catalog: Catalog, evaluations: list[LotEvaluation]) -> dict[ChartKey, ChartState]:
@@ -47,7 +47,7 @@ def earlier_decisions(store: Store, evaluations: list[LotEvaluation]) -> dict[st
     latest = store.previous_decisions([e.lot_id for e in evaluations])
     return {lot: f"revision {stored.revision}: {stored.record.label} (decided by {stored.decided_by})"
             for lot, stored in latest.items()
-            if stored.disposition != RELEASED or not stored.decided_by.startswith("lotgate")}
+            if stored.disposition != Disposition.RELEASED or not stored.decided_by.startswith("lotgate")}
 
 
 def decide(evaluations: list[LotEvaluation], catalog: Catalog, charts: dict[ChartKey, ChartState],

@@ -28,7 +28,7 @@ from pipeline.release.signature import (
     PERSON_RELEASE_MEANING,
     signature_block,
 )
-from pipeline.vocabulary import FAIL, REPORTED
+from pipeline.vocabulary import Disposition, Verdict
 
 
 @dataclass(frozen=True)
@@ -42,7 +42,7 @@ class PersonOutcome:
 
 def _blocking_results(record: DecisionRecord) -> list[str]:
     """Results that leave nothing to certify: missing or invalid ones with a limit."""
-    return [r.code for r in record.results if r.verdict not in ("pass", FAIL, REPORTED)]
+    return [r.code for r in record.results if r.verdict not in (Verdict.PASS, Verdict.FAIL, Verdict.REPORTED)]
 
 
 def _reissue(ws: Workspace, record: DecisionRecord, earlier_revision: int, decided_at: dt.datetime,
@@ -80,7 +80,7 @@ def decide_lot(ws: Workspace, store: Store, lot_id: str, *, release: bool, reaso
         raise InputError(f"lot {lot_id} cannot be released: no valid result for {missing}; a certificate needs every "
                          "result. Re-assay first, or reject the lot.")
     decided_at = dt.datetime.now(dt.UTC).replace(microsecond=0)
-    disposition = "released" if release else "rejected"
+    disposition = Disposition.RELEASED if release else Disposition.REJECTED
     signer = IdentitySigner(identity)
     record = dataclasses.replace(
         base, disposition=disposition, label=f"{disposition} by {identity.signer_name}", hold_categories=(),

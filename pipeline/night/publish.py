@@ -29,7 +29,7 @@ from pipeline.release.decision import ChartKey, FrozenLimits, LotDecision, Night
 from pipeline.release.dossier import build_dossier
 from pipeline.release.records import DecisionRecord
 from pipeline.release.signature import NIGHTLY_RELEASE_MEANING, signature_block
-from pipeline.vocabulary import RELEASED
+from pipeline.vocabulary import Disposition
 
 WINDOW_LOTS = 64          # lots rendered per round: bounds memory whatever the night's size
 PARALLEL_FROM_LOTS = 24   # below this, a process pool costs more than it saves
@@ -114,7 +114,7 @@ def _prepare(ws: Workspace, catalog: Catalog, item: LotDecision, previous: Store
                             plant_name=ws.plant_name, time_zone=ws.time_zone, revision=revision,
                             decided_at=decided_at)
     signature = None
-    if decision.disposition == RELEASED:
+    if decision.disposition == Disposition.RELEASED:
         signature = signature_block(signer.signer_name, signer.fingerprint_sha256, decided_at.replace(microsecond=0),
                                     ws.time_zone, NIGHTLY_RELEASE_MEANING)
     return _Job(item, revision, None if previous is None else previous.record, f"{decision.lot_id}_r{revision}",

@@ -17,7 +17,8 @@ from pathlib import Path
 from pipeline.controlled.catalog import Catalog
 from pipeline.intake.assembly import Assembly, QuarantinedFile, assemble
 from pipeline.intake.layouts import ExportLayout, layout_for
-from pipeline.intake.validation import ExportRejected, ParsedExport, parse_exports
+from pipeline.intake.problems import ExportRejected
+from pipeline.intake.validation import ParsedExport, parse_exports
 from pipeline.night.progress import Progress, no_progress
 from pipeline.night.workers import parse_files, parser_start, process_pool
 from pipeline.records import audit

@@ -13,7 +13,8 @@ from pathlib import Path
 from typing import Any
 
 from pipeline.intake.layouts import ExportLayout
-from pipeline.intake.validation import ExportRejected, ParsedExport, parse_exports
+from pipeline.intake.problems import ExportRejected
+from pipeline.intake.validation import ParsedExport, parse_exports
 
 _WORKER: dict[str, Any] = {}  # a worker process's own state, set by its initializer
 

@@ -10,7 +10,7 @@ from pipeline.records.store import Store
 from pipeline.release.chart_view import ChartHistory, HeldPoint, ReleasedPoint, StoredLimits
 from pipeline.release.records import DecisionRecord, TrendFinding
 from pipeline.science.control_charts import HISTORY_POINTS
-from pipeline.vocabulary import OUT_OF_TREND
+from pipeline.vocabulary import HoldCategory, TrendStatus
 
 
 def limit_versions(store: Store, product_code: str, attribute: str) -> tuple[StoredLimits, ...]:
@@ -51,9 +51,9 @@ def held_points(store: Store, product_code: str, attribute: str, *, after_order:
         finding = _finding(record, attribute)
         categories = tuple(record.hold_categories)
         if finding is not None:
-            oot, signals = finding.status == "out of trend", tuple(str(x) for x in finding.signals)
+            oot, signals = finding.status == TrendStatus.OUT_OF_TREND, tuple(str(x) for x in finding.signals)
         else:
-            oot, signals = OUT_OF_TREND in categories, ()
+            oot, signals = HoldCategory.OUT_OF_TREND in categories, ()
         label = record.label or f"held: {', '.join(categories)}"
         out.append(HeldPoint(decision.lot_id, value, decision.id, label, categories, oot, signals))
     return tuple(out)

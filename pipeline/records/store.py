@@ -39,7 +39,7 @@ from pipeline.records.tables import (
     ResultRow,
 )
 from pipeline.release.chart_view import ReleasedPoint, StoredLimits
-from pipeline.vocabulary import RELEASED
+from pipeline.vocabulary import Disposition
 
 RUN_LOCK_KEY = 472_901_002
 AUDIT_LOCK_KEY = 472_901_003
@@ -319,7 +319,7 @@ class Store:
         with self.session() as s:
             query = (select(DecisionRow).join(Lot, Lot.lot_id == DecisionRow.lot_id)
                      .where(Lot.product_code == product_code, DecisionRow.superseded_by.is_(None),
-                            DecisionRow.disposition != RELEASED, DecisionRow.lot_id.not_in(charted)))
+                            DecisionRow.disposition != Disposition.RELEASED, DecisionRow.lot_id.not_in(charted)))
             if after_order is not None:
                 query = query.where(DecisionRow.id > after_order)
             rows = list(reversed(list(s.scalars(query.order_by(DecisionRow.id.desc()).limit(limit)))))

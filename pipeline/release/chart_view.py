@@ -13,7 +13,6 @@ frozen dataclasses with ``to_dict()``. Values are in the attribute's own unit (`
 
 from __future__ import annotations
 
-import re
 from collections.abc import Sequence
 from dataclasses import dataclass
 
@@ -22,11 +21,8 @@ import numpy as np
 from pipeline.controlled.specs import Attribute
 from pipeline.errors import CalculationError
 from pipeline.plain_data import to_plain
-from pipeline.release.decision import RULE_NAMES
 from pipeline.science import control_charts as trend
-from pipeline.vocabulary import HOLD_ORDER, OUT_OF_TREND, RELEASED
-
-_RULE_IN_TEXT = re.compile(r"Nelson rule (\d)")
+from pipeline.vocabulary import Disposition, HoldCategory, NelsonRule
 
 
 # ------------------------------------------------------------------------------ inputs
@@ -85,7 +81,7 @@ class HeldPoint:
     order: int
     label: str
     hold_categories: tuple[str, ...]
-    out_of_trend_here: bool = False  # this attribute's finding in the decision was "out of trend"
+    out_of_trend_here: bool = False  # this attribute's finding in the decision was out of trend
     trend_signals: tuple[str, ...] = ()  # the decision's reasons for this attribute
 
 
@@ -114,14 +110,14 @@ class ChartRow:
     position: int
     lot_id: str
     value: float | None
-    disposition: str
+    disposition: str  # the lot's label: "released" or "held: …"
     category: str  # "released" or the first hold category (in reading order)
     released: bool
     baseline: bool
     zone: int | None  # signed: 0 on centre, ±1 within 1σ, ±2 1–2σ, ±3 2–3σ, ±4 beyond 3σ
     zone_text: str
     sigma_units: float | None  # (value − centre) / σ̂
-    signal_rules: tuple[int, ...]
+    signal_rules: tuple[NelsonRule, ...]
     signal_notes: tuple[str, ...]
 
     def to_dict(self) -> dict[str, object]:
@@ -151,7 +147,7 @@ class MovingRange:
 class ChartSignal:
     """A run-rule pattern completing at ``lot_id``; ``source`` says who found it."""
 
-    rule: int
+    rule: NelsonRule
     lot_id: str
     first_lot: str
     position: int
@@ -176,7 +172,7 @@ class ChartView:
     digits: int
     lsl: float | None
     usl: float | None
-    rules: tuple[int, ...]
+    rules: tuple[NelsonRule, ...]
     baseline_n: int
     released_total: int
     limits: StoredLimits | None
@@ -242,17 +238,24 @@ def _category(point: HeldPoint) -> str:
 
     A lot held only because another attribute's chart signalled is not out of trend here.
     """
-    here = [c for c in point.hold_categories if c != OUT_OF_TREND or point.out_of_trend_here]
-    for category in HOLD_ORDER:
-        if category in here:
-            return category
+    here = [c for c in point.hold_categories if c != HoldCategory.OUT_OF_TREND or point.out_of_trend_here]
+    known = HoldCategory.in_reading_order(here)
+    if known:
+        return known[0]
     if here:
         return here[0]
-    return OTHER_CHART_TREND if OUT_OF_TREND in point.hold_categories else "held"
+    return OTHER_CHART_TREND if HoldCategory.OUT_OF_TREND in point.hold_categories else Disposition.HELD
 
 
-def _rules_in(texts: Sequence[str]) -> tuple[int, ...]:
-    return tuple(dict.fromkeys(int(m) for t in texts for m in _RULE_IN_TEXT.findall(t)))
+def _recorded_rules(point: HeldPoint) -> dict[NelsonRule, str]:
+    """The rules the held lot's decision found on this chart, each with the reason that names it."""
+    if not point.out_of_trend_here:
+        return {}
+    found: dict[NelsonRule, str] = {}
+    for reason in point.trend_signals:
+        for rule in trend.rules_named_in(reason):
+            found.setdefault(rule, reason)
+    return found
 
 
 # ------------------------------------------------------------------------------ the view
@@ -306,7 +309,7 @@ def build_chart_view(history: ChartHistory, attribute: Attribute, window: int = 
             first = released_series[s.first_index].lot_id
             span = lot if first == lot else f"{first} … {lot}"
             signals.append(ChartSignal(s.rule, lot, first, positions[lot], "released series",
-                                       f"rule {s.rule}: {RULE_NAMES[s.rule]} ({span})"))
+                                       f"{trend.rule_text(s.rule)} ({span})"))
     rows: list[ChartRow] = []
     for i, point in enumerate(shown):
         value = point.value
@@ -317,21 +320,19 @@ def build_chart_view(history: ChartHistory, attribute: Attribute, window: int = 
             units = (value - limits.center) / limits.sigma
         if isinstance(point, ReleasedPoint):
             found = rel_signals.get(point.lot_id, [])
-            rows.append(ChartRow(i, point.lot_id, value, RELEASED, RELEASED, True,
+            rows.append(ChartRow(i, point.lot_id, value, Disposition.RELEASED, Disposition.RELEASED, True,
                                  point.lot_id in baseline, zone, zone_text(zone), units,
                                  tuple(s.rule for s in found),
-                                 tuple(f"rule {s.rule}: {RULE_NAMES[s.rule]}" for s in found)))
+                                 tuple(trend.rule_text(s.rule) for s in found)))
             continue
-        rules = _rules_in(point.trend_signals) if point.out_of_trend_here else ()
-        notes = tuple(f"rule {r}: {RULE_NAMES[r]} (when held)" for r in rules)
-        if point.out_of_trend_here and not rules:
+        recorded = _recorded_rules(point)
+        notes = tuple(f"{trend.rule_text(r)} (when held)" for r in recorded)
+        if point.out_of_trend_here and not recorded:
             notes = ("out of trend (when held)",)
-        for r in rules:
-            detail = next((t for t in point.trend_signals if f"Nelson rule {r}" in t), "")
-            signals.append(ChartSignal(r, point.lot_id, point.lot_id, i, "decision",
-                                       f"rule {r}: {RULE_NAMES[r]}", detail))
+        for r, reason in recorded.items():
+            signals.append(ChartSignal(r, point.lot_id, point.lot_id, i, "decision", trend.rule_text(r), reason))
         rows.append(ChartRow(i, point.lot_id, value, point.label, _category(point), False,
-                             False, zone, zone_text(zone), units, rules, notes))
+                             False, zone, zone_text(zone), units, tuple(recorded), notes))
     moving: list[MovingRange] = []
     mr_ucl = limits.mr_ucl if limits else None
     for prev, cur in zip(released_series, released_series[1:], strict=False):
@@ -352,7 +353,7 @@ def build_chart_view(history: ChartHistory, attribute: Attribute, window: int = 
     return ChartView(
         product_code=history.product_code, attribute=attribute.code, title=attribute.title,
         unit=attribute.unit, digits=attribute.digits, lsl=attribute.minimum, usl=attribute.maximum,
-        rules=tuple(attribute.trend_rules), baseline_n=attribute.baseline_n,
+        rules=tuple(NelsonRule(r) for r in attribute.trend_rules), baseline_n=attribute.baseline_n,
         released_total=history.released_total, limits=limits, previous=previous, status=status,
         window=window, rows=tuple(rows), moving_ranges=tuple(moving),
         signals=tuple(sorted(signals, key=lambda s: (s.position, s.rule))),

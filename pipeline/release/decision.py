@@ -21,18 +21,8 @@ from pipeline.release.lot_evaluation import LotEvaluation
 from pipeline.release.records import Decision, TrendFinding
 from pipeline.release.verdicts import disposition
 from pipeline.science import control_charts as trend
-from pipeline.vocabulary import HELD, PASS, RELEASED, REVIEW_REQUIRED
+from pipeline.vocabulary import Disposition, HoldCategory, TrendStatus, Verdict
 
-RULE_NAMES = {
-    1: "one point beyond 3σ",
-    2: "nine points in a row on one side of the centre",
-    3: "six points in a row steadily rising or falling",
-    4: "fourteen points in a row alternating up and down",
-    5: "two of three points beyond 2σ on one side",
-    6: "four of five points beyond 1σ on one side",
-    7: "fifteen points in a row within 1σ",
-    8: "eight points in a row beyond 1σ on either side",
-}
 CHART_TAIL = 30  # points kept for evaluation (≥ 15, the longest rule) and for the plotted chart
 
 
@@ -99,9 +89,9 @@ def _picture(chart: ChartState, attribute: Attribute, point_id: str, value: floa
     picture["values"].append(value)
     picture.update(attribute=attribute.code, title=attribute.title, unit=attribute.unit,
                    lsl=attribute.minimum, usl=attribute.maximum,
-                   dispositions=["released"] * (len(picture["lots"]) - 1) + [label],
+                   dispositions=[Disposition.RELEASED] * (len(picture["lots"]) - 1) + [label],
                    signal_indices=[len(picture["lots"]) - 1],
-                   signal_labels=[f"rule {r.split('Nelson rule ')[1].split(' ')[0]}" for r in finding.signals])
+                   signal_labels=[f"rule {rule.value}" for rule in finding.rules])
     return picture
 
 
@@ -128,14 +118,15 @@ def _judge_reference_plates(evaluations: list[LotEvaluation], methods: dict[str,
             continue
         attribute = method.recovery_attribute()
         if not plate.get("valid") or not isinstance(recovery, float):
-            out[plate_id] = (TrendFinding(attribute.code, "not evaluated", signals=()), None, None)
+            out[plate_id] = (TrendFinding(attribute.code, TrendStatus.NOT_EVALUATED, signals=()), None, None)
             continue
         key = (method.method_id, attribute.code)
         chart, finding = _judge_point(charts.get(key) or ChartState(*key, None), attribute, plate_id, recovery,
                                       attribute.digits, frozen, what="plate")
         picture = point = None
-        if finding.status == "out of trend":
-            picture = _picture(chart, attribute, plate_id, recovery, "held: out of trend", finding)
+        if finding.status == TrendStatus.OUT_OF_TREND:
+            picture = _picture(chart, attribute, plate_id, recovery,
+                               f"{Disposition.HELD}: {HoldCategory.OUT_OF_TREND}", finding)
         else:
             chart = chart.with_point(plate_id, recovery)
             point = (method.method_id, attribute.code, plate_id, recovery)
@@ -159,7 +150,7 @@ def _judge_point(chart: ChartState, attribute: Attribute, lot_id: str, value: fl
                  frozen: list[ChartKey], what: str = "lot") -> tuple[ChartState, TrendFinding]:
     chart = _maybe_freeze(chart, attribute, frozen)
     if chart.limits is None:
-        return chart, TrendFinding(attribute.code, "not yet established", baseline_n=attribute.baseline_n,
+        return chart, TrendFinding(attribute.code, TrendStatus.NOT_YET_ESTABLISHED, baseline_n=attribute.baseline_n,
                                    signals=(), lots_involved=())
     limits = chart.limits
     tail_lots = chart.lots[-CHART_TAIL:]
@@ -177,13 +168,14 @@ def _judge_point(chart: ChartState, attribute: Attribute, lot_id: str, value: fl
         involved.extend(lots)
         span = lots[0] if len(lots) == 1 else f"{lots[0]} … {lots[-1]} ({len(lots)} {what}s)"
         reasons.append(
-            f"{attribute.title}: Nelson rule {signal.rule} ({RULE_NAMES[signal.rule]}) at {what} {lot_id}, "
+            f"{attribute.title}: {trend.named_rule(signal.rule)} at {what} {lot_id}, "
             f"value {fmt.format(value)} {attribute.unit}; {what}s {span}; chart centre {fmt.format(limits.center)}, "
             f"σ {fmt.format(limits.sigma)}, 3σ limits {fmt.format(limits.center - 3 * limits.sigma)}–"
             f"{fmt.format(limits.center + 3 * limits.sigma)} (limits v{limits.version})")
-    status = "out of trend" if signals else "in trend"
+    status = TrendStatus.OUT_OF_TREND if signals else TrendStatus.IN_TREND
     return chart, TrendFinding(attribute.code, status, limits.center, limits.sigma, limits.version,
-                               len(limits.baseline_lots), tuple(reasons), tuple(dict.fromkeys(involved)))
+                               len(limits.baseline_lots), tuple(reasons), tuple(dict.fromkeys(involved)),
+                               tuple(signal.rule for signal in signals))
 
 
 def fingerprint(evaluation: LotEvaluation, spec: Specification, method_sha: dict[str, str], code_version: str) -> str:
@@ -221,11 +213,11 @@ def decide_night(evaluations: list[LotEvaluation], specifications: dict[str, Spe
             key = (spec.product_code, attribute.code)
             chart = working.get(key) or ChartState(*key, None)
             working[key] = chart
-            if verdict.verdict != PASS and not (verdict.verdict == "reported" and isinstance(value, float)):
-                findings.append(TrendFinding(attribute.code, "not evaluated", signals=()))
+            if verdict.verdict != Verdict.PASS and not (verdict.verdict == Verdict.REPORTED and isinstance(value, float)):
+                findings.append(TrendFinding(attribute.code, TrendStatus.NOT_EVALUATED, signals=()))
                 continue
             if not isinstance(value, float):
-                findings.append(TrendFinding(attribute.code, "not evaluated", signals=()))
+                findings.append(TrendFinding(attribute.code, TrendStatus.NOT_EVALUATED, signals=()))
                 continue
             working[key], finding = _judge_point(chart, attribute, evaluation.lot_id, value, attribute.digits, frozen)
             findings.append(finding)
@@ -243,10 +235,10 @@ def decide_night(evaluations: list[LotEvaluation], specifications: dict[str, Spe
                     extra_points += [point] if point is not None else []
         state, categories, reasons = disposition(evaluation.verdicts, findings, evaluation.incomplete)
         if evaluation.lot_id in earlier:
-            categories = (*categories, REVIEW_REQUIRED)
+            categories = (*categories, HoldCategory.REVIEW_REQUIRED)
             reasons = (*reasons, f"the lot's earlier decision ({earlier[evaluation.lot_id]}) stands until an "
                                  "authorised person decides (lotgate decide); the nightly job does not release it")
-            state = HELD
+            state = Disposition.HELD
         method_sha = {m.method_id: m.document.sha256 for m in used_methods.values()}
         decision = Decision(
             lot_id=evaluation.lot_id, product=spec.product_code, disposition=state,
@@ -257,11 +249,11 @@ def decide_night(evaluations: list[LotEvaluation], specifications: dict[str, Spe
             code_version=code_version, fingerprint=fingerprint(evaluation, spec, method_sha, code_version))
         chart_pictures = list(reference_pictures)
         for finding in findings:
-            if finding.status == "out of trend" and finding.attribute in pending:
+            if finding.status == TrendStatus.OUT_OF_TREND and finding.attribute in pending:
                 chart = working[(spec.product_code, finding.attribute)]
                 chart_pictures.append(_picture(chart, spec.attribute(finding.attribute), evaluation.lot_id,
                                                pending[finding.attribute], decision.label, finding))
-        released = state == RELEASED
+        released = state == Disposition.RELEASED
         if released:
             for code, value in pending.items():
                 key = (spec.product_code, code)

@@ -25,7 +25,7 @@ from pipeline.science import kinetics
 from pipeline.science.kinetics import KineticModelChoice
 from pipeline.science.kinetics_batch import choose_kinetic_models
 from pipeline.science.measurement import Measurement
-from pipeline.vocabulary import REPORTED
+from pipeline.vocabulary import Verdict
 
 
 @dataclass(frozen=True)
@@ -232,7 +232,7 @@ def evaluate_lots(lots: list[LotInputs], specifications: dict[str, Specification
             if not attribute.has_limit and not is_missing(measurement) and measurement is not None \
                     and measurement.valid and measurement.value is None:
                 verdict = AttributeVerdict(attribute.code, attribute.title, attribute.unit, None, "not determined",
-                                           None, attribute.limit_text, REPORTED, measurement.reasons, method_label)
+                                           None, attribute.limit_text, Verdict.REPORTED, measurement.reasons, method_label)
             verdicts.append(verdict)
         plates = tuple(p.summary() for p in (plate, lot.protein_plate) if p is not None)
         report = {

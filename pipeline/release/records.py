@@ -6,7 +6,7 @@ from dataclasses import dataclass, field, fields
 from typing import Any
 
 from pipeline.plain_data import to_plain
-from pipeline.vocabulary import RELEASED
+from pipeline.vocabulary import Disposition, HoldCategory, NelsonRule, TrendStatus, Verdict
 
 
 @dataclass(frozen=True)
@@ -20,7 +20,7 @@ class AttributeVerdict:
     reported: str | None
     se: float | None
     limit_text: str
-    verdict: str
+    verdict: Verdict
     reasons: tuple[str, ...] = ()
     method: str | None = None
 
@@ -33,16 +33,17 @@ class TrendFinding:
     """What the control chart said about one attribute of one lot."""
 
     attribute: str
-    status: str  # "in trend", "out of trend", "not yet established", "not evaluated"
+    status: TrendStatus
     center: float | None = None
     sigma: float | None = None
     limits_version: int | None = None
     baseline_n: int | None = None
-    signals: tuple[str, ...] = ()
+    signals: tuple[str, ...] = ()  # one reason per signal, for a person
     lots_involved: tuple[str, ...] = ()
+    rules: tuple[NelsonRule, ...] = ()  # the rule of each signal; not stored (records keep their format)
 
     def to_dict(self) -> dict[str, Any]:
-        return to_plain(vars(self))
+        return to_plain({k: v for k, v in vars(self).items() if k != "rules"})
 
 
 @dataclass(frozen=True)
@@ -51,8 +52,8 @@ class Decision:
 
     lot_id: str
     product: str
-    disposition: str
-    hold_categories: tuple[str, ...]
+    disposition: Disposition
+    hold_categories: tuple[HoldCategory, ...]
     reasons: tuple[str, ...]
     spec_version: str
     spec_sha256: str
@@ -64,8 +65,8 @@ class Decision:
 
     @property
     def label(self) -> str:
-        if self.disposition == RELEASED:
-            return RELEASED
+        if self.disposition == Disposition.RELEASED:
+            return Disposition.RELEASED
         return f"held: {', '.join(self.hold_categories)}"
 
     def to_dict(self) -> dict[str, Any]:
@@ -157,6 +158,7 @@ class DecisionRecord:
 
     def to_json(self) -> dict[str, Any]:
         plain = to_plain(self)
+        plain["trend"] = [finding.to_dict() for finding in self.trend]  # without the in-memory rule numbers
         for key in _ABSENT_WHEN_NONE:
             if plain[key] is None:
                 del plain[key]

@@ -13,20 +13,7 @@ from decimal import ROUND_HALF_UP, Decimal
 from pipeline.controlled.specs import Attribute
 from pipeline.release.records import AttributeVerdict, TrendFinding
 from pipeline.science.measurement import Measurement
-from pipeline.vocabulary import (
-    FAIL,
-    HELD,
-    HOLD_ORDER,
-    INCOMPLETE,
-    INVALID,
-    INVALID_ASSAY,
-    MISSING,
-    OUT_OF_SPECIFICATION,
-    OUT_OF_TREND,
-    PASS,
-    RELEASED,
-    REPORTED,
-)
+from pipeline.vocabulary import Disposition, HoldCategory, TrendStatus, Verdict
 
 
 def round_half_up(value: float, digits: int) -> Decimal:
@@ -50,7 +37,7 @@ def _words(*parts: str) -> str:
     return " ".join(part for part in parts if part)
 
 
-def judge_numeric(attribute: Attribute, value: float, qualifier: str | None = None) -> tuple[str, str, str | None]:
+def judge_numeric(attribute: Attribute, value: float, qualifier: str | None = None) -> tuple[Verdict, str, str | None]:
     """Compare one numeric result with its limits after rounding.
 
     Returns (verdict, reported text, reason or None). A result qualified '<' (below the
@@ -60,23 +47,23 @@ def judge_numeric(attribute: Attribute, value: float, qualifier: str | None = No
     if qualifier == "<":
         reported = f"< {reported}"
     if not attribute.has_limit or attribute.expect is not None:
-        return (REPORTED if not attribute.has_limit else FAIL), reported, (
+        return (Verdict.REPORTED if not attribute.has_limit else Verdict.FAIL), reported, (
             None if not attribute.has_limit else f"{attribute.title}: a number was reported where '{attribute.expect}' is expected"
         )
     rounded = float(round_half_up(value, attribute.digits))
     low, high = attribute.minimum, attribute.maximum
     if qualifier == "<":
         if low is not None:
-            return FAIL, reported, f"{attribute.title}: {reported} {attribute.unit} cannot show the minimum {attribute.limit_text}"
+            return Verdict.FAIL, reported, f"{attribute.title}: {reported} {attribute.unit} cannot show the minimum {attribute.limit_text}"
         assert high is not None
         if rounded <= high:
-            return PASS, reported, None
-        return FAIL, reported, f"{attribute.title}: {reported} {attribute.unit} does not show the limit {attribute.limit_text}"
+            return Verdict.PASS, reported, None
+        return Verdict.FAIL, reported, f"{attribute.title}: {reported} {attribute.unit} does not show the limit {attribute.limit_text}"
     if low is not None and rounded < low:
-        return FAIL, reported, _words(attribute.title, reported, attribute.unit, "is below the limit", attribute.limit_text, attribute.unit)
+        return Verdict.FAIL, reported, _words(attribute.title, reported, attribute.unit, "is below the limit", attribute.limit_text, attribute.unit)
     if high is not None and rounded > high:
-        return FAIL, reported, _words(attribute.title, reported, attribute.unit, "is above the limit", attribute.limit_text, attribute.unit)
-    return PASS, reported, None
+        return Verdict.FAIL, reported, _words(attribute.title, reported, attribute.unit, "is above the limit", attribute.limit_text, attribute.unit)
+    return Verdict.PASS, reported, None
 
 
 def judge_measurement(attribute: Attribute, measurement: Measurement | None, method: str | None) -> AttributeVerdict:
@@ -86,13 +73,13 @@ def judge_measurement(attribute: Attribute, measurement: Measurement | None, met
     if measurement is None or measurement.detail.get("missing"):
         why = "; ".join(measurement.reasons) if measurement is not None and measurement.reasons else \
             "the assay data needed for it did not arrive"
-        return AttributeVerdict(**base, value=None, reported=None, se=None, verdict=MISSING,
+        return AttributeVerdict(**base, value=None, reported=None, se=None, verdict=Verdict.MISSING,
                                 reasons=(f"{attribute.title}: no result ({why})",))
     if not measurement.valid:
-        return AttributeVerdict(**base, value=None, reported=None, se=None, verdict=INVALID,
+        return AttributeVerdict(**base, value=None, reported=None, se=None, verdict=Verdict.INVALID,
                                 reasons=measurement.reasons or ("invalid",))
     if measurement.value is None or not math.isfinite(measurement.value):
-        return AttributeVerdict(**base, value=None, reported=None, se=None, verdict=INVALID,
+        return AttributeVerdict(**base, value=None, reported=None, se=None, verdict=Verdict.INVALID,
                                 reasons=measurement.reasons or ("no number could be computed",))
     verdict, reported, reason = judge_numeric(attribute, measurement.value)
     return AttributeVerdict(**base, value=measurement.value, reported=reported, se=measurement.se,
@@ -114,18 +101,18 @@ def judge_lims(attribute: Attribute, result_text: str | None, unit: str | None) 
     base = dict(code=attribute.code, title=attribute.title, unit=attribute.unit,
                 limit_text=attribute.limit_text, method=f"LIMS test {attribute.test_code}")
     if result_text is None:
-        return AttributeVerdict(**base, value=None, reported=None, se=None, verdict=MISSING,
+        return AttributeVerdict(**base, value=None, reported=None, se=None, verdict=Verdict.MISSING,
                                 reasons=(f"{attribute.title} (LIMS test {attribute.test_code}): no result received",))
     if attribute.unit and unit and unit.strip() != attribute.unit:
-        return AttributeVerdict(**base, value=None, reported=None, se=None, verdict=INVALID,
+        return AttributeVerdict(**base, value=None, reported=None, se=None, verdict=Verdict.INVALID,
                                 reasons=(f"the LIMS reports the unit '{unit}', the specification expects '{attribute.unit}'",))
     value, qualifier = parse_lims_result(result_text)
     if isinstance(value, str):
         if attribute.expect is None:
-            return AttributeVerdict(**base, value=value, reported=value, se=None, verdict=FAIL,
+            return AttributeVerdict(**base, value=value, reported=value, se=None, verdict=Verdict.FAIL,
                                     reasons=(f"{attribute.title}: '{value}' was reported where a number is expected",))
-        verdict = PASS if value == attribute.expect else FAIL
-        reason = () if verdict == PASS else (f"{attribute.title}: {value} (specification: {attribute.expect})",)
+        verdict = Verdict.PASS if value == attribute.expect else Verdict.FAIL
+        reason = () if verdict == Verdict.PASS else (f"{attribute.title}: {value} (specification: {attribute.expect})",)
         return AttributeVerdict(**base, value=value, reported=value, se=None, verdict=verdict, reasons=reason)
     verdict, reported, reason = judge_numeric(attribute, value, qualifier)
     return AttributeVerdict(**base, value=value, reported=reported, se=None, verdict=verdict,
@@ -133,35 +120,35 @@ def judge_lims(attribute: Attribute, result_text: str | None, unit: str | None) 
 
 
 def disposition(verdicts: Iterable[AttributeVerdict], trend: Iterable[TrendFinding],
-                extra_incomplete: Iterable[str] = ()) -> tuple[str, tuple[str, ...], tuple[str, ...]]:
+                extra_incomplete: Iterable[str] = ()) -> tuple[Disposition, tuple[HoldCategory, ...], tuple[str, ...]]:
     """Released only when every required test is present, valid, in specification and in trend.
 
-    Returns (disposition, hold categories in HOLD_ORDER, reasons). OOS is judged only on valid
+    Returns (disposition, hold categories in reading order, reasons). OOS is judged only on valid
     results; an invalid assay never becomes an OOS verdict.
     """
-    categories: set[str] = set()
+    categories: set[HoldCategory] = set()
     reasons: list[str] = []
     for reason in extra_incomplete:
-        categories.add(INCOMPLETE)
+        categories.add(HoldCategory.INCOMPLETE)
         reasons.append(reason)
     invalid: dict[str, list[str]] = {}  # one reason, the attributes it invalidates
     for verdict in verdicts:
-        if verdict.verdict == FAIL:
-            categories.add(OUT_OF_SPECIFICATION)
+        if verdict.verdict == Verdict.FAIL:
+            categories.add(HoldCategory.OUT_OF_SPECIFICATION)
             reasons.extend(verdict.reasons)
-        elif verdict.verdict == INVALID:
-            categories.add(INVALID_ASSAY)
+        elif verdict.verdict == Verdict.INVALID:
+            categories.add(HoldCategory.INVALID_ASSAY)
             for reason in verdict.reasons:
                 invalid.setdefault(reason, []).append(verdict.title)
-        elif verdict.verdict == MISSING:
-            categories.add(INCOMPLETE)
+        elif verdict.verdict == Verdict.MISSING:
+            categories.add(HoldCategory.INCOMPLETE)
             reasons.extend(verdict.reasons)
     for reason, titles in invalid.items():
         reasons.append(f"{', '.join(titles)}: invalid assay: {reason}")
     for finding in trend:
-        if finding.status == "out of trend":
-            categories.add(OUT_OF_TREND)
+        if finding.status == TrendStatus.OUT_OF_TREND:
+            categories.add(HoldCategory.OUT_OF_TREND)
             reasons.extend(finding.signals)
-    ordered = tuple(c for c in HOLD_ORDER if c in categories)
+    ordered = HoldCategory.in_reading_order(categories)
     unique_reasons = tuple(dict.fromkeys(reasons))
-    return (HELD if ordered else RELEASED), ordered, unique_reasons
+    return (Disposition.HELD if ordered else Disposition.RELEASED), ordered, unique_reasons

@@ -16,13 +16,14 @@ Conventions used by every rule (in the batch scan and in the incremental state a
 from __future__ import annotations
 
 from collections.abc import Iterable, Sequence
-from dataclasses import dataclass
+from dataclasses import asdict, dataclass
 
 import numpy as np
 from numpy.lib.stride_tricks import sliding_window_view
 from numpy.typing import ArrayLike, NDArray
 
 from pipeline.errors import CalculationError, SpecificationError
+from pipeline.vocabulary import NelsonRule
 
 # Control-chart constants for moving ranges of two consecutive points (subgroup size n = 2):
 # ASTM Manual on Presentation of Data and Control Chart Analysis (MNL 7), factor tables;
@@ -30,7 +31,8 @@ from pipeline.errors import CalculationError, SpecificationError
 D2_N2 = 1.128
 D4_N2 = 3.267
 
-ALL_RULES: tuple[int, ...] = (1, 2, 3, 4, 5, 6, 7, 8)
+ALL_RULES: tuple[NelsonRule, ...] = tuple(NelsonRule)
+_R1, _R2, _R3, _R4, _R5, _R6, _R7, _R8 = ALL_RULES  # the rules by number, as the scans test them
 HISTORY_POINTS = 14  # rule 7 looks at 15 points: the new one plus the 14 before it
 
 
@@ -48,35 +50,21 @@ class ControlLimits:
     n: int
 
     def to_dict(self) -> dict[str, float | int]:
-        return {
-            "center": self.center,
-            "sigma": self.sigma,
-            "mr_bar": self.mr_bar,
-            "mr_ucl": self.mr_ucl,
-            "ucl": self.ucl,
-            "lcl": self.lcl,
-            "n": self.n,
-        }
+        return asdict(self)
 
 
 @dataclass(frozen=True)
 class Signal:
     """One run-rule pattern that completes at point ``index`` (it started at ``first_index``)."""
 
-    rule: int
+    rule: NelsonRule
     index: int
     first_index: int
     side: str | None
-    description: str
+    description: str  # the rule's wording, then where the pattern lies
 
     def to_dict(self) -> dict[str, int | str | None]:
-        return {
-            "rule": self.rule,
-            "index": self.index,
-            "first_index": self.first_index,
-            "side": self.side,
-            "description": self.description,
-        }
+        return asdict(self)
 
 
 @dataclass(frozen=True)
@@ -93,16 +81,7 @@ class Capability:
     usl: float | None
 
     def to_dict(self) -> dict[str, float | int | None]:
-        return {
-            "cpk": self.cpk,
-            "ppk": self.ppk,
-            "mean": self.mean,
-            "n": self.n,
-            "sigma_within": self.sigma_within,
-            "sigma_overall": self.sigma_overall,
-            "lsl": self.lsl,
-            "usl": self.usl,
-        }
+        return asdict(self)
 
 
 # --------------------------------------------------------------------------- validation
@@ -122,7 +101,7 @@ def _as_series(values: ArrayLike, what: str) -> NDArray[np.float64]:
     return arr
 
 
-def _check_rules(rules: Iterable[int]) -> tuple[int, ...]:
+def _check_rules(rules: Iterable[int]) -> tuple[NelsonRule, ...]:
     chosen = tuple(rules)
     for rule in chosen:
         is_int = isinstance(rule, int | np.integer) and not isinstance(rule, bool)
@@ -130,7 +109,7 @@ def _check_rules(rules: Iterable[int]) -> tuple[int, ...]:
             raise SpecificationError(
                 f"run rule {rule!r} is not known; allowed rules are the Nelson rules 1 to 8"
             )
-    return tuple(sorted({int(r) for r in chosen}))
+    return tuple(sorted({NelsonRule(int(r)) for r in chosen}))
 
 
 def _check_center_sigma(center: float, sigma: float) -> None:
@@ -178,23 +157,48 @@ def imr_limits(values: ArrayLike, *, min_baseline: int = 20) -> ControlLimits:
 
 
 # --------------------------------------------------------------------------- descriptions
-def _describe(rule: int, first: int, last: int, side: str | None, rising: bool = True) -> str:
-    where = "the centre line" if side is None else f"{side} the centre line"
+RULE_WORDING: dict[NelsonRule, str] = {  # the one wording of each rule that a person reads
+    NelsonRule.ONE_BEYOND_3_SIGMA: "one point beyond 3σ",
+    NelsonRule.NINE_ON_ONE_SIDE: "nine points in a row on one side of the centre",
+    NelsonRule.SIX_RISING_OR_FALLING: "six points in a row steadily rising or falling",
+    NelsonRule.FOURTEEN_ALTERNATING: "fourteen points in a row alternating up and down",
+    NelsonRule.TWO_OF_THREE_BEYOND_2_SIGMA: "two of three points beyond 2σ on one side",
+    NelsonRule.FOUR_OF_FIVE_BEYOND_1_SIGMA: "four of five points beyond 1σ on one side",
+    NelsonRule.FIFTEEN_WITHIN_1_SIGMA: "fifteen points in a row within 1σ",
+    NelsonRule.EIGHT_BEYOND_1_SIGMA: "eight points in a row beyond 1σ on either side",
+}
+
+
+def rule_text(rule: NelsonRule) -> str:
+    """'rule 1: one point beyond 3σ' — a rule as a chart's legend and notes name it."""
+    return f"rule {rule.value}: {RULE_WORDING[rule]}"
+
+
+def named_rule(rule: NelsonRule) -> str:
+    """'Nelson rule 1 (one point beyond 3σ)' — a rule as a lot's hold reason names it."""
+    return f"Nelson rule {rule.value} ({RULE_WORDING[rule]})"
+
+
+def rules_named_in(reason: str) -> tuple[NelsonRule, ...]:
+    """The rules a recorded hold reason names, by their ``named_rule`` phrase.
+
+    For decisions read back from the store, whose trend findings keep each signal as the
+    reason text only; a finding made tonight carries its rules typed (``TrendFinding.rules``).
+    """
+    return tuple(rule for rule in NelsonRule if named_rule(rule) in reason)
+
+
+def _describe(rule: NelsonRule, first: int, last: int, side: str | None, rising: bool = True) -> str:
+    """'rule 2: nine points in a row on one side of the centre (above the centre line, points 3–11)'."""
+    if rule == NelsonRule.SIX_RISING_OR_FALLING:
+        where = "rising, " if rising else "falling, "
+    else:
+        where = "" if side is None else f"{side} the centre line, "
     span = f"point {last}" if first == last else f"points {first}–{last}"
-    text = {
-        1: f"1 point beyond 3 sigma {where}",
-        2: f"9 points in a row {where}",
-        3: f"6 points in a row steadily {'increasing' if rising else 'decreasing'}",
-        4: "14 points in a row alternating up and down",
-        5: f"2 of 3 points in a row beyond 2 sigma {where}",
-        6: f"4 of 5 points in a row beyond 1 sigma {where}",
-        7: "15 points in a row within 1 sigma of the centre line",
-        8: "8 points in a row beyond 1 sigma, none within 1 sigma of the centre line",
-    }[rule]
-    return f"rule {rule}: {text} ({span})"
+    return f"{rule_text(rule)} ({where}{span})"
 
 
-def _signal(rule: int, first: int, last: int, side: str | None, rising: bool = True) -> Signal:
+def _signal(rule: NelsonRule, first: int, last: int, side: str | None, rising: bool = True) -> Signal:
     return Signal(rule, last, first, side, _describe(rule, first, last, side, rising))
 
 
@@ -248,27 +252,27 @@ def rule_signals(
     a1, a2, a3, b1, b2, b3 = x > p1, x > p2, x > p3, x < m1, x < m2, x < m3
     diffs = np.diff(x)
     found: list[Signal] = []
-    if 1 in chosen:
-        found += [_signal(1, int(i), int(i), "above" if a3[i] else "below")
+    if _R1 in chosen:
+        found += [_signal(_R1, int(i), int(i), "above" if a3[i] else "below")
                   for i in np.flatnonzero(a3 | b3)]
-    if 2 in chosen:
+    if _R2 in chosen:
         for flags, side in ((above, "above"), (below, "below")):
-            found += [_signal(2, int(s), int(s) + 8, side) for s in _windows_all(flags, 9)]
-    if 3 in chosen:
+            found += [_signal(_R2, int(s), int(s) + 8, side) for s in _windows_all(flags, 9)]
+    if _R3 in chosen:
         for flags, rising in ((diffs > 0, True), (diffs < 0, False)):
-            found += [_signal(3, int(s), int(s) + 5, None, rising) for s in _windows_all(flags, 5)]
-    if 4 in chosen:
+            found += [_signal(_R3, int(s), int(s) + 5, None, rising) for s in _windows_all(flags, 5)]
+    if _R4 in chosen:
         signs = np.sign(diffs)
         alternating = signs[1:] * signs[:-1] < 0  # a zero step (tie) gives 0: breaks the run
-        found += [_signal(4, int(s), int(s) + 13, None) for s in _windows_all(alternating, 12)]
-    for rule, k, m, up, down in ((5, 2, 3, a2, b2), (6, 4, 5, a1, b1)):
+        found += [_signal(_R4, int(s), int(s) + 13, None) for s in _windows_all(alternating, 12)]
+    for rule, k, m, up, down in ((_R5, 2, 3, a2, b2), (_R6, 4, 5, a1, b1)):
         if rule in chosen:
             for flags, side in ((up, "above"), (down, "below")):
                 found += [_signal(rule, f, i, side) for f, i in _k_of_m(flags, k, m)]
-    if 7 in chosen:
-        found += [_signal(7, int(s), int(s) + 14, None) for s in _windows_all(~(a1 | b1), 15)]
-    if 8 in chosen:
-        found += [_signal(8, int(s), int(s) + 7, None) for s in _windows_all(a1 | b1, 8)]
+    if _R7 in chosen:
+        found += [_signal(_R7, int(s), int(s) + 14, None) for s in _windows_all(~(a1 | b1), 15)]
+    if _R8 in chosen:
+        found += [_signal(_R8, int(s), int(s) + 7, None) for s in _windows_all(a1 | b1, 8)]
     return tuple(sorted(found, key=lambda s: (s.index, s.rule)))
 
 
@@ -284,37 +288,37 @@ def _zone(value: float, lines: Sequence[float], center: float) -> int:
 
 
 def _signals_at_end(
-    vals: Sequence[float], zones: Sequence[int], index: int, chosen: tuple[int, ...]
+    vals: Sequence[float], zones: Sequence[int], index: int, chosen: tuple[NelsonRule, ...]
 ) -> list[Signal]:
     """Signals completing at the last point of a tail of ≤ 15 points; the last is at ``index``."""
     n, z = len(vals), zones[-1]
     side = "above" if z > 0 else "below" if z < 0 else None
     sgn = 1 if z > 0 else -1
     out: list[Signal] = []
-    if 1 in chosen and abs(z) == 4:
-        out.append(_signal(1, index, index, side))
-    if 2 in chosen and n >= 9 and z != 0 and all(q * sgn > 0 for q in zones[-9:]):
-        out.append(_signal(2, index - 8, index, side))
+    if _R1 in chosen and abs(z) == 4:
+        out.append(_signal(_R1, index, index, side))
+    if _R2 in chosen and n >= 9 and z != 0 and all(q * sgn > 0 for q in zones[-9:]):
+        out.append(_signal(_R2, index - 8, index, side))
     steps = [vals[j] - vals[j - 1] for j in range(1, n)]
-    if 3 in chosen and n >= 6:
+    if _R3 in chosen and n >= 6:
         if all(d > 0 for d in steps[-5:]):
-            out.append(_signal(3, index - 5, index, None, True))
+            out.append(_signal(_R3, index - 5, index, None, True))
         elif all(d < 0 for d in steps[-5:]):
-            out.append(_signal(3, index - 5, index, None, False))
-    if 4 in chosen and n >= 14:
+            out.append(_signal(_R3, index - 5, index, None, False))
+    if _R4 in chosen and n >= 14:
         last13 = steps[-13:]
         if all((a > 0 > b) or (a < 0 < b) for a, b in zip(last13, last13[1:], strict=False)):
-            out.append(_signal(4, index - 13, index, None))
-    for rule, level, k, m in ((5, 3, 2, 3), (6, 2, 4, 5)):
+            out.append(_signal(_R4, index - 13, index, None))
+    for rule, level, k, m in ((_R5, 3, 2, 3), (_R6, 2, 4, 5)):
         if rule in chosen and z * sgn >= level:
             window = zones[-m:]
             hits = [j for j, q in enumerate(window) if q * sgn >= level]
             if len(hits) >= k:
                 out.append(_signal(rule, index - len(window) + 1 + hits[0], index, side))
-    if 7 in chosen and n >= 15 and all(abs(q) <= 1 for q in zones[-15:]):
-        out.append(_signal(7, index - 14, index, None))
-    if 8 in chosen and n >= 8 and all(abs(q) >= 2 for q in zones[-8:]):
-        out.append(_signal(8, index - 7, index, None))
+    if _R7 in chosen and n >= 15 and all(abs(q) <= 1 for q in zones[-15:]):
+        out.append(_signal(_R7, index - 14, index, None))
+    if _R8 in chosen and n >= 8 and all(abs(q) >= 2 for q in zones[-8:]):
+        out.append(_signal(_R8, index - 7, index, None))
     return out
 
 

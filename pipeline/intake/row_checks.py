@@ -1,0 +1,84 @@
+"""Stage 3 of reading an export: rows against each other, once every cell is valid (pure).
+
+Wells inside the plate format, one format and method per plate, the fields a well's role
+needs, read times that increase within a well, an assay date not before the manufacturing date.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+import math
+
+import pandas as pd
+
+from pipeline.intake.problems import Problem
+from pipeline.vocabulary import ProblemCode
+
+PLATE_GEOMETRY = {96: ("ABCDEFGH", 12), 384: ("ABCDEFGHIJKLMNOP", 24)}
+ROLE_NEEDS = {  # plate-map role -> fields that must not be empty for it
+    "sample": ("lot_id",),
+    "kinetic": ("lot_id", "substrate_mm"),
+    "reference": ("lot_id",),
+    "standard": ("nominal_mg_per_ml",),
+}
+
+def _plate_problems(frame: pd.DataFrame, lines: list[int]) -> list[Problem]:
+    """Plate maps: each well inside the plate's format; one format and method per plate; role fields."""
+    problems: list[Problem] = []
+    for index, row in enumerate(frame.itertuples(index=False)):
+        rows, columns = PLATE_GEOMETRY[int(row.plate_format)]
+        well = str(row.well)
+        if well[0] not in rows or int(well[1:]) > columns:
+            problems.append(Problem(ProblemCode.WELL_OUTSIDE_PLATE, f"well {well} is outside a {int(row.plate_format)}-well plate "
+                                    f"(rows {rows[0]}–{rows[-1]}, columns 01–{columns})", line=lines[index], column="well"))
+        for needed in ROLE_NEEDS.get(str(row.role), ()):
+            value = getattr(row, needed)
+            if value is None or (isinstance(value, float) and math.isnan(value)):
+                problems.append(Problem(ProblemCode.ROLE_FIELDS, f"a '{row.role}' well needs a value in '{needed}'; well {well} has none",
+                                        line=lines[index], column=needed))
+    for column in ("plate_format", "method_id"):
+        for plate_id, values in frame.groupby("plate_id", sort=True)[column]:
+            distinct = sorted({str(v) for v in values})
+            if len(distinct) > 1:
+                first = lines[int(values.index[(values.astype(str) != str(values.iloc[0])).argmax()])]
+                problems.append(Problem(ProblemCode.PLATE_INCONSISTENT, f"plate {plate_id} is given with more than one {column} "
+                                        f"({', '.join(distinct)}); a plate has one", line=first, column=column))
+    return problems
+
+
+def _time_problems(frame: pd.DataFrame, lines: list[int]) -> list[Problem]:
+    """Kinetic reads: within each well, read times increase from one row to the next."""
+    previous = frame.groupby(["plate_id", "well"], sort=False)["time_s"].shift()
+    back = frame.index[(frame["time_s"] < previous).to_numpy()]
+    problems: list[Problem] = []
+    flagged: set[tuple[str, str]] = set()
+    for index in back:
+        plate_id, well = str(frame.at[index, "plate_id"]), str(frame.at[index, "well"])
+        if (plate_id, well) in flagged:
+            continue
+        flagged.add((plate_id, well))
+        problems.append(Problem(ProblemCode.TIME_ORDER, f"well {well} of plate {plate_id}: the read at {frame.at[index, 'time_s']:g} s "
+                                f"comes after a read at {previous.at[index]:g} s; read times must increase within a well",
+                                line=lines[int(index)], column="time_s"))
+    return problems
+
+
+def _registry_problems(frame: pd.DataFrame, lines: list[int]) -> list[Problem]:
+    """Lot registry: a lot cannot be assayed before it was manufactured."""
+    problems = []
+    for index, (lot, made, assayed) in enumerate(zip(frame["lot_id"], frame["manufactured_on"], frame["assay_date"], strict=True)):
+        if dt.date.fromisoformat(assayed) < dt.date.fromisoformat(made):
+            problems.append(Problem(ProblemCode.DATE_ORDER, f"lot {lot}: the assay date {assayed} is before the manufacturing date {made}",
+                                    line=lines[index], column="assay_date"))
+    return problems
+
+
+def row_problems(frame: pd.DataFrame, columns: set[str], lines: list[int]) -> list[Problem]:
+    problems: list[Problem] = []
+    if {"plate_id", "plate_format", "well", "role"} <= columns:
+        problems += _plate_problems(frame, lines)
+    if {"plate_id", "well", "time_s"} <= columns:
+        problems += _time_problems(frame, lines)
+    if {"lot_id", "manufactured_on", "assay_date"} <= columns:
+        problems += _registry_problems(frame, lines)
+    return problems
