@@ -95,7 +95,7 @@ def _stages(ws: Workspace, store: Store, signer: night.CertificateSigner, step: 
             STAGE_SECONDS[name] = time.perf_counter() - start
             STAGE_PEAK_MB[name] = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0
 
-    catalog, layouts = night.open_catalog_and_layouts()
+    catalog, layouts = night.open_catalog_and_layouts(ws)
     recovered = night.recover_interrupted(ws, store)
     night_id = store.start_night(night.__version__)
     intake = timed("receive", ws, store, layouts, night_id, _progress, recovered.quarantined)

@@ -41,11 +41,12 @@ def _open(workspace: str) -> tuple[Any, Any]:
     return ws, Store(ws.database_url)
 
 
-def _attribute(product: str, code: str) -> Any:
+def _attribute(product: str, code: str, workspace: str) -> Any:
     """The trended attribute of a product's specification, or a SpecificationError naming the choices."""
-    from pipeline.records.controlled_files import load_catalog
+    from pipeline.records.controlled_files import controlled_folders, load_catalog
+    from pipeline.records.workspace import open_workspace
 
-    catalog = load_catalog()
+    catalog = load_catalog(controlled_folders(open_workspace(Path(workspace).expanduser())))
     method = catalog.methods.get(product)
     if method is not None and hasattr(method, "recovery_attribute"):
         if code != "reference_recovery":
@@ -170,7 +171,7 @@ def cmd_trend(args: argparse.Namespace) -> int:
     try:
         if args.window < 1:
             raise InputError(f"--window must be at least 1 lot, received {args.window}")
-        spec, attribute = _attribute(args.product, args.attribute)
+        spec, attribute = _attribute(args.product, args.attribute, args.workspace)
         ws, store = _open(args.workspace)
         view = build_chart_view(chart_history(store, args.product, args.attribute, args.window),
                                 attribute, args.window)
@@ -225,7 +226,7 @@ def cmd_rebaseline(args: argparse.Namespace) -> int:
             raise InputError("a re-baseline needs a reason (--reason TEXT): why the old limits no longer apply")
         if not by:
             raise InputError("a re-baseline needs the name of the person who decides it (--by NAME)")
-        _, attribute = _attribute(args.product, args.attribute)
+        _, attribute = _attribute(args.product, args.attribute, args.workspace)
         count = attribute.baseline_n if args.count is None else args.count
         if count < 2:
             raise InputError(f"--count must be at least 2 lots (one moving range), received {count}")

@@ -32,10 +32,10 @@ from pipeline.controlled.catalog import Catalog
 from pipeline.controlled.specs import KineticMethod, ProteinMethod
 from pipeline.errors import InputError, SigningError
 from pipeline.intake.assembly import Assembly, QuarantinedFile, assemble
-from pipeline.intake.layouts import ExportLayout, layout_for, load_layouts
+from pipeline.intake.layouts import ExportLayout, layout_for
 from pipeline.intake.validation import ExportRejected, ParsedExport, parse_exports
 from pipeline.records import audit
-from pipeline.records.controlled_files import load_catalog, schemas_dir, sha256_file
+from pipeline.records.controlled_files import open_controlled_documents, sha256_file
 from pipeline.records.store import DecisionWrite, Store
 from pipeline.records.workspace import (
     Workspace,
@@ -794,8 +794,8 @@ def recover_interrupted(ws: Workspace, store: Store) -> Recovery:
     return Recovery(notes, carried)
 
 
-def open_catalog_and_layouts() -> tuple[Catalog, dict[str, ExportLayout]]:
-    return load_catalog(), load_layouts(schemas_dir())
+def open_catalog_and_layouts(ws: Workspace) -> tuple[Catalog, dict[str, ExportLayout]]:
+    return open_controlled_documents(ws)
 
 
 
