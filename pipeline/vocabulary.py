@@ -3,7 +3,7 @@
 RELEASED = "released"
 HELD = "held"
 
-# Hold categories, in the order a reviewer should read them (DOMAIN.md §6).
+# Hold categories, in the order a reviewer should read them (docs/assay-rules.md, "Verdicts and disposition").
 OUT_OF_SPECIFICATION = "out of specification"
 INVALID_ASSAY = "invalid assay"
 INCOMPLETE = "incomplete"
