@@ -125,3 +125,14 @@ def test_a_night_decides_under_the_workspace_specifications(tmp_path):
         versions = dict(db.execute("select lots.product_code, group_concat(distinct spec_version) from decisions "
                                    "join lots using (lot_id) group by lots.product_code"))
     assert versions == {"LLC-200": "3.1-P2", "PGR-040": "1.4"}
+
+
+def test_the_night_stops_on_a_missing_folder_before_reading_the_inbox(tmp_path):
+    write_settings(tmp_path, {"controlled": {"layouts": "qc/layouts"}})
+    atomic_write(tmp_path / "inbox" / "lots-20261124.csv", b"lot_id\n")
+    done = subprocess.run([sys.executable, "-m", "flows.cli", "run", "--workspace", str(tmp_path),
+                           "--no-orchestration"], capture_output=True, text=True, timeout=300, cwd=REPO)
+    assert done.returncode == 2, done.stdout + done.stderr
+    assert "the folder of export layouts (controlled.layouts: qc/layouts) does not exist" in done.stderr
+    assert (tmp_path / "inbox" / "lots-20261124.csv").exists()
+    assert not (tmp_path / "quarantine").exists()
