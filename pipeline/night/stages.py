@@ -794,7 +794,7 @@ def recover_interrupted(ws: Workspace, store: Store) -> Recovery:
     return Recovery(notes, carried)
 
 
-def open_catalog_and_layouts(ws: Workspace) -> tuple[Catalog, dict[str, ExportLayout]]:
+def open_catalog_and_layouts(ws: Workspace | None = None) -> tuple[Catalog, dict[str, ExportLayout]]:
     return open_controlled_documents(ws)
 
 

@@ -87,8 +87,11 @@ def controlled_folders(ws: Workspace | None = None) -> ControlledFolders:
     )
 
 
-def open_controlled_documents(ws: Workspace) -> tuple[Catalog, dict[str, ExportLayout]]:
-    """The catalog (specifications and methods) and the export layouts a night in ``ws`` uses."""
+def open_controlled_documents(ws: Workspace | None = None) -> tuple[Catalog, dict[str, ExportLayout]]:
+    """The catalog (specifications and methods) and the export layouts a night in ``ws`` uses.
+
+    Without a workspace: the environment's folders, else the shipped ones.
+    """
     folders = controlled_folders(ws)
     return load_catalog(folders), load_layouts(folders.layouts)
 
