@@ -79,7 +79,7 @@ def controlled_folders(ws: Workspace | None = None) -> ControlledFolders:
         methods=Path(specs_env) / "methods" if specs_env else shipped.methods,
         layouts=Path(schemas_env) if schemas_env else shipped.layouts,
     )
-    plant = ws.controlled if ws is not None else {}
+    plant = dict(ws.controlled) if ws is not None else {}
     return ControlledFolders(
         specifications=plant.get("specifications", by_env.specifications),
         methods=plant.get("methods", by_env.methods),

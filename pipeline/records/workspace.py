@@ -5,7 +5,7 @@ from __future__ import annotations
 import os
 import shutil
 import tempfile
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from pathlib import Path
 
 import yaml
@@ -26,7 +26,7 @@ class Workspace:
     signer_name: str
     # The plant's own controlled folders, by kind (see CONTROLLED_KINDS); a kind not named here
     # comes from the environment or lotgate's shipped folders (pipeline.records.controlled_files).
-    controlled: dict[str, Path] = field(default_factory=dict)
+    controlled: tuple[tuple[str, Path], ...] = ()
 
     @property
     def inbox(self) -> Path:
@@ -73,10 +73,10 @@ CONTROLLED_KINDS = {
 }
 
 
-def _controlled_folders(root: Path, setting: object, path: Path) -> dict[str, Path]:
+def _controlled_folders(root: Path, setting: object, path: Path) -> tuple[tuple[str, Path], ...]:
     """The ``controlled:`` setting: each named folder, relative to the workspace, must exist."""
     if setting is None:
-        return {}
+        return ()
     if not isinstance(setting, dict):
         raise SpecificationError(f"{path}: 'controlled' must map {', '.join(CONTROLLED_KINDS)} to folders")
     folders = {}
@@ -91,7 +91,7 @@ def _controlled_folders(root: Path, setting: object, path: Path) -> dict[str, Pa
                 f"{path}: the folder of {CONTROLLED_KINDS[kind]} (controlled.{kind}: {value}) "
                 f"does not exist: {folder}")
         folders[kind] = folder
-    return folders
+    return tuple(folders.items())
 
 
 def open_workspace(root: Path, *, plant_name: str | None = None, signer_name: str | None = None) -> Workspace:
