@@ -38,4 +38,4 @@ bench: $(STAMP)
 	$(BIN)/lotgate bench --lots 1000
 
 clean:
-	rm -rf $(VENV) lotgate-demo .pytest_cache
+	rm -rf $(VENV) lotgate-demo .pytest_cache build *.egg-info

@@ -22,11 +22,12 @@ from pipeline.night.decide import decide as decide_lots
 from pipeline.night.decide import earlier_decisions
 from pipeline.night.decide import load_charts as read_charts
 from pipeline.night.evaluate import evaluate as evaluate_lots
-from pipeline.night.open import CertificateSigner, open_catalog_and_layouts, open_night
+from pipeline.night.open import CertificateSigner, open_night
 from pipeline.night.publish import publish as publish_lots
 from pipeline.night.receive import assemble_intake
 from pipeline.night.receive import receive as receive_exports
 from pipeline.night.recovery import recover_interrupted
+from pipeline.records.controlled_files import open_controlled_documents
 from pipeline.records.run_lock import run_lock
 from pipeline.records.store import Store
 from pipeline.records.workspace import Workspace
@@ -105,7 +106,7 @@ def _stages(ws: Workspace, store: Store, signer: CertificateSigner, step: dict,
             STAGE_SECONDS[name] = time.perf_counter() - start
             STAGE_PEAK_MB[name] = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0
 
-    catalog, layouts = open_catalog_and_layouts()
+    catalog, layouts = open_controlled_documents(ws)
     recovered = recover_interrupted(ws, store)
     night_id = store.start_night(__version__)
     intake = timed("receive", ws, store, layouts, night_id, _progress, recovered.quarantined)

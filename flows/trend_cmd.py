@@ -31,11 +31,12 @@ def _open(workspace: str) -> tuple[Any, Any]:
     return open_records(Path(workspace))
 
 
-def _attribute(product: str, code: str) -> Any:
+def _attribute(product: str, code: str, workspace: str) -> Any:
     """The trended attribute of a product's specification, or a SpecificationError naming the choices."""
-    from pipeline.records.controlled_files import load_catalog
+    from pipeline.records.controlled_files import controlled_folders, load_catalog
+    from pipeline.records.workspace import open_workspace
 
-    catalog = load_catalog()
+    catalog = load_catalog(controlled_folders(open_workspace(Path(workspace).expanduser())))
     method = catalog.methods.get(product)
     if method is not None and hasattr(method, "recovery_attribute"):
         if code != "reference_recovery":
@@ -160,7 +161,7 @@ def cmd_trend(args: argparse.Namespace) -> int:
     try:
         if args.window < 1:
             raise InputError(f"--window must be at least 1 lot, received {args.window}")
-        spec, attribute = _attribute(args.product, args.attribute)
+        spec, attribute = _attribute(args.product, args.attribute, args.workspace)
         ws, store = _open(args.workspace)
         view = build_chart_view(chart_history(store, args.product, args.attribute, args.window),
                                 attribute, args.window)
@@ -200,7 +201,7 @@ def cmd_rebaseline(args: argparse.Namespace) -> int:
     from pipeline.night.rebaseline import rebaseline
 
     try:
-        _, attribute = _attribute(args.product, args.attribute)
+        _, attribute = _attribute(args.product, args.attribute, args.workspace)
         ws, store = _open(args.workspace)
         done = rebaseline(ws, store, args.product, attribute, by=args.by, reason=args.reason,
                           from_lot=args.from_lot, count=args.count)

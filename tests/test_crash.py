@@ -144,14 +144,15 @@ def test_a_night_cut_between_publishing_and_closing_decides_nothing_twice(night,
     from flows import nightly
     from pipeline.night.decide import decide, earlier_decisions, load_charts
     from pipeline.night.evaluate import evaluate
-    from pipeline.night.open import open_catalog_and_layouts, open_night
+    from pipeline.night.open import open_night
     from pipeline.night.publish import publish
     from pipeline.night.receive import assemble_intake, receive
+    from pipeline.records.controlled_files import open_controlled_documents
 
     root = tmp_path / "cut"
     _workspace(root, night)
     ws, store, signer = open_night(root)
-    catalog, layouts = open_catalog_and_layouts()
+    catalog, layouts = open_controlled_documents(ws)
     night_id = store.start_night("test")
     intake = receive(ws, store, layouts, night_id)
     assert intake.quarantined  # the scenario's malformed LIMS export

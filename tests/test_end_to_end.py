@@ -43,7 +43,7 @@ def demo_workspace(tmp_path_factory, prefect_harness):
 
 
 def test_every_lot_gets_the_intended_disposition(demo_workspace):
-    # The scenario's intentions are the demo's own design (DOMAIN.md §5–6 rules applied to it).
+    # The scenario's intentions are the demo's own design (docs/assay-rules.md: validity, verdicts).
     root, nights, summaries = demo_workspace
     for night, summary in zip(nights, summaries):
         got = {o.lot_id: o.label for o in summary.outcomes}

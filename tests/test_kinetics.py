@@ -31,7 +31,7 @@ PUROMYCIN_KM, PUROMYCIN_KM_SE = 0.06412, 0.008281
 PUROMYCIN_RESIDUAL_SE, PUROMYCIN_DOF = 10.93, 10
 
 # Simulated design (invented for these tests): 8 substrate levels spanning 0.2-5 x Km in
-# duplicate, the usual design (DOMAIN.md section 4, common practice).
+# duplicate, the usual design (docs/assay-rules.md, "Kinetic constants"; common practice).
 DESIGN_KM_MM = 2.0
 DESIGN_S_MM = np.repeat([0.4, 0.8, 1.5, 2.5, 4.0, 6.0, 8.0, 10.0], 2)
 

@@ -21,7 +21,7 @@ from pipeline.science.kinetics_batch import (
 )
 
 # Puromycin, treated (Treloar 1974, in Bates & Watts, Nonlinear Regression Analysis and Its
-# Applications, 1988, App. A1.3; DOMAIN.md section 4): substrate in ppm, rate in counts/min^2.
+# Applications, 1988, App. A1.3; docs/assay-rules.md): substrate in ppm, rate in counts/min^2.
 PUROMYCIN_S = [0.02, 0.02, 0.06, 0.06, 0.11, 0.11, 0.22, 0.22, 0.56, 0.56, 1.10, 1.10]
 PUROMYCIN_V = [76, 47, 97, 107, 123, 139, 159, 152, 191, 201, 207, 200]
 # Published Michaelis-Menten fit (same source): Vmax 212.68, Km 0.06412, 10 df.

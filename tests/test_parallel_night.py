@@ -5,7 +5,7 @@ import pandas as pd
 from pipeline.demo import plant as demo
 from pipeline.intake.problems import ExportRejected
 from pipeline.night import receive
-from pipeline.night.open import open_catalog_and_layouts
+from pipeline.records.controlled_files import open_controlled_documents
 
 
 def _inbox(tmp_path):
@@ -30,7 +30,7 @@ def _verdicts(pairs):
 
 def test_exports_parsed_on_workers_equal_those_parsed_here(tmp_path, monkeypatch):
     to_parse, commas = _inbox(tmp_path)
-    _, layouts = open_catalog_and_layouts()
+    _, layouts = open_controlled_documents()
     monkeypatch.setattr(receive, "PARALLEL_FROM_FILES", 10**9)
     here = _verdicts(receive.parse_in_chunks(to_parse, layouts))
     monkeypatch.setattr(receive, "PARALLEL_FROM_FILES", 1)

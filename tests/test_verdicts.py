@@ -1,4 +1,4 @@
-"""Rounding, verdicts and disposition (DOMAIN.md §6)."""
+"""Rounding, verdicts and disposition (docs/assay-rules.md, "Verdicts and disposition")."""
 
 import json
 

@@ -3,7 +3,7 @@
 An activity plate carries a reference standard, substrate blanks (at the assay substrate and at
 each kinetic level) and lot wells; a protein plate carries a standard curve and lot wells. A
 failed criterion invalidates exactly what it touches — a well, a lot's result, or the whole
-plate — and says why (DOMAIN.md §5). Nothing is dropped without a stated reason.
+plate — and says why (docs/assay-rules.md, "Assay validity"). Nothing is dropped without a stated reason.
 """
 
 from __future__ import annotations

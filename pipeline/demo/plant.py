@@ -19,7 +19,7 @@ from __future__ import annotations
 import csv
 import datetime as dt
 import io
-from dataclasses import dataclass, field
+from dataclasses import dataclass, replace
 
 import numpy as np
 from scipy.special import lambertw
@@ -33,6 +33,9 @@ READ_TIMES_S = np.arange(0, 601, 30, dtype=float)  # 21 reads, 10 min
 BSA_STANDARDS_MG_PER_ML = (0.0, 0.125, 0.25, 0.5, 0.75, 1.0, 1.5)
 ROWS_96 = "ABCDEFGH"
 PROTEIN_LOTS_PER_PLATE = 27  # 14 standard wells + 27 lots × 3 replicates = 95 of 96 wells
+PLATE_MAP_HEADER = ["plate_id", "plate_format", "method_id", "well", "role", "lot_id",
+                    "substrate_mm", "dilution_factor", "nominal_mg_per_ml"]
+REGISTRY_HEADER = ["lot_id", "product_code", "manufactured_on", "assay_date", "analyst"]
 
 
 @dataclass(frozen=True)
@@ -80,7 +83,6 @@ PROTEASE = ProductModel(
     reference_lot="REF-PRT-B", reference_u_per_ml=110.0, blank_au_per_min_per_mm=0.0012,
     lims_tests=("DM", "PB", "COLI", "ECOLI", "SALM"),
 )
-PRODUCTS = (LIPASE, PROTEASE)
 
 
 @dataclass(frozen=True)
@@ -101,7 +103,6 @@ class Night:
     assay_date: dt.date
     files: dict[str, bytes]
     lots: tuple[LotPlan, ...]
-    notes: tuple[str, ...] = field(default_factory=tuple)
 
 
 def _csv(header: list[str], rows: list[list[object]]) -> bytes:
@@ -161,11 +162,9 @@ class _Plate:
                                    f"{p.temperature_c:.1f}"])
 
     def files(self, stamp: str) -> dict[str, bytes]:
-        map_header = ["plate_id", "plate_format", "method_id", "well", "role", "lot_id",
-                      "substrate_mm", "dilution_factor", "nominal_mg_per_ml"]
         read_header = ["plate_id", "well", "time_s", "absorbance", "wavelength_nm", "temperature_c"]
         return {
-            f"platemap-{self.plate_id}.csv": _csv(map_header, self.map_rows),
+            f"platemap-{self.plate_id}.csv": _csv(PLATE_MAP_HEADER, self.map_rows),
             f"kinread-{self.plate_id}-{stamp}.csv": _csv(read_header, self.read_rows),
         }
 
@@ -219,8 +218,7 @@ def _protein_plate(plate_id: str, lots: list[LotPlan], rng: np.random.Generator)
                              _fmt(lot.product.protein_dilution, 1), ""])
             read_rows.append([plate_id, well, f"{absorbance(in_well * rng.normal(1.0, 0.01)):.4f}", 595])
     return {
-        f"platemap-{plate_id}.csv": _csv(["plate_id", "plate_format", "method_id", "well", "role", "lot_id",
-                                          "substrate_mm", "dilution_factor", "nominal_mg_per_ml"], map_rows),
+        f"platemap-{plate_id}.csv": _csv(PLATE_MAP_HEADER, map_rows),
         f"protread-{plate_id}-R1.csv": _csv(["plate_id", "well", "absorbance", "wavelength_nm"], read_rows),
     }
 
@@ -263,8 +261,9 @@ def _plan_lots(product: ProductModel, night_index: int, date: dt.date, count: in
     return lots
 
 
-def _with(lot: LotPlan, **changes: object) -> LotPlan:
-    return LotPlan(**{**lot.__dict__, **changes})
+def _registry(lots: list[LotPlan], assay_date: dt.date) -> bytes:
+    return _csv(REGISTRY_HEADER, [[lot.lot_id, lot.product.code, lot.manufactured_on.isoformat(),
+                                   assay_date.isoformat(), "J. Ferro"] for lot in lots])
 
 
 def build_scenario(seed: int = DEMO_SEED, first_night: dt.date = dt.date(2026, 11, 24),
@@ -277,28 +276,16 @@ def build_scenario(seed: int = DEMO_SEED, first_night: dt.date = dt.date(2026, 1
         lipase = _plan_lots(LIPASE, n, date, lipase_per_night, rng)
         protease = _plan_lots(PROTEASE, n, date, protease_per_night, rng)
         recoveries = {1: 1.0, 2: 1.0}
-        notes: list[str] = []
         if n == nights - 1 and lipase_per_night >= 8 and protease_per_night >= 4:
-            lipase[1] = _with(lipase[1], missing_tests=("PB",), intended="held: incomplete")
-            lipase[2] = _with(lipase[2], vmax_u_per_mg=LIPASE.vmax_u_per_mg * 0.865, intended="held: out of trend")
+            lipase[1] = replace(lipase[1], missing_tests=("PB",), intended="held: incomplete")
+            lipase[2] = replace(lipase[2], vmax_u_per_mg=LIPASE.vmax_u_per_mg * 0.865, intended="held: out of trend")
             for i in range(4, 8):
-                lipase[i] = _with(lipase[i], intended="held: invalid assay")
+                lipase[i] = replace(lipase[i], intended="held: invalid assay")
             recoveries[2] = 0.82
-            protease[1] = _with(protease[1], vmax_u_per_mg=PROTEASE.vmax_u_per_mg * 0.66,
+            protease[1] = replace(protease[1], vmax_u_per_mg=PROTEASE.vmax_u_per_mg * 0.66,
                                 intended="held: out of specification")
-            protease[3] = _with(protease[3], malformed_lims=True, intended="held: incomplete")
-            notes = [
-                f"{lipase[1].lot_id}: lead (PB) never entered in the LIMS",
-                f"{lipase[2].lot_id}: specific activity inside the limits but far below the trend",
-                f"plate AK-{date:%y%m%d}-L2: reference standard recovers 82 %",
-                f"{protease[1].lot_id}: specific activity below the lower limit",
-                f"lims-{protease[3].lot_id}.csv: dry matter typed with a decimal comma",
-            ]
-        files: dict[str, bytes] = {}
-        registry = [[lot.lot_id, lot.product.code, lot.manufactured_on.isoformat(), date.isoformat(), "J. Ferro"]
-                    for lot in (*lipase, *protease)]
-        files[f"lots-{date:%Y%m%d}.csv"] = _csv(
-            ["lot_id", "product_code", "manufactured_on", "assay_date", "analyst"], registry)
+            protease[3] = replace(protease[3], malformed_lims=True, intended="held: incomplete")
+        files = {f"lots-{date:%Y%m%d}.csv": _registry([*lipase, *protease], date)}
         for product, lots, tag in ((LIPASE, lipase, "L"), (PROTEASE, protease, "P")):
             for plate_no, start in enumerate(range(0, len(lots), 4), start=1):
                 plate_id = f"AK-{date:%y%m%d}-{tag}{plate_no}"
@@ -310,7 +297,7 @@ def build_scenario(seed: int = DEMO_SEED, first_night: dt.date = dt.date(2026, 1
         for lot in (*lipase, *protease):
             name, data = _lims_file(lot, date, rng)
             files[name] = data
-        result.append(Night(assay_date=date, files=files, lots=(*lipase, *protease), notes=tuple(notes)))
+        result.append(Night(assay_date=date, files=files, lots=(*lipase, *protease)))
     return result
 
 
@@ -322,11 +309,7 @@ def build_reassay(night: Night, lot_ids: tuple[str, ...], assay_date: dt.date, s
     """
     rng = np.random.default_rng(seed)
     lots = [lot for lot in night.lots if lot.lot_id in lot_ids]
-    files: dict[str, bytes] = {}
-    registry = [[lot.lot_id, lot.product.code, lot.manufactured_on.isoformat(), assay_date.isoformat(), "J. Ferro"]
-                for lot in lots]
-    files[f"lots-{assay_date:%Y%m%d}-reassay.csv"] = _csv(
-        ["lot_id", "product_code", "manufactured_on", "assay_date", "analyst"], registry)
+    files = {f"lots-{assay_date:%Y%m%d}-reassay.csv": _registry(lots, assay_date)}
     for product, tag in ((LIPASE, "L"), (PROTEASE, "P")):
         mine = [lot for lot in lots if lot.product is product]
         for plate_no, start in enumerate(range(0, len(mine), 4), start=1):
@@ -336,5 +319,4 @@ def build_reassay(night: Night, lot_ids: tuple[str, ...], assay_date: dt.date, s
     for lot in lots:
         name, data = _lims_file(lot, assay_date, rng)
         files[name.replace(".csv", f"-{assay_date:%Y%m%d}.csv")] = data
-    return Night(assay_date=assay_date, files=files, lots=tuple(lots),
-                 notes=(f"re-assay of {', '.join(lot_ids)} on fresh plates",))
+    return Night(assay_date=assay_date, files=files, lots=tuple(lots))

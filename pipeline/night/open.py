@@ -7,10 +7,7 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Any, Protocol
 
-from pipeline.controlled.catalog import Catalog
 from pipeline.errors import InputError, SigningError
-from pipeline.intake.layouts import ExportLayout, load_layouts
-from pipeline.records.controlled_files import load_catalog, schemas_dir
 from pipeline.records.store import Store
 from pipeline.records.workspace import Workspace, open_workspace
 
@@ -84,8 +81,3 @@ def open_records(root: Path) -> tuple[Workspace, Store]:
         if not db.exists():
             raise InputError(f"no results store in {ws.root} (expected {db}); run a night there first")
     return ws, Store(ws.database_url)
-
-
-def open_catalog_and_layouts() -> tuple[Catalog, dict[str, ExportLayout]]:
-    """The specifications and methods in force, and the export layouts."""
-    return load_catalog(), load_layouts(schemas_dir())

@@ -24,6 +24,9 @@ class Workspace:
     signing_p12: Path | None
     signing_passphrase_file: Path | None
     signer_name: str
+    # The plant's own controlled folders, by kind (see CONTROLLED_KINDS); a kind not named here
+    # comes from the environment or lotgate's shipped folders (pipeline.records.controlled_files).
+    controlled: tuple[tuple[str, Path], ...] = ()
 
     @property
     def inbox(self) -> Path:
@@ -63,10 +66,39 @@ class Workspace:
 
 
 SETTINGS_FILE = "workspace.yaml"
+CONTROLLED_KINDS = {
+    "specifications": "product specifications",
+    "methods": "assay methods",
+    "layouts": "export layouts",
+}
+
+
+def _controlled_folders(root: Path, setting: object, path: Path) -> tuple[tuple[str, Path], ...]:
+    """The ``controlled:`` setting: each named folder, relative to the workspace, must exist."""
+    if setting is None:
+        return ()
+    if not isinstance(setting, dict):
+        raise SpecificationError(f"{path}: 'controlled' must map {', '.join(CONTROLLED_KINDS)} to folders")
+    folders = {}
+    for kind, value in setting.items():
+        if kind not in CONTROLLED_KINDS:
+            raise SpecificationError(f"{path}: 'controlled' names '{kind}'; allowed: {', '.join(CONTROLLED_KINDS)}")
+        if not isinstance(value, str) or not value.strip():
+            raise SpecificationError(f"{path}: 'controlled.{kind}' must be a folder name, found {value!r}")
+        folder = (root / Path(value).expanduser()).resolve()
+        if not folder.is_dir():
+            raise SpecificationError(
+                f"{path}: the folder of {CONTROLLED_KINDS[kind]} (controlled.{kind}: {value}) "
+                f"does not exist: {folder}")
+        folders[kind] = folder
+    return tuple(folders.items())
 
 
 def open_workspace(root: Path, *, plant_name: str | None = None, signer_name: str | None = None) -> Workspace:
-    """Read ``DIR/workspace.yaml`` if present; the environment's LOTGATE_DATABASE_URL wins."""
+    """Read ``DIR/workspace.yaml`` if present; the environment's LOTGATE_DATABASE_URL wins.
+
+    A ``controlled:`` setting that names a missing folder is refused here, before any night starts.
+    """
     root = root.resolve()
     settings: dict = {}
     path = root / SETTINGS_FILE
@@ -89,6 +121,7 @@ def open_workspace(root: Path, *, plant_name: str | None = None, signer_name: st
         signing_p12=Path(p12) if p12 else None,
         signing_passphrase_file=Path(passphrase_file) if passphrase_file else None,
         signer_name=str(signing.get("signer_name") or signer_name or "QA reviewer"),
+        controlled=_controlled_folders(root, settings.get("controlled"), path),
     )
 
 

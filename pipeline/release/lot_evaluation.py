@@ -1,7 +1,7 @@
 """From plate results and LIMS entries to each lot's numbers and verdicts (pure functions).
 
 specific activity [U/mg] = activity [U/mL] / protein [mg/mL],
-relative SE combined in quadrature: (se/x)² = (se_A/A)² + (se_P/P)²  (DOMAIN.md §3).
+relative SE combined in quadrature: (se/x)² = (se_A/A)² + (se_P/P)²  (docs/assay-rules.md, "Specific activity").
 Kinetic constants: v₀ against [S] in U/mL of lot, all lots of a night in one batched fit; Vmax
 is then expressed per mg protein, kcat and kcat/Km from the product's molecular weight.
 """

@@ -1,4 +1,4 @@
-"""Verdicts against a specification and the lot's disposition (DOMAIN.md §6). Pure functions.
+"""Verdicts against a specification and the lot's disposition (docs/assay-rules.md, "Verdicts and disposition"). Pure.
 
 Results are rounded to the digits of the limit before they are compared (the rounding
 convention of the pharmacopoeias' general notices: round half away from zero, common practice).

@@ -2,7 +2,7 @@
 
 A kinetic read gives A(t) per well at read times shared by the whole plate. The initial rate
 is the OLS slope of the initial linear part of A(t), in AU/min. The window is chosen, not
-assumed (DOMAIN §2). With m = ``min_points``:
+assumed (docs/assay-rules.md, "Activity"). With m = ``min_points``:
 
 * usable reads are those before the first read at or above ``linear_limit_au`` (the reader's
   linear range) or the first non-finite read (an overflow exported as a blank cell);
