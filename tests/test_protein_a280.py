@@ -6,7 +6,7 @@ import pytest
 from pipeline.assay.plates import evaluate_protein_plate
 from pipeline.records.controlled_files import load_catalog
 
-METHOD = load_catalog().protein_method("PROT-A280")
+METHOD = load_catalog().methods["PROT-A280"]
 # A 1 mg/mL solution of bovine serum albumin has A280 ≈ 0.66 in 1 cm (common practice; the
 # coefficient is the product's own, here BSA's as an example).
 BSA_A280_ML_PER_MG_PER_CM = 0.66

@@ -15,7 +15,7 @@ from pipeline.vocabulary import Disposition, HoldCategory, Verdict
 
 CATALOG = load_catalog()
 SPEC = CATALOG.specifications["LLC-200"]
-METHOD = dataclasses.replace(CATALOG.kinetic_method("LIP-PNPB"), recovery_baseline_n=8)
+METHOD = dataclasses.replace(CATALOG.methods["LIP-PNPB"], recovery_baseline_n=8)
 METHODS = {**CATALOG.methods, "LIP-PNPB": METHOD}
 BASELINE = [100.2, 99.1, 100.8, 99.6, 100.4, 99.3, 100.9, 99.8]  # invented, in-window recoveries (%)
 

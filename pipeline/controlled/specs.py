@@ -1,6 +1,6 @@
 """Product specifications and assay methods as frozen objects (parsed from plain mappings).
 
-The files live under ``specs/`` as YAML; ``pipeline.catalog`` reads them and computes their
+The files live under ``specs/`` as YAML; ``pipeline.records.controlled_files`` reads them and computes their
 SHA-256. Parsing is pure: a mapping in, a frozen object out, or a SpecificationError naming the
 file and the field.
 """
@@ -9,7 +9,7 @@ from __future__ import annotations
 
 import datetime as dt
 from dataclasses import dataclass
-from typing import Any
+from typing import Any, ClassVar, Protocol
 
 from pipeline.errors import SpecificationError
 from pipeline.vocabulary import NelsonRule
@@ -104,6 +104,17 @@ class Specification:
         raise SpecificationError(f"specification {self.product_code}: no attribute '{code}'")
 
 
+class AssayMethod(Protocol):
+    """What every kind of assay method has (each kind adds its own constants and criteria)."""
+
+    document: Document
+    method_id: str
+    title: str
+
+    @property
+    def measurement(self) -> str: ...
+
+
 @dataclass(frozen=True)
 class RateWindow:
     min_points: int
@@ -140,6 +151,7 @@ class KineticMethod:
     sample_preparation: str | None = None
     recovery_trend_rules: tuple[int, ...] = (1, 2, 3, 4)
     recovery_baseline_n: int = 20
+    measurement: ClassVar[str] = "kinetic"  # the method file's 'measurement' (see pipeline.assay.method_kinds)
 
     def recovery_attribute(self) -> Attribute:
         """The reference standard's recovery as a charted attribute of this method."""
@@ -168,6 +180,11 @@ class ProteinMethod:
     path_length_cm: float | None = None  # A280 only
     linear_min_au: float | None = None  # A280 only: the photometer's linear range
     linear_max_au: float | None = None
+
+    @property
+    def measurement(self) -> str:
+        """The method file's 'measurement' (see pipeline.assay.method_kinds)."""
+        return "uv280" if self.kind == "uv280" else "endpoint"
 
 
 def _document(raw: dict[str, Any], where: str, name_key: str, sha256: str) -> Document:
@@ -245,88 +262,102 @@ def parse_specification(raw: dict[str, Any], where: str, sha256: str) -> Specifi
     )
 
 
-def parse_method(raw: dict[str, Any], where: str, sha256: str) -> KineticMethod | ProteinMethod:
-    """Build a kinetic or protein method from a parsed YAML mapping."""
+def method_document(raw: dict[str, Any], where: str, sha256: str) -> Document:
+    """The identity of an assay method file (``kind: assay-method``), whatever its measurement."""
     if raw.get("kind") != "assay-method":
         raise SpecificationError(f"{where}: 'kind' must be assay-method, found {raw.get('kind')!r}")
-    document = _document(raw, where, "method_id", sha256)
-    measurement = _require(raw, "measurement", where)
-    num = lambda m, k: _number(_require(m, k, where), k, where)  # noqa: E731
-    if measurement == "kinetic":
-        window = _require(raw, "rate_window", where)
-        suit = _require(raw, "suitability", where)
-        recovery = _require(suit, "recovery_pct", where)
-        kin = raw.get("kinetics") or {}
-        positive = ("epsilon_per_mm_per_cm", "path_length_cm", "reaction_volume_ml", "sample_volume_ml")
-        for key in positive:
-            if num(raw, key) <= 0:
-                raise SpecificationError(f"{where}: '{key}' must be above zero, found {raw[key]!r}")
-        return KineticMethod(
-            document=document,
-            method_id=document.name,
-            title=str(raw.get("title", document.name)),
-            wavelength_nm=num(raw, "wavelength_nm"),
-            temperature_c=num(raw, "temperature_c"),
-            ph=num(raw, "ph"),
-            unit_definition=str(raw.get("unit_definition", "")),
-            epsilon_per_mm_per_cm=num(raw, "epsilon_per_mm_per_cm"),
-            path_length_cm=num(raw, "path_length_cm"),
-            reaction_volume_ml=num(raw, "reaction_volume_ml"),
-            sample_volume_ml=num(raw, "sample_volume_ml"),
-            assay_substrate_mm=num(raw, "assay_substrate_mm"),
-            rate_window=RateWindow(
-                min_points=int(num(window, "min_points")),
-                min_r2=num(window, "min_r2"),
-                linear_limit_au=num(window, "linear_limit_au"),
-                max_slope_change=num(window, "max_slope_change"),
-            ),
-            reference_lot=str(_require(suit, "reference_lot", where)),
-            reference_assigned_u_per_ml=num(suit, "reference_assigned_u_per_ml"),
-            recovery_min_pct=num(recovery, "min"),
-            recovery_max_pct=num(recovery, "max"),
-            replicate_cv_max_pct=num(suit, "replicate_cv_max_pct"),
-            blank_rate_max_au_per_min=num(suit, "blank_rate_max_au_per_min"),
-            model_selection_alpha=float(kin.get("model_selection_alpha", 0.05)),
-            km_max_relative_se=float(kin.get("km_max_relative_se", 0.25)),
-            sample_preparation=raw.get("sample_preparation"),
-            recovery_trend_rules=tuple(int(r) for r in (suit.get("recovery_trend") or {}).get("rules", (1, 2, 3, 4))),
-            recovery_baseline_n=int((suit.get("recovery_trend") or {}).get("baseline_n", 20)),
-        )
-    if measurement == "uv280":
-        suit = raw.get("suitability") or {}
-        linear = _require(raw, "linear_range_au", where)
-        path = num(raw, "path_length_cm")
-        if path <= 0:
-            raise SpecificationError(f"{where}: 'path_length_cm' must be above zero, found {path}")
-        low, high = num(linear, "min"), num(linear, "max")
-        if not 0 <= low < high:
-            raise SpecificationError(f"{where}: linear_range_au must have 0 ≤ min < max, found {low}–{high}")
-        return ProteinMethod(
-            document=document, method_id=document.name, title=str(raw.get("title", document.name)),
-            wavelength_nm=num(raw, "wavelength_nm"), standard="", curve_model="none", curve_weighting=None,
-            curve_min_r2=0.0, bias_limit_pct=0.0, lowest_bias_limit_pct=0.0,
-            replicate_cv_max_pct=float(suit.get("replicate_cv_max_pct", 10.0)), kind="uv280",
-            path_length_cm=path, linear_min_au=low, linear_max_au=high)
-    if measurement == "endpoint":
-        curve = _require(raw, "curve", where)
-        model = str(_require(curve, "model", where))
-        if model not in ("linear", "quadratic", "4pl"):
-            raise SpecificationError(f"{where}: curve model must be linear, quadratic or 4pl, found {model!r}")
-        weighting = curve.get("weighting")
-        if weighting not in (None, "1/x", "1/x2", "1/y2"):
-            raise SpecificationError(f"{where}: curve weighting must be null, 1/x, 1/x2 or 1/y2, found {weighting!r}")
-        suit = raw.get("suitability") or {}
-        return ProteinMethod(
-            document=document,
-            method_id=document.name,
-            title=str(raw.get("title", document.name)),
-            wavelength_nm=num(raw, "wavelength_nm"),
-            standard=str(raw.get("standard", "")),
-            curve_model=model,
-            curve_weighting=weighting,
-            curve_min_r2=num(curve, "min_r2"),
-            bias_limit_pct=num(curve, "bias_limit_pct"),
-            lowest_bias_limit_pct=num(curve, "lowest_bias_limit_pct"),
-            replicate_cv_max_pct=float(suit.get("replicate_cv_max_pct", 10.0)),
-        )
-    raise SpecificationError(f"{where}: measurement must be kinetic, endpoint or uv280, found {measurement!r}")
+    return _document(raw, where, "method_id", sha256)
+
+
+def required_number(mapping: dict[str, Any], key: str, where: str) -> float:
+    """A number the file must give under ``key``."""
+    return _number(_require(mapping, key, where), key, where)
+
+
+def parse_kinetic_method(raw: dict[str, Any], where: str, sha256: str) -> KineticMethod:
+    """A kinetic activity method (``measurement: kinetic``) from a parsed YAML mapping."""
+    document = method_document(raw, where, sha256)
+    num = lambda m, k: required_number(m, k, where)  # noqa: E731
+    window = _require(raw, "rate_window", where)
+    suit = _require(raw, "suitability", where)
+    recovery = _require(suit, "recovery_pct", where)
+    kin = raw.get("kinetics") or {}
+    positive = ("epsilon_per_mm_per_cm", "path_length_cm", "reaction_volume_ml", "sample_volume_ml")
+    for key in positive:
+        if num(raw, key) <= 0:
+            raise SpecificationError(f"{where}: '{key}' must be above zero, found {raw[key]!r}")
+    return KineticMethod(
+        document=document,
+        method_id=document.name,
+        title=str(raw.get("title", document.name)),
+        wavelength_nm=num(raw, "wavelength_nm"),
+        temperature_c=num(raw, "temperature_c"),
+        ph=num(raw, "ph"),
+        unit_definition=str(raw.get("unit_definition", "")),
+        epsilon_per_mm_per_cm=num(raw, "epsilon_per_mm_per_cm"),
+        path_length_cm=num(raw, "path_length_cm"),
+        reaction_volume_ml=num(raw, "reaction_volume_ml"),
+        sample_volume_ml=num(raw, "sample_volume_ml"),
+        assay_substrate_mm=num(raw, "assay_substrate_mm"),
+        rate_window=RateWindow(
+            min_points=int(num(window, "min_points")),
+            min_r2=num(window, "min_r2"),
+            linear_limit_au=num(window, "linear_limit_au"),
+            max_slope_change=num(window, "max_slope_change"),
+        ),
+        reference_lot=str(_require(suit, "reference_lot", where)),
+        reference_assigned_u_per_ml=num(suit, "reference_assigned_u_per_ml"),
+        recovery_min_pct=num(recovery, "min"),
+        recovery_max_pct=num(recovery, "max"),
+        replicate_cv_max_pct=num(suit, "replicate_cv_max_pct"),
+        blank_rate_max_au_per_min=num(suit, "blank_rate_max_au_per_min"),
+        model_selection_alpha=float(kin.get("model_selection_alpha", 0.05)),
+        km_max_relative_se=float(kin.get("km_max_relative_se", 0.25)),
+        sample_preparation=raw.get("sample_preparation"),
+        recovery_trend_rules=tuple(int(r) for r in (suit.get("recovery_trend") or {}).get("rules", (1, 2, 3, 4))),
+        recovery_baseline_n=int((suit.get("recovery_trend") or {}).get("baseline_n", 20)),
+    )
+
+
+def parse_uv280_method(raw: dict[str, Any], where: str, sha256: str) -> ProteinMethod:
+    """Protein by absorbance at 280 nm (``measurement: uv280``) from a parsed YAML mapping."""
+    document = method_document(raw, where, sha256)
+    num = lambda m, k: required_number(m, k, where)  # noqa: E731
+    suit = raw.get("suitability") or {}
+    linear = _require(raw, "linear_range_au", where)
+    path = num(raw, "path_length_cm")
+    if path <= 0:
+        raise SpecificationError(f"{where}: 'path_length_cm' must be above zero, found {path}")
+    low, high = num(linear, "min"), num(linear, "max")
+    if not 0 <= low < high:
+        raise SpecificationError(f"{where}: linear_range_au must have 0 ≤ min < max, found {low}–{high}")
+    return ProteinMethod(
+        document=document, method_id=document.name, title=str(raw.get("title", document.name)),
+        wavelength_nm=num(raw, "wavelength_nm"), standard="", curve_model="none", curve_weighting=None,
+        curve_min_r2=0.0, bias_limit_pct=0.0, lowest_bias_limit_pct=0.0,
+        replicate_cv_max_pct=float(suit.get("replicate_cv_max_pct", 10.0)), kind="uv280",
+        path_length_cm=path, linear_min_au=low, linear_max_au=high)
+
+
+def curve_fields(raw: dict[str, Any], where: str) -> dict[str, Any]:
+    """A standard-curve method's standard, curve model, weighting and acceptance limits (method fields)."""
+    curve = _require(raw, "curve", where)
+    model = str(_require(curve, "model", where))
+    if model not in ("linear", "quadratic", "4pl"):
+        raise SpecificationError(f"{where}: curve model must be linear, quadratic or 4pl, found {model!r}")
+    weighting = curve.get("weighting")
+    if weighting not in (None, "1/x", "1/x2", "1/y2"):
+        raise SpecificationError(f"{where}: curve weighting must be null, 1/x, 1/x2 or 1/y2, found {weighting!r}")
+    suit = raw.get("suitability") or {}
+    return dict(standard=str(raw.get("standard", "")), curve_model=model, curve_weighting=weighting,
+                curve_min_r2=required_number(curve, "min_r2", where),
+                bias_limit_pct=required_number(curve, "bias_limit_pct", where),
+                lowest_bias_limit_pct=required_number(curve, "lowest_bias_limit_pct", where),
+                replicate_cv_max_pct=float(suit.get("replicate_cv_max_pct", 10.0)))
+
+
+def parse_endpoint_method(raw: dict[str, Any], where: str, sha256: str) -> ProteinMethod:
+    """Protein against a standard curve read at one wavelength (``measurement: endpoint``)."""
+    document = method_document(raw, where, sha256)
+    return ProteinMethod(document=document, method_id=document.name, title=str(raw.get("title", document.name)),
+                         wavelength_nm=required_number(raw, "wavelength_nm", where), **curve_fields(raw, where))

@@ -30,6 +30,7 @@ from typing import Any
 
 import pandas as pd
 
+from pipeline.assay.method_kinds import Measures, kind_of, read_kinds, read_label
 from pipeline.assay.plate_reads import PlateReads
 from pipeline.controlled.catalog import Catalog
 from pipeline.controlled.specs import KineticMethod
@@ -39,9 +40,9 @@ from pipeline.release.lot_evaluation import LimsEntry, LotInputs
 
 LOT_ID = re.compile(r"[A-Z0-9][A-Z0-9-]{2,31}")  # the lot_id pattern of the export layouts
 # The kinds of export (``lotgate_export.kind`` of a layout under schemas/) that a night uses.
-REGISTRY, PLATE_MAP, KINETIC_READ, ENDPOINT_READ, LIMS_RESULTS = (
-    "lot-registry", "plate-map", "kinetic-read", "endpoint-read", "lims-results")
-USED_KINDS = (REGISTRY, PLATE_MAP, KINETIC_READ, ENDPOINT_READ, LIMS_RESULTS)
+# Plate reads come in the export kinds of the method kinds (pipeline.assay.method_kinds).
+REGISTRY, PLATE_MAP, LIMS_RESULTS = "lot-registry", "plate-map", "lims-results"
+USED_KINDS = (REGISTRY, PLATE_MAP, LIMS_RESULTS, *read_kinds())
 _TOKEN = re.compile(r"[A-Za-z0-9][A-Za-z0-9-]*")
 WELLS_LISTED = 8
 
@@ -165,6 +166,10 @@ def _well_problem(plate_id: str, plate_map: pd.DataFrame, reads: pd.DataFrame, r
     return None
 
 
+def _with_article(word: str) -> str:
+    return ("an " if word[:1] in "aeiou" else "a ") + word
+
+
 def assemble(parsed_exports: list[ParsedExport], quarantined: list[QuarantinedFile], catalog: Catalog) -> Assembly:
     """Group the night's exports by lot and plate; state every lot that cannot be decided."""
     by_kind: dict[str, list[ParsedExport]] = defaultdict(list)
@@ -176,7 +181,7 @@ def assemble(parsed_exports: list[ParsedExport], quarantined: list[QuarantinedFi
     registry, registry_file = _registry(by_kind[REGISTRY], notes)
 
     maps = _plate_groups(by_kind[PLATE_MAP])
-    read_groups = {"kinetic": _plate_groups(by_kind[KINETIC_READ]), "endpoint": _plate_groups(by_kind[ENDPOINT_READ])}
+    read_groups = {read_kind: _plate_groups(by_kind[read_kind]) for read_kind in read_kinds()}
     activity_plates: dict[str, Any] = {}
     protein_plates: dict[str, Any] = {}
     plate_files: dict[str, dict[str, str]] = {}
@@ -191,12 +196,14 @@ def assemble(parsed_exports: list[ParsedExport], quarantined: list[QuarantinedFi
         if method is None:
             plate_problem[plate_id] = f"plate {plate_id}: method {', '.join(methods)} is not a single known method under specs/methods"
             continue
-        kind, other = ("kinetic", "endpoint") if isinstance(method, KineticMethod) else ("endpoint", "kinetic")
-        if plate_id in read_groups[other]:
-            names = ", ".join(f for f, _ in read_groups[other][plate_id][1])
-            notes.append(f"an {other} read for plate {plate_id} arrived ({names}), but its plate map names the "
-                         f"{kind} method {method.method_id}: the read is not used")
-        reads = read_groups[kind].get(plate_id)
+        method_kind = kind_of(method)
+        kind = method_kind.read_label
+        for other in read_groups:
+            if other != method_kind.read_kind and plate_id in read_groups[other]:
+                names = ", ".join(f for f, _ in read_groups[other][plate_id][1])
+                notes.append(f"{_with_article(read_label(other))} read for plate {plate_id} arrived ({names}), but "
+                             f"its plate map names the {kind} method {method.method_id}: the read is not used")
+        reads = read_groups[method_kind.read_kind].get(plate_id)
         if reads is None:
             aside = _naming(setaside, plate_id)
             plate_problem[plate_id] = (
@@ -213,13 +220,14 @@ def assemble(parsed_exports: list[ParsedExport], quarantined: list[QuarantinedFi
         if problem is not None:
             plate_problem[plate_id] = problem
             continue
-        target = activity_plates if kind == "kinetic" else protein_plates
+        target = activity_plates if method_kind.measures == Measures.ACTIVITY else protein_plates
         target[plate_id] = PlateReads(frame.reset_index(drop=True), reads[0].reset_index(drop=True), method.method_id)
-    for kind, groups in read_groups.items():
+    for read_kind, groups in read_groups.items():
         for plate_id in sorted(set(groups) - set(maps)):
             aside = _naming(setaside, plate_id)
             why = f" (the export {aside[0].file.file_name}, which names this plate, was quarantined)" if aside else ""
-            notes.append(f"a {kind} read for plate {plate_id} arrived without its plate map{why}: not used")
+            notes.append(f"{_with_article(read_label(read_kind))} read for plate {plate_id} arrived without its "
+                         f"plate map{why}: not used")
 
     lims: dict[str, dict[str, LimsEntry]] = defaultdict(dict)
     lims_dates: dict[str, list[tuple[str, str, str]]] = defaultdict(list)

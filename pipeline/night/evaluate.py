@@ -4,13 +4,9 @@ from __future__ import annotations
 
 from typing import Any
 
+from pipeline.assay.method_kinds import PlateContext, kind_of
 from pipeline.assay.plate_choice import choose_plates, plates_by_lot
-from pipeline.assay.plates import (
-    ActivityPlateResult,
-    ProteinPlateResult,
-    evaluate_activity_plate,
-    evaluate_protein_plate,
-)
+from pipeline.assay.plates import ActivityPlateResult, ProteinPlateResult
 from pipeline.controlled.catalog import Catalog
 from pipeline.intake.assembly import Assembly
 from pipeline.release.lot_evaluation import LotEvaluation, LotInputs, evaluate_lots
@@ -22,16 +18,14 @@ def evaluate(assembly: Assembly, catalog: Catalog) -> tuple[list[LotEvaluation],
     protein: dict[str, ProteinPlateResult] = {}
     # Each plate's tables are let go as soon as the plate is evaluated: the night's reads and its
     # results are then never all in memory at once. Only file names and checksums go on.
-    for plate_id in list(assembly.activity_plates):
-        plate = assembly.activity_plates.pop(plate_id)
-        activity[plate_id] = evaluate_activity_plate(plate_id, plate.plate_map, plate.reads,
-                                                     catalog.kinetic_method(plate.method_id))
-    extinction = {lot.lot_id: catalog.specifications[lot.product_code].a280_extinction_ml_per_mg_per_cm
-                  for lot in assembly.lots if catalog.specifications[lot.product_code].a280_extinction_ml_per_mg_per_cm}
-    for plate_id in list(assembly.protein_plates):
-        plate = assembly.protein_plates.pop(plate_id)
-        protein[plate_id] = evaluate_protein_plate(plate_id, plate.plate_map, plate.reads,
-                                                   catalog.protein_method(plate.method_id), extinction)
+    context = PlateContext({lot.lot_id: catalog.specifications[lot.product_code].a280_extinction_ml_per_mg_per_cm
+                            for lot in assembly.lots
+                            if catalog.specifications[lot.product_code].a280_extinction_ml_per_mg_per_cm})
+    for plates, results in ((assembly.activity_plates, activity), (assembly.protein_plates, protein)):
+        for plate_id in list(plates):
+            plate = plates.pop(plate_id)
+            method = catalog.methods[plate.method_id]
+            results[plate_id] = kind_of(method).evaluate(plate_id, plate, method, context)
     on_activity, on_protein = plates_by_lot(list(activity.values()), list(protein.values()))
     lots = []
     for lot in assembly.lots:

@@ -19,14 +19,9 @@ from pathlib import Path
 
 import yaml
 
+from pipeline.assay.method_kinds import parse_method
 from pipeline.controlled.catalog import Catalog
-from pipeline.controlled.specs import (
-    KineticMethod,
-    ProteinMethod,
-    Specification,
-    parse_method,
-    parse_specification,
-)
+from pipeline.controlled.specs import AssayMethod, ProteinMethod, Specification, parse_specification
 from pipeline.errors import SpecificationError
 from pipeline.intake.layouts import ExportLayout, load_layouts
 from pipeline.records.workspace import Workspace
@@ -115,8 +110,8 @@ def _read_yaml(path: Path) -> tuple[dict, str]:
     return raw, hashlib.sha256(data).hexdigest()
 
 
-def _load_methods(folder: Path) -> dict[str, KineticMethod | ProteinMethod]:
-    methods: dict[str, KineticMethod | ProteinMethod] = {}
+def _load_methods(folder: Path) -> dict[str, AssayMethod]:
+    methods: dict[str, AssayMethod] = {}
     for path in sorted(folder.glob("*.yaml")):
         raw, sha = _read_yaml(path)
         method = parse_method(raw, str(path), sha)
