@@ -8,17 +8,15 @@ import pytest
 from scipy.optimize import curve_fit
 
 from pipeline.errors import CalculationError
-from pipeline.science.kinetics import (
+from pipeline.science.kinetic_constants import km_determination, turnover
+from pipeline.science.kinetic_model_choice import choose_kinetic_model
+from pipeline.science.michaelis_menten import (
     MICHAELIS_MENTEN,
-    SUBSTRATE_INHIBITION,
     MichaelisMentenFit,
-    choose_kinetic_model,
     fit_michaelis_menten,
     fit_michaelis_menten_batch,
-    fit_substrate_inhibition,
-    km_determination,
-    turnover,
 )
+from pipeline.science.substrate_inhibition import SUBSTRATE_INHIBITION, fit_substrate_inhibition
 
 # Puromycin, treated (Treloar 1974, in Bates & Watts, Nonlinear Regression Analysis and Its
 # Applications, 1988, App. A1.3): substrate in ppm, rate in counts/min^2.

@@ -7,18 +7,15 @@ import numpy as np
 import pytest
 
 from pipeline.errors import CalculationError
-from pipeline.science.kinetics import (
-    MICHAELIS_MENTEN,
+from pipeline.science.kinetic_data import BATCH_NOT_FITTED
+from pipeline.science.kinetic_model_choice import choose_kinetic_model, choose_kinetic_models
+from pipeline.science.michaelis_menten import MICHAELIS_MENTEN
+from pipeline.science.substrate_inhibition import (
     SUBSTRATE_INHIBITION,
     SubstrateInhibitionFit,
-    choose_kinetic_model,
     fit_substrate_inhibition,
 )
-from pipeline.science.kinetics_batch import (
-    BATCH_NOT_FITTED,
-    choose_kinetic_models,
-    fit_substrate_inhibition_batch,
-)
+from pipeline.science.substrate_inhibition_batch import fit_substrate_inhibition_batch
 
 # Puromycin, treated (Treloar 1974, in Bates & Watts, Nonlinear Regression Analysis and Its
 # Applications, 1988, App. A1.3; DOMAIN.md section 4): substrate in ppm, rate in counts/min^2.

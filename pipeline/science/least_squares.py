@@ -18,7 +18,7 @@ The solver is ``scipy.optimize.least_squares`` with tight tolerances (1e-15).
 from __future__ import annotations
 
 from collections.abc import Callable, Sequence
-from dataclasses import asdict, dataclass
+from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
@@ -26,6 +26,7 @@ from numpy.typing import ArrayLike, NDArray
 from scipy import optimize, stats
 
 from pipeline.errors import CalculationError
+from pipeline.plain_data import to_plain
 
 ModelFn = Callable[[NDArray[np.float64], NDArray[np.float64]], ArrayLike]
 """``model(x, params) -> predicted y``, shape (n,)."""
@@ -38,32 +39,6 @@ TOLERANCE = 1e-15
 
 _CONDITION_LIMIT = 1e14
 """Above this condition number of the weighted Jacobian the parameters cannot be separated."""
-
-
-def json_float(value: float) -> float | None:
-    """A float for JSON: finite values as they are, NaN and infinities as None."""
-    value = float(value)
-    return value if np.isfinite(value) else None
-
-
-def jsonable(value: Any) -> Any:
-    """Turn nested dicts, tuples, lists, numpy arrays and scalars into plain JSON values.
-
-    Floats go through ``json_float`` (NaN and infinities become None); tuples become lists.
-    """
-    if isinstance(value, dict):
-        return {str(k): jsonable(v) for k, v in value.items()}
-    if isinstance(value, list | tuple):
-        return [jsonable(v) for v in value]
-    if isinstance(value, np.ndarray):
-        return jsonable(value.tolist())
-    if isinstance(value, bool | np.bool_):
-        return bool(value)
-    if isinstance(value, int | np.integer):
-        return int(value)
-    if isinstance(value, float | np.floating):
-        return json_float(float(value))
-    return value
 
 
 @dataclass(frozen=True)
@@ -89,7 +64,7 @@ class NLSResult:
 
     def to_dict(self) -> dict[str, Any]:
         """A JSON-able mapping (NaN and infinities become None)."""
-        return dict(jsonable(asdict(self)))
+        return dict(to_plain(self))
 
 
 def _as_vector(values: ArrayLike, what: str) -> NDArray[np.float64]:
