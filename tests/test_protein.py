@@ -11,6 +11,7 @@ import pytest
 from pipeline.errors import CalculationError, SpecificationError
 from pipeline.science.standard_curves import (
     back_calculate,
+    curve_response,
     fit_standard_curve,
     protein_from_a280,
     replicate_summary,
@@ -339,3 +340,10 @@ def test_invalid_sample_inputs(call, match: str) -> None:
     curve = fit_standard_curve(BSA_MG_PER_ML, 0.05 + 0.6 * BSA_MG_PER_ML, "linear")
     with pytest.raises(CalculationError, match=match):
         call(curve)
+
+
+def test_standard_curve_models():
+    # A = p0 + p1·x (+ p2·x²); 4PL A = d + (a − d)/(1 + (x/c)^b): at x = c it is (a + d)/2.
+    assert curve_response("linear", np.array([0.1, 2.0]), np.array([0.5]))[0] == pytest.approx(1.1)
+    assert curve_response("quadratic", np.array([0.1, 2.0, -0.5]), np.array([1.0]))[0] == pytest.approx(1.6)
+    assert curve_response("4pl", np.array([0.05, 1.2, 0.8, 2.0]), np.array([0.8]))[0] == pytest.approx(1.025)

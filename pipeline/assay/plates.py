@@ -368,7 +368,7 @@ def evaluate_protein_plate(plate_id: str, plate_map: pd.DataFrame, reads: pd.Dat
             bias_limit_pct=method.bias_limit_pct, lowest_bias_limit_pct=method.lowest_bias_limit_pct)
     except LotgateError as exc:
         return invalid([f"plate {plate_id}: the standard curve cannot be fitted: {exc}"])
-    curve_dict = {**curve.to_dict(), "params": [float(v) for v in curve.params],
+    curve_dict = {**curve.to_dict(), "params": [float(v) for v in curve.params], "points": curve.response_curve(),
                   "param_names": list(curve.param_names), "standards": [[float(x), float(y)] for x, y in
                                                    zip(standards["nominal_mg_per_ml"], standards["absorbance"], strict=True)]}
     if not curve.accepted:
@@ -381,7 +381,8 @@ def evaluate_protein_plate(plate_id: str, plate_map: pd.DataFrame, reads: pd.Dat
         for absorbance_value, dilution in zip(wells["absorbance"], wells["dilution_factor"], strict=True):
             readings.extend(protein.back_calculate(curve, np.array([float(absorbance_value)]), dilution_factor=float(dilution)))
         samples_out[lot] = [{"well": w, "absorbance": float(a), "dilution_factor": float(d),
-                             "mg_per_ml": r.concentration_mg_per_ml, "in_range": r.in_range}
+                             "mg_per_ml": r.concentration_mg_per_ml, "in_well_mg_per_ml": r.in_well_mg_per_ml,
+                             "in_range": r.in_range}
                             for w, a, d, r in zip(wells["well"], wells["absorbance"], wells["dilution_factor"], readings, strict=True)]
         outside = [r for r in readings if not r.in_range]
         if outside:

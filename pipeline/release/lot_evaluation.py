@@ -147,17 +147,17 @@ def _kinetic_measurements(lot: str, series: KineticSeries | None, choice: Kineti
     fit = choice.michaelis_menten
     model = choice.model
     vmax, vmax_se, km, km_se, cov = fit.vmax, fit.vmax_se, fit.km, fit.km_se, fit.cov_vmax_km
-    fit_dict = fit.to_dict()
+    fit_dict, curve = fit.to_dict(), fit.curve(series.substrate_mm)
     if model != MICHAELIS_MENTEN and choice.substrate_inhibition is not None:
         si = choice.substrate_inhibition
         vmax, vmax_se, km, km_se, cov = si.vmax, si.vmax_se, si.km, si.km_se, 0.0
-        fit_dict = si.to_dict()
+        fit_dict, curve = si.to_dict(), si.curve(series.substrate_mm)
     quality = km_determination(_KmView(km, km_se, fit.converged), series.substrate_mm, method.km_max_relative_se)
     notes = [choice.reason] if choice.flagged else []
     detail = {"model": model, "fit": fit_dict, "flagged": choice.flagged, "reason": choice.reason,
               "f_statistic": choice.f_statistic, "p_value": choice.p_value,
               "points": {"substrate_mm": list(series.substrate_mm), "rate_u_per_ml": list(series.rate_u_per_ml)},
-              "excluded": list(series.excluded), "km_quality": quality.to_dict()}
+              "excluded": list(series.excluded), "km_quality": quality.to_dict(), "curve": curve.to_dict()}
     t = float(fit.km_ci95[1] - fit.km) / fit.km_se if fit.km_se and math.isfinite(fit.km_se) and fit.km_se > 0 else None
     out: dict[str, Measurement] = {}
     if quality.well_determined:

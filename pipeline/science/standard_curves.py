@@ -43,7 +43,7 @@ def _json(value: float | None) -> float | None:
 # --------------------------------------------------------------------------- model maths
 
 
-def _response(model: str, params: FloatArray, x: FloatArray) -> FloatArray:
+def curve_response(model: str, params: FloatArray, x: FloatArray) -> FloatArray:
     """Absorbance at concentration x for the model (see the module docstring)."""
     if model == "linear":
         return params[0] + params[1] * x
@@ -93,7 +93,7 @@ def _fit_4pl(x: FloatArray, y: FloatArray, w: FloatArray) -> FloatArray:
     positive = x[x > 0]
 
     def residuals(p: FloatArray) -> FloatArray:
-        return root_w * (_response("4pl", p, x) - y)
+        return root_w * (curve_response("4pl", p, x) - y)
 
     bounds = (
         [-np.inf, 1e-3, positive.min() * 1e-3, -np.inf],
@@ -169,12 +169,22 @@ class StandardCurve:
     def absorbance_at(self, conc_mg_per_ml: npt.ArrayLike) -> FloatOrArray:
         """Absorbance the curve predicts at a concentration (for plots and checks)."""
         x = np.asarray(conc_mg_per_ml, dtype=float)
-        return as_result(_response(self.model, np.asarray(self.params), x))
+        return as_result(curve_response(self.model, np.asarray(self.params), x))
 
     def concentration_at(self, absorbance_au: npt.ArrayLike) -> FloatOrArray:
         """In-well concentration on the calibrated branch, not limited to the range (NaN if none)."""
         y = np.asarray(absorbance_au, dtype=float)
         return as_result(_inverse(self.model, np.asarray(self.params), y, self.trend))
+
+    def response_curve(self, points: int = 121) -> dict[str, list[float]]:
+        """Absorbance the curve predicts from 0 to 1.5 × the highest standard (for a chart).
+
+        ``points`` evenly spaced concentrations; returns {"mg_per_ml": [...], "absorbance_au": [...]}.
+        """
+        x = np.linspace(0.0, 1.5 * self.range_high_mg_per_ml, points)
+        with np.errstate(all="ignore"):
+            y = np.asarray(self.absorbance_at(x), dtype=float)
+        return {"mg_per_ml": [float(v) for v in x], "absorbance_au": [_json(v) for v in y]}
 
     def to_dict(self) -> dict[str, Any]:
         return {
@@ -343,12 +353,12 @@ def fit_standard_curve(
     else:
         params = _fit_linear_in_params(x, y, w, 1 if model == "linear" else 2)
 
-    fitted = _response(model, params, x)
+    fitted = curve_response(model, params, x)
     mean_w = np.sum(w * y) / np.sum(w)
     ss_tot = np.sum(w * (y - mean_w) ** 2)
     r2 = float(1.0 - np.sum(w * (y - fitted) ** 2) / ss_tot) if ss_tot > 0 else float("nan")
     low, high = float(x[x > 0].min()), float(x.max())
-    ends = _response(model, params, np.array([low, high]))
+    ends = curve_response(model, params, np.array([low, high]))
     trend = 1.0 if ends[1] >= ends[0] else -1.0
     rows = _back_calculated_rows(
         lambda a: _inverse(model, params, a, trend), x, y, bias_limit_pct, lowest_bias_limit_pct
