@@ -160,13 +160,15 @@ def fit_least_squares(
     param_names: Sequence[str] | None = None,
     method: str = "lm",
     max_nfev: int | None = None,
+    bounds: tuple[Sequence[float], Sequence[float]] | None = None,
 ) -> NLSResult:
     """Fit ``model`` to ``(x, y)`` by (weighted) non-linear least squares.
 
     Minimises RSS(p) = sum w_i (y_i - f(x_i, p))^2 from ``p0``; reports
     cov = s^2 (J'WJ)^-1 with s^2 = RSS/(n - p), se = sqrt(diag cov) and
     CI95 = p -/+ t(0.975, n - p) se. ``weights`` are 1/sigma^2 (positive).
-    ``method`` is "lm" (Levenberg-Marquardt, MINPACK) or "trf".
+    ``method`` is "lm" (Levenberg-Marquardt, MINPACK) or "trf"; ``bounds`` (lower, upper per
+    parameter) need "trf", which then scales the parameters by the Jacobian's columns.
 
     Raises CalculationError for non-finite or mismatched inputs, n <= p, a model that
     cannot be evaluated at the start values, or a Jacobian of deficient rank at the optimum
@@ -174,6 +176,8 @@ def fit_least_squares(
     """
     if method not in ("lm", "trf"):
         raise CalculationError(f"solver method must be 'lm' or 'trf', received {method!r}")
+    if bounds is not None and method != "trf":
+        raise CalculationError("bounds on the parameters need the solver method 'trf'")
     xv, yv, pv, wv, names = _check_inputs(x, y, p0, weights, param_names)
     n, p = yv.size, pv.size
     sqrt_w = np.sqrt(wv)
@@ -195,6 +199,8 @@ def fit_least_squares(
         pv,
         jac=jac,
         method=method,
+        bounds=(-np.inf, np.inf) if bounds is None else bounds,
+        x_scale=1.0 if bounds is None else "jac",
         xtol=TOLERANCE,
         ftol=TOLERANCE,
         gtol=TOLERANCE,
