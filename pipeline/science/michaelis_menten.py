@@ -158,18 +158,17 @@ def _jacobian(s: FloatArray, p: FloatArray) -> FloatArray:
     return np.column_stack([s / d, -p[0] * s / d**2])
 
 
-def batched_model(s: FloatArray, p: FloatArray) -> tuple[FloatArray, FloatArray]:
+def batched_model(s: FloatArray, p: FloatArray) -> FloatArray:
+    """Rows of v = Vmax S / (Km + S)."""
+    return p[:, 0:1] * s / (p[:, 1:2] + s)
+
+
+def batched_linearised(s: FloatArray, p: FloatArray) -> tuple[FloatArray, FloatArray]:
     """Rows of v = Vmax S/(Km + S) and its Jacobian [S/(Km+S), -Vmax S/(Km+S)^2]."""
     vmax, km = p[:, 0:1], p[:, 1:2]
     d = km + s
     j0 = s / d
     return vmax * j0, np.stack([j0, -vmax * s / d**2], axis=2)
-
-
-def same_branch(s: FloatArray, w: FloatArray, p: FloatArray, p_new: FloatArray) -> NDArray[np.bool_]:
-    """True where Km + S keeps its sign at every point in use (the step passes no pole)."""
-    with np.errstate(invalid="ignore"):
-        return np.all((w == 0) | ((p[:, 1:2] + s) * (p_new[:, 1:2] + s) > 0), axis=1)
 
 
 def michaelis_menten_start(
@@ -261,7 +260,7 @@ def fit_michaelis_menten_batch(
 
     vmax0, km0 = michaelis_menten_start(s, v, w)
     p0 = np.column_stack([vmax0, km0])
-    fits = fit_batched_least_squares(batched_model, s, v, np.where(live[:, None], w, 0.0), p0, same_branch)
+    fits = fit_batched_least_squares(batched_model, batched_linearised, s, v, np.where(live[:, None], w, 0.0), p0)
     separable = live & (fits.failure == FITTED)
     converged = separable & fits.converged
     nan = np.full(n_pts.shape, np.nan)

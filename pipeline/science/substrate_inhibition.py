@@ -94,7 +94,12 @@ def _jacobian(s: FloatArray, p: FloatArray) -> FloatArray:
     return np.column_stack([s / d, -p[0] * s / d**2, -p[0] * s**3 / d**2])
 
 
-def batched_model(s: FloatArray, p: FloatArray) -> tuple[FloatArray, FloatArray]:
+def batched_model(s: FloatArray, p: FloatArray) -> FloatArray:
+    """Rows of v = Vmax S / (Km + S + q S^2)."""
+    return p[:, 0:1] * s / (p[:, 1:2] + s + p[:, 2:3] * s**2)
+
+
+def batched_linearised(s: FloatArray, p: FloatArray) -> tuple[FloatArray, FloatArray]:
     """Rows of f = Vmax S/D and its Jacobian [S/D, -Vmax S/D^2, -Vmax S^3/D^2], D = Km + S + q S^2."""
     vmax, km, q = p[:, 0:1], p[:, 1:2], p[:, 2:3]
     d = km + s + q * s**2

@@ -37,6 +37,7 @@ from pipeline.science.substrate_inhibition import (
     START_VALUES,
     SUBSTRATE_INHIBITION,
     SubstrateInhibitionFit,
+    batched_linearised,
     batched_model,
     distinct_levels,
     inverse_to_ki,
@@ -190,7 +191,7 @@ def fit_batch_from(s: FloatArray, v: FloatArray, w: FloatArray,
     starts, defined = substrate_inhibition_starts(s, v, w, np.asarray(mm.vmax), np.asarray(mm.km))
     defined &= live[None, :]
     k_idx, b_idx = np.nonzero(defined)
-    fits = fit_batched_least_squares(batched_model, s[b_idx], v[b_idx], w[b_idx], starts[k_idx, b_idx],
+    fits = fit_batched_least_squares(batched_model, batched_linearised, s[b_idx], v[b_idx], w[b_idx], starts[k_idx, b_idx],
                                      same_branch)
     entry = np.full(defined.shape, -1, dtype=np.int64)
     entry[k_idx, b_idx] = np.arange(k_idx.size)
