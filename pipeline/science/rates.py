@@ -34,6 +34,7 @@ import numpy as np
 import numpy.typing as npt
 
 from pipeline.errors import CalculationError, InputError, SpecificationError
+from pipeline.plain_data import to_plain
 from pipeline.science.rate_window_search import Best, plate_quantities, scan_length
 
 FloatArray = npt.NDArray[np.float64]
@@ -92,10 +93,6 @@ class RateWindowSettings:
         return asdict(self)
 
 
-def _json_float(value: float) -> float | None:
-    return float(value) if np.isfinite(value) else None
-
-
 @dataclass(frozen=True)
 class WellRate:
     """Initial rate of one well; ``flag`` is None when the rate can be used."""
@@ -116,10 +113,7 @@ class WellRate:
         return self.flag is None
 
     def to_dict(self) -> dict[str, Any]:
-        out: dict[str, Any] = dict(vars(self))  # flat fields: no deep copy needed (a night has ~10^5 wells)
-        for key, value in out.items():
-            if isinstance(value, float):
-                out[key] = _json_float(value)
+        out: dict[str, Any] = to_plain(vars(self))  # flat fields (a night has ~10^5 wells)
         out["ok"] = self.ok
         return out
 
@@ -134,14 +128,7 @@ class BlankCorrection:
     n_blanks: int
 
     def to_dict(self) -> dict[str, Any]:
-        return {
-            "corrected_slopes_au_per_min": [
-                _json_float(v) for v in self.corrected_slopes_au_per_min
-            ],
-            "blank_mean_au_per_min": _json_float(self.blank_mean_au_per_min),
-            "blank_se_au_per_min": _json_float(self.blank_se_au_per_min),
-            "n_blanks": self.n_blanks,
-        }
+        return dict(to_plain(self))
 
 
 def _early_shape(t: FloatArray, a_well: FloatArray, start: int, slope: float) -> str:

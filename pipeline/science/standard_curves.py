@@ -23,22 +23,18 @@ import numpy as np
 import numpy.typing as npt
 from scipy import stats
 
-from pipeline.errors import CalculationError, SpecificationError
+from pipeline.errors import CalculationError
+from pipeline.plain_data import to_plain
 from pipeline.science.least_squares import NLSResult, fit_least_squares
+from pipeline.science.standard_curve_inputs import (
+    PARAM_NAMES,
+    check_data,
+    check_method,
+    fit_weights,
+)
 from pipeline.science.units import FloatOrArray, as_result
 
 FloatArray = npt.NDArray[np.float64]
-
-PARAM_NAMES: dict[str, tuple[str, ...]] = {
-    "linear": ("intercept_au", "slope_au_per_mg_per_ml"),
-    "quadratic": ("c0_au", "c1_au_per_mg_per_ml", "c2_au_per_mg2_per_ml2"),
-    "4pl": ("a_au", "b_hill", "c_mg_per_ml", "d_au"),
-}
-WEIGHTINGS: tuple[str | None, ...] = (None, "1/x", "1/x2", "1/y2")
-
-
-def _json(value: float | None) -> float | None:
-    return None if value is None or not np.isfinite(value) else float(value)
 
 
 # --------------------------------------------------------------------------- model maths
@@ -169,7 +165,7 @@ class BackCalculatedStandard:
     def to_dict(self) -> dict[str, Any]:
         out = asdict(self)
         for key in ("nominal_mg_per_ml", "absorbance_au", "back_calculated_mg_per_ml", "bias_pct"):
-            out[key] = _json(out[key])
+            out[key] = to_plain(out[key])
         return out
 
 
@@ -231,14 +227,14 @@ class StandardCurve:
         x = np.linspace(0.0, 1.5 * self.range_high_mg_per_ml, points)
         with np.errstate(all="ignore"):
             y = np.asarray(self.absorbance_at(x), dtype=float)
-        return {"mg_per_ml": [float(v) for v in x], "absorbance_au": [_json(v) for v in y]}
+        return {"mg_per_ml": [float(v) for v in x], "absorbance_au": [to_plain(v) for v in y]}
 
     def to_dict(self) -> dict[str, Any]:
         return {
             "model": self.model,
             "weighting": self.weighting,
-            "params": {n: _json(v) for n, v in zip(self.param_names, self.params, strict=True)},
-            "r2": _json(self.r2),
+            "params": {n: to_plain(v) for n, v in zip(self.param_names, self.params, strict=True)},
+            "r2": to_plain(self.r2),
             "range_low_mg_per_ml": self.range_low_mg_per_ml,
             "range_high_mg_per_ml": self.range_high_mg_per_ml,
             "back_calculated": [row.to_dict() for row in self.back_calculated],
@@ -251,59 +247,6 @@ class StandardCurve:
 
 
 # --------------------------------------------------------------------------- fitting
-
-
-def _weights(weighting: str | None, x: FloatArray, y: FloatArray) -> FloatArray:
-    """Fit weights wᵢ: 1, 1/x, 1/x² or 1/y²; blanks take the weight of the lowest standard."""
-    if weighting is None:
-        return np.ones_like(x)
-    lowest = x == x[x > 0].min()
-    if weighting == "1/y2":
-        if np.any(y[x > 0] == 0):
-            raise CalculationError("1/y² weighting needs non-zero absorbances at every standard")
-        basis = np.abs(y)
-        basis = np.where(x > 0, basis, np.abs(y[lowest]).mean())
-        return 1.0 / basis**2
-    basis = np.where(x > 0, x, x[lowest][0])
-    return 1.0 / basis if weighting == "1/x" else 1.0 / basis**2
-
-
-def _check_method(model: str, weighting: str | None, limits: dict[str, float]) -> None:
-    if model not in PARAM_NAMES:
-        raise SpecificationError(
-            f"standard curve model {model!r} is not known; allowed: {', '.join(PARAM_NAMES)}"
-        )
-    if weighting not in WEIGHTINGS:
-        raise SpecificationError(
-            f"standard curve weighting {weighting!r} is not known; allowed: none, 1/x, 1/x2, 1/y2"
-        )
-    for name, value in limits.items():
-        high = 1.0 if name == "min_r2" else np.inf
-        if not isinstance(value, int | float) or not (0 < value <= high) or not np.isfinite(value):
-            allowed = "between 0 and 1" if name == "min_r2" else "a positive percentage"
-            raise SpecificationError(f"{name} must be {allowed}; received {value!r}")
-
-
-def _check_data(model: str, nominal: FloatArray, absorbance: FloatArray) -> None:
-    if nominal.ndim != 1 or nominal.shape != absorbance.shape:
-        raise CalculationError(
-            f"each standard needs one nominal concentration and one absorbance; received "
-            f"{nominal.size} concentrations and {absorbance.size} absorbances"
-        )
-    if not (np.all(np.isfinite(nominal)) and np.all(np.isfinite(absorbance))):
-        raise CalculationError("standard concentrations and absorbances must all be numbers")
-    if np.any(nominal < 0):
-        raise CalculationError(
-            f"nominal standard concentrations must be ≥ 0 mg/mL; received {nominal.min():g}"
-        )
-    n_params = len(PARAM_NAMES[model])
-    levels = np.unique(nominal)
-    if levels[levels > 0].size < 2 or levels.size < n_params or nominal.size <= n_params:
-        raise CalculationError(
-            f"a {model} standard curve needs more than {n_params} standards at {n_params} or more "
-            f"concentrations, two of them above zero; received {nominal.size} standards at "
-            f"{levels.size} concentrations"
-        )
 
 
 def _back_calculated_rows(
@@ -345,7 +288,7 @@ def fit_standard_curve(
     R² = 1 − Σw(y − ŷ)² / Σw(y − ȳ_w)² with ȳ_w the weighted mean; each non-zero standard is
     back-calculated through the curve, bias % = 100 · (x̂ − x) / x.
     """
-    _check_method(
+    check_method(
         model,
         weighting,
         {
@@ -356,8 +299,8 @@ def fit_standard_curve(
     )
     x = np.asarray(nominal_mg_per_ml, dtype=float).ravel()
     y = np.asarray(absorbance, dtype=float).ravel()
-    _check_data(model, x, y)
-    w = _weights(weighting, x, y)
+    check_data(model, x, y)
+    w = fit_weights(weighting, x, y)
     if model == "4pl":
         params = np.asarray(_fit_4pl(x, y, w).params)
     else:
