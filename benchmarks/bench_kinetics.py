@@ -12,12 +12,8 @@ import time
 
 import numpy as np
 
-from pipeline.science.kinetics import (
-    choose_kinetic_model,
-    fit_michaelis_menten,
-    fit_michaelis_menten_batch,
-)
-from pipeline.science.kinetics_batch import choose_kinetic_models
+from pipeline.science.kinetic_model_choice import choose_kinetic_model, choose_kinetic_models
+from pipeline.science.michaelis_menten import fit_michaelis_menten, fit_michaelis_menten_batch
 
 SUBSTRATE_MM = np.repeat([0.4, 0.8, 1.5, 2.5, 4.0, 6.0, 8.0, 10.0], 2)
 CHOICE_SUBSTRATE_MM = np.repeat([0.25, 0.5, 1.0, 2.0, 4.0, 8.0, 16.0, 32.0], 2)

@@ -159,7 +159,7 @@ def _fit_comparison(lims_files: int) -> dict[str, Any]:
     from scipy.optimize import curve_fit
 
     from pipeline.demo.plant import LIPASE
-    from pipeline.science import kinetics
+    from pipeline.science import michaelis_menten
 
     rng = np.random.default_rng(7)
     n_curves = max(200, lims_files)
@@ -172,7 +172,7 @@ def _fit_comparison(lims_files: int) -> dict[str, Any]:
                           xtol=1e-15, ftol=1e-15, gtol=1e-15, maxfev=10000)[0] for i in range(n_curves)]
 
     # Best of three for each side: a single timing on a shared 2-core machine is mostly noise.
-    batched, batch = _best_of(3, lambda: kinetics.fit_michaelis_menten_batch(s, v))
+    batched, batch = _best_of(3, lambda: michaelis_menten.fit_michaelis_menten_batch(s, v))
     looped, params = _best_of(3, loop)
     params_arr = np.array(params)
     rel = max(float(np.max(np.abs(batch.vmax - params_arr[:, 0]) / np.abs(params_arr[:, 0]))),

@@ -10,7 +10,7 @@ _PLAIN = (str, int, bool, type(None))
 
 
 def to_plain(value: Any) -> Any:
-    """Turn numpy scalars, tuples, nested result objects and non-finite floats into JSON-able values.
+    """Turn numpy scalars and arrays, tuples, nested result objects and non-finite floats into JSON-able values.
 
     The common types are tested first by exact type: a night cleans millions of values.
     """
@@ -29,6 +29,8 @@ def to_plain(value: Any) -> Any:
         return [to_plain(v) for v in value]
     if is_dataclass(value) and not isinstance(value, type):
         return to_plain(vars(value))
+    if getattr(value, "ndim", 0):  # a numpy array: nested lists of Python scalars
+        return to_plain(value.tolist())
     if hasattr(value, "item") and not isinstance(value, str | bytes):
         value = value.item()
     if isinstance(value, float) and not math.isfinite(value):

@@ -7,7 +7,6 @@ from __future__ import annotations
 
 import copy
 import io
-import math
 from typing import Any
 
 import pytest
@@ -234,35 +233,6 @@ def test_different_dossiers_give_different_bytes(dossier: dict[str, Any]) -> Non
     assert render_batch_report(dossier) != render_batch_report(other)
 
 
-# ---------------------------------------------------------------- the confidence band
-
-
-# Puromycin, treated (Treloar 1974, in Bates & Watts 1988, App. A1.3): Vmax = 212.68 (SE 6.947),
-# Km = 0.06412 (SE 0.008281), 10 degrees of freedom. Student's t(0.975, 10) = 2.228 (table of
-# the t distribution in any statistics handbook, e.g. NIST/SEMATECH e-Handbook, table 1.3.6.7.2).
-VMAX, VMAX_SE, KM, KM_SE, DOF, T_975_10 = 212.68, 6.947, 0.06412, 0.008281, 10, 2.228
-
-
-def test_band_half_width_at_km_with_zero_covariance() -> None:
-    # At S = Km: g = [Km/(2Km), −Vmax·Km/(2Km)²] = [1/2, −Vmax/(4Km)], so with cov = 0
-    # var f = (0.5·se_v)² + (Vmax/(4Km)·se_k)² and half-width = t·√var.
-    fitted, half = charts.mm_band([KM], VMAX, KM, VMAX_SE, KM_SE, 0.0, DOF)
-    expected = T_975_10 * math.sqrt((0.5 * VMAX_SE) ** 2 + (VMAX / (4 * KM) * KM_SE) ** 2)
-    assert fitted[0] == pytest.approx(VMAX / 2, rel=1e-12)
-    assert half[0] == pytest.approx(expected, rel=2e-4)  # the table's t has four digits
-
-
-def test_band_tends_to_t_times_se_vmax_at_saturating_substrate() -> None:
-    # S → ∞: g → [1, 0], so the half-width → t·se_v whatever the covariance.
-    _, half = charts.mm_band([KM * 1e7], VMAX, KM, VMAX_SE, KM_SE, 0.04, DOF)
-    assert half[0] == pytest.approx(T_975_10 * VMAX_SE, rel=2e-4)
-
-
-def test_band_is_zero_at_no_substrate() -> None:
-    fitted, half = charts.mm_band([0.0], VMAX, KM, VMAX_SE, KM_SE, 0.04, DOF)
-    assert fitted[0] == 0.0 and half[0] == 0.0
-
-
 # ---------------------------------------------------------------- charts
 
 
@@ -297,8 +267,3 @@ def test_charts_of_absent_data_say_so() -> None:
         assert any(s.startswith("No ") for s in strings(drawing))
 
 
-def test_standard_curve_models() -> None:
-    # A = p0 + p1·x (+ p2·x²); 4PL A = d + (a − d)/(1 + (x/c)^b): at x = c it is (a + d)/2.
-    assert charts.curve_absorbance("linear", [0.1, 2.0], [0.5])[0] == pytest.approx(1.1)
-    assert charts.curve_absorbance("quadratic", [0.1, 2.0, -0.5], [1.0])[0] == pytest.approx(1.6)
-    assert charts.curve_absorbance("4pl", [0.05, 1.2, 0.8, 2.0], [0.8])[0] == pytest.approx(1.025)

@@ -2,23 +2,22 @@
 model choice, Km quality and turnover units."""
 
 import json
+import math
 
 import numpy as np
 import pytest
 from scipy.optimize import curve_fit
 
 from pipeline.errors import CalculationError
-from pipeline.science.kinetics import (
+from pipeline.science.kinetic_constants import km_determination, turnover
+from pipeline.science.kinetic_model_choice import choose_kinetic_model
+from pipeline.science.michaelis_menten import (
     MICHAELIS_MENTEN,
-    SUBSTRATE_INHIBITION,
     MichaelisMentenFit,
-    choose_kinetic_model,
     fit_michaelis_menten,
     fit_michaelis_menten_batch,
-    fit_substrate_inhibition,
-    km_determination,
-    turnover,
 )
+from pipeline.science.substrate_inhibition import SUBSTRATE_INHIBITION, fit_substrate_inhibition
 
 # Puromycin, treated (Treloar 1974, in Bates & Watts, Nonlinear Regression Analysis and Its
 # Applications, 1988, App. A1.3): substrate in ppm, rate in counts/min^2.
@@ -379,3 +378,52 @@ class TestInvalidInput:
         substrate = np.r_[0.01, PUROMYCIN_S]
         batch = fit_michaelis_menten_batch(substrate, rate, mask=~np.isnan(rate))
         assert batch.km[0] == pytest.approx(PUROMYCIN_KM, rel=1e-3)
+
+
+# ---------------------------------------------------------------- the confidence band
+
+
+# Puromycin, treated (Treloar 1974, in Bates & Watts 1988, App. A1.3): Vmax = 212.68 (SE 6.947),
+# Km = 0.06412 (SE 0.008281), 10 degrees of freedom. Student's t(0.975, 10) = 2.228 (table of
+# the t distribution in any statistics handbook, e.g. NIST/SEMATECH e-Handbook, table 1.3.6.7.2).
+VMAX, VMAX_SE, KM, KM_SE, DOF, T_975_10 = 212.68, 6.947, 0.06412, 0.008281, 10, 2.228
+
+
+def band_fit(cov_vmax_km):
+    """The published fit as a result object, with the given covariance of Vmax and Km."""
+    return MichaelisMentenFit(vmax=VMAX, km=KM, vmax_se=VMAX_SE, km_se=KM_SE, vmax_ci95=(math.nan, math.nan),
+                              km_ci95=(math.nan, math.nan), cov_vmax_km=cov_vmax_km, residual_se=10.93,
+                              rss=math.nan, n=12, dof=DOF, converged=True, message="published")
+
+
+def test_band_half_width_at_km_with_zero_covariance():
+    # At S = Km: g = [Km/(2Km), −Vmax·Km/(2Km)²] = [1/2, −Vmax/(4Km)], so with cov = 0
+    # var f = (0.5·se_v)² + (Vmax/(4Km)·se_k)² and half-width = t·√var.
+    fitted, half = band_fit(0.0).rate_at([KM]), band_fit(0.0).eval_uncertainty([KM])
+    expected = T_975_10 * math.sqrt((0.5 * VMAX_SE) ** 2 + (VMAX / (4 * KM) * KM_SE) ** 2)
+    assert fitted[0] == pytest.approx(VMAX / 2, rel=1e-12)
+    assert half[0] == pytest.approx(expected, rel=2e-4)  # the table's t has four digits
+
+
+def test_band_tends_to_t_times_se_vmax_at_saturating_substrate():
+    # S → ∞: g → [1, 0], so the half-width → t·se_v whatever the covariance.
+    half = band_fit(0.04).eval_uncertainty([KM * 1e7])
+    assert half[0] == pytest.approx(T_975_10 * VMAX_SE, rel=2e-4)
+
+
+def test_band_is_zero_at_no_substrate():
+    fitted, half = band_fit(0.04).rate_at([0.0]), band_fit(0.04).eval_uncertainty([0.0])
+    assert fitted[0] == 0.0 and half[0] == 0.0
+
+
+
+
+def test_rate_curve_carries_the_band_a_chart_draws():
+    # The curve spans 0 to 1.04 x max(highest tested level, 2 Km); its band is rate -/+ half-width.
+    fit = band_fit(0.04)
+    curve = fit.curve([0.02, 1.10])
+    assert curve.substrate[0] == 0.0 and curve.substrate[-1] == pytest.approx(1.04 * 1.10)
+    s = np.array(curve.substrate)
+    assert np.allclose(curve.rate, fit.rate_at(s), rtol=1e-14)
+    assert np.allclose(np.array(curve.band_high) - np.array(curve.rate), fit.eval_uncertainty(s), rtol=1e-12)
+    assert np.allclose(np.array(curve.rate) - np.array(curve.band_low), fit.eval_uncertainty(s), rtol=1e-12)

@@ -7,18 +7,16 @@ import numpy as np
 import pytest
 
 from pipeline.errors import CalculationError
-from pipeline.science.kinetics import (
-    MICHAELIS_MENTEN,
+from pipeline.science.batched_least_squares import FAIL_START, FITTED, fit_batched_least_squares
+from pipeline.science.kinetic_data import BATCH_NOT_FITTED
+from pipeline.science.kinetic_model_choice import choose_kinetic_model, choose_kinetic_models
+from pipeline.science.michaelis_menten import MICHAELIS_MENTEN, batched_linearised, batched_model
+from pipeline.science.substrate_inhibition import (
     SUBSTRATE_INHIBITION,
     SubstrateInhibitionFit,
-    choose_kinetic_model,
     fit_substrate_inhibition,
 )
-from pipeline.science.kinetics_batch import (
-    BATCH_NOT_FITTED,
-    choose_kinetic_models,
-    fit_substrate_inhibition_batch,
-)
+from pipeline.science.substrate_inhibition_batch import fit_substrate_inhibition_batch
 
 # Puromycin, treated (Treloar 1974, in Bates & Watts, Nonlinear Regression Analysis and Its
 # Applications, 1988, App. A1.3; docs/assay-rules.md): substrate in ppm, rate in counts/min^2.
@@ -272,3 +270,22 @@ class TestInvalidInputs:
         batch = fit_substrate_inhibition_batch(PUROMYCIN_S, [PUROMYCIN_V])
         with pytest.raises(CalculationError, match="curve 3 does not exist: the batch holds 1"):
             batch.fit(3)
+
+
+class TestBatchedEngine:
+    """The batched Levenberg-Marquardt engine on its own (exact synthetic data, invented)."""
+
+    def test_exact_rows_are_recovered_and_a_bad_start_fails_alone(self):
+        s = np.tile(S_MM, (3, 1))
+        v = np.array([[10.0], [4.0], [7.0]]) * s / (np.array([[2.0], [0.5], [1.0]]) + s)
+        p0 = np.array([[8.0, 1.0], [5.0, 1.0], [np.nan, 1.0]])
+        fit = fit_batched_least_squares(batched_model, batched_linearised, s, v, np.ones_like(s), p0)
+        assert fit.failure.tolist() == [FITTED, FITTED, FAIL_START]
+        assert fit.converged[:2].all() and not fit.converged[2]
+        assert fit.params[:2] == pytest.approx(np.array([[10.0, 2.0], [4.0, 0.5]]), rel=1e-10)
+        assert (fit.dof == S_MM.size - 2).all()
+
+    def test_only_two_or_three_parameters(self):
+        s = np.tile(S_MM, (1, 1))
+        with pytest.raises(CalculationError, match="2 or 3 parameters"):
+            fit_batched_least_squares(batched_model, batched_linearised, s, s, np.ones_like(s), np.ones((1, 4)))

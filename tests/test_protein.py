@@ -9,12 +9,8 @@ import numpy as np
 import pytest
 
 from pipeline.errors import CalculationError, SpecificationError
-from pipeline.science.standard_curves import (
-    back_calculate,
-    fit_standard_curve,
-    protein_from_a280,
-    replicate_summary,
-)
+from pipeline.science.protein_readings import back_calculate, protein_from_a280, replicate_summary
+from pipeline.science.standard_curves import curve_response, fit_standard_curve
 
 # BSA standards 0–1.5 mg/mL (common practice for dye-binding and copper assays).
 BSA_MG_PER_ML = np.array([0.0, 0.125, 0.25, 0.5, 0.75, 1.0, 1.5])
@@ -339,3 +335,26 @@ def test_invalid_sample_inputs(call, match: str) -> None:
     curve = fit_standard_curve(BSA_MG_PER_ML, 0.05 + 0.6 * BSA_MG_PER_ML, "linear")
     with pytest.raises(CalculationError, match=match):
         call(curve)
+
+
+def test_standard_curve_models():
+    # A = p0 + p1·x (+ p2·x²); 4PL A = d + (a − d)/(1 + (x/c)^b): at x = c it is (a + d)/2.
+    assert curve_response("linear", np.array([0.1, 2.0]), np.array([0.5]))[0] == pytest.approx(1.1)
+    assert curve_response("quadratic", np.array([0.1, 2.0, -0.5]), np.array([1.0]))[0] == pytest.approx(1.6)
+    assert curve_response("4pl", np.array([0.05, 1.2, 0.8, 2.0]), np.array([0.8]))[0] == pytest.approx(1.025)
+
+
+def test_linear_curve_band_is_the_textbook_prediction_interval_of_the_mean():
+    # Straight line, unweighted (any regression textbook, e.g. Draper & Smith, Applied Regression
+    # Analysis, 1998, section 3.1): var(ŷ(x)) = s²·(1/n + (x − x̄)²/Sxx), half-width t(0.975, n − 2)·√var.
+    rng = np.random.default_rng(3)
+    y = 0.05 + 0.6 * BSA_MG_PER_ML + rng.normal(0, 0.004, BSA_MG_PER_ML.size)
+    curve = fit_standard_curve(BSA_MG_PER_ML, y, "linear", min_r2=0.9)
+    x = BSA_MG_PER_ML
+    n, sxx = x.size, float(np.sum((x - x.mean()) ** 2))
+    s2 = float(np.sum((y - curve.absorbance_at(x)) ** 2)) / (n - 2)
+    at = np.array([0.0, 0.6, 1.5])
+    expected = 2.570582 * np.sqrt(s2 * (1 / n + (at - x.mean()) ** 2 / sxx))  # t(0.975, 5), t table
+    assert curve.dof == n - 2
+    assert np.allclose(curve.eval_uncertainty(at), expected, rtol=1e-6)
+

@@ -15,14 +15,8 @@ from hypothesis import strategies as st
 from scipy.special import lambertw
 
 from pipeline.errors import CalculationError, InputError, SpecificationError
-from pipeline.science.rates import (
-    RateWindowSettings,
-    all_wells,
-    blank_corrected,
-    initial_rates,
-    parse_well,
-    well_index,
-)
+from pipeline.science.plate_wells import all_wells, parse_well, well_index
+from pipeline.science.rates import RateWindowSettings, blank_corrected, initial_rates
 
 TIME_MIN = np.arange(0.0, 20.0 + 1e-9, 0.5)  # 41 reads
 NOISE_AU = 0.001

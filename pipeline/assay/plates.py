@@ -17,8 +17,7 @@ import pandas as pd
 from pipeline.controlled.specs import KineticMethod, ProteinMethod
 from pipeline.errors import CalculationError, LotgateError
 from pipeline.plain_data import to_plain
-from pipeline.science import rates, units
-from pipeline.science import standard_curves as protein
+from pipeline.science import protein_readings, rates, standard_curves, units
 from pipeline.science.measurement import Measurement
 
 SUBSTRATE_MATCH_MM = 1e-6
@@ -79,7 +78,7 @@ def _replicates(name: str, unit: str, values: np.ndarray, cv_max_pct: float, wha
     n = int(values.size)
     if n == 0:
         return Measurement(name, unit, None, valid=False, reasons=(f"no usable replicate of {what}",))
-    summary = protein.replicate_summary(values)
+    summary = protein_readings.replicate_summary(values)
     mean, cv = summary.mean, summary.cv_pct
     se = summary.se if n > 1 else None
     reasons: list[str] = []
@@ -326,7 +325,7 @@ def evaluate_a280_plate(plate_id: str, merged: pd.DataFrame, method: ProteinMeth
                 f"{int((~inside).sum())} of {corrected.size} replicates read {side} the linear range "
                 f"{low:g}–{high:g} AU at 280 nm: re-assay at another dilution",))
             continue
-        values = np.asarray(protein.protein_from_a280(corrected, epsilon, float(method.path_length_cm or 0.0), dilution),
+        values = np.asarray(protein_readings.protein_from_a280(corrected, epsilon, float(method.path_length_cm or 0.0), dilution),
                             dtype=float)
         result[lot] = _replicates("protein", "mg/mL", values, method.replicate_cv_max_pct, f"lot {lot} protein")
     curve = {"model": "A280", "blank_au": blank, "linear_range_au": [low, high],
@@ -362,13 +361,13 @@ def evaluate_protein_plate(plate_id: str, plate_map: pd.DataFrame, reads: pd.Dat
     if standards.empty:
         return invalid([f"plate {plate_id}: no standard curve wells"])
     try:
-        curve = protein.fit_standard_curve(
+        curve = standard_curves.fit_standard_curve(
             standards["nominal_mg_per_ml"].to_numpy(dtype=float), standards["absorbance"].to_numpy(dtype=float),
             method.curve_model, weighting=method.curve_weighting, min_r2=method.curve_min_r2,
             bias_limit_pct=method.bias_limit_pct, lowest_bias_limit_pct=method.lowest_bias_limit_pct)
     except LotgateError as exc:
         return invalid([f"plate {plate_id}: the standard curve cannot be fitted: {exc}"])
-    curve_dict = {**curve.to_dict(), "params": [float(v) for v in curve.params],
+    curve_dict = {**curve.to_dict(), "params": [float(v) for v in curve.params], "points": curve.response_curve(),
                   "param_names": list(curve.param_names), "standards": [[float(x), float(y)] for x, y in
                                                    zip(standards["nominal_mg_per_ml"], standards["absorbance"], strict=True)]}
     if not curve.accepted:
@@ -379,9 +378,10 @@ def evaluate_protein_plate(plate_id: str, plate_map: pd.DataFrame, reads: pd.Dat
         wells = merged[(merged["role"] == "sample") & (merged["lot_id"] == lot)]
         readings = []
         for absorbance_value, dilution in zip(wells["absorbance"], wells["dilution_factor"], strict=True):
-            readings.extend(protein.back_calculate(curve, np.array([float(absorbance_value)]), dilution_factor=float(dilution)))
+            readings.extend(protein_readings.back_calculate(curve, np.array([float(absorbance_value)]), dilution_factor=float(dilution)))
         samples_out[lot] = [{"well": w, "absorbance": float(a), "dilution_factor": float(d),
-                             "mg_per_ml": r.concentration_mg_per_ml, "in_range": r.in_range}
+                             "mg_per_ml": r.concentration_mg_per_ml, "in_well_mg_per_ml": r.in_well_mg_per_ml,
+                             "in_range": r.in_range}
                             for w, a, d, r in zip(wells["well"], wells["absorbance"], wells["dilution_factor"], readings, strict=True)]
         outside = [r for r in readings if not r.in_range]
         if outside:

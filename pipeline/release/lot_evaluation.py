@@ -21,10 +21,10 @@ from pipeline.errors import CalculationError
 from pipeline.plain_data import to_plain
 from pipeline.release.records import AttributeVerdict
 from pipeline.release.verdicts import judge_lims, judge_measurement
-from pipeline.science import kinetics
-from pipeline.science.kinetics import KineticModelChoice
-from pipeline.science.kinetics_batch import choose_kinetic_models
+from pipeline.science.kinetic_constants import km_determination, turnover
+from pipeline.science.kinetic_model_choice import KineticModelChoice, choose_kinetic_models
 from pipeline.science.measurement import Measurement
+from pipeline.science.michaelis_menten import MICHAELIS_MENTEN, fit_michaelis_menten_batch
 from pipeline.vocabulary import Verdict
 
 
@@ -113,7 +113,7 @@ def _fit_batch(series: dict[str, KineticSeries], alpha: dict[str, float]) -> dic
 
     lots = sorted(usable)
     s_all, v_all, mask_all = stack(lots)
-    batch = kinetics.fit_michaelis_menten_batch(s_all, v_all, mask=mask_all)
+    batch = fit_michaelis_menten_batch(s_all, v_all, mask=mask_all)
     fitted = []
     for i, lot in enumerate(lots):
         try:
@@ -147,17 +147,17 @@ def _kinetic_measurements(lot: str, series: KineticSeries | None, choice: Kineti
     fit = choice.michaelis_menten
     model = choice.model
     vmax, vmax_se, km, km_se, cov = fit.vmax, fit.vmax_se, fit.km, fit.km_se, fit.cov_vmax_km
-    fit_dict = fit.to_dict()
-    if model != kinetics.MICHAELIS_MENTEN and choice.substrate_inhibition is not None:
+    fit_dict, curve = fit.to_dict(), fit.curve(series.substrate_mm)
+    if model != MICHAELIS_MENTEN and choice.substrate_inhibition is not None:
         si = choice.substrate_inhibition
         vmax, vmax_se, km, km_se, cov = si.vmax, si.vmax_se, si.km, si.km_se, 0.0
-        fit_dict = si.to_dict()
-    quality = kinetics.km_determination(_KmView(km, km_se, fit.converged), series.substrate_mm, method.km_max_relative_se)
+        fit_dict, curve = si.to_dict(), si.curve(series.substrate_mm)
+    quality = km_determination(_KmView(km, km_se, fit.converged), series.substrate_mm, method.km_max_relative_se)
     notes = [choice.reason] if choice.flagged else []
     detail = {"model": model, "fit": fit_dict, "flagged": choice.flagged, "reason": choice.reason,
               "f_statistic": choice.f_statistic, "p_value": choice.p_value,
               "points": {"substrate_mm": list(series.substrate_mm), "rate_u_per_ml": list(series.rate_u_per_ml)},
-              "excluded": list(series.excluded), "km_quality": quality.to_dict()}
+              "excluded": list(series.excluded), "km_quality": quality.to_dict(), "curve": curve.to_dict()}
     t = float(fit.km_ci95[1] - fit.km) / fit.km_se if fit.km_se and math.isfinite(fit.km_se) and fit.km_se > 0 else None
     out: dict[str, Measurement] = {}
     if quality.well_determined:
@@ -176,7 +176,7 @@ def _kinetic_measurements(lot: str, series: KineticSeries | None, choice: Kineti
     vmax_mg_se = abs(vmax_mg) * math.hypot(vmax_se / vmax if vmax else 0.0, rel_p)
     out["vmax"] = Measurement("vmax", "U/mg", vmax_mg, se=vmax_mg_se,
                               ci95=(vmax_mg - t * vmax_mg_se, vmax_mg + t * vmax_mg_se) if t else None, n=fit.n)
-    turn = kinetics.turnover(vmax_mg, vmax_mg_se, km, km_se, spec.molecular_weight_g_per_mol,
+    turn = turnover(vmax_mg, vmax_mg_se, km, km_se, spec.molecular_weight_g_per_mol,
                              cov_vmax_km=cov / p)
     out["kcat"] = Measurement("kcat", "1/s", turn.kcat_per_s, se=turn.kcat_se_per_s, n=fit.n)
     if quality.well_determined:

@@ -18,7 +18,7 @@ The solver is ``scipy.optimize.least_squares`` with tight tolerances (1e-15).
 from __future__ import annotations
 
 from collections.abc import Callable, Sequence
-from dataclasses import asdict, dataclass
+from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
@@ -26,6 +26,7 @@ from numpy.typing import ArrayLike, NDArray
 from scipy import optimize, stats
 
 from pipeline.errors import CalculationError
+from pipeline.plain_data import to_plain
 
 ModelFn = Callable[[NDArray[np.float64], NDArray[np.float64]], ArrayLike]
 """``model(x, params) -> predicted y``, shape (n,)."""
@@ -38,32 +39,6 @@ TOLERANCE = 1e-15
 
 _CONDITION_LIMIT = 1e14
 """Above this condition number of the weighted Jacobian the parameters cannot be separated."""
-
-
-def json_float(value: float) -> float | None:
-    """A float for JSON: finite values as they are, NaN and infinities as None."""
-    value = float(value)
-    return value if np.isfinite(value) else None
-
-
-def jsonable(value: Any) -> Any:
-    """Turn nested dicts, tuples, lists, numpy arrays and scalars into plain JSON values.
-
-    Floats go through ``json_float`` (NaN and infinities become None); tuples become lists.
-    """
-    if isinstance(value, dict):
-        return {str(k): jsonable(v) for k, v in value.items()}
-    if isinstance(value, list | tuple):
-        return [jsonable(v) for v in value]
-    if isinstance(value, np.ndarray):
-        return jsonable(value.tolist())
-    if isinstance(value, bool | np.bool_):
-        return bool(value)
-    if isinstance(value, int | np.integer):
-        return int(value)
-    if isinstance(value, float | np.floating):
-        return json_float(float(value))
-    return value
 
 
 @dataclass(frozen=True)
@@ -89,7 +64,7 @@ class NLSResult:
 
     def to_dict(self) -> dict[str, Any]:
         """A JSON-able mapping (NaN and infinities become None)."""
-        return dict(jsonable(asdict(self)))
+        return dict(to_plain(self))
 
 
 def _as_vector(values: ArrayLike, what: str) -> NDArray[np.float64]:
@@ -185,13 +160,15 @@ def fit_least_squares(
     param_names: Sequence[str] | None = None,
     method: str = "lm",
     max_nfev: int | None = None,
+    bounds: tuple[Sequence[float], Sequence[float]] | None = None,
 ) -> NLSResult:
     """Fit ``model`` to ``(x, y)`` by (weighted) non-linear least squares.
 
     Minimises RSS(p) = sum w_i (y_i - f(x_i, p))^2 from ``p0``; reports
     cov = s^2 (J'WJ)^-1 with s^2 = RSS/(n - p), se = sqrt(diag cov) and
     CI95 = p -/+ t(0.975, n - p) se. ``weights`` are 1/sigma^2 (positive).
-    ``method`` is "lm" (Levenberg-Marquardt, MINPACK) or "trf".
+    ``method`` is "lm" (Levenberg-Marquardt, MINPACK) or "trf"; ``bounds`` (lower, upper per
+    parameter) need "trf", which then scales the parameters by the Jacobian's columns.
 
     Raises CalculationError for non-finite or mismatched inputs, n <= p, a model that
     cannot be evaluated at the start values, or a Jacobian of deficient rank at the optimum
@@ -199,6 +176,8 @@ def fit_least_squares(
     """
     if method not in ("lm", "trf"):
         raise CalculationError(f"solver method must be 'lm' or 'trf', received {method!r}")
+    if bounds is not None and method != "trf":
+        raise CalculationError("bounds on the parameters need the solver method 'trf'")
     xv, yv, pv, wv, names = _check_inputs(x, y, p0, weights, param_names)
     n, p = yv.size, pv.size
     sqrt_w = np.sqrt(wv)
@@ -220,6 +199,8 @@ def fit_least_squares(
         pv,
         jac=jac,
         method=method,
+        bounds=(-np.inf, np.inf) if bounds is None else bounds,
+        x_scale=1.0 if bounds is None else "jac",
         xtol=TOLERANCE,
         ftol=TOLERANCE,
         gtol=TOLERANCE,

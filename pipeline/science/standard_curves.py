@@ -21,29 +21,26 @@ from typing import Any
 
 import numpy as np
 import numpy.typing as npt
-from scipy.optimize import least_squares
+from scipy import stats
 
-from pipeline.errors import CalculationError, SpecificationError
-from pipeline.science.units import FloatOrArray, as_result, require_positive
+from pipeline.errors import CalculationError
+from pipeline.plain_data import to_plain
+from pipeline.science.least_squares import NLSResult, fit_least_squares
+from pipeline.science.standard_curve_inputs import (
+    PARAM_NAMES,
+    check_data,
+    check_method,
+    fit_weights,
+)
+from pipeline.science.units import FloatOrArray, as_result
 
 FloatArray = npt.NDArray[np.float64]
-
-PARAM_NAMES: dict[str, tuple[str, ...]] = {
-    "linear": ("intercept_au", "slope_au_per_mg_per_ml"),
-    "quadratic": ("c0_au", "c1_au_per_mg_per_ml", "c2_au_per_mg2_per_ml2"),
-    "4pl": ("a_au", "b_hill", "c_mg_per_ml", "d_au"),
-}
-WEIGHTINGS: tuple[str | None, ...] = (None, "1/x", "1/x2", "1/y2")
-
-
-def _json(value: float | None) -> float | None:
-    return None if value is None or not np.isfinite(value) else float(value)
 
 
 # --------------------------------------------------------------------------- model maths
 
 
-def _response(model: str, params: FloatArray, x: FloatArray) -> FloatArray:
+def curve_response(model: str, params: FloatArray, x: FloatArray) -> FloatArray:
     """Absorbance at concentration x for the model (see the module docstring)."""
     if model == "linear":
         return params[0] + params[1] * x
@@ -85,40 +82,70 @@ def _fit_linear_in_params(x: FloatArray, y: FloatArray, w: FloatArray, degree: i
     return params
 
 
-def _fit_4pl(x: FloatArray, y: FloatArray, w: FloatArray) -> FloatArray:
-    """Minimise Σ wᵢ·(yᵢ − 4PL(xᵢ))² with scipy.optimize.least_squares from several starts."""
-    root_w = np.sqrt(w)
+def _gradient(model: str, params: FloatArray, x: FloatArray) -> FloatArray:
+    """d absorbance / d params at each x, shape (n, p).
+
+    linear [1, x]; quadratic [1, x, x²]; 4PL with u = (x/c)^b and F = (a − d)/(1 + u)²:
+    [1/(1 + u), −F·u·ln(x/c), F·b·u/c, u/(1 + u)] (the ln term is 0 at x = 0).
+    """
+    if model in ("linear", "quadratic"):
+        return np.vander(x, len(params), increasing=True)
+    a, b, c, d = params
+    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+        xp = np.maximum(x, 0.0)
+        u = (xp / c) ** b
+        factor = (a - d) / (1.0 + u) ** 2
+        log_term = np.where(xp > 0, u * np.log(np.where(xp > 0, xp, 1.0) / c), 0.0)
+        return np.column_stack([1.0 / (1.0 + u), -factor * log_term, factor * b * u / c, u / (1.0 + u)])
+
+
+def _covariance(model: str, params: FloatArray, x: FloatArray, residuals: FloatArray,
+                w: FloatArray) -> tuple[tuple[tuple[float, ...], ...], int]:
+    """Parameter covariance C = s²·(GᵀWG)⁻¹, s² = Σ wᵢ rᵢ² / (n − p), G = d A / d params.
+
+    Returns (C, n − p); C is empty when GᵀWG cannot be inverted.
+    """
+    g = _gradient(model, params, x)
+    dof = int(x.size - params.size)
+    try:
+        inverse = np.linalg.inv(g.T @ (w[:, None] * g))
+    except np.linalg.LinAlgError:
+        return (), dof
+    cov = float(np.sum(w * residuals**2)) / dof * inverse
+    return tuple(tuple(float(v) for v in row) for row in cov), dof
+
+
+def _fit_4pl(x: FloatArray, y: FloatArray, w: FloatArray) -> NLSResult:
+    """Minimise Σ wᵢ·(yᵢ − 4PL(xᵢ))² with the one-curve engine (bounded) from several starts.
+
+    Bounds: 0.001 ≤ b ≤ 20 and c within 10⁻³–10³ × the standards' range; the converged fit of
+    lowest RSS is kept.
+    """
     low, high = y[x == x.min()].mean(), y[x == x.max()].mean()
     span = high - low
     positive = x[x > 0]
-
-    def residuals(p: FloatArray) -> FloatArray:
-        return root_w * (_response("4pl", p, x) - y)
-
     bounds = (
         [-np.inf, 1e-3, positive.min() * 1e-3, -np.inf],
         [np.inf, 20.0, positive.max() * 1e3, np.inf],
     )
-    best = None
+    best: NLSResult | None = None
     for extra in (0.25, 1.0, 4.0):
         for c0 in (np.median(positive), positive.max()):
             for b0 in (1.0, 2.0):
-                start = np.array([low, b0, c0, high + extra * span])
-                fit = least_squares(
-                    residuals,
-                    start,
-                    bounds=bounds,
-                    x_scale="jac",
-                    ftol=1e-15,
-                    xtol=1e-15,
-                    gtol=1e-15,
-                    max_nfev=5000,
-                )
-                if fit.status > 0 and (best is None or fit.cost < best.cost):
+                try:
+                    fit = fit_least_squares(
+                        lambda xs, p: curve_response("4pl", p, xs),
+                        lambda xs, p: _gradient("4pl", p, xs),
+                        x, y, [low, b0, c0, high + extra * span], weights=w,
+                        param_names=PARAM_NAMES["4pl"], method="trf", max_nfev=5000, bounds=bounds,
+                    )
+                except CalculationError:
+                    continue
+                if fit.converged and (best is None or fit.rss < best.rss):
                     best = fit
     if best is None:
         raise CalculationError("the 4PL standard curve fit did not converge from any start")
-    return np.asarray(best.x, dtype=float)
+    return best
 
 
 # --------------------------------------------------------------------------- results
@@ -138,7 +165,7 @@ class BackCalculatedStandard:
     def to_dict(self) -> dict[str, Any]:
         out = asdict(self)
         for key in ("nominal_mg_per_ml", "absorbance_au", "back_calculated_mg_per_ml", "bias_pct"):
-            out[key] = _json(out[key])
+            out[key] = to_plain(out[key])
         return out
 
 
@@ -159,6 +186,8 @@ class StandardCurve:
     min_r2: float
     bias_limit_pct: float
     lowest_bias_limit_pct: float
+    covariance: tuple[tuple[float, ...], ...] = ()
+    dof: int = 0
 
     @property
     def trend(self) -> float:
@@ -169,19 +198,43 @@ class StandardCurve:
     def absorbance_at(self, conc_mg_per_ml: npt.ArrayLike) -> FloatOrArray:
         """Absorbance the curve predicts at a concentration (for plots and checks)."""
         x = np.asarray(conc_mg_per_ml, dtype=float)
-        return as_result(_response(self.model, np.asarray(self.params), x))
+        return as_result(curve_response(self.model, np.asarray(self.params), x))
 
     def concentration_at(self, absorbance_au: npt.ArrayLike) -> FloatOrArray:
         """In-well concentration on the calibrated branch, not limited to the range (NaN if none)."""
         y = np.asarray(absorbance_au, dtype=float)
         return as_result(_inverse(self.model, np.asarray(self.params), y, self.trend))
 
+    def eval_uncertainty(self, conc_mg_per_ml: npt.ArrayLike, level: float = 0.95) -> FloatArray:
+        """Half-width of the pointwise confidence band of the curve's absorbance (delta method).
+
+        var A(x) = gᵀ C g with g = d A / d params at x and C the parameter covariance;
+        half-width = t(1 − (1 − level)/2, dof) · √var (NaN when the covariance is not known).
+        """
+        x = np.atleast_1d(np.asarray(conc_mg_per_ml, dtype=float))
+        if not self.covariance or self.dof <= 0:
+            return np.full(x.shape, np.nan)
+        g = _gradient(self.model, np.asarray(self.params), x)
+        var = np.einsum("ni,ij,nj->n", g, np.asarray(self.covariance), g)
+        t = float(stats.t.ppf(1.0 - (1.0 - level) / 2.0, self.dof))
+        return t * np.sqrt(np.clip(var, 0.0, None))
+
+    def response_curve(self, points: int = 121) -> dict[str, list[float]]:
+        """Absorbance the curve predicts from 0 to 1.5 × the highest standard (for a chart).
+
+        ``points`` evenly spaced concentrations; returns {"mg_per_ml": [...], "absorbance_au": [...]}.
+        """
+        x = np.linspace(0.0, 1.5 * self.range_high_mg_per_ml, points)
+        with np.errstate(all="ignore"):
+            y = np.asarray(self.absorbance_at(x), dtype=float)
+        return {"mg_per_ml": [float(v) for v in x], "absorbance_au": [to_plain(v) for v in y]}
+
     def to_dict(self) -> dict[str, Any]:
         return {
             "model": self.model,
             "weighting": self.weighting,
-            "params": {n: _json(v) for n, v in zip(self.param_names, self.params, strict=True)},
-            "r2": _json(self.r2),
+            "params": {n: to_plain(v) for n, v in zip(self.param_names, self.params, strict=True)},
+            "r2": to_plain(self.r2),
             "range_low_mg_per_ml": self.range_low_mg_per_ml,
             "range_high_mg_per_ml": self.range_high_mg_per_ml,
             "back_calculated": [row.to_dict() for row in self.back_calculated],
@@ -193,97 +246,7 @@ class StandardCurve:
         }
 
 
-@dataclass(frozen=True)
-class ProteinReading:
-    """A sample read through the curve; concentrations are None outside the calibrated range."""
-
-    absorbance_au: float
-    in_well_mg_per_ml: float | None
-    dilution_factor: float
-    concentration_mg_per_ml: float | None
-    in_range: bool
-    reason: str | None
-
-    def to_dict(self) -> dict[str, Any]:
-        out = asdict(self)
-        out["absorbance_au"] = _json(self.absorbance_au)
-        return out
-
-
-@dataclass(frozen=True)
-class ReplicateSummary:
-    """Mean, SD (n − 1), CV % and SE of replicate values (NaN where n is too small)."""
-
-    mean: float
-    sd: float
-    cv_pct: float
-    n: int
-    se: float
-
-    def to_dict(self) -> dict[str, Any]:
-        return {
-            "mean": _json(self.mean),
-            "sd": _json(self.sd),
-            "cv_pct": _json(self.cv_pct),
-            "n": self.n,
-            "se": _json(self.se),
-        }
-
-
 # --------------------------------------------------------------------------- fitting
-
-
-def _weights(weighting: str | None, x: FloatArray, y: FloatArray) -> FloatArray:
-    """Fit weights wᵢ: 1, 1/x, 1/x² or 1/y²; blanks take the weight of the lowest standard."""
-    if weighting is None:
-        return np.ones_like(x)
-    lowest = x == x[x > 0].min()
-    if weighting == "1/y2":
-        if np.any(y[x > 0] == 0):
-            raise CalculationError("1/y² weighting needs non-zero absorbances at every standard")
-        basis = np.abs(y)
-        basis = np.where(x > 0, basis, np.abs(y[lowest]).mean())
-        return 1.0 / basis**2
-    basis = np.where(x > 0, x, x[lowest][0])
-    return 1.0 / basis if weighting == "1/x" else 1.0 / basis**2
-
-
-def _check_method(model: str, weighting: str | None, limits: dict[str, float]) -> None:
-    if model not in PARAM_NAMES:
-        raise SpecificationError(
-            f"standard curve model {model!r} is not known; allowed: {', '.join(PARAM_NAMES)}"
-        )
-    if weighting not in WEIGHTINGS:
-        raise SpecificationError(
-            f"standard curve weighting {weighting!r} is not known; allowed: none, 1/x, 1/x2, 1/y2"
-        )
-    for name, value in limits.items():
-        high = 1.0 if name == "min_r2" else np.inf
-        if not isinstance(value, int | float) or not (0 < value <= high) or not np.isfinite(value):
-            allowed = "between 0 and 1" if name == "min_r2" else "a positive percentage"
-            raise SpecificationError(f"{name} must be {allowed}; received {value!r}")
-
-
-def _check_data(model: str, nominal: FloatArray, absorbance: FloatArray) -> None:
-    if nominal.ndim != 1 or nominal.shape != absorbance.shape:
-        raise CalculationError(
-            f"each standard needs one nominal concentration and one absorbance; received "
-            f"{nominal.size} concentrations and {absorbance.size} absorbances"
-        )
-    if not (np.all(np.isfinite(nominal)) and np.all(np.isfinite(absorbance))):
-        raise CalculationError("standard concentrations and absorbances must all be numbers")
-    if np.any(nominal < 0):
-        raise CalculationError(
-            f"nominal standard concentrations must be ≥ 0 mg/mL; received {nominal.min():g}"
-        )
-    n_params = len(PARAM_NAMES[model])
-    levels = np.unique(nominal)
-    if levels[levels > 0].size < 2 or levels.size < n_params or nominal.size <= n_params:
-        raise CalculationError(
-            f"a {model} standard curve needs more than {n_params} standards at {n_params} or more "
-            f"concentrations, two of them above zero; received {nominal.size} standards at "
-            f"{levels.size} concentrations"
-        )
 
 
 def _back_calculated_rows(
@@ -325,7 +288,7 @@ def fit_standard_curve(
     R² = 1 − Σw(y − ŷ)² / Σw(y − ȳ_w)² with ȳ_w the weighted mean; each non-zero standard is
     back-calculated through the curve, bias % = 100 · (x̂ − x) / x.
     """
-    _check_method(
+    check_method(
         model,
         weighting,
         {
@@ -336,19 +299,20 @@ def fit_standard_curve(
     )
     x = np.asarray(nominal_mg_per_ml, dtype=float).ravel()
     y = np.asarray(absorbance, dtype=float).ravel()
-    _check_data(model, x, y)
-    w = _weights(weighting, x, y)
+    check_data(model, x, y)
+    w = fit_weights(weighting, x, y)
     if model == "4pl":
-        params = _fit_4pl(x, y, w)
+        params = np.asarray(_fit_4pl(x, y, w).params)
     else:
         params = _fit_linear_in_params(x, y, w, 1 if model == "linear" else 2)
 
-    fitted = _response(model, params, x)
+    fitted = curve_response(model, params, x)
+    covariance, dof = _covariance(model, params, x, y - fitted, w)
     mean_w = np.sum(w * y) / np.sum(w)
     ss_tot = np.sum(w * (y - mean_w) ** 2)
     r2 = float(1.0 - np.sum(w * (y - fitted) ** 2) / ss_tot) if ss_tot > 0 else float("nan")
     low, high = float(x[x > 0].min()), float(x.max())
-    ends = _response(model, params, np.array([low, high]))
+    ends = curve_response(model, params, np.array([low, high]))
     trend = 1.0 if ends[1] >= ends[0] else -1.0
     rows = _back_calculated_rows(
         lambda a: _inverse(model, params, a, trend), x, y, bias_limit_pct, lowest_bias_limit_pct
@@ -383,6 +347,8 @@ def fit_standard_curve(
         min_r2=float(min_r2),
         bias_limit_pct=float(bias_limit_pct),
         lowest_bias_limit_pct=float(lowest_bias_limit_pct),
+        covariance=covariance,
+        dof=dof,
     )
 
 
@@ -397,95 +363,4 @@ def _standard_failure(row: BackCalculatedStandard, lowest: float) -> str:
         f"standard {row.nominal_mg_per_ml:g} mg/mL{where} back-calculates to "
         f"{row.back_calculated_mg_per_ml:.4g} mg/mL, bias {row.bias_pct:+.1f} %; "
         f"allowed ±{row.limit_pct:g} %"
-    )
-
-
-# --------------------------------------------------------------------------- samples
-
-
-def back_calculate(
-    curve: StandardCurve, absorbance: npt.ArrayLike, dilution_factor: npt.ArrayLike = 1.0
-) -> tuple[ProteinReading, ...]:
-    """Protein of each sample: in-well concentration from the curve × dilution factor.
-
-    protein [mg/mL] = f⁻¹(A) · DF, reported only when the in-well reading lies inside the
-    calibrated range (lowest to highest non-zero standard); never extrapolated.
-    """
-    if not curve.accepted:
-        raise CalculationError(
-            "the standard curve is not accepted, so no sample can be read from it: "
-            + "; ".join(curve.reasons)
-        )
-    y = np.atleast_1d(np.asarray(absorbance, dtype=float)).ravel()
-    dilution = np.broadcast_to(
-        require_positive("dilution factor", dilution_factor, ""), y.shape
-    ).astype(float)
-    low, high = curve.range_low_mg_per_ml, curve.range_high_mg_per_ml
-    x = np.atleast_1d(np.asarray(curve.concentration_at(y), dtype=float))
-    a_low, a_high = np.asarray(curve.absorbance_at(np.array([low, high])), dtype=float)
-    scale = max(abs(a_low), abs(a_high), 1.0) * 1e-12
-    trend = curve.trend
-    readings = []
-    for yi, xi, df in zip(y, x, dilution, strict=True):
-        reason = None
-        if not np.isfinite(yi):
-            reason = "the absorbance is not a number"
-        elif trend * (yi - a_high) > scale or xi > high * (1 + 1e-12):
-            reason = _outside(low, high, "above the highest standard")
-        elif trend * (a_low - yi) > scale or xi < low * (1 - 1e-12):
-            reason = _outside(low, high, "below the lowest standard")
-        elif not np.isfinite(xi):
-            reason = "the absorbance cannot be read back through the curve"
-        if reason is not None:
-            readings.append(ProteinReading(float(yi), None, float(df), None, False, reason))
-            continue
-        in_well = float(min(max(xi, low), high))
-        readings.append(
-            ProteinReading(float(yi), in_well, float(df), float(in_well * df), True, None)
-        )
-    return tuple(readings)
-
-
-def _outside(low: float, high: float, side: str) -> str:
-    return (
-        f"outside the calibrated range {low:g}–{high:g} mg/mL ({side}): "
-        f"re-assay at another dilution"
-    )
-
-
-def protein_from_a280(
-    a280: npt.ArrayLike,
-    extinction_coefficient_ml_per_mg_per_cm: npt.ArrayLike,
-    path_length_cm: npt.ArrayLike,
-    dilution_factor: npt.ArrayLike,
-) -> FloatOrArray:
-    """Protein from absorbance at 280 nm: c [mg/mL] = A280 / (ε [mL·mg⁻¹·cm⁻¹] · l [cm]) · DF."""
-    epsilon = require_positive(
-        "extinction coefficient at 280 nm",
-        extinction_coefficient_ml_per_mg_per_cm,
-        " (mL per mg per cm)",
-    )
-    path = require_positive("path length", path_length_cm, " (cm)")
-    dilution = require_positive("dilution factor", dilution_factor, "")
-    return as_result(np.asarray(a280, dtype=float) / (epsilon * path) * dilution)
-
-
-def replicate_summary(values: npt.ArrayLike) -> ReplicateSummary:
-    """Replicate statistics: mean, sd = √(Σ(v − v̄)² / (n − 1)), CV % = 100·sd/|mean|, se = sd/√n.
-
-    sd, CV and se are NaN for a single value; CV is NaN when the mean is 0.
-    """
-    v = np.atleast_1d(np.asarray(values, dtype=float)).ravel()
-    if v.size == 0:
-        raise CalculationError("no replicate values given; at least one is needed")
-    if not np.all(np.isfinite(v)):
-        raise CalculationError(
-            f"replicate values must all be numbers; received {v.tolist()} "
-            f"(no replicate is dropped automatically)"
-        )
-    mean = float(v.mean())
-    sd = float(v.std(ddof=1)) if v.size > 1 else float("nan")
-    cv = 100.0 * sd / abs(mean) if mean != 0 else float("nan")
-    return ReplicateSummary(
-        mean=mean, sd=sd, cv_pct=float(cv), n=int(v.size), se=float(sd / np.sqrt(v.size))
     )
