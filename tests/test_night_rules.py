@@ -10,7 +10,8 @@ import json
 from types import SimpleNamespace
 
 from pipeline.assay.plate_choice import choose_plates, plates_by_lot
-from pipeline.assay.plates import ActivityPlateResult, ProteinPlateResult
+from pipeline.assay.plates import ActivityPlateResult
+from pipeline.assay.protein_plates import ProteinPlateResult
 from pipeline.documents.lims_results import lims_files, result_rows
 from pipeline.release.change_note import change_note
 from pipeline.release.records import (

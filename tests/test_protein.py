@@ -189,7 +189,7 @@ def test_outside_the_range_is_none_with_a_reassay_reason() -> None:
             f"outside the calibrated range 0.125–1.5 mg/mL ({side}): re-assay at another dilution"
         )
     assert edge.in_range and edge.in_well_mg_per_ml == pytest.approx(1.5)
-    assert not missing.in_range and missing.reason == "the absorbance is not a number"
+    assert not missing.in_range and missing.reason == "the reading is not a number"
 
 
 def test_4pl_reading_beyond_its_asymptote_is_outside_not_extrapolated() -> None:

@@ -3,7 +3,7 @@
 import pandas as pd
 import pytest
 
-from pipeline.assay.plates import evaluate_protein_plate
+from pipeline.assay.protein_plates import evaluate_protein_plate
 from pipeline.records.controlled_files import load_catalog
 
 METHOD = load_catalog().methods["PROT-A280"]

@@ -8,18 +8,14 @@ entry here and the module that holds its method object, parser and evaluator.
 
 from __future__ import annotations
 
-from collections.abc import Callable, Mapping
-from dataclasses import dataclass, field
+from collections.abc import Callable
+from dataclasses import dataclass
 from enum import StrEnum
 from typing import Any
 
-from pipeline.assay.plate_reads import PlateReads
-from pipeline.assay.plates import (
-    ActivityPlateResult,
-    ProteinPlateResult,
-    evaluate_activity_plate,
-    evaluate_protein_plate,
-)
+from pipeline.assay.plate_reads import PlateContext, PlateReads
+from pipeline.assay.plates import ActivityPlateResult, evaluate_activity_plate
+from pipeline.assay.protein_plates import ProteinPlateResult, evaluate_protein_plate
 from pipeline.controlled.specs import (
     parse_endpoint_method,
     parse_kinetic_method,
@@ -33,13 +29,6 @@ class Measures(StrEnum):
 
     ACTIVITY = "activity"  # activity (U/mL) and the kinetic constants
     PROTEIN = "protein"  # protein (mg/mL)
-
-
-@dataclass(frozen=True)
-class PlateContext:
-    """What a plate's evaluation may need beyond its method: the products' constants, by lot."""
-
-    a280_extinction_ml_per_mg_per_cm: Mapping[str, float] = field(default_factory=dict)
 
 
 Evaluator = Callable[[str, PlateReads, Any, PlateContext], ActivityPlateResult | ProteinPlateResult]

@@ -9,7 +9,8 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 
-from pipeline.assay.plates import ActivityPlateResult, ProteinPlateResult
+from pipeline.assay.plates import ActivityPlateResult
+from pipeline.assay.protein_plates import ProteinPlateResult
 from pipeline.controlled.specs import Specification
 
 

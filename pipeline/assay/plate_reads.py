@@ -1,8 +1,9 @@
-"""One plate's exports as the night assembles them: its plate map, its reads and its method."""
+"""One plate's exports as the night assembles them, and what its evaluation may need beyond them."""
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from collections.abc import Mapping
+from dataclasses import dataclass, field
 
 import pandas as pd
 
@@ -14,3 +15,10 @@ class PlateReads:
     plate_map: pd.DataFrame
     reads: pd.DataFrame
     method_id: str
+
+
+@dataclass(frozen=True)
+class PlateContext:
+    """What a plate's evaluation may need beyond its method: the products' constants, by lot."""
+
+    a280_extinction_ml_per_mg_per_cm: Mapping[str, float] = field(default_factory=dict)

@@ -1,8 +1,8 @@
 """System suitability and per-well computation of one plate (pure functions).
 
 An activity plate carries a reference standard, substrate blanks (at the assay substrate and at
-each kinetic level) and lot wells; a protein plate carries a standard curve and lot wells. A
-failed criterion invalidates exactly what it touches — a well, a lot's result, or the whole
+each kinetic level) and lot wells; a protein plate (``pipeline.assay.protein_plates``) carries a standard curve and lot
+wells. A failed criterion invalidates exactly what it touches — a well, a lot's result, or the whole
 plate — and says why (docs/assay-rules.md, "Assay validity"). Nothing is dropped without a stated reason.
 """
 
@@ -14,10 +14,10 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
-from pipeline.controlled.specs import KineticMethod, ProteinMethod
+from pipeline.controlled.specs import KineticMethod
 from pipeline.errors import CalculationError, LotgateError
 from pipeline.plain_data import to_plain
-from pipeline.science import protein_readings, rates, standard_curves, units
+from pipeline.science import protein_readings, rates, units
 from pipeline.science.measurement import Measurement
 
 SUBSTRATE_MATCH_MM = 1e-6
@@ -56,24 +56,7 @@ class ActivityPlateResult:
                        "blank_rate_au_per_min": self.blank_rate_au_per_min})
 
 
-@dataclass(frozen=True)
-class ProteinPlateResult:
-    plate_id: str
-    method_id: str
-    method_version: str
-    valid: bool
-    reasons: tuple[str, ...]
-    protein: dict[str, Measurement]
-    curve: dict[str, Any]
-    samples: dict[str, list[dict[str, Any]]]
-
-    def summary(self) -> dict[str, Any]:
-        return to_plain({"plate_id": self.plate_id, "method": f"{self.method_id} v{self.method_version}",
-                       "valid": self.valid, "reasons": list(self.reasons),
-                       "curve_accepted": self.curve.get("accepted"), "curve_r2": self.curve.get("r2")})
-
-
-def _replicates(name: str, unit: str, values: np.ndarray, cv_max_pct: float, what: str) -> Measurement:
+def replicate_measurement(name: str, unit: str, values: np.ndarray, cv_max_pct: float, what: str) -> Measurement:
     """Mean, SE = SD/√n and CV of replicate results; CV above the method limit invalidates."""
     n = int(values.size)
     if n == 0:
@@ -210,7 +193,7 @@ def evaluate_activity_plate(plate_id: str, plate_map: pd.DataFrame, reads: pd.Da
         excluded = [f"well {plate.wells[i]}: {by_well[plate.wells[i]].reason}" for i in samples if not plate.ok[i]]
         good = samples[plate.ok[samples]]
         values = _activity_u_per_ml(method, plate.slope[good] - blank_rate, plate.dilution[good])
-        m = _replicates("activity", "U/mL", values, method.replicate_cv_max_pct, f"lot {lot} activity")
+        m = replicate_measurement("activity", "U/mL", values, method.replicate_cv_max_pct, f"lot {lot} activity")
         activity[lot] = Measurement(m.name, m.unit, m.value, se=m.se, n=m.n, valid=m.valid,
                                     reasons=(*m.reasons, *excluded) if not m.valid else m.reasons,
                                     detail={**m.detail, "excluded_wells": excluded,
@@ -288,106 +271,3 @@ def _traces(plate: _Columns, time_min: np.ndarray, absorbance: np.ndarray,
                                                    "intercept_au", "flag")}})
         out[str(lot)] = {"time_min": times, "curves": curves}
     return out
-
-
-def evaluate_a280_plate(plate_id: str, merged: pd.DataFrame, method: ProteinMethod, lots: list[str],
-                        extinction_by_lot: dict[str, float]) -> ProteinPlateResult:
-    """Protein by absorbance at 280 nm, blank-corrected, inside the photometer's linear range only.
-
-    protein [mg/mL] = (A280 − mean buffer blank) / (ε [mL·mg⁻¹·cm⁻¹] · l [cm]) · DF
-    """
-    version = method.document.version
-    blanks = merged.loc[merged["role"] == "blank", "absorbance"].to_numpy(dtype=float)
-    if blanks.size == 0:
-        reasons = (f"plate {plate_id}: no buffer blank wells for the A280 reading",)
-        return ProteinPlateResult(plate_id, method.method_id, version, False, reasons,
-                                  {lot: Measurement("protein", "mg/mL", None, valid=False, reasons=reasons) for lot in lots},
-                                  {}, {})
-    blank = float(blanks.mean())
-    low, high = float(method.linear_min_au or 0.0), float(method.linear_max_au or 0.0)
-    result: dict[str, Measurement] = {}
-    samples_out: dict[str, list[dict[str, Any]]] = {}
-    for lot in lots:
-        wells = merged[(merged["role"] == "sample") & (merged["lot_id"] == lot)]
-        corrected = wells["absorbance"].to_numpy(dtype=float) - blank
-        dilution = wells["dilution_factor"].to_numpy(dtype=float)
-        epsilon = extinction_by_lot.get(lot)
-        inside = (corrected >= low) & (corrected <= high)
-        samples_out[lot] = [{"well": w, "absorbance": float(a), "dilution_factor": float(d), "in_range": bool(i)}
-                            for w, a, d, i in zip(wells["well"], corrected, dilution, inside, strict=True)]
-        if epsilon is None:
-            result[lot] = Measurement("protein", "mg/mL", None, valid=False,
-                                      reasons=(f"lot {lot}: the product gives no A280 extinction coefficient",))
-            continue
-        if not inside.all():
-            side = "above" if (corrected > high).any() else "below"
-            result[lot] = Measurement("protein", "mg/mL", None, valid=False, n=int(corrected.size), reasons=(
-                f"{int((~inside).sum())} of {corrected.size} replicates read {side} the linear range "
-                f"{low:g}–{high:g} AU at 280 nm: re-assay at another dilution",))
-            continue
-        values = np.asarray(protein_readings.protein_from_a280(corrected, epsilon, float(method.path_length_cm or 0.0), dilution),
-                            dtype=float)
-        result[lot] = _replicates("protein", "mg/mL", values, method.replicate_cv_max_pct, f"lot {lot} protein")
-    curve = {"model": "A280", "blank_au": blank, "linear_range_au": [low, high],
-             "path_length_cm": method.path_length_cm, "accepted": True, "reasons": []}
-    return ProteinPlateResult(plate_id, method.method_id, version, True, (), result, curve, samples_out)
-
-
-def evaluate_protein_plate(plate_id: str, plate_map: pd.DataFrame, reads: pd.DataFrame,
-                           method: ProteinMethod, extinction_by_lot: dict[str, float] | None = None) -> ProteinPlateResult:
-    """Standard curve acceptance, then protein of each lot inside the calibrated range only.
-
-    protein [mg/mL] = in-well concentration from the curve · dilution factor
-    (or, for an A280 method, see ``evaluate_a280_plate``)
-    """
-    used = plate_map[plate_map["role"] != "empty"]
-    lots = sorted({str(x) for x in used.loc[used["role"] == "sample", "lot_id"].dropna()})
-    merged = used.merge(reads[["well", "absorbance", "wavelength_nm"]], on="well", how="left")
-    version = method.document.version
-
-    def invalid(reasons: list[str], curve: dict[str, Any] | None = None) -> ProteinPlateResult:
-        protein_by_lot = {lot: Measurement("protein", "mg/mL", None, valid=False, reasons=tuple(reasons)) for lot in lots}
-        return ProteinPlateResult(plate_id, method.method_id, version, False, tuple(reasons), protein_by_lot, curve or {}, {})
-
-    missing = merged.loc[merged["absorbance"].isna(), "well"].tolist()
-    if missing:
-        return invalid([f"plate {plate_id}: the read has no value for mapped well(s) {', '.join(missing[:8])}"])
-    wavelengths = sorted(set(int(x) for x in merged["wavelength_nm"]))
-    if wavelengths != [int(method.wavelength_nm)]:
-        return invalid([f"plate {plate_id}: read at {', '.join(map(str, wavelengths))} nm; method {method.method_id} requires {method.wavelength_nm:.0f} nm"])
-    if method.kind == "uv280":
-        return evaluate_a280_plate(plate_id, merged, method, lots, extinction_by_lot or {})
-    standards = merged[merged["role"] == "standard"]
-    if standards.empty:
-        return invalid([f"plate {plate_id}: no standard curve wells"])
-    try:
-        curve = standard_curves.fit_standard_curve(
-            standards["nominal_mg_per_ml"].to_numpy(dtype=float), standards["absorbance"].to_numpy(dtype=float),
-            method.curve_model, weighting=method.curve_weighting, min_r2=method.curve_min_r2,
-            bias_limit_pct=method.bias_limit_pct, lowest_bias_limit_pct=method.lowest_bias_limit_pct)
-    except LotgateError as exc:
-        return invalid([f"plate {plate_id}: the standard curve cannot be fitted: {exc}"])
-    curve_dict = {**curve.to_dict(), "params": [float(v) for v in curve.params], "points": curve.response_curve(),
-                  "param_names": list(curve.param_names), "standards": [[float(x), float(y)] for x, y in
-                                                   zip(standards["nominal_mg_per_ml"], standards["absorbance"], strict=True)]}
-    if not curve.accepted:
-        return invalid([f"plate {plate_id}: standard curve not accepted: {'; '.join(curve.reasons)}"], curve_dict)
-    result: dict[str, Measurement] = {}
-    samples_out: dict[str, list[dict[str, Any]]] = {}
-    for lot in lots:
-        wells = merged[(merged["role"] == "sample") & (merged["lot_id"] == lot)]
-        readings = []
-        for absorbance_value, dilution in zip(wells["absorbance"], wells["dilution_factor"], strict=True):
-            readings.extend(protein_readings.back_calculate(curve, np.array([float(absorbance_value)]), dilution_factor=float(dilution)))
-        samples_out[lot] = [{"well": w, "absorbance": float(a), "dilution_factor": float(d),
-                             "mg_per_ml": r.concentration_mg_per_ml, "in_well_mg_per_ml": r.in_well_mg_per_ml,
-                             "in_range": r.in_range}
-                            for w, a, d, r in zip(wells["well"], wells["absorbance"], wells["dilution_factor"], readings, strict=True)]
-        outside = [r for r in readings if not r.in_range]
-        if outside:
-            result[lot] = Measurement("protein", "mg/mL", None, valid=False, n=len(readings),
-                                      reasons=(f"{len(outside)} of {len(readings)} replicates {outside[0].reason}",))
-            continue
-        values = np.array([r.concentration_mg_per_ml for r in readings], dtype=float)
-        result[lot] = _replicates("protein", "mg/mL", values, method.replicate_cv_max_pct, f"lot {lot} protein")
-    return ProteinPlateResult(plate_id, method.method_id, version, True, (), result, curve_dict, samples_out)

@@ -84,7 +84,7 @@ def standard_curve_chart(curve: dict[str, Any] | None, samples: list[dict[str, A
     """Protein standards (points), the fitted curve, the calibrated range and the samples on it.
 
     Samples are placed at the in-well concentration read from the curve; a sample whose
-    absorbance lies outside the calibrated range is drawn as a triangle at the frame's edge.
+    reading lies outside the calibrated range is drawn as a triangle at the frame's edge.
     """
     title = "Protein standard curve"
     if not isinstance(curve, dict):
@@ -93,14 +93,14 @@ def standard_curve_chart(curve: dict[str, Any] | None, samples: list[dict[str, A
     standards = [s for s in (curve.get("standards") or []) if isinstance(s, list | tuple) and len(s) >= 2]
     sx, sy = floats([s[0] for s in standards]), floats([s[1] for s in standards])
     low, high = get(curve, "range_low_mg_per_ml"), get(curve, "range_high_mg_per_ml")
-    sample_a = floats([get(s, "absorbance") for s in samples])
+    sample_a = floats([get(s, "signal") for s in samples])
     xr = span([*sx, *floats([low, high])])
     yr = span([*sy, *sample_a])
     d = Drawing(WIDTH, HEIGHT)
     model = str(get(curve, "model", ""))
     accepted = get(curve, "accepted")
     chart_title(d, f"{title} ({clean(model, 20)} model)", "" if accepted in (True, None) else "curve NOT accepted")
-    f = axes_frame(d, xr, yr, "protein in the well (mg/mL)", "absorbance (AU)", (52, 36, WIDTH - 66, HEIGHT - 82))
+    f = axes_frame(d, xr, yr, "protein in the well (mg/mL)", clean(get(curve, "signal_label") or "signal", 40), (52, 36, WIDTH - 66, HEIGHT - 82))
     points = get(curve, "points", {})
     grid, fitted = _inside_frame(f, floats(get(points, "mg_per_ml", [])), floats(get(points, "absorbance_au", [])))
     lo_x = float(low) if isinstance(low, int | float) else f.xmin

@@ -4,9 +4,11 @@ from __future__ import annotations
 
 from typing import Any
 
-from pipeline.assay.method_kinds import PlateContext, kind_of
+from pipeline.assay.method_kinds import kind_of
 from pipeline.assay.plate_choice import choose_plates, plates_by_lot
-from pipeline.assay.plates import ActivityPlateResult, ProteinPlateResult
+from pipeline.assay.plate_reads import PlateContext
+from pipeline.assay.plates import ActivityPlateResult
+from pipeline.assay.protein_plates import ProteinPlateResult
 from pipeline.controlled.catalog import Catalog
 from pipeline.intake.assembly import Assembly
 from pipeline.release.lot_evaluation import LotEvaluation, LotInputs, evaluate_lots

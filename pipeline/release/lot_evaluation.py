@@ -15,7 +15,8 @@ from typing import Any
 
 import numpy as np
 
-from pipeline.assay.plates import ActivityPlateResult, KineticSeries, ProteinPlateResult
+from pipeline.assay.plates import ActivityPlateResult, KineticSeries
+from pipeline.assay.protein_plates import ProteinPlateResult
 from pipeline.controlled.specs import KineticMethod, Specification
 from pipeline.errors import CalculationError
 from pipeline.plain_data import to_plain

@@ -81,13 +81,13 @@ def back_calculate(
     for yi, xi, df in zip(y, x, dilution, strict=True):
         reason = None
         if not np.isfinite(yi):
-            reason = "the absorbance is not a number"
+            reason = "the reading is not a number"
         elif trend * (yi - a_high) > scale or xi > high * (1 + 1e-12):
             reason = _outside(low, high, "above the highest standard")
         elif trend * (a_low - yi) > scale or xi < low * (1 - 1e-12):
             reason = _outside(low, high, "below the lowest standard")
         elif not np.isfinite(xi):
-            reason = "the absorbance cannot be read back through the curve"
+            reason = "the reading cannot be read back through the curve"
         if reason is not None:
             readings.append(ProteinReading(float(yi), None, float(df), None, False, reason))
             continue

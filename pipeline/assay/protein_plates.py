@@ -1,0 +1,169 @@
+"""Protein plates: a standard curve read by absorbance or fluorescence, or A280 (pure functions).
+
+Each evaluator checks the plate's reads against its method, then gives every lot on the plate a
+protein result (mg/mL) or the reasons it has none; a failed curve invalidates the whole plate.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+import pandas as pd
+
+from pipeline.assay.plates import replicate_measurement
+from pipeline.controlled.specs import ProteinMethod
+from pipeline.errors import LotgateError
+from pipeline.plain_data import to_plain
+from pipeline.science import protein_readings, standard_curves
+from pipeline.science.measurement import Measurement
+
+
+@dataclass(frozen=True)
+class Signal:
+    """What the reader measured in each well: its column in the read export and its name for a person."""
+
+    column: str
+    label: str  # e.g. "absorbance (AU)": the axis and table heading of the report
+
+
+ABSORBANCE = Signal(column="absorbance", label="absorbance (AU)")
+
+
+@dataclass(frozen=True)
+class ProteinPlateResult:
+    plate_id: str
+    method_id: str
+    method_version: str
+    valid: bool
+    reasons: tuple[str, ...]
+    protein: dict[str, Measurement]
+    curve: dict[str, Any]
+    samples: dict[str, list[dict[str, Any]]]
+
+    def summary(self) -> dict[str, Any]:
+        return to_plain({"plate_id": self.plate_id, "method": f"{self.method_id} v{self.method_version}",
+                       "valid": self.valid, "reasons": list(self.reasons),
+                       "curve_accepted": self.curve.get("accepted"), "curve_r2": self.curve.get("r2")})
+
+
+def invalid_protein_plate(plate_id: str, method: Any, lots: list[str], reasons: list[str],
+                          curve: dict[str, Any] | None = None) -> ProteinPlateResult:
+    """A plate whose lots get no protein result, each with the plate's reasons."""
+    protein_by_lot = {lot: Measurement("protein", "mg/mL", None, valid=False, reasons=tuple(reasons)) for lot in lots}
+    return ProteinPlateResult(plate_id, method.method_id, method.document.version, False, tuple(reasons),
+                              protein_by_lot, curve or {}, {})
+
+
+def evaluate_a280_plate(plate_id: str, merged: pd.DataFrame, method: ProteinMethod, lots: list[str],
+                        extinction_by_lot: dict[str, float]) -> ProteinPlateResult:
+    """Protein by absorbance at 280 nm, blank-corrected, inside the photometer's linear range only.
+
+    protein [mg/mL] = (A280 − mean buffer blank) / (ε [mL·mg⁻¹·cm⁻¹] · l [cm]) · DF
+    """
+    version = method.document.version
+    blanks = merged.loc[merged["role"] == "blank", "absorbance"].to_numpy(dtype=float)
+    if blanks.size == 0:
+        return invalid_protein_plate(plate_id, method, lots, [f"plate {plate_id}: no buffer blank wells for the A280 reading"])
+    blank = float(blanks.mean())
+    low, high = float(method.linear_min_au or 0.0), float(method.linear_max_au or 0.0)
+    result: dict[str, Measurement] = {}
+    samples_out: dict[str, list[dict[str, Any]]] = {}
+    for lot in lots:
+        wells = merged[(merged["role"] == "sample") & (merged["lot_id"] == lot)]
+        corrected = wells["absorbance"].to_numpy(dtype=float) - blank
+        dilution = wells["dilution_factor"].to_numpy(dtype=float)
+        epsilon = extinction_by_lot.get(lot)
+        inside = (corrected >= low) & (corrected <= high)
+        samples_out[lot] = [{"well": w, "signal": float(a), "dilution_factor": float(d), "in_range": bool(i)}
+                            for w, a, d, i in zip(wells["well"], corrected, dilution, inside, strict=True)]
+        if epsilon is None:
+            result[lot] = Measurement("protein", "mg/mL", None, valid=False,
+                                      reasons=(f"lot {lot}: the product gives no A280 extinction coefficient",))
+            continue
+        if not inside.all():
+            side = "above" if (corrected > high).any() else "below"
+            result[lot] = Measurement("protein", "mg/mL", None, valid=False, n=int(corrected.size), reasons=(
+                f"{int((~inside).sum())} of {corrected.size} replicates read {side} the linear range "
+                f"{low:g}–{high:g} AU at 280 nm: re-assay at another dilution",))
+            continue
+        values = np.asarray(protein_readings.protein_from_a280(corrected, epsilon, float(method.path_length_cm or 0.0), dilution),
+                            dtype=float)
+        result[lot] = replicate_measurement("protein", "mg/mL", values, method.replicate_cv_max_pct, f"lot {lot} protein")
+    curve = {"model": "A280", "blank_au": blank, "linear_range_au": [low, high], "signal_label": ABSORBANCE.label,
+             "path_length_cm": method.path_length_cm, "accepted": True, "reasons": []}
+    return ProteinPlateResult(plate_id, method.method_id, version, True, (), result, curve, samples_out)
+
+
+def evaluate_protein_plate(plate_id: str, plate_map: pd.DataFrame, reads: pd.DataFrame,
+                           method: ProteinMethod, extinction_by_lot: dict[str, float] | None = None) -> ProteinPlateResult:
+    """Standard curve acceptance, then protein of each lot inside the calibrated range only.
+
+    protein [mg/mL] = in-well concentration from the curve · dilution factor
+    (or, for an A280 method, see ``evaluate_a280_plate``)
+    """
+    used = plate_map[plate_map["role"] != "empty"]
+    lots = sorted({str(x) for x in used.loc[used["role"] == "sample", "lot_id"].dropna()})
+    merged = used.merge(reads[["well", "absorbance", "wavelength_nm"]], on="well", how="left")
+
+    def invalid(reasons: list[str]) -> ProteinPlateResult:
+        return invalid_protein_plate(plate_id, method, lots, reasons)
+
+    missing = merged.loc[merged["absorbance"].isna(), "well"].tolist()
+    if missing:
+        return invalid([f"plate {plate_id}: the read has no value for mapped well(s) {', '.join(missing[:8])}"])
+    wavelengths = sorted(set(int(x) for x in merged["wavelength_nm"]))
+    if wavelengths != [int(method.wavelength_nm)]:
+        return invalid([f"plate {plate_id}: read at {', '.join(map(str, wavelengths))} nm; method {method.method_id} requires {method.wavelength_nm:.0f} nm"])
+    if method.kind == "uv280":
+        return evaluate_a280_plate(plate_id, merged, method, lots, extinction_by_lot or {})
+    return evaluate_standard_curve_plate(plate_id, merged, method, lots, ABSORBANCE)
+
+
+def evaluate_standard_curve_plate(plate_id: str, merged: pd.DataFrame, method: Any, lots: list[str],
+                                  signal: Signal) -> ProteinPlateResult:
+    """The standard curve from the standards' signal, then each lot's protein inside the calibrated range.
+
+    ``merged`` is the plate map's used wells with the reader's ``signal.column``; ``method`` gives the
+    curve model, weighting, acceptance limits and replicate CV limit.
+    protein [mg/mL] = in-well concentration read off the curve · dilution factor
+    """
+    version = method.document.version
+    standards = merged[merged["role"] == "standard"]
+    column = signal.column
+    if standards.empty:
+        return invalid_protein_plate(plate_id, method, lots, [f"plate {plate_id}: no standard curve wells"])
+    try:
+        curve = standard_curves.fit_standard_curve(
+            standards["nominal_mg_per_ml"].to_numpy(dtype=float), standards[column].to_numpy(dtype=float),
+            method.curve_model, weighting=method.curve_weighting, min_r2=method.curve_min_r2,
+            bias_limit_pct=method.bias_limit_pct, lowest_bias_limit_pct=method.lowest_bias_limit_pct)
+    except LotgateError as exc:
+        return invalid_protein_plate(plate_id, method, lots, [f"plate {plate_id}: the standard curve cannot be fitted: {exc}"])
+    curve_dict = {**curve.to_dict(), "params": [float(v) for v in curve.params], "points": curve.response_curve(),
+                  "param_names": list(curve.param_names), "standards": [[float(x), float(y)] for x, y in
+                                                   zip(standards["nominal_mg_per_ml"], standards[column], strict=True)],
+                  "signal_label": signal.label}
+    if not curve.accepted:
+        return invalid_protein_plate(plate_id, method, lots,
+                                     [f"plate {plate_id}: standard curve not accepted: {'; '.join(curve.reasons)}"], curve_dict)
+    result: dict[str, Measurement] = {}
+    samples_out: dict[str, list[dict[str, Any]]] = {}
+    for lot in lots:
+        wells = merged[(merged["role"] == "sample") & (merged["lot_id"] == lot)]
+        readings = []
+        for value, dilution in zip(wells[column], wells["dilution_factor"], strict=True):
+            readings.extend(protein_readings.back_calculate(curve, np.array([float(value)]), dilution_factor=float(dilution)))
+        samples_out[lot] = [{"well": w, "signal": float(a), "dilution_factor": float(d),
+                             "mg_per_ml": r.concentration_mg_per_ml, "in_well_mg_per_ml": r.in_well_mg_per_ml,
+                             "in_range": r.in_range}
+                            for w, a, d, r in zip(wells["well"], wells[column], wells["dilution_factor"], readings, strict=True)]
+        outside = [r for r in readings if not r.in_range]
+        if outside:
+            result[lot] = Measurement("protein", "mg/mL", None, valid=False, n=len(readings),
+                                      reasons=(f"{len(outside)} of {len(readings)} replicates {outside[0].reason}",))
+            continue
+        values = np.array([r.concentration_mg_per_ml for r in readings], dtype=float)
+        result[lot] = replicate_measurement("protein", "mg/mL", values, method.replicate_cv_max_pct, f"lot {lot} protein")
+    return ProteinPlateResult(plate_id, method.method_id, version, True, (), result, curve_dict, samples_out)
