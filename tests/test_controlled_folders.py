@@ -1,7 +1,7 @@
 """Which controlled folders a night reads: the workspace's setting, else the environment, else shipped.
 
 Check values are the shipped documents themselves (specs/products/LLC-200.yaml is version "3.1";
-specs/methods/ holds four methods, schemas/ five export layouts) and copies of them changed here.
+specs/methods/ holds five methods, schemas/ six export layouts) and copies of them changed here.
 """
 
 import shutil
@@ -64,8 +64,8 @@ def test_the_workspace_setting_comes_before_the_environment(tmp_path, monkeypatc
     catalog, layouts = open_controlled_documents(open_workspace(tmp_path))
     assert catalog.specifications["LLC-200"].document.version == "3.1-P2"
     assert catalog.specifications["PGR-040"].document.version != "3.1-P2"
-    assert sorted(catalog.methods) == ["LIP-PNPB", "PROT-A280", "PROT-DYE595", "PRT-SAAPF"]
-    assert len(layouts) == 5
+    assert sorted(catalog.methods) == ["LIP-PNPB", "PROT-A280", "PROT-DYE595", "PROT-FL485", "PRT-SAAPF"]
+    assert len(layouts) == 6
 
 
 def test_the_environment_comes_before_the_shipped_folders(tmp_path, monkeypatch):

@@ -13,6 +13,7 @@ from dataclasses import dataclass
 from enum import StrEnum
 from typing import Any
 
+from pipeline.assay.fluorescence import evaluate_fluorescence_plate, parse_fluorescence_method
 from pipeline.assay.plate_reads import PlateContext, PlateReads
 from pipeline.assay.plates import ActivityPlateResult, evaluate_activity_plate
 from pipeline.assay.protein_plates import ProteinPlateResult, evaluate_protein_plate
@@ -63,6 +64,8 @@ KINDS: tuple[MethodKind, ...] = (
     MethodKind("kinetic", Measures.ACTIVITY, "kinetic-read", "kinetic", parse_kinetic_method, _activity),
     MethodKind("endpoint", Measures.PROTEIN, "endpoint-read", "endpoint", parse_endpoint_method, _protein),
     MethodKind("uv280", Measures.PROTEIN, "endpoint-read", "endpoint", parse_uv280_method, _protein),
+    MethodKind("fluorescence-endpoint", Measures.PROTEIN, "fluorescence-read", "fluorescence",
+               parse_fluorescence_method, evaluate_fluorescence_plate),
 )
 _BY_MEASUREMENT = {kind.measurement: kind for kind in KINDS}
 
