@@ -1,4 +1,4 @@
-"""Signing identities, PAdES signatures on certificates of analysis, and their verification.
+"""Signing identities: loading them, PAdES signatures on certificates of analysis, signed records.
 
 Each step a plain function (a DEMO identity is made by ``pipeline.records.demo_identity``, and
 signed PDFs are checked by ``pipeline.records.pdf_verification``):
