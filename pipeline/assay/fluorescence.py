@@ -88,7 +88,7 @@ def evaluate_fluorescence_plate(plate_id: str, plate: PlateReads, method: Fluore
         return invalid_protein_plate(plate_id, method, lots, [
             f"plate {plate_id}: standard well(s) {_listed(standards)} at or above the reader's saturation "
             f"({method.reader_max_rfu:g} RFU); the standard curve cannot be built"])
-    signal = Signal(column="intensity_rfu", label="fluorescence (RFU)")
+    signal = Signal(column="intensity_rfu", label="fluorescence (RFU)", heading="Intensity (RFU)")
     result = evaluate_standard_curve_plate(plate_id, merged, method, lots, signal)
     return _saturated_samples_invalid(result, saturated, method)
 

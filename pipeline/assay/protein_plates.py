@@ -25,10 +25,11 @@ class Signal:
     """What the reader measured in each well: its column in the read export and its name for a person."""
 
     column: str
-    label: str  # e.g. "absorbance (AU)": the axis and table heading of the report
+    label: str  # the chart's axis, e.g. "absorbance (AU)"
+    heading: str  # the sample table's column heading, short enough for its column
 
 
-ABSORBANCE = Signal(column="absorbance", label="absorbance (AU)")
+ABSORBANCE = Signal(column="absorbance", label="absorbance (AU)", heading="Absorbance (AU)")
 
 
 @dataclass(frozen=True)
@@ -91,7 +92,7 @@ def evaluate_a280_plate(plate_id: str, merged: pd.DataFrame, method: ProteinMeth
         values = np.asarray(protein_readings.protein_from_a280(corrected, epsilon, float(method.path_length_cm or 0.0), dilution),
                             dtype=float)
         result[lot] = replicate_measurement("protein", "mg/mL", values, method.replicate_cv_max_pct, f"lot {lot} protein")
-    curve = {"model": "A280", "blank_au": blank, "linear_range_au": [low, high], "signal_label": ABSORBANCE.label,
+    curve = {"model": "A280", "blank_au": blank, "linear_range_au": [low, high], "signal_label": ABSORBANCE.label, "signal_heading": ABSORBANCE.heading,
              "path_length_cm": method.path_length_cm, "accepted": True, "reasons": []}
     return ProteinPlateResult(plate_id, method.method_id, version, True, (), result, curve, samples_out)
 
@@ -144,7 +145,7 @@ def evaluate_standard_curve_plate(plate_id: str, merged: pd.DataFrame, method: A
     curve_dict = {**curve.to_dict(), "params": [float(v) for v in curve.params], "points": curve.response_curve(),
                   "param_names": list(curve.param_names), "standards": [[float(x), float(y)] for x, y in
                                                    zip(standards["nominal_mg_per_ml"], standards[column], strict=True)],
-                  "signal_label": signal.label}
+                  "signal_label": signal.label, "signal_heading": signal.heading}
     if not curve.accepted:
         return invalid_protein_plate(plate_id, method, lots,
                                      [f"plate {plate_id}: standard curve not accepted: {'; '.join(curve.reasons)}"], curve_dict)

@@ -205,8 +205,8 @@ def _protein_curve(curve: Any) -> list[Any]:
         rows.append([num(get(b, "nominal_mg_per_ml")), num(get(b, "back_calculated_mg_per_ml")),
                      num(get(b, "bias_pct"), 3), _yes_no(ok)])
     samples = [s for s in _items(get(curve, "samples", [])) if isinstance(s, dict)]
-    signal = clean(get(curve, "signal_label") or "signal", 40)
-    srows: list[list[Any]] = [["Sample well", signal[:1].upper() + signal[1:], "Dilution", "Protein (mg/mL)", "In range"]]
+    srows: list[list[Any]] = [["Sample well", clean(get(curve, "signal_heading") or "Signal", 24), "Dilution",
+                               "Protein (mg/mL)", "In range"]]
     for s in samples:
         srows.append([clean(get(s, "well"), 20), num(get(s, "signal")),
                       num(get(s, "dilution_factor")), num(get(s, "mg_per_ml")),
