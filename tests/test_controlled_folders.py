@@ -87,7 +87,7 @@ def test_a_missing_folder_is_refused_when_the_workspace_opens(tmp_path):
 @pytest.mark.parametrize(("setting", "phrase"), [
     ({"products": "specs"}, "allowed: specifications, methods, layouts"),
     ({"layouts": 3}, "'controlled.layouts' must be a folder name"),
-    (["specs"], "'controlled' must map specifications, methods, layouts to folders"),
+    (["specs"], "'controlled' must be a mapping of specifications, methods, layouts to folders"),
 ])
 def test_a_malformed_setting_is_refused(tmp_path, setting, phrase):
     write_settings(tmp_path, {"controlled": setting})
