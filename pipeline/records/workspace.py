@@ -15,6 +15,7 @@ from pydantic import Field, field_validator
 
 from pipeline.controlled.strict import Strict, Text, checked
 from pipeline.errors import SpecificationError
+from pipeline.records.database import check_url
 
 DEFAULT_TIME_ZONE = "Europe/Berlin"
 
@@ -150,12 +151,14 @@ def read_settings(root: Path) -> WorkspaceSettings:
 def open_workspace(root: Path, *, plant_name: str | None = None, signer_name: str | None = None) -> Workspace:
     """Read ``DIR/workspace.yaml`` if present; the environment's LOTGATE_DATABASE_URL wins.
 
-    An unknown key, a value of the wrong type, an unknown time zone or a ``controlled:`` setting
-    that names a missing folder is refused here, before any night starts.
+    An unknown key, a value of the wrong type, an unknown time zone, a database URL that cannot be
+    used or a ``controlled:`` setting that names a missing folder is refused here, before any night
+    starts.
     """
     root = root.resolve()
     settings = read_settings(root)
     url = os.environ.get("LOTGATE_DATABASE_URL") or settings.database_url or f"sqlite:///{root / 'lotgate.db'}"
+    check_url(url)
     signing = settings.signing or SigningSettings()
     return Workspace(
         root=root,
