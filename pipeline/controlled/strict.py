@@ -61,34 +61,53 @@ def checked(model: type[M], raw: Any, where: str) -> M:
     try:
         return model.model_validate(raw)
     except ValidationError as exc:
-        raise SpecificationError(f"{where}: {refusal(model, exc.errors()[0])}") from exc
+        errors = exc.errors()
+        # A mistyped key is reported as such (with the key it resembles), not as the field it left missing.
+        first = next((e for e in errors if e["type"] == "extra_forbidden"), errors[0])
+        raise SpecificationError(f"{where}: {refusal(model, first, raw)}") from exc
 
 
-def refusal(model: type[BaseModel], error: Any) -> str:
-    """One pydantic error as a sentence in the engineer's words (field path, what was found, what is allowed)."""
+def refusal(model: type[BaseModel], error: Any, raw: Any = None) -> str:
+    """One pydantic error as a sentence in the engineer's words (field path, what was found, what is allowed).
+
+    A field inside a list of coded entries (a specification's attributes) also names the entry's code.
+    """
     loc = tuple(part for part in error["loc"] if isinstance(part, int | str))
-    path = _path(loc)
+    field = f"'{_path(loc)}'{_entry_code(raw, loc)}"
     kind, found, ctx = error["type"], error.get("input"), error.get("ctx") or {}
     if kind == "extra_forbidden":
-        return _unknown_key(model, loc)
+        return _unknown_key(model, loc, raw)
     if kind == "missing" or (found is None and kind in _TYPE_WORDS):
-        return f"the field '{path}' is missing"
+        return f"the field {field} is missing"
     if not loc and kind in _TYPE_WORDS:
         return f"expected a mapping of fields at the top level, found {_shown(found)}"
     if kind == "finite_number":
-        return f"'{path}' must be a finite number, found {_shown(found)} (NaN and infinity are not limits)"
+        return f"{field} must be a finite number, found {_shown(found)} (NaN and infinity are not limits)"
     if kind in _BOUND_WORDS:
         key, word = _BOUND_WORDS[kind]
         bound = "zero" if ctx.get(key) == 0 else ctx.get(key)
-        return f"'{path}' must be {word} {bound}, found {_shown(found)}"
+        return f"{field} must be {word} {bound}, found {_shown(found)}"
     if kind in ("too_short", "string_too_short"):
-        return f"'{path}' must not be empty"
+        return f"{field} must not be empty"
     if kind == "literal_error":
-        return f"'{path}' must be {ctx.get('expected')}, found {_shown(found)}"
+        return f"{field} must be {ctx.get('expected')}, found {_shown(found)}"
     if kind == "value_error":
-        return f"'{path}' {ctx.get('error')}"
+        return f"{field} {ctx.get('error')}"
     wanted = _described(model, loc) or _TYPE_WORDS.get(kind, "a value of another kind")
-    return f"'{path}' must be {wanted}, found {_shown(found)}"
+    return f"{field} must be {wanted}, found {_shown(found)}"
+
+
+def _entry_code(raw: Any, loc: tuple[int | str, ...]) -> str:
+    """" (code 'specific_activity')" for a field inside a list entry that has a code; else nothing."""
+    code, current = None, raw
+    for part in loc:
+        try:
+            current = current[part]
+        except (KeyError, IndexError, TypeError):
+            break
+        if isinstance(part, int) and isinstance(current, dict) and isinstance(current.get("code"), str):
+            code = current["code"]
+    return f" (code '{code}')" if code else ""
 
 
 def _path(loc: tuple[int | str, ...]) -> str:
@@ -103,11 +122,11 @@ def _shown(value: Any) -> str:
     return text if len(text) <= 60 else text[:57] + "..."
 
 
-def _unknown_key(model: type[BaseModel], loc: tuple[int | str, ...]) -> str:
+def _unknown_key(model: type[BaseModel], loc: tuple[int | str, ...], raw: Any) -> str:
     key, known = str(loc[-1]), _fields_at(model, loc[:-1])
     near = difflib.get_close_matches(key, known, n=1, cutoff=0.6)
     hint = f" (did you mean '{near[0]}'?)" if near else ""
-    where = f" in '{_path(loc[:-1])}'" if loc[:-1] else ""
+    where = f" in '{_path(loc[:-1])}'{_entry_code(raw, loc[:-1])}" if loc[:-1] else ""
     return f"unknown field '{key}'{where}{hint}; allowed: {', '.join(known)}"
 
 
