@@ -63,7 +63,7 @@ def check_url(url: str) -> None:
     from sqlalchemy.exc import ArgumentError, NoSuchModuleError
 
     try:
-        make_url(url).get_dialect()
+        make_url(url).get_dialect().import_dbapi()
     except (ArgumentError, NoSuchModuleError, ImportError) as exc:
         raise StoreError(f"the database URL {safe_url(url)} cannot be used ({exc.__class__.__name__}: {exc}); "
                          "allowed: sqlite:///FILE or postgresql+psycopg://USER@HOST:PORT/DATABASE") from exc
