@@ -107,3 +107,12 @@ def test_a_failing_unlock_keeps_its_cause_and_not_the_secret(tmp_path):
     assert "Invalid password or PKCS12 data" in message  # the cryptography library's own words
     assert str(identity.p12_path) in message and wrong.decode() not in message
 
+
+
+def test_a_person_s_identity_is_never_sent_to_a_worker(tmp_path):
+    from pipeline.night.open import IdentitySigner
+
+    identity = create_demo_identity(tmp_path, "Riverside", "Dana Whitlock")
+    signer = IdentitySigner(signing.load_identity(identity.p12_path, passphrase_file=identity.passphrase_path))
+    with pytest.raises(SigningError, match="unlocked in this process only"):
+        pickle.dumps(signer)

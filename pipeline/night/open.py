@@ -29,7 +29,7 @@ class IdentitySigner:
     """
 
     identity: Any
-    p12: Path
+    p12: Path | None = None  # None: an identity a person unlocked, used in this process only
     passphrase_file: Path | None = None
     passphrase: bytes | None = field(default=None, repr=False)
 
@@ -47,6 +47,9 @@ class IdentitySigner:
         return sign_pdf(pdf, self.identity, reason=reason, location=location, signed_at=signed_at)
 
     def __reduce__(self) -> tuple[Any, tuple[Any, ...]]:
+        if self.p12 is None:
+            raise SigningError(f"the identity of {self.signer_name} was unlocked in this process only; "
+                               "it cannot be sent to a worker process")
         return opened_signer, (self.p12, self.passphrase_file, self.passphrase)
 
 
