@@ -1,8 +1,10 @@
 """The ``lotgate`` command line: demo, run, verify (and the record-keeping commands).
 
-Holds are normal outcomes (exit 0). Exit 1 when a verification fails, 2 when the run itself
-could not complete (bad workspace, store or signing set-up), 3 when another night holds the
-run lock; always with a one-line reason.
+Holds are normal outcomes (exit 0). The exit codes (EXIT_CODES, also in ``lotgate --help``): 1 only
+when a verification fails, 2 for a set-up error (settings, controlled files, keys, store: one
+line naming the file and the field, no traceback), 3 when another night holds the run lock, 4
+when what was asked for does not exist (an unknown lot, product or attribute), 5 for a defect
+(the details in a file named on standard error).
 """
 
 from __future__ import annotations
@@ -14,6 +16,16 @@ import threading
 from collections.abc import Iterator
 from contextlib import contextmanager
 from pathlib import Path
+
+EXIT_OK, EXIT_VERIFY_FAILED, EXIT_SETUP, EXIT_LOCKED, EXIT_NOT_FOUND, EXIT_DEFECT = 0, 1, 2, 3, 4, 5
+EXIT_CODES = """exit codes:
+  0  done (holds are normal outcomes)
+  1  a verification failed (lotgate verify)
+  2  set-up error: workspace, settings, specifications, methods, layouts, keys or store;
+     one line naming the file and the field, nothing written
+  3  another night holds the workspace's run lock
+  4  not found: an unknown lot, product or attribute, or a file to verify that does not exist
+  5  a defect in lotgate: one line here, the details for the engineer in a file it names"""
 
 QUIET_PREFECT = {
     "PREFECT_SERVER_ANALYTICS_ENABLED": "false",
@@ -68,12 +80,14 @@ def _run_night(workspace: Path, *, orchestrated: bool = True):
 
     for noisy in ("pyhanko", "pyhanko_certvalidator"):
         logging.getLogger(noisy).setLevel(logging.CRITICAL)
+    from pipeline.night.open import open_night
+
+    # Every set-up error stops here, before Prefect's server or any worker starts (and the
+    # signing passphrase leaves the environment, so neither inherits it).
+    ws, store, signer = open_night(workspace)
     with server_started_early(orchestrated):
         from flows import nightly
-        from pipeline.night.open import open_night
         from pipeline.records.run_lock import run_lock
-
-        ws, store, signer = open_night(workspace)  # a bad set-up fails here, before any output
     labels = {"receive": "Reading and validating exports", "publish": "Reports, certificates and records"}
     console = _console()
     with Progress(TextColumn("{task.description:<36}"), BarColumn(), MofNCompleteColumn(), TimeElapsedColumn(),
@@ -173,13 +187,13 @@ def cmd_verify(args: argparse.Namespace) -> int:
     for noisy in ("pyhanko", "pyhanko_certvalidator"):
         logging.getLogger(noisy).setLevel(logging.CRITICAL)
     console = _console()
-    failures = 0
+    failures = missing = 0
     trust = [Path(p) for p in args.trust] if args.trust else []
     for name in args.files:
         path = Path(name)
         if not path.exists():
-            console.print(f"INVALID {name}: no such file")
-            failures += 1
+            console.print(f"NOT FOUND {name}: no such file")
+            missing += 1
             continue
         if path.suffix.lower() == ".pdf":
             roots = trust or [p for p in (path.resolve().parent.parent / "keys" / "root-ca.pem",) if p.exists()]
@@ -200,7 +214,7 @@ def cmd_verify(args: argparse.Namespace) -> int:
             ok = False
             console.print(f"INVALID {name}: not a certificate (.pdf) or a decision log (.jsonl)")
         failures += not ok
-    return 1 if failures else 0
+    return EXIT_VERIFY_FAILED if failures else EXIT_NOT_FOUND if missing else EXIT_OK
 
 
 def build_parser() -> argparse.ArgumentParser:
@@ -210,7 +224,8 @@ def build_parser() -> argparse.ArgumentParser:
                     "activity, protein, specific activity and kinetic constants, judges them against versioned "
                     "specifications and control charts, and writes signed certificates, batch reports, a "
                     "hash-chained decision log and results for the LIMS. It supports, and never replaces, the "
-                    "authorised person who releases a lot.")
+                    "authorised person who releases a lot.",
+        epilog=EXIT_CODES, formatter_class=argparse.RawDescriptionHelpFormatter)
     sub = parser.add_subparsers(dest="command", required=True, metavar="COMMAND")
     demo = sub.add_parser("demo", help="write an invented plant's exports into DIR/inbox and run its nights",
                           description="Write the invented demo plant's exports (four nights, deterministic) into "
@@ -227,7 +242,8 @@ def build_parser() -> argparse.ArgumentParser:
     run.set_defaults(func=cmd_run)
     verify = sub.add_parser("verify", help="check certificates' signatures or the decision log's chain",
                             description="Check each FILE: a certificate PDF (signature intact and covering the whole "
-                                        "file) or a decision log .jsonl (hash chain). Exit 0 when all are valid, 1 when not.")
+                                        "file) or a decision log .jsonl (hash chain). Exit 0 when all are valid, 1 when "
+                                        "one is not, 4 when a file does not exist.")
     verify.add_argument("files", nargs="+", metavar="FILE")
     verify.add_argument("--trust", action="append", metavar="PEM",
                         help="a root CA certificate to trust (default: the workspace's keys/root-ca.pem when found)")
@@ -243,7 +259,7 @@ def build_parser() -> argparse.ArgumentParser:
 
 
 def main(argv: list[str] | None = None) -> int:
-    from pipeline.errors import LotgateError
+    from pipeline.errors import LotgateError, NotFound
     from pipeline.records.run_lock import RunLocked
 
     args = build_parser().parse_args(argv)
@@ -251,10 +267,13 @@ def main(argv: list[str] | None = None) -> int:
         return int(args.func(args))
     except RunLocked as exc:
         print(f"lotgate: {exc}", file=sys.stderr)
-        return 3
+        return EXIT_LOCKED
+    except NotFound as exc:
+        print(f"lotgate: {exc}", file=sys.stderr)
+        return EXIT_NOT_FOUND
     except LotgateError as exc:
         print(f"lotgate: {exc}", file=sys.stderr)
-        return 2
+        return EXIT_SETUP
     except Exception as exc:  # a defect: keep the analyst's console readable, keep the details
         import tempfile
         import traceback
@@ -265,7 +284,7 @@ def main(argv: list[str] | None = None) -> int:
         print(f"lotgate: the run could not complete ({exc.__class__.__name__}: {exc}); "
               f"details for the engineer in {path}. Running the same command again resumes the night.",
               file=sys.stderr)
-        return 2
+        return EXIT_DEFECT
     except KeyboardInterrupt:
         print("lotgate: interrupted; run the same command again to finish the night", file=sys.stderr)
         return 130

@@ -11,6 +11,8 @@ from pathlib import Path
 from rich.console import Console
 from rich.table import Table
 
+from pipeline.errors import NotFound
+
 
 def _console() -> Console:
     return Console(highlight=False, width=None if sys.stdout.isatty() else 140)
@@ -49,10 +51,9 @@ def cmd_history(args: argparse.Namespace) -> int:
 
     ws, store = _open(args.workspace)
     rows = store.decisions(args.lot)
-    console = _console()
     if not rows:
-        console.print(f"No decision for lot {args.lot} in {ws.root}.")
-        return 1
+        raise NotFound(f"no decision for lot {args.lot} in {ws.root}")
+    console = _console()
     table = Table(title=f"Lot {args.lot}: every revision (oldest first; none is ever overwritten)")
     for column in ("Rev.", "Decided", "By", "Disposition", "What changed and why", "Reasons"):
         table.add_column(column)
@@ -80,6 +81,8 @@ def cmd_decide(args: argparse.Namespace) -> int:
     from pipeline.records.run_lock import run_lock
 
     ws, store = _open(args.workspace)
+    if not store.decisions(args.lot):
+        raise NotFound(f"lot {args.lot} has no decision in the store at {ws.root}; nothing to review")
     identity = signing.load_identity(Path(args.identity), passphrase=_passphrase(args),
                                      passphrase_file=Path(args.passphrase_file) if args.passphrase_file else None)
     with run_lock(ws.root, store):

@@ -1,7 +1,7 @@
 """``lotgate trend`` and ``lotgate rebaseline``: a chart for a reviewer, and an audited re-baseline.
 
 Each command function takes the parsed arguments and returns the exit code: 0 done, 2 refused
-or not possible (one line on standard error saying why).
+or not possible, 4 an unknown product or attribute (one line on standard error saying why).
 """
 
 from __future__ import annotations
@@ -13,16 +13,19 @@ import unicodedata
 from pathlib import Path
 from typing import Any
 
-from pipeline.errors import InputError, LotgateError, SpecificationError
+from pipeline.errors import InputError, LotgateError, NotFound, SpecificationError
 
 DEFAULT_WINDOW = 30
 
 
 # ------------------------------------------------------------------------------ shared
-def _refuse(command: str, exc: Exception | str) -> int:
+EXIT_SETUP, EXIT_NOT_FOUND = 2, 4  # as documented in flows.cli
+
+
+def _refuse(command: str, exc: Exception) -> int:
     text = " ".join(str(exc).split())
     print(f"lotgate {command}: {text}", file=sys.stderr)
-    return 2
+    return EXIT_NOT_FOUND if isinstance(exc, NotFound) else EXIT_SETUP
 
 
 def _open(workspace: str) -> tuple[Any, Any]:
@@ -32,7 +35,7 @@ def _open(workspace: str) -> tuple[Any, Any]:
 
 
 def _attribute(product: str, code: str, workspace: str) -> Any:
-    """The trended attribute of a product's specification, or a SpecificationError naming the choices."""
+    """The trended attribute of a product's specification; NotFound naming the choices for an unknown one."""
     from pipeline.records.controlled_files import controlled_folders, load_catalog
     from pipeline.records.workspace import open_workspace
 
@@ -40,18 +43,18 @@ def _attribute(product: str, code: str, workspace: str) -> Any:
     method = catalog.methods.get(product)
     if method is not None and hasattr(method, "recovery_attribute"):
         if code != "reference_recovery":
-            raise SpecificationError(f"method {product} charts only 'reference_recovery' (its reference standard)")
+            raise NotFound(f"method {product} charts only 'reference_recovery' (its reference standard)")
         from types import SimpleNamespace
 
         return SimpleNamespace(product_name=method.title), method.recovery_attribute()
     spec = catalog.specifications.get(product)
     if spec is None:
-        raise SpecificationError(f"unknown product '{product}'; known products: "
+        raise NotFound(f"unknown product '{product}'; known products: "
                                  f"{', '.join(sorted(catalog.specifications))}; or a kinetic method with "
                                  "'reference_recovery'")
     trended = [a.code for a in spec.attributes if a.trend]
     if code not in {a.code for a in spec.attributes}:
-        raise SpecificationError(f"product {product} has no attribute '{code}'; its charted attributes: "
+        raise NotFound(f"product {product} has no attribute '{code}'; its charted attributes: "
                                  f"{', '.join(trended) or 'none'}")
     attribute = spec.attribute(code)
     if not attribute.trend:

@@ -31,3 +31,7 @@ class StoreError(LotgateError):
 
 class LedgerError(LotgateError):
     """The hash-chained decision log is broken or cannot be written."""
+
+
+class NotFound(LotgateError):
+    """What was asked for does not exist: an unknown lot, product or attribute."""

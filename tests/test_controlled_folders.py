@@ -14,7 +14,7 @@ import pytest
 
 from flows.trend_cmd import _attribute
 from pipeline.demo import plant as demo
-from pipeline.errors import SpecificationError
+from pipeline.errors import NotFound, SpecificationError
 from pipeline.records.controlled_files import (
     controlled_folders,
     load_catalog,
@@ -87,7 +87,7 @@ def test_a_missing_folder_is_refused_when_the_workspace_opens(tmp_path):
 @pytest.mark.parametrize(("setting", "phrase"), [
     ({"products": "specs"}, "allowed: specifications, methods, layouts"),
     ({"layouts": 3}, "'controlled.layouts' must be a folder name"),
-    (["specs"], "'controlled' must map specifications, methods, layouts to folders"),
+    (["specs"], "'controlled' must be a mapping of specifications, methods, layouts to folders"),
 ])
 def test_a_malformed_setting_is_refused(tmp_path, setting, phrase):
     write_settings(tmp_path, {"controlled": setting})
@@ -105,7 +105,7 @@ def test_the_trend_command_reads_the_workspace_specifications(tmp_path):
     write_settings(tmp_path, {"controlled": {"specifications": str(folder)}})
     spec, attribute = _attribute("LLC-300", "specific_activity", str(tmp_path))
     assert (spec.document.version, attribute.code) == ("3.1-P2", "specific_activity")
-    with pytest.raises(SpecificationError, match="unknown product 'LLC-300'"):
+    with pytest.raises(NotFound, match="unknown product 'LLC-300'"):
         _attribute("LLC-300", "specific_activity", str(tmp_path / "elsewhere"))
 
 

@@ -133,17 +133,17 @@ def test_trend_before_limits_are_frozen(tmp_path, capsys):
 
 
 @pytest.mark.parametrize(
-    ("argv", "message"),
-    [
-        (["trend", "NOPE-1", ATTR], "unknown product 'NOPE-1'"),
-        (["trend", PRODUCT, "colour"], "has no attribute 'colour'"),
-        (["trend", PRODUCT, "protein"], "is not on a control chart"),
-        (["trend", PRODUCT, ATTR, "--window", "0"], "--window must be at least 1"),
+    ("argv", "message", "code"),
+    [  # exit 4: not found (an unknown product or attribute); 2: a request that cannot be met
+        (["trend", "NOPE-1", ATTR], "unknown product 'NOPE-1'", 4),
+        (["trend", PRODUCT, "colour"], "has no attribute 'colour'", 4),
+        (["trend", PRODUCT, "protein"], "is not on a control chart", 2),
+        (["trend", PRODUCT, ATTR, "--window", "0"], "--window must be at least 1", 2),
     ],
 )
-def test_trend_refusals(tmp_path, capsys, argv, message):
+def test_trend_refusals(tmp_path, capsys, argv, message, code):
     ws = workspace(tmp_path)
-    assert run([*argv, "--workspace", str(ws)]) == 2
+    assert run([*argv, "--workspace", str(ws)]) == code
     err = capsys.readouterr().err
     assert message in err and err.count("\n") == 1
 
@@ -184,11 +184,11 @@ def test_rebaseline_refusals_change_nothing(tmp_path, capsys, extra, message):
     assert active_limits(Store(f"sqlite:///{ws / 'lotgate.db'}"), PRODUCT, ATTR).version == 1
 
 
-@pytest.mark.parametrize(("product", "attr", "message"),
-                         [("NOPE-1", ATTR, "unknown product"), (PRODUCT, "lead", "not on a control chart")])
-def test_rebaseline_refuses_unknown_charts(tmp_path, capsys, product, attr, message):
+@pytest.mark.parametrize(("product", "attr", "message", "code"),
+                         [("NOPE-1", ATTR, "unknown product", 4), (PRODUCT, "lead", "not on a control chart", 2)])
+def test_rebaseline_refuses_unknown_charts(tmp_path, capsys, product, attr, message, code):
     ws = workspace(tmp_path)
-    assert run(["rebaseline", product, attr, "--workspace", str(ws), "--reason", "r", "--by", "b"]) == 2
+    assert run(["rebaseline", product, attr, "--workspace", str(ws), "--reason", "r", "--by", "b"]) == code
     assert message in capsys.readouterr().err
 
 

@@ -12,6 +12,7 @@ from dataclasses import dataclass, replace
 from typing import Any, ClassVar
 
 import pandas as pd
+from pydantic import Field
 
 from pipeline.assay.plate_reads import PlateContext, PlateReads
 from pipeline.assay.protein_plates import (
@@ -20,7 +21,9 @@ from pipeline.assay.protein_plates import (
     evaluate_standard_curve_plate,
     invalid_protein_plate,
 )
-from pipeline.controlled.specs import Document, curve_fields, method_document, required_number
+from pipeline.controlled.file_models import CurveMethodFile
+from pipeline.controlled.specs import Document, curve_fields, method_document
+from pipeline.controlled.strict import checked
 from pipeline.errors import SpecificationError
 from pipeline.science.measurement import Measurement
 
@@ -47,20 +50,24 @@ class FluorescenceMethod:
     measurement: ClassVar[str] = "fluorescence-endpoint"
 
 
+class FluorescenceMethodFile(CurveMethodFile):
+    """The declared schema of a fluorescence method file (see pipeline.controlled.file_models)."""
+
+    excitation_nm: float
+    emission_nm: float
+    reader_max_rfu: float = Field(gt=0)
+
+
 def parse_fluorescence_method(raw: dict[str, Any], where: str, sha256: str) -> FluorescenceMethod:
     """A fluorescence standard-curve protein method from a parsed YAML mapping."""
-    document = method_document(raw, where, sha256)
-    excitation = required_number(raw, "excitation_nm", where)
-    emission = required_number(raw, "emission_nm", where)
-    if not 200 <= excitation < emission <= 1000:
+    m = checked(FluorescenceMethodFile, raw, where)
+    if not 200 <= m.excitation_nm < m.emission_nm <= 1000:
         raise SpecificationError(f"{where}: the emission wavelength must lie above the excitation wavelength, both "
-                                 f"within 200–1000 nm; found excitation {excitation:g} nm, emission {emission:g} nm")
-    saturation = required_number(raw, "reader_max_rfu", where)
-    if saturation <= 0:
-        raise SpecificationError(f"{where}: 'reader_max_rfu' must be above zero, found {saturation:g}")
-    return FluorescenceMethod(document=document, method_id=document.name, title=str(raw.get("title", document.name)),
-                              excitation_nm=excitation, emission_nm=emission, reader_max_rfu=saturation,
-                              **curve_fields(raw, where))
+                                 f"within 200–1000 nm; found excitation {m.excitation_nm:g} nm, emission "
+                                 f"{m.emission_nm:g} nm")
+    return FluorescenceMethod(document=method_document(m, sha256), method_id=m.method_id,
+                              title=m.title or m.method_id, excitation_nm=m.excitation_nm,
+                              emission_nm=m.emission_nm, reader_max_rfu=m.reader_max_rfu, **curve_fields(m, where))
 
 
 def evaluate_fluorescence_plate(plate_id: str, plate: PlateReads, method: FluorescenceMethod,

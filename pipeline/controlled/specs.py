@@ -1,8 +1,9 @@
 """Product specifications and assay methods as frozen objects (parsed from plain mappings).
 
 The files live under ``specs/`` as YAML; ``pipeline.records.controlled_files`` reads them and computes their
-SHA-256. Parsing is pure: a mapping in, a frozen object out, or a SpecificationError naming the
-file and the field.
+SHA-256. Parsing is pure: a mapping in, checked against its declared schema
+(``pipeline.controlled.file_models``: no unknown key, no NaN, no wrong type), a frozen object out,
+or a SpecificationError naming the file and the field.
 """
 
 from __future__ import annotations
@@ -11,31 +12,24 @@ import datetime as dt
 from dataclasses import dataclass
 from typing import Any, ClassVar, Protocol
 
+from pipeline.controlled.file_models import (
+    AttributeFile,
+    CurveMethodFile,
+    DocumentHeader,
+    EndpointMethodFile,
+    KineticMethodFile,
+    KineticSettings,
+    MethodHeader,
+    ProteinSuitability,
+    SpecificationFile,
+    TrendSettings,
+    Uv280MethodFile,
+)
+from pipeline.controlled.strict import checked
 from pipeline.errors import SpecificationError
 from pipeline.vocabulary import NelsonRule
 
 COMPUTED_SOURCES = ("activity", "protein", "specific_activity", "km", "vmax", "kcat", "kcat_over_km")
-
-
-def _require(mapping: dict[str, Any], key: str, where: str) -> Any:
-    if key not in mapping or mapping[key] is None:
-        raise SpecificationError(f"{where}: the field '{key}' is missing")
-    return mapping[key]
-
-
-def _number(value: Any, key: str, where: str) -> float:
-    if isinstance(value, bool) or not isinstance(value, int | float):
-        raise SpecificationError(f"{where}: '{key}' must be a number, found {value!r}")
-    return float(value)
-
-
-def _date(value: Any, key: str, where: str) -> dt.date:
-    if isinstance(value, dt.date):
-        return value
-    try:
-        return dt.date.fromisoformat(str(value))
-    except ValueError as exc:
-        raise SpecificationError(f"{where}: '{key}' must be a date YYYY-MM-DD, found {value!r}") from exc
 
 
 @dataclass(frozen=True)
@@ -187,177 +181,111 @@ class ProteinMethod:
         return "uv280" if self.kind == "uv280" else "endpoint"
 
 
-def _document(raw: dict[str, Any], where: str, name_key: str, sha256: str) -> Document:
-    return Document(
-        name=str(_require(raw, name_key, where)),
-        version=str(_require(raw, "version", where)),
-        sha256=sha256,
-        effective_from=_date(_require(raw, "effective_from", where), "effective_from", where),
-        approved_by=str(_require(raw, "approved_by", where)),
-    )
+def _document(header: DocumentHeader, name: str, sha256: str) -> Document:
+    return Document(name=name, version=header.version, sha256=sha256, effective_from=header.effective_from,
+                    approved_by=header.approved_by)
 
 
-def _attribute(raw: dict[str, Any], defaults: dict[str, Any], where: str) -> Attribute:
-    code = str(_require(raw, "code", where))
-    here = f"{where}, attribute '{code}'"
-    source = str(_require(raw, "source", here))
-    if source not in (*COMPUTED_SOURCES, "lims"):
+def _attribute(raw: AttributeFile, defaults: TrendSettings, where: str) -> Attribute:
+    here = f"{where}, attribute '{raw.code}'"
+    if raw.source not in (*COMPUTED_SOURCES, "lims"):
         raise SpecificationError(
-            f"{here}: source must be one of {', '.join((*COMPUTED_SOURCES, 'lims'))}, found {source!r}"
+            f"{here}: source must be one of {', '.join((*COMPUTED_SOURCES, 'lims'))}, found {raw.source!r}"
         )
-    if source == "lims" and not raw.get("test_code"):
+    if raw.source == "lims" and not raw.test_code:
         raise SpecificationError(f"{here}: a LIMS attribute needs a 'test_code'")
-    digits = raw.get("digits", 0)
-    if not isinstance(digits, int) or digits < 0:
-        raise SpecificationError(f"{here}: 'digits' must be a whole number ≥ 0, found {digits!r}")
-    minimum = None if raw.get("min") is None else _number(raw["min"], "min", here)
-    maximum = None if raw.get("max") is None else _number(raw["max"], "max", here)
-    if minimum is not None and maximum is not None and minimum > maximum:
-        raise SpecificationError(f"{here}: min {minimum} is above max {maximum}")
-    rules = tuple(int(r) for r in raw.get("rules", defaults.get("rules", (1, 2, 3, 4))))
-    if not set(rules) <= set(NelsonRule):
-        raise SpecificationError(f"{here}: trend rules must be among 1–8, found {list(rules)}")
-    baseline_n = int(raw.get("baseline_n", defaults.get("baseline_n", 20)))
-    if baseline_n < 2:
-        raise SpecificationError(f"{here}: baseline_n must be at least 2, found {baseline_n}")
+    if raw.min is not None and raw.max is not None and raw.min > raw.max:
+        raise SpecificationError(f"{here}: min {raw.min:g} is above max {raw.max:g}; the lower limit comes first")
+    rules = _rules(raw.rules if raw.rules is not None else defaults.rules, here)
+    baseline_n = raw.baseline_n if raw.baseline_n is not None else defaults.baseline_n
     return Attribute(
-        code=code,
-        title=str(raw.get("title", code)),
-        source=source,
-        unit=str(raw.get("unit", "")),
-        digits=digits,
-        minimum=minimum,
-        maximum=maximum,
-        expect=None if raw.get("expect") is None else str(raw["expect"]),
-        test_code=None if raw.get("test_code") is None else str(raw["test_code"]),
-        trend=bool(raw.get("trend", False)),
-        trend_rules=tuple(NelsonRule(r) for r in rules),
-        baseline_n=baseline_n,
-        scientific=bool(raw.get("scientific", False)),
-        required=bool(raw.get("required", True)),
+        code=raw.code, title=raw.title or raw.code, source=raw.source, unit=raw.unit, digits=raw.digits,
+        minimum=raw.min, maximum=raw.max, expect=raw.expect, test_code=raw.test_code, trend=raw.trend,
+        trend_rules=rules, baseline_n=20 if baseline_n is None else baseline_n, scientific=raw.scientific,
+        required=raw.required,
     )
+
+
+def _rules(rules: list[int] | None, where: str) -> tuple[int, ...]:
+    """Nelson rule numbers (default 1–4), each among 1–8."""
+    chosen = (1, 2, 3, 4) if rules is None else tuple(rules)
+    if not set(chosen) <= set(NelsonRule):
+        raise SpecificationError(f"{where}: trend rules must be among 1–8, found {list(chosen)}")
+    return tuple(NelsonRule(r) for r in chosen)
 
 
 def parse_specification(raw: dict[str, Any], where: str, sha256: str) -> Specification:
     """Build a Specification from a parsed YAML mapping; ``where`` names the file in errors."""
-    if raw.get("kind") != "product-specification":
-        raise SpecificationError(f"{where}: 'kind' must be product-specification, found {raw.get('kind')!r}")
-    defaults = raw.get("trend_defaults") or {}
-    attributes = tuple(_attribute(a, defaults, where) for a in _require(raw, "attributes", where))
+    spec = checked(SpecificationFile, raw, where)
+    defaults = spec.trend_defaults or TrendSettings()
+    attributes = tuple(_attribute(a, defaults, where) for a in spec.attributes)
     codes = [a.code for a in attributes]
     if len(set(codes)) != len(codes):
         raise SpecificationError(f"{where}: attribute codes repeat: {codes}")
     return Specification(
-        document=_document(raw, where, "product_code", sha256),
-        product_code=str(raw["product_code"]),
-        product_name=str(_require(raw, "product_name", where)),
-        molecular_weight_g_per_mol=_number(
-            _require(raw, "molecular_weight_g_per_mol", where), "molecular_weight_g_per_mol", where
-        ),
-        activity_method=str(_require(raw, "activity_method", where)),
-        protein_method=str(_require(raw, "protein_method", where)),
-        attributes=attributes,
-        a280_extinction_ml_per_mg_per_cm=(None if raw.get("a280_extinction_ml_per_mg_per_cm") is None else _number(
-            raw["a280_extinction_ml_per_mg_per_cm"], "a280_extinction_ml_per_mg_per_cm", where)),
+        document=_document(spec, spec.product_code, sha256), product_code=spec.product_code,
+        product_name=spec.product_name, molecular_weight_g_per_mol=spec.molecular_weight_g_per_mol,
+        activity_method=spec.activity_method, protein_method=spec.protein_method, attributes=attributes,
+        a280_extinction_ml_per_mg_per_cm=spec.a280_extinction_ml_per_mg_per_cm,
     )
 
 
-def method_document(raw: dict[str, Any], where: str, sha256: str) -> Document:
-    """The identity of an assay method file (``kind: assay-method``), whatever its measurement."""
-    if raw.get("kind") != "assay-method":
-        raise SpecificationError(f"{where}: 'kind' must be assay-method, found {raw.get('kind')!r}")
-    return _document(raw, where, "method_id", sha256)
-
-
-def required_number(mapping: dict[str, Any], key: str, where: str) -> float:
-    """A number the file must give under ``key``."""
-    return _number(_require(mapping, key, where), key, where)
+def method_document(method: MethodHeader, sha256: str) -> Document:
+    """The identity of a checked assay method file, whatever its measurement."""
+    return _document(method, method.method_id, sha256)
 
 
 def parse_kinetic_method(raw: dict[str, Any], where: str, sha256: str) -> KineticMethod:
     """A kinetic activity method (``measurement: kinetic``) from a parsed YAML mapping."""
-    document = method_document(raw, where, sha256)
-    num = lambda m, k: required_number(m, k, where)  # noqa: E731
-    window = _require(raw, "rate_window", where)
-    suit = _require(raw, "suitability", where)
-    recovery = _require(suit, "recovery_pct", where)
-    kin = raw.get("kinetics") or {}
-    positive = ("epsilon_per_mm_per_cm", "path_length_cm", "reaction_volume_ml", "sample_volume_ml")
-    for key in positive:
-        if num(raw, key) <= 0:
-            raise SpecificationError(f"{where}: '{key}' must be above zero, found {raw[key]!r}")
+    m = checked(KineticMethodFile, raw, where)
+    suit, kin = m.suitability, m.kinetics or KineticSettings()
+    trend = suit.recovery_trend or TrendSettings()
     return KineticMethod(
-        document=document,
-        method_id=document.name,
-        title=str(raw.get("title", document.name)),
-        wavelength_nm=num(raw, "wavelength_nm"),
-        temperature_c=num(raw, "temperature_c"),
-        ph=num(raw, "ph"),
-        unit_definition=str(raw.get("unit_definition", "")),
-        epsilon_per_mm_per_cm=num(raw, "epsilon_per_mm_per_cm"),
-        path_length_cm=num(raw, "path_length_cm"),
-        reaction_volume_ml=num(raw, "reaction_volume_ml"),
-        sample_volume_ml=num(raw, "sample_volume_ml"),
-        assay_substrate_mm=num(raw, "assay_substrate_mm"),
-        rate_window=RateWindow(
-            min_points=int(num(window, "min_points")),
-            min_r2=num(window, "min_r2"),
-            linear_limit_au=num(window, "linear_limit_au"),
-            max_slope_change=num(window, "max_slope_change"),
-        ),
-        reference_lot=str(_require(suit, "reference_lot", where)),
-        reference_assigned_u_per_ml=num(suit, "reference_assigned_u_per_ml"),
-        recovery_min_pct=num(recovery, "min"),
-        recovery_max_pct=num(recovery, "max"),
-        replicate_cv_max_pct=num(suit, "replicate_cv_max_pct"),
-        blank_rate_max_au_per_min=num(suit, "blank_rate_max_au_per_min"),
-        model_selection_alpha=float(kin.get("model_selection_alpha", 0.05)),
-        km_max_relative_se=float(kin.get("km_max_relative_se", 0.25)),
-        sample_preparation=raw.get("sample_preparation"),
-        recovery_trend_rules=tuple(int(r) for r in (suit.get("recovery_trend") or {}).get("rules", (1, 2, 3, 4))),
-        recovery_baseline_n=int((suit.get("recovery_trend") or {}).get("baseline_n", 20)),
+        document=method_document(m, sha256), method_id=m.method_id, title=m.title or m.method_id,
+        wavelength_nm=m.wavelength_nm, temperature_c=m.temperature_c, ph=m.ph, unit_definition=m.unit_definition,
+        epsilon_per_mm_per_cm=m.epsilon_per_mm_per_cm, path_length_cm=m.path_length_cm,
+        reaction_volume_ml=m.reaction_volume_ml, sample_volume_ml=m.sample_volume_ml,
+        assay_substrate_mm=m.assay_substrate_mm, rate_window=RateWindow(**m.rate_window.model_dump()),
+        reference_lot=suit.reference_lot, reference_assigned_u_per_ml=suit.reference_assigned_u_per_ml,
+        recovery_min_pct=suit.recovery_pct.min, recovery_max_pct=suit.recovery_pct.max,
+        replicate_cv_max_pct=suit.replicate_cv_max_pct, blank_rate_max_au_per_min=suit.blank_rate_max_au_per_min,
+        model_selection_alpha=kin.model_selection_alpha, km_max_relative_se=kin.km_max_relative_se,
+        sample_preparation=m.sample_preparation,
+        recovery_trend_rules=_rules(trend.rules, f"{where}, suitability.recovery_trend"),
+        recovery_baseline_n=20 if trend.baseline_n is None else trend.baseline_n,
     )
 
 
 def parse_uv280_method(raw: dict[str, Any], where: str, sha256: str) -> ProteinMethod:
     """Protein by absorbance at 280 nm (``measurement: uv280``) from a parsed YAML mapping."""
-    document = method_document(raw, where, sha256)
-    num = lambda m, k: required_number(m, k, where)  # noqa: E731
-    suit = raw.get("suitability") or {}
-    linear = _require(raw, "linear_range_au", where)
-    path = num(raw, "path_length_cm")
-    if path <= 0:
-        raise SpecificationError(f"{where}: 'path_length_cm' must be above zero, found {path}")
-    low, high = num(linear, "min"), num(linear, "max")
+    m = checked(Uv280MethodFile, raw, where)
+    low, high = m.linear_range_au.min, m.linear_range_au.max
     if not 0 <= low < high:
         raise SpecificationError(f"{where}: linear_range_au must have 0 ≤ min < max, found {low}–{high}")
     return ProteinMethod(
-        document=document, method_id=document.name, title=str(raw.get("title", document.name)),
-        wavelength_nm=num(raw, "wavelength_nm"), standard="", curve_model="none", curve_weighting=None,
+        document=method_document(m, sha256), method_id=m.method_id, title=m.title or m.method_id,
+        wavelength_nm=m.wavelength_nm, standard="", curve_model="none", curve_weighting=None,
         curve_min_r2=0.0, bias_limit_pct=0.0, lowest_bias_limit_pct=0.0,
-        replicate_cv_max_pct=float(suit.get("replicate_cv_max_pct", 10.0)), kind="uv280",
-        path_length_cm=path, linear_min_au=low, linear_max_au=high)
+        replicate_cv_max_pct=(m.suitability or ProteinSuitability()).replicate_cv_max_pct, kind="uv280",
+        path_length_cm=m.path_length_cm, linear_min_au=low, linear_max_au=high)
 
 
-def curve_fields(raw: dict[str, Any], where: str) -> dict[str, Any]:
-    """A standard-curve method's standard, curve model, weighting and acceptance limits (method fields)."""
-    curve = _require(raw, "curve", where)
-    model = str(_require(curve, "model", where))
-    if model not in ("linear", "quadratic", "4pl"):
-        raise SpecificationError(f"{where}: curve model must be linear, quadratic or 4pl, found {model!r}")
-    weighting = curve.get("weighting")
-    if weighting not in (None, "1/x", "1/x2", "1/y2"):
-        raise SpecificationError(f"{where}: curve weighting must be null, 1/x, 1/x2 or 1/y2, found {weighting!r}")
-    suit = raw.get("suitability") or {}
-    return dict(standard=str(raw.get("standard", "")), curve_model=model, curve_weighting=weighting,
-                curve_min_r2=required_number(curve, "min_r2", where),
-                bias_limit_pct=required_number(curve, "bias_limit_pct", where),
-                lowest_bias_limit_pct=required_number(curve, "lowest_bias_limit_pct", where),
-                replicate_cv_max_pct=float(suit.get("replicate_cv_max_pct", 10.0)))
+def curve_fields(m: CurveMethodFile, where: str) -> dict[str, Any]:
+    """A checked standard-curve method's standard, curve model, weighting and acceptance limits (method fields)."""
+    curve = m.curve
+    if curve.model not in ("linear", "quadratic", "4pl"):
+        raise SpecificationError(f"{where}: curve model must be linear, quadratic or 4pl, found {curve.model!r}")
+    if curve.weighting not in (None, "1/x", "1/x2", "1/y2"):
+        raise SpecificationError(
+            f"{where}: curve weighting must be null, 1/x, 1/x2 or 1/y2, found {curve.weighting!r}")
+    return dict(standard=m.standard, curve_model=curve.model, curve_weighting=curve.weighting,
+                curve_min_r2=curve.min_r2, bias_limit_pct=curve.bias_limit_pct,
+                lowest_bias_limit_pct=curve.lowest_bias_limit_pct,
+                replicate_cv_max_pct=(m.suitability or ProteinSuitability()).replicate_cv_max_pct)
 
 
 def parse_endpoint_method(raw: dict[str, Any], where: str, sha256: str) -> ProteinMethod:
     """Protein against a standard curve read at one wavelength (``measurement: endpoint``)."""
-    document = method_document(raw, where, sha256)
-    return ProteinMethod(document=document, method_id=document.name, title=str(raw.get("title", document.name)),
-                         wavelength_nm=required_number(raw, "wavelength_nm", where), **curve_fields(raw, where))
+    m = checked(EndpointMethodFile, raw, where)
+    return ProteinMethod(document=method_document(m, sha256), method_id=m.method_id, title=m.title or m.method_id,
+                         wavelength_nm=m.wavelength_nm, **curve_fields(m, where))

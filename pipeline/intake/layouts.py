@@ -3,7 +3,8 @@
 Each ``schemas/<kind>.yaml`` has two sections: ``pandera`` (a DataFrameSchema that
 ``pandera.io.pandas_io.from_yaml`` reads: dtypes, nullability, uniqueness, patterns, ranges,
 allowed values) and ``lotgate_export`` (the file-name prefix, version, the size, row and
-line-length limits, and a hint per column in the analyst's words).
+line-length limits, and a hint per column in the analyst's words). The ``lotgate_export`` header is
+checked against its declared schema (``LayoutHeader``): no unknown key, no wrong type.
 """
 
 from __future__ import annotations
@@ -12,11 +13,14 @@ import hashlib
 import warnings
 from dataclasses import dataclass, field
 from pathlib import Path
+from typing import Any
 
 import pandera.pandas as pa
 import yaml
 from pandera.io.pandas_io import from_yaml
+from pydantic import Field
 
+from pipeline.controlled.strict import Strict, Text, checked
 from pipeline.errors import SpecificationError
 
 
@@ -36,34 +40,50 @@ class ExportLayout:
     hints: dict[str, str] = field(default_factory=dict)
 
 
+class LayoutHeader(Strict):
+    """The declared schema of a layout's ``lotgate_export`` section (see pipeline.controlled.strict)."""
+
+    kind: Text
+    version: Text = Field(description="a version written as text, e.g. '1.1' (quoted)")
+    title: Text | None = None
+    file_prefix: Text
+    max_bytes: int = Field(gt=0)
+    max_rows: int = Field(gt=0)
+    max_line_chars: int = Field(gt=0)
+    hints: dict[str, Text] = Field(default_factory=dict, description="a mapping of column names to hints")
+
+
+class LayoutFile(Strict):
+    lotgate_export: LayoutHeader
+    pandera: dict[str, Any] = Field(description="a pandera DataFrameSchema written as a mapping")
+
+
 def load_layout(path: Path) -> ExportLayout:
     data = path.read_bytes()
     where = f"schemas/{path.name}"
     try:
         raw = yaml.safe_load(data)
-        head = raw["lotgate_export"]
+    except yaml.YAMLError as exc:
+        raise SpecificationError(f"{where}: not valid YAML ({exc})") from exc
+    layout = checked(LayoutFile, raw, where)
+    head = layout.lotgate_export
+    try:
         with warnings.catch_warnings():
             warnings.simplefilter("ignore")
-            schema = from_yaml(yaml.safe_dump(raw["pandera"], sort_keys=False))
+            schema = from_yaml(yaml.safe_dump(layout.pandera, sort_keys=False))
     except (yaml.YAMLError, KeyError, TypeError, ValueError) as exc:
-        raise SpecificationError(f"{where}: not a valid export layout ({exc})") from exc
-    try:
-        return ExportLayout(
-            kind=str(head["kind"]),
-            version=str(head["version"]),
-            title=str(head.get("title", head["kind"])),
-            file_prefix=str(head["file_prefix"]),
-            max_bytes=int(head["max_bytes"]),
-            max_rows=int(head["max_rows"]),
-            max_line_chars=int(head["max_line_chars"]),
-            columns=tuple(schema.columns),
-            nullable=frozenset(name for name, col in schema.columns.items() if col.nullable),
-            schema=schema,
-            sha256=hashlib.sha256(data).hexdigest(),
-            hints={str(k): str(v) for k, v in (head.get("hints") or {}).items()},
-        )
-    except KeyError as exc:
-        raise SpecificationError(f"{where}: the field 'lotgate_export.{exc.args[0]}' is missing") from exc
+        raise SpecificationError(f"{where}: the pandera section is not a valid table schema ({exc})") from exc
+    unknown = sorted(set(head.hints) - set(schema.columns))
+    if unknown:
+        raise SpecificationError(f"{where}: 'lotgate_export.hints' names {', '.join(unknown)}, which the pandera "
+                                 f"section does not declare; allowed: {', '.join(schema.columns)}")
+    return ExportLayout(
+        kind=head.kind, version=head.version, title=head.title or head.kind, file_prefix=head.file_prefix,
+        max_bytes=head.max_bytes, max_rows=head.max_rows, max_line_chars=head.max_line_chars,
+        columns=tuple(schema.columns),
+        nullable=frozenset(name for name, col in schema.columns.items() if col.nullable),
+        schema=schema, sha256=hashlib.sha256(data).hexdigest(), hints=dict(head.hints),
+    )
 
 
 def load_layouts(directory: Path) -> dict[str, ExportLayout]:

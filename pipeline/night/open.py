@@ -3,11 +3,12 @@
 from __future__ import annotations
 
 import datetime as dt
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Protocol
 
 from pipeline.errors import InputError, SigningError
+from pipeline.records.controlled_files import open_controlled_documents
 from pipeline.records.store import Store
 from pipeline.records.workspace import Workspace, open_workspace
 
@@ -21,9 +22,16 @@ class CertificateSigner(Protocol):
 
 @dataclass(frozen=True)
 class IdentitySigner:
-    """Signs certificates with a loaded identity (see pipeline.records.signing)."""
+    """Signs certificates with a loaded identity (see pipeline.records.signing).
+
+    Sent to a worker process, it travels as its file and passphrase (in the pickle, never in an
+    environment variable) and is opened again there.
+    """
 
     identity: Any
+    p12: Path | None = None  # None: an identity a person unlocked, used in this process only
+    passphrase_file: Path | None = None
+    passphrase: bytes | None = field(default=None, repr=False)
 
     @property
     def signer_name(self) -> str:
@@ -38,17 +46,36 @@ class IdentitySigner:
 
         return sign_pdf(pdf, self.identity, reason=reason, location=location, signed_at=signed_at)
 
+    def __reduce__(self) -> tuple[Any, tuple[Any, ...]]:
+        if self.p12 is None:
+            raise SigningError(f"the identity of {self.signer_name} was unlocked in this process only; "
+                               "it cannot be sent to a worker process")
+        return opened_signer, (self.p12, self.passphrase_file, self.passphrase)
+
+
+def opened_signer(p12: Path, passphrase_file: Path | None, passphrase: bytes | None) -> IdentitySigner:
+    """The identity in ``p12``, unlocked with ``passphrase`` when given, else with ``passphrase_file``."""
+    from pipeline.records import signing
+
+    identity = signing.load_identity(p12, passphrase=passphrase, passphrase_env="", passphrase_file=passphrase_file)
+    return IdentitySigner(identity, p12, passphrase_file, passphrase)
+
 
 def signer_for(ws: Workspace) -> IdentitySigner:
-    """The workspace's signing identity: its own PKCS#12, or the demo identity when asked for."""
+    """The workspace's signing identity: its own PKCS#12, or the demo identity when asked for.
+
+    The passphrase in LOTGATE_SIGNING_PASSPHRASE is taken out of the environment here (see
+    ``signing.take_passphrase``), whichever identity is used, so no child process inherits it.
+    """
     from pipeline.records import signing
     from pipeline.records.demo_identity import create_demo_identity
 
+    secret = signing.take_passphrase()
     if ws.signing_p12 is not None:
-        return IdentitySigner(signing.load_identity(ws.signing_p12, passphrase_file=ws.signing_passphrase_file))
+        return opened_signer(ws.signing_p12, ws.signing_passphrase_file, secret)
     if (ws.keys / "use-demo-identity").exists():
         demo = create_demo_identity(ws.keys, ws.plant_name, ws.signer_name)
-        return IdentitySigner(signing.load_identity(demo.p12_path, passphrase_file=demo.passphrase_path))
+        return opened_signer(demo.p12_path, demo.passphrase_path, None)
     raise SigningError(
         f"no signing identity is set up for the workspace {ws.root}: put 'signing: {{p12: FILE, passphrase_file: FILE}}' "
         f"in {ws.root / 'workspace.yaml'} (or set LOTGATE_SIGNING_PASSPHRASE), or run 'lotgate keys demo --workspace {ws.root}' "
@@ -56,12 +83,18 @@ def signer_for(ws: Workspace) -> IdentitySigner:
 
 
 def open_night(root: Path) -> tuple[Workspace, Store, IdentitySigner]:
-    """Open the workspace, its store and its signer for a night; fail before any file is touched."""
+    """Open the workspace, its store and its signer for a night; fail before any file is touched.
+
+    Everything a night needs is checked here, before Prefect or any worker starts: the settings,
+    the inbox, the signing identity (its passphrase taken out of the environment), the
+    specifications, methods and export layouts, and the database URL and store.
+    """
     ws = open_workspace(root)
     if not ws.inbox.is_dir():
         raise InputError(f"{ws.inbox} does not exist: the workspace needs an inbox/ folder with tonight's exports")
-    ws.make_folders()
     signer = signer_for(ws)
+    open_controlled_documents(ws)
+    ws.make_folders()
     store = Store(ws.database_url)
     return ws, store, signer
 

@@ -82,7 +82,7 @@ class _Renderers:
         cores = workers if workers is not None else (os.cpu_count() or 1)
         self.pool = None
         if cores > 1 and lots >= PARALLEL_FROM_LOTS:
-            self.pool = process_pool(cores, renderer_start, (str(ws.root),))
+            self.pool = process_pool(cores, renderer_start, (ws.plant_name, signer))
 
     def submit(self, jobs: list[_Job]) -> Any:
         """Start rendering ``jobs``; ``collect`` returns their documents in order."""

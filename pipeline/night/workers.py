@@ -52,17 +52,14 @@ def parse_files(paths: list[str]) -> list[ParsedExport | ExportRejected]:
 
 
 # ------------------------------------------------------------------------------ rendering
-def renderer_start(root: str) -> None:
+def renderer_start(location: str, signer: Any) -> None:
+    """A rendering worker: the night's signer (re-opened here from its pickle) and the plant's name."""
     import logging
-
-    from pipeline.night.open import signer_for
-    from pipeline.records.workspace import open_workspace
 
     for noisy in ("pyhanko", "pyhanko_certvalidator"):
         logging.getLogger(noisy).setLevel(logging.CRITICAL)
-    ws = open_workspace(Path(root))
-    _WORKER["signer"] = signer_for(ws)
-    _WORKER["location"] = ws.plant_name
+    _WORKER["signer"] = signer
+    _WORKER["location"] = location
     _settle()
 
 

@@ -10,6 +10,8 @@ from alembic.config import Config
 from filelock import FileLock
 from sqlalchemy import Engine, create_engine, event
 
+from pipeline.errors import StoreError
+
 MIGRATIONS = Path(__file__).resolve().parent / "migrations"
 MIGRATION_LOCK_KEY = 472_901_001
 
@@ -53,6 +55,18 @@ def migrate(engine: Engine, revision: str = "head") -> None:
     finally:
         if lock is not None:
             lock.release()
+
+
+def check_url(url: str) -> None:
+    """A database URL SQLAlchemy can read, whose driver is installed; a set-up error (StoreError) otherwise."""
+    from sqlalchemy.engine import make_url
+    from sqlalchemy.exc import ArgumentError, NoSuchModuleError
+
+    try:
+        make_url(url).get_dialect().import_dbapi()
+    except (ArgumentError, NoSuchModuleError, ImportError) as exc:
+        raise StoreError(f"the database URL {safe_url(url)} cannot be used ({exc.__class__.__name__}: {exc}); "
+                         "allowed: sqlite:///FILE or postgresql+psycopg://USER@HOST:PORT/DATABASE") from exc
 
 
 def safe_url(url: str) -> str:

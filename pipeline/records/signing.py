@@ -66,6 +66,22 @@ def _refuse_if_shared(path: Path, what: str) -> None:
         )
 
 
+_TAKEN: dict[str, bytes] = {}  # passphrases taken out of this process's environment, by variable
+
+
+def take_passphrase(passphrase_env: str = DEFAULT_PASSPHRASE_ENV) -> bytes | None:
+    """The passphrase in the environment variable ``passphrase_env``, read once.
+
+    The variable is removed from ``os.environ`` (and so from the environment of every child
+    process started later: Prefect's server, the fork server of the workers); later calls in
+    this process return the value taken first. None when the variable was never set.
+    """
+    value = os.environ.pop(passphrase_env, None)
+    if value:
+        _TAKEN[passphrase_env] = value.encode("utf-8")
+    return _TAKEN.get(passphrase_env)
+
+
 def _read_passphrase(
     passphrase: bytes | None, passphrase_env: str, passphrase_file: Path | None
 ) -> bytes:
@@ -83,11 +99,21 @@ def _read_passphrase(
         if not passphrase_file.is_file():
             raise SigningError(f"passphrase file {passphrase_file} does not exist")
         _refuse_if_shared(passphrase_file, "passphrase file")
-        return passphrase_file.read_bytes().rstrip(b"\r\n")
+        try:
+            return passphrase_file.read_bytes().rstrip(b"\r\n")
+        except OSError as exc:
+            raise SigningError(f"passphrase file {passphrase_file} cannot be read ({exc.strerror})") from exc
     raise SigningError(
         f"no passphrase for the signing key: pass one, set the environment variable "
         f"{passphrase_env or '(none configured)'}, or give a passphrase file"
     )
+
+
+def _first_cause(exc: BaseException) -> str:
+    """The innermost error's own words (pyHanko re-raises the cryptography library's error)."""
+    while (exc.__cause__ or exc.__context__) is not None:
+        exc = exc.__cause__ or exc.__context__  # type: ignore[assignment]
+    return f"{exc.__class__.__name__}: {exc}"
 
 
 def common_name(cert: asn1_x509.Certificate) -> str:
@@ -124,7 +150,7 @@ def load_identity(
     except Exception as exc:  # wrong passphrase, damaged file, no key inside
         raise SigningError(
             f"cannot open signing identity {p12_path}: wrong passphrase or damaged PKCS#12 "
-            f"file ({exc})"
+            f"file ({_first_cause(exc)})"
         ) from exc
     if signer is None or signer.signing_cert is None:
         raise SigningError(f"signing identity {p12_path} holds no usable key and certificate")

@@ -2,15 +2,20 @@
 
 from __future__ import annotations
 
+import difflib
 import os
 import shutil
 import tempfile
 from dataclasses import dataclass
 from pathlib import Path
+from zoneinfo import ZoneInfo, ZoneInfoNotFoundError, available_timezones
 
 import yaml
+from pydantic import Field, field_validator
 
+from pipeline.controlled.strict import Strict, Text, checked
 from pipeline.errors import SpecificationError
+from pipeline.records.database import check_url
 
 DEFAULT_TIME_ZONE = "Europe/Berlin"
 
@@ -73,18 +78,53 @@ CONTROLLED_KINDS = {
 }
 
 
-def _controlled_folders(root: Path, setting: object, path: Path) -> tuple[tuple[str, Path], ...]:
+class SigningSettings(Strict):
+    p12: Text | None = Field(None, description="the path of a PKCS#12 file")
+    passphrase_file: Text | None = Field(None, description="the path of a file holding the passphrase")
+    signer_name: Text | None = None
+
+
+class ControlledSettings(Strict):
+    specifications: Text | None = Field(None, description="a folder name")
+    methods: Text | None = Field(None, description="a folder name")
+    layouts: Text | None = Field(None, description="a folder name")
+
+
+class WorkspaceSettings(Strict):
+    """The declared schema of ``workspace.yaml``: any other key is refused, naming the nearest known one."""
+
+    plant_name: Text | None = None
+    time_zone: Text | None = Field(None, description="a time zone of the IANA database, e.g. Europe/Berlin")
+    database_url: Text | None = Field(None, description="a database URL, e.g. sqlite:///lotgate.db")
+    signing: SigningSettings | None = Field(
+        None, description="a mapping with p12, passphrase_file and signer_name")
+    controlled: ControlledSettings | None = Field(
+        None, description="a mapping of specifications, methods, layouts to folders")
+
+    @field_validator("time_zone")
+    @classmethod
+    def _known_zone(cls, zone: str | None) -> str | None:
+        if zone is not None and not _is_time_zone(zone):
+            near = difflib.get_close_matches(zone, sorted(available_timezones()), n=1)
+            raise ValueError(f"names no time zone of the IANA database, found {zone!r}"
+                             + (f" (did you mean '{near[0]}'?)" if near else "; e.g. Europe/Berlin or UTC"))
+        return zone
+
+
+def _is_time_zone(zone: str) -> bool:
+    try:
+        ZoneInfo(zone)
+    except (ZoneInfoNotFoundError, ValueError):
+        return False
+    return True
+
+
+def _controlled_folders(root: Path, setting: ControlledSettings | None, path: Path) -> tuple[tuple[str, Path], ...]:
     """The ``controlled:`` setting: each named folder, relative to the workspace, must exist."""
     if setting is None:
         return ()
-    if not isinstance(setting, dict):
-        raise SpecificationError(f"{path}: 'controlled' must map {', '.join(CONTROLLED_KINDS)} to folders")
     folders = {}
-    for kind, value in setting.items():
-        if kind not in CONTROLLED_KINDS:
-            raise SpecificationError(f"{path}: 'controlled' names '{kind}'; allowed: {', '.join(CONTROLLED_KINDS)}")
-        if not isinstance(value, str) or not value.strip():
-            raise SpecificationError(f"{path}: 'controlled.{kind}' must be a folder name, found {value!r}")
+    for kind, value in setting.model_dump(exclude_none=True).items():
         folder = (root / Path(value).expanduser()).resolve()
         if not folder.is_dir():
             raise SpecificationError(
@@ -94,34 +134,41 @@ def _controlled_folders(root: Path, setting: object, path: Path) -> tuple[tuple[
     return tuple(folders.items())
 
 
+def read_settings(root: Path) -> WorkspaceSettings:
+    """``DIR/workspace.yaml`` checked against its declared schema (no file: every default)."""
+    path = root / SETTINGS_FILE
+    if not path.exists():
+        return WorkspaceSettings()
+    try:
+        raw = yaml.safe_load(path.read_text(encoding="utf-8"))
+    except (yaml.YAMLError, UnicodeDecodeError) as exc:
+        raise SpecificationError(f"{path}: not valid YAML ({exc})") from exc
+    except OSError as exc:
+        raise SpecificationError(f"{path}: cannot be read ({exc.strerror})") from exc
+    return checked(WorkspaceSettings, {} if raw is None else raw, str(path))
+
+
 def open_workspace(root: Path, *, plant_name: str | None = None, signer_name: str | None = None) -> Workspace:
     """Read ``DIR/workspace.yaml`` if present; the environment's LOTGATE_DATABASE_URL wins.
 
-    A ``controlled:`` setting that names a missing folder is refused here, before any night starts.
+    An unknown key, a value of the wrong type, an unknown time zone, a database URL that cannot be
+    used or a ``controlled:`` setting that names a missing folder is refused here, before any night
+    starts.
     """
     root = root.resolve()
-    settings: dict = {}
-    path = root / SETTINGS_FILE
-    if path.exists():
-        try:
-            settings = yaml.safe_load(path.read_text(encoding="utf-8")) or {}
-        except yaml.YAMLError as exc:
-            raise SpecificationError(f"{path}: not valid YAML ({exc})") from exc
-        if not isinstance(settings, dict):
-            raise SpecificationError(f"{path}: expected a mapping of settings")
-    url = os.environ.get("LOTGATE_DATABASE_URL") or settings.get("database_url") or f"sqlite:///{root / 'lotgate.db'}"
-    signing = settings.get("signing") or {}
-    p12 = signing.get("p12")
-    passphrase_file = signing.get("passphrase_file")
+    settings = read_settings(root)
+    url = os.environ.get("LOTGATE_DATABASE_URL") or settings.database_url or f"sqlite:///{root / 'lotgate.db'}"
+    check_url(url)
+    signing = settings.signing or SigningSettings()
     return Workspace(
         root=root,
-        plant_name=str(settings.get("plant_name") or plant_name or "Unnamed plant"),
-        time_zone=str(settings.get("time_zone") or DEFAULT_TIME_ZONE),
-        database_url=str(url),
-        signing_p12=Path(p12) if p12 else None,
-        signing_passphrase_file=Path(passphrase_file) if passphrase_file else None,
-        signer_name=str(signing.get("signer_name") or signer_name or "QA reviewer"),
-        controlled=_controlled_folders(root, settings.get("controlled"), path),
+        plant_name=settings.plant_name or plant_name or "Unnamed plant",
+        time_zone=settings.time_zone or DEFAULT_TIME_ZONE,
+        database_url=url,
+        signing_p12=Path(signing.p12) if signing.p12 else None,
+        signing_passphrase_file=Path(signing.passphrase_file) if signing.passphrase_file else None,
+        signer_name=signing.signer_name or signer_name or "QA reviewer",
+        controlled=_controlled_folders(root, settings.controlled, root / SETTINGS_FILE),
     )
 
 
