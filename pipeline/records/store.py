@@ -7,7 +7,7 @@ the chart types); its ORM rows (``pipeline.records.tables``) never leave it.
 from __future__ import annotations
 
 import datetime as dt
-from collections.abc import Iterator
+from collections.abc import Callable, Iterator
 from contextlib import contextmanager
 from typing import Any
 
@@ -41,7 +41,7 @@ from pipeline.records.tables import (
 from pipeline.release.chart_view import ReleasedPoint, StoredLimits
 from pipeline.vocabulary import Disposition
 
-RUN_LOCK_KEY = 472_901_002
+NIGHTS_LOCK_KEY = 472_901_002  # held while a night is started: one workspace claims the store at a time
 AUDIT_LOCK_KEY = 472_901_003
 CHUNK = 500  # values per IN (...) query
 
@@ -66,6 +66,11 @@ class Store:
         except SQLAlchemyError as exc:
             raise StoreError(f"cannot open the results store at {safe_url(url)}: {exc.__class__.__name__}: {exc}") from exc
         self._sessions = sessionmaker(self.engine, expire_on_commit=False)
+        self._commit_check: Callable[[], None] | None = None
+
+    def set_commit_check(self, check: Callable[[], None] | None) -> None:
+        """Call ``check`` before every commit (the run lock's: it raises when the night lost its lock)."""
+        self._commit_check = check
 
     @property
     def is_postgresql(self) -> bool:
@@ -76,6 +81,8 @@ class Store:
         session = self._sessions()
         try:
             yield session
+            if self._commit_check is not None:
+                self._commit_check()
             session.commit()
         except SQLAlchemyError as exc:
             session.rollback()
@@ -87,12 +94,39 @@ class Store:
             session.close()
 
     # --- nights and files ----------------------------------------------------------------
-    def start_night(self, code_version: str) -> int:
+    def start_night(self, code_version: str, workspace_id: str | None = None, *, shared: bool = False) -> int:
+        """A new night of the workspace ``workspace_id``; refused when the store is another workspace's.
+
+        A night started without an identity (a test's hand-made night) counts for no workspace.
+        """
         with self.session() as s:
-            night = NightRun(started_at_utc=utcnow(), code_version=code_version)
+            if self.is_postgresql:
+                s.connection().exec_driver_sql(f"SELECT pg_advisory_xact_lock({NIGHTS_LOCK_KEY})")
+            if workspace_id is not None:
+                self._check_workspace(s, workspace_id, shared)
+            night = NightRun(started_at_utc=utcnow(), code_version=code_version, workspace_id=workspace_id)
             s.add(night)
             s.flush()
             return night.id
+
+    def check_workspace(self, workspace_id: str, *, shared: bool = False) -> None:
+        """Refuse a workspace whose nights this store must not hold (see ``_check_workspace``)."""
+        with self.session() as s:
+            self._check_workspace(s, workspace_id, shared)
+
+    def _check_workspace(self, s: Session, workspace_id: str, shared: bool) -> None:
+        """A store not declared shared holds the nights of one workspace (nights before identities count for none)."""
+        if shared:
+            return
+        other = s.scalar(select(NightRun).where(NightRun.workspace_id.is_not(None),
+                                                NightRun.workspace_id != workspace_id).limit(1))
+        if other is not None:
+            raise StoreError(
+                f"the results store at {safe_url(self.url)} holds the nights of another workspace (identity "
+                f"{other.workspace_id}, night {other.id}); this workspace's identity is {workspace_id}. "
+                "Point this workspace at its own store, or, if the plant's sites share this store on purpose, "
+                "set 'store_shared: true' in every sharing workspace's workspace.yaml (lot ids must then be "
+                "unique across the sites)")
 
     def finish_night(self, night_id: int, **counts: int) -> None:
         with self.session() as s:
@@ -103,9 +137,11 @@ class Store:
                 setattr(night, key, value)
             night.finished_at_utc = utcnow()
 
-    def unfinished_nights(self) -> list[StoredNight]:
+    def unfinished_nights(self, workspace_id: str) -> list[StoredNight]:
+        """This workspace's nights that never finished (and those of before workspace identities)."""
         with self.session() as s:
-            return [night_of(n) for n in s.scalars(select(NightRun).where(NightRun.finished_at_utc.is_(None))
+            mine = (NightRun.workspace_id == workspace_id) | NightRun.workspace_id.is_(None)
+            return [night_of(n) for n in s.scalars(select(NightRun).where(NightRun.finished_at_utc.is_(None), mine)
                                                    .order_by(NightRun.id))]
 
     def record_files(self, night_id: int, files: list[dict[str, Any]], events: list[dict[str, Any]]) -> None:

@@ -27,6 +27,8 @@ class Workspace:
     # The plant's own controlled folders, by kind (see CONTROLLED_KINDS); a kind not named here
     # comes from the environment or lotgate's shipped folders (pipeline.records.controlled_files).
     controlled: tuple[tuple[str, Path], ...] = ()
+    # True when several workspaces (sites) share one results store on purpose (lot ids then unique across them)
+    store_shared: bool = False
 
     @property
     def inbox(self) -> Path:
@@ -122,6 +124,7 @@ def open_workspace(root: Path, *, plant_name: str | None = None, signer_name: st
         signing_passphrase_file=Path(passphrase_file) if passphrase_file else None,
         signer_name=str(signing.get("signer_name") or signer_name or "QA reviewer"),
         controlled=_controlled_folders(root, settings.get("controlled"), path),
+        store_shared=settings.get("store_shared") is True,
     )
 
 
