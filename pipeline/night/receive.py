@@ -23,7 +23,7 @@ from pipeline.controlled.catalog import Catalog
 from pipeline.errors import InputError
 from pipeline.intake.assembly import Assembly, QuarantinedFile, assemble
 from pipeline.intake.layouts import ExportLayout, layout_for
-from pipeline.intake.problems import ExportRejected
+from pipeline.intake.problems import ExportRejected, printable
 from pipeline.intake.validation import ParsedExport, parse_exports
 from pipeline.night.progress import Progress, no_progress
 from pipeline.night.workers import parse_files, parser_start, process_pool
@@ -96,7 +96,7 @@ def _quarantine(ws: Workspace, store: Store, intake: Intake, path: Path, sha: st
     target = unique_target(ws.quarantine, short)
     if short != path.name:
         report += (f"- its name has {len(os.fsencode(path.name))} bytes, too long to be stored with its reason "
-                   f"beside it; it is stored as {target.name}\n")
+                   f"beside it; it is stored as {target.name}; its full name is {printable(path.name, 255)}\n")
     row, event = quarantine_record(ws, intake.night_id, path.name, sha, status, report.strip(),
                                    str(target.relative_to(ws.root)))
     store.record_files(intake.night_id, [row], [event])  # recorded first: a restart finishes the move
