@@ -180,3 +180,20 @@ def test_a_night_whose_lock_session_is_ended_stops_and_no_second_night_starts(pg
     assert _count(pg_url, "SELECT count(DISTINCT lot_id) FROM decisions") == len(night.lots)
     assert _count(pg_url, "SELECT count(*) FROM decisions") == len(night.lots)
     assert _count(pg_url, "SELECT count(*) FROM audit_events WHERE kind = 'night-interrupted'") == 1  # the first
+
+
+@pytest.mark.postgres
+def test_every_store_on_the_locked_database_stops_writing_once_the_lock_session_is_ended(pg_url, tmp_path):
+    from pipeline.records import audit
+    from pipeline.records.run_lock import RunLockLost
+
+    locked, flows_own = Store(pg_url), Store(pg_url)  # the flow opens its own store on the URL the command locked
+    with run_lock(tmp_path, locked):
+        flows_own.add_events([audit.event("test-event", time_zone="UTC")])
+        key = lock_key(workspace_id(tmp_path)) & 0xFFFFFFFF
+        assert _count(pg_url, "SELECT count(pg_terminate_backend(pid)) FROM pg_locks WHERE locktype = 'advisory' "
+                              f"AND classid = {NIGHT_LOCK_CLASS} AND objid = {key}") == 1
+        with pytest.raises(RunLockLost, match="lost its run lock .* its database session ended"):
+            flows_own.add_events([audit.event("test-event", time_zone="UTC")])
+    assert len(Store(pg_url).audit_events()) == 1
+    Store(pg_url).add_events([audit.event("test-event", time_zone="UTC")])  # released: no check left behind

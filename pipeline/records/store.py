@@ -9,7 +9,7 @@ from __future__ import annotations
 import datetime as dt
 from collections.abc import Callable, Iterator
 from contextlib import contextmanager
-from typing import Any
+from typing import Any, ClassVar
 
 from sqlalchemy import func, insert, select, update
 from sqlalchemy.exc import SQLAlchemyError
@@ -66,11 +66,15 @@ class Store:
         except SQLAlchemyError as exc:
             raise StoreError(f"cannot open the results store at {safe_url(url)}: {exc.__class__.__name__}: {exc}") from exc
         self._sessions = sessionmaker(self.engine, expire_on_commit=False)
-        self._commit_check: Callable[[], None] | None = None
+
+    _commit_checks: ClassVar[dict[str, Callable[[], None]]] = {}  # per URL: the flow opens its own Store
 
     def set_commit_check(self, check: Callable[[], None] | None) -> None:
-        """Call ``check`` before every commit (the run lock's: it raises when the night lost its lock)."""
-        self._commit_check = check
+        """Call ``check`` (the run lock's) before every commit on this database in this process; None: no more."""
+        if check is None:
+            Store._commit_checks.pop(self.url, None)
+        else:
+            Store._commit_checks[self.url] = check
 
     @property
     def is_postgresql(self) -> bool:
@@ -81,8 +85,8 @@ class Store:
         session = self._sessions()
         try:
             yield session
-            if self._commit_check is not None:
-                self._commit_check()
+            if (check := Store._commit_checks.get(self.url)) is not None:
+                check()  # raises when the night lost its lock: nothing of this session is committed
             session.commit()
         except SQLAlchemyError as exc:
             session.rollback()
@@ -95,10 +99,7 @@ class Store:
 
     # --- nights and files ----------------------------------------------------------------
     def start_night(self, code_version: str, workspace_id: str | None = None, *, shared: bool = False) -> int:
-        """A new night of the workspace ``workspace_id``; refused when the store is another workspace's.
-
-        A night started without an identity (a test's hand-made night) counts for no workspace.
-        """
+        """A new night of the workspace ``workspace_id`` (None: of none); refused when the store is another's."""
         with self.session() as s:
             if self.is_postgresql:
                 s.connection().exec_driver_sql(f"SELECT pg_advisory_xact_lock({NIGHTS_LOCK_KEY})")
