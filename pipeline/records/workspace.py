@@ -3,7 +3,6 @@
 from __future__ import annotations
 
 import os
-import shutil
 import tempfile
 from dataclasses import dataclass
 from pathlib import Path
@@ -162,10 +161,4 @@ def unique_target(folder: Path, name: str) -> Path:
     while target.exists():
         target = folder / f"{name}.{counter}"
         counter += 1
-    return target
-
-
-def move_into(source: Path, folder: Path) -> Path:
-    target = unique_target(folder, source.name)
-    shutil.move(str(source), str(target))
     return target
