@@ -24,13 +24,14 @@ from pipeline.night.decide import load_charts as read_charts
 from pipeline.night.evaluate import evaluate as evaluate_lots
 from pipeline.night.open import CertificateSigner, open_night
 from pipeline.night.publish import publish as publish_lots
-from pipeline.night.receive import assemble_intake
+from pipeline.night.receive import assemble_intake, check_folders_writable
 from pipeline.night.receive import receive as receive_exports
 from pipeline.night.recovery import recover_interrupted
 from pipeline.records.controlled_files import open_controlled_documents
 from pipeline.records.run_lock import run_lock
 from pipeline.records.store import Store
 from pipeline.records.workspace import Workspace
+from pipeline.records.workspace_id import workspace_id
 
 _PROGRESS: dict[str, Callable[[str, int, int], None]] = {}
 
@@ -107,8 +108,11 @@ def _stages(ws: Workspace, store: Store, signer: CertificateSigner, step: dict,
             STAGE_PEAK_MB[name] = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0
 
     catalog, layouts = open_controlled_documents(ws)
-    recovered = recover_interrupted(ws, store)
-    night_id = store.start_night(__version__)
+    identity = workspace_id(ws.root)
+    store.check_workspace(identity, shared=ws.store_shared)  # another workspace's store: refused before any move
+    check_folders_writable(ws)
+    recovered = recover_interrupted(ws, store, identity)
+    night_id = store.start_night(__version__, identity, shared=ws.store_shared)
     intake = timed("receive", ws, store, layouts, night_id, _progress, recovered.quarantined)
     assembly = timed("assemble", intake, catalog)
     evaluations, _plates = timed("evaluate", assembly, catalog)

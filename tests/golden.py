@@ -6,10 +6,11 @@ behaviour on purpose and says so).
 
 What varies from run to run is masked, and nothing else: clock times (UTC and local), the hashes
 of files that contain a time (reports, certificates, LIMS files), the audit chain's hashes (its
-events carry times), and the fingerprint of the demo signer's certificate (a new key per
-workspace). Unrounded numbers in the store are compared to 10 significant digits: the fitting
-engine may take another path to the same minimum, which moves the 12th digit; every number a
-person reads (documents, LIMS files, reported values) is compared character for character.
+events carry times), the fingerprint of the demo signer's certificate (a new key per
+workspace) and each night's workspace identity (a random id). Unrounded numbers in the store
+are compared to 10 significant digits: the fitting engine may take another path to the same
+minimum, which moves the 12th digit; every number a person reads (documents, LIMS files,
+reported values) is compared character for character.
 """
 
 from __future__ import annotations
@@ -25,7 +26,7 @@ GOLDEN = Path(__file__).parent / "golden" / "demo"
 
 _TIME = re.compile(r"\d{4}-\d{2}-\d{2}[T ]\d{2}:\d{2}(:\d{2}(\.\d+)?)?(\+00:00|Z)?")
 _HEX = re.compile(r"[0-9a-f]{12,64}")
-_MASKED_COLUMNS = {"prev_hash", "hash"}
+_MASKED_COLUMNS = {"prev_hash", "hash", "workspace_id"}
 _DIGITS = 10
 
 

@@ -89,3 +89,19 @@ def test_two_runs_at_once_exactly_one_processes(pg_url, tmp_path):
     with create_engine(pg_url).connect() as connection:
         assert connection.execute(text("select count(*) from decisions")).scalar() == len(night.lots)
         assert connection.execute(text("select count(distinct lot_id) from decisions")).scalar() == len(night.lots)
+
+
+def test_a_run_on_postgresql_is_refused_while_a_sqlite_run_holds_the_same_workspace(pg_url, tmp_path):
+    from pipeline.records.run_lock import run_lock
+    from pipeline.records.store import Store
+
+    root = tmp_path / "w"
+    night = _workspace(root)
+    command = [sys.executable, "-m", "flows.cli", "run", "--workspace", str(root), "--no-orchestration"]
+    with run_lock(root, Store(f"sqlite:///{root / 'lotgate.db'}")):  # a night on the workspace's own SQLite store
+        refused = subprocess.run(command, env=_env(pg_url), capture_output=True, text=True, timeout=600)
+    assert refused.returncode == 3, refused.stderr[-2000:]
+    assert "another night is already running on the workspace" in refused.stderr
+    assert sorted(p.name for p in (root / "inbox").iterdir()) == sorted(night.files)
+    with create_engine(pg_url).connect() as connection:
+        assert connection.execute(text("select count(*) from night_runs")).scalar() == 0

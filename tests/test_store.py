@@ -5,6 +5,7 @@ import json
 import pytest
 from sqlalchemy import create_engine, text
 
+from pipeline.errors import StoreError
 from pipeline.records import audit, ledger
 from pipeline.records.store import Store
 from pipeline.records.stored import DecisionWrite
@@ -33,22 +34,51 @@ def test_migrations_bring_a_new_database_to_the_current_version(url):
     with store.engine.connect() as connection:
         version = connection.execute(text("select version_num from alembic_version")).scalar()
         tables = set(store.engine.dialect.get_table_names(connection))
-    assert version == "0002"
+    assert version == "0003"
     assert {"input_files", "lots", "decisions", "results", "control_limits", "audit_events", "night_runs"} <= tables
 
 
-def test_a_database_of_the_previous_version_upgrades_with_its_data(url):
-    # Build the schema of revision 0001 (the first release of the store), fill it, then open it.
-    engine = create_engine(url)
+def _database_at(url, revision):
+    """An engine on a database brought to ``revision`` only, for filling with that version's data."""
     from alembic import command
     from alembic.config import Config
 
     from pipeline.records.database import MIGRATIONS
+    engine = create_engine(url)
     config = Config()
     config.set_main_option("script_location", str(MIGRATIONS))
     with engine.begin() as connection:
         config.attributes["connection"] = connection
-        command.upgrade(config, "0001")
+        command.upgrade(config, revision)
+    return engine
+
+
+def test_a_0002_database_upgrades_with_its_nights_and_the_first_workspace_adopts_it(url):
+    engine = _database_at(url, "0002")
+    with engine.begin() as connection:
+        connection.execute(text("insert into night_runs (started_at_utc, finished_at_utc, code_version, files_received,"
+                                " files_archived, files_quarantined, lots_decided) values (CURRENT_TIMESTAMP, NULL,"
+                                " '0.1.0', 3, 2, 1, 1)"))
+    engine.dispose()
+    store = Store(url)
+    with store.engine.connect() as connection:
+        assert connection.execute(text("select files_received, workspace_id from night_runs")).all() == [(3, None)]
+    # The night stored before identities is this workspace's to recover; then the store is the workspace's.
+    assert [n.id for n in store.unfinished_nights("a" * 32)] == [1]
+    store.start_night("test", "a" * 32)
+    with pytest.raises(StoreError, match="holds the nights of another workspace .*store_shared: true"):
+        store.start_night("test", "b" * 32)
+    with pytest.raises(StoreError, match="another workspace"):
+        store.check_workspace("b" * 32)
+    assert store.unfinished_nights("b" * 32) == [store.unfinished_nights("a" * 32)[0]]  # only the one of before
+    store.start_night("test", "b" * 32, shared=True)  # a store the plant declares shared takes both
+    assert {n.id for n in store.unfinished_nights("b" * 32)} == {1, 3}
+
+
+def test_a_database_of_the_previous_version_upgrades_with_its_data(url):
+    # Build the schema of revision 0001 (the first release of the store), fill it, then open it.
+    engine = _database_at(url, "0001")
+    with engine.begin() as connection:
         connection.execute(text("insert into lots (lot_id, product_code, first_seen_utc) values "
                                 "('LLC-0001', 'LLC-200', CURRENT_TIMESTAMP)"))
     engine.dispose()

@@ -13,7 +13,7 @@ from pathlib import Path
 from pipeline import __version__
 from pipeline.documents.lims_results import lims_files, result_rows
 from pipeline.night.publish import Outcome
-from pipeline.night.receive import Intake
+from pipeline.night.receive import Intake, stored_name
 from pipeline.records import audit
 from pipeline.records.store import Store
 from pipeline.records.workspace import Workspace, atomic_write, unique_target
@@ -64,7 +64,7 @@ def close(ws: Workspace, store: Store, intake: Intake, outcomes: list[Outcome], 
     archive = ws.archive / f"night-{intake.night_id:04d}"
     files, events, moves = [], [], []
     for parsed in intake.parsed:
-        target = unique_target(archive, parsed.file_name)
+        target = unique_target(archive, stored_name(parsed.file_name))
         stored_as = str(target.relative_to(ws.root))
         files.append(dict(file_name=parsed.file_name, sha256=parsed.sha256, kind=parsed.kind,
                           layout_version=parsed.layout_version, status="archived",

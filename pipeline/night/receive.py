@@ -1,33 +1,42 @@
 """Receiving the night's exports: every file in the inbox read and validated, or set aside with its reason.
 
-A file is set aside (quarantined) when it is a link, hidden, too large, a byte-for-byte copy of
-a file already used, or fails its layout's checks; its reason lies beside it and in the store.
-A large inbox is parsed across all cores.
+An entry is set aside (quarantined) when it is a link, a named pipe, socket or device (never
+opened), hidden, too large, a byte-for-byte copy of a file already used, or fails its layout's
+checks; its reason lies beside it and in the store. Every entry is recorded (name, SHA-256,
+where it will lie) before anything moves it, so a run killed between the two finishes the move
+on restart. A large inbox is parsed across all cores.
 """
 
 from __future__ import annotations
 
 import dataclasses
+import errno
 import hashlib
 import os
+import shutil
+import stat
 from collections.abc import Callable, Iterator
 from dataclasses import dataclass, field
 from pathlib import Path
 
 from pipeline.controlled.catalog import Catalog
+from pipeline.errors import InputError
 from pipeline.intake.assembly import Assembly, QuarantinedFile, assemble
 from pipeline.intake.layouts import ExportLayout, layout_for
-from pipeline.intake.problems import ExportRejected
+from pipeline.intake.problems import ExportRejected, printable
 from pipeline.intake.validation import ParsedExport, parse_exports
 from pipeline.night.progress import Progress, no_progress
 from pipeline.night.workers import parse_files, parser_start, process_pool
 from pipeline.records import audit
 from pipeline.records.controlled_files import sha256_file
 from pipeline.records.store import Store
-from pipeline.records.workspace import Workspace, atomic_write, move_into
+from pipeline.records.workspace import Workspace, atomic_write, unique_target
 
 PARSE_CHUNK_FILES = 50        # files read and validated per call of parse_exports
 PARALLEL_FROM_FILES = 100     # below this, worker processes cost more than they save
+STORED_NAME_BYTES = 200       # a stored name, its '.NN' counter and '.reason.txt' stay within 255 bytes
+SPECIAL_KINDS = ((stat.S_ISFIFO, "a named pipe (FIFO)"), (stat.S_ISSOCK, "a socket"),
+                 (stat.S_ISCHR, "a character device"), (stat.S_ISBLK, "a block device"))
 
 
 @dataclass
@@ -50,14 +59,48 @@ def quarantine_record(ws: Workspace, night_id: int, file_name: str, sha: str, st
                             sha256=sha, status=status, stored_as=stored_as, reason=reason, **extra)
 
 
+def stored_name(name: str) -> str:
+    """The name a file is stored under: its own, or, when longer than STORED_NAME_BYTES, its start
+    followed by '~' and 16 hexadecimal digits of the SHA-256 of the whole name."""
+    raw = os.fsencode(name)
+    if len(raw) <= STORED_NAME_BYTES:
+        return name
+    head = raw[:STORED_NAME_BYTES - 17].decode("utf-8", errors="ignore")
+    return f"{head}~{hashlib.sha256(raw).hexdigest()[:16]}"
+
+
+def check_folders_writable(ws: Workspace) -> None:
+    """A set-up error, before anything is recorded or moved, when lotgate cannot move files out of the inbox."""
+    for folder in (ws.inbox, ws.quarantine, ws.archive):
+        if not os.access(folder, os.W_OK | os.X_OK):
+            raise InputError(f"lotgate cannot move files in {folder} (the folder is read-only for the user "
+                             "running the night); nothing was received. Give that user write access to the "
+                             "workspace's inbox, quarantine and archive folders, then run the night again.")
+
+
+def place_aside(source: Path, target: Path, report: str) -> None:
+    """Move a recorded entry to its place in quarantine (renamed, never opened), then write its reason beside it."""
+    try:
+        os.rename(source, target)
+    except OSError as exc:  # another file system: a file or link is copied, a special entry stays
+        if exc.errno != errno.EXDEV or _special_kind(source):
+            raise
+        shutil.move(str(source), str(target))
+    atomic_write(target.with_name(target.name + ".reason.txt"), report.encode("utf-8"))
+
+
 def _quarantine(ws: Workspace, store: Store, intake: Intake, path: Path, sha: str, status: str, report: str,
                 text: str) -> None:
-    """Move a file aside with its reason beside it, and record both in one transaction."""
-    target = move_into(path, ws.quarantine)
-    atomic_write(target.with_name(target.name + ".reason.txt"), report.encode("utf-8"))
+    """Record a file set aside (name, SHA-256, where it will lie, why), then move it there with its reason."""
+    short = stored_name(path.name)
+    target = unique_target(ws.quarantine, short)
+    if short != path.name:
+        report += (f"- its name has {len(os.fsencode(path.name))} bytes, too long to be stored with its reason "
+                   f"beside it; it is stored as {target.name}; its full name is {printable(path.name, 255)}\n")
     row, event = quarantine_record(ws, intake.night_id, path.name, sha, status, report.strip(),
                                    str(target.relative_to(ws.root)))
-    store.record_files(intake.night_id, [row], [event])
+    store.record_files(intake.night_id, [row], [event])  # recorded first: a restart finishes the move
+    place_aside(path, target, report)
     intake.quarantined.append(QuarantinedFile(path.name, sha, report.strip(), text))
 
 
@@ -65,14 +108,16 @@ def receive(ws: Workspace, store: Store, layouts: dict[str, ExportLayout], night
             progress: Progress = no_progress, carried: list[QuarantinedFile] | None = None) -> Intake:
     """Read and validate every file in the inbox; set aside, with its reason, what cannot be used.
 
-    Every entry of the inbox is counted: hidden files and symbolic links are set aside too (a
-    link's target could change after it is archived); a folder is left in place and named.
+    Every entry of the inbox is counted: hidden files, symbolic links (a link's target could
+    change after it is archived), named pipes, sockets and devices are set aside too; a folder is
+    left in place and named.
     """
     entries = sorted(ws.inbox.iterdir())
     intake = Intake(night_id=night_id, received=0, carried=list(carried or []))
+    folders = {e for e in entries if stat.S_ISDIR(e.lstat().st_mode)}
     intake.notes += [f"the inbox holds a folder '{e.name}'; lotgate reads files only, it was left in place"
-                     for e in entries if e.is_dir() and not e.is_symlink()]
-    files = [e for e in entries if e.is_symlink() or e.is_file()]
+                     for e in sorted(folders)]
+    files = [e for e in entries if e not in folders]
     intake.received = len(files)
     done = 0
 
@@ -89,11 +134,10 @@ def receive(ws: Workspace, store: Store, layouts: dict[str, ExportLayout], night
             candidates.append((path, sha256_file(path)))
             continue
         head = b""
-        if not path.is_symlink():
+        if stat.S_ISREG(path.lstat().st_mode):
             with open(path, "rb") as handle:  # the start only: enough to name the lots it mentions
                 head = handle.read(1 << 16)
-        digest = (hashlib.sha256(os.readlink(path).encode()).hexdigest() if path.is_symlink()
-                  else sha256_file(path))  # streamed: a large file is never held in memory
+        digest = _entry_digest(path)
         _quarantine(ws, store, intake, path, digest, "quarantined",
                     f"File {path.name} was set aside (quarantined) and not used.\n\n- {reason}\n",
                     head.decode("utf-8", errors="replace"))
@@ -118,10 +162,29 @@ def receive(ws: Workspace, store: Store, layouts: dict[str, ExportLayout], night
     return intake
 
 
+def _special_kind(path: Path) -> str | None:
+    """'a named pipe (FIFO)', 'a socket', 'a character device', 'a block device', or None (from lstat: nothing opened)."""
+    mode = path.lstat().st_mode
+    return next((name for test, name in SPECIAL_KINDS if test(mode)), None)
+
+
+def _entry_digest(path: Path) -> str:
+    """SHA-256 of a file's bytes (streamed), of a link's target text, or of a special entry's kind and name."""
+    if path.is_symlink():
+        return hashlib.sha256(os.readlink(path).encode()).hexdigest()
+    special = _special_kind(path)
+    if special:
+        return hashlib.sha256(f"{special}: {path.name}".encode("utf-8", errors="surrogateescape")).hexdigest()
+    return sha256_file(path)
+
+
 def _unusable(path: Path, layouts: dict[str, ExportLayout], largest: int) -> str | None:
-    """Why a file cannot be an export (a link, hidden, too large), or None."""
+    """Why an entry cannot be an export (a link, a pipe, socket or device, hidden, too large), or None."""
     if path.is_symlink():
         return "it is a symbolic link; export the file itself into the inbox (a link's target can change later)"
+    special = _special_kind(path)
+    if special:
+        return f"it is {special}, not a file; lotgate set it aside without opening it (reading it could wait for ever)"
     if path.name.startswith("."):
         return "it is a hidden file (its name starts with '.'), not an export"
     layout = layout_for(path.name, layouts)

@@ -8,7 +8,8 @@ from typing import Any
 from alembic import command
 from alembic.config import Config
 from filelock import FileLock
-from sqlalchemy import Engine, create_engine, event
+from sqlalchemy import Engine, create_engine, event, text
+from sqlalchemy.exc import SQLAlchemyError
 
 from pipeline.errors import StoreError
 
@@ -77,3 +78,40 @@ def safe_url(url: str) -> str:
         user = credentials.split(":", 1)[0]
         return f"{scheme}://{user}:***@{host}" if ":" in credentials else url
     return url
+
+
+_HELD = text("SELECT count(*) FROM pg_locks WHERE locktype = 'advisory' AND pid = pg_backend_pid() AND granted "
+             "AND classid = :first AND objid = :second AND objsubid = 2")  # the second key shows as an unsigned oid
+
+
+class AdvisoryLock:
+    """A PostgreSQL session-level advisory lock (two 32-bit keys) on a connection of its own."""
+
+    def __init__(self, engine: Engine, first: int, second: int):
+        self.keys = {"first": first, "second": second}
+        self.connection = engine.connect()
+
+    def try_take(self) -> bool:
+        taken = bool(self.connection.execute(text("SELECT pg_try_advisory_lock(:first, :second)"), self.keys).scalar())
+        self.connection.commit()
+        return taken
+
+    def lost_because(self) -> str | None:
+        """None while this session is alive and holds the lock; otherwise why not, in words."""
+        try:
+            held = self.connection.execute(_HELD, {"first": self.keys["first"],
+                                                   "second": self.keys["second"] & 0xFFFFFFFF}).scalar()
+            self.connection.commit()
+        except SQLAlchemyError as exc:
+            return f"its database session ended ({exc.__class__.__name__})"
+        return None if held else "the database no longer counts it as held"
+
+    def close(self) -> None:
+        """Release the lock (if the session still lives) and close the session."""
+        try:
+            self.connection.execute(text("SELECT pg_advisory_unlock(:first, :second)"), self.keys)
+            self.connection.commit()
+        except SQLAlchemyError:  # the session is gone, and its lock with it
+            pass
+        finally:
+            self.connection.close()

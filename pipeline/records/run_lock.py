@@ -1,7 +1,12 @@
-"""One night at a time (adapter): an advisory lock on PostgreSQL, a file lock with SQLite.
+"""One night per workspace (adapter): a file lock in the workspace, and on PostgreSQL a lock in the store too.
 
-A second run started while the first holds the lock stops at once with RunLocked, before it
-touches any file, and names who holds it when that is known.
+The file lock (``DIR/.lotgate-night.lock``) is taken whatever the database, so a run on SQLite
+and one with ``LOTGATE_DATABASE_URL`` set cannot work on the same workspace at once. Where the
+store is PostgreSQL (which several workspaces may share) the night also holds an advisory lock
+keyed by the workspace identity, on a session of its own; before every commit the store asks
+that session whether it still holds the lock, so a night whose lock session was ended stops
+before its next write. A second run started while the first holds the lock stops at once with
+RunLocked, before it touches any file, and names who holds it when that is known.
 """
 
 from __future__ import annotations
@@ -10,18 +15,29 @@ import datetime as dt
 import json
 import os
 import socket
+import time
 from collections.abc import Iterator
-from contextlib import contextmanager
+from contextlib import contextmanager, nullcontext
 from pathlib import Path
 
 from filelock import FileLock, Timeout
 
 from pipeline.errors import LotgateError
-from pipeline.records.store import RUN_LOCK_KEY, Store
+from pipeline.records.database import AdvisoryLock
+from pipeline.records.store import Store
+from pipeline.records.workspace_id import lock_key, workspace_id
+
+LOCK_FILE = ".lotgate-night.lock"
+INFO_FILE = ".lotgate-run.json"
+NIGHT_LOCK_CLASS = 472_901  # first key of the store's two-key advisory lock; the second is the workspace's
 
 
 class RunLocked(LotgateError):
-    """Another night is running on this workspace or database."""
+    """Another night is running on this workspace."""
+
+
+class RunLockLost(RunLocked):
+    """The night's lock in the store was lost: it must stop before its next write."""
 
 
 def _holder_text(path: Path) -> str:
@@ -32,49 +48,56 @@ def _holder_text(path: Path) -> str:
         return ""
 
 
+def _refused(root: Path) -> RunLocked:
+    return RunLocked(f"another night is already running on the workspace {root}{_holder_text(root / INFO_FILE)}; "
+                     "this run stopped before touching any file. Run it again when the other one has finished.")
+
+
 @contextmanager
 def run_lock(root: Path, store: Store, wait_s: float = 0.0) -> Iterator[None]:
-    """Hold the night's lock for the duration of the block."""
-    info_path = root / ".lotgate-run.json"
-    if store.is_postgresql:
-        connection = store.engine.connect()
-        try:
-            got = False
-            deadline = dt.datetime.now() + dt.timedelta(seconds=wait_s)
-            while True:
-                got = bool(connection.exec_driver_sql(f"SELECT pg_try_advisory_lock({RUN_LOCK_KEY})").scalar())
-                connection.commit()
-                if got or dt.datetime.now() >= deadline:
-                    break
-                import time
-
-                time.sleep(0.5)
-            if not got:
-                raise RunLocked("another night is already running against this database"
-                                f"{_holder_text(info_path)}; this run stopped before touching any file. "
-                                "Run it again when the other one has finished.")
-            _write_info(info_path)
-            try:
-                yield
-            finally:
-                info_path.unlink(missing_ok=True)
-                connection.exec_driver_sql(f"SELECT pg_advisory_unlock({RUN_LOCK_KEY})")
-                connection.commit()
-        finally:
-            connection.close()
-        return
-    lock = FileLock(str(root / ".lotgate-run.lock"))
+    """Hold the night's lock on the workspace (and on a PostgreSQL store) for the duration of the block."""
+    lock = FileLock(str(root / LOCK_FILE))
     try:
         lock.acquire(timeout=wait_s)
     except Timeout:
-        raise RunLocked(f"another night is already running on the workspace {root}{_holder_text(info_path)}; "
-                        "this run stopped before touching any file. Run it again when the other one has finished.") from None
+        raise _refused(root) from None
     try:
-        _write_info(info_path)
-        yield
+        with _store_lock(root, store, wait_s) if store.is_postgresql else nullcontext():
+            _write_info(root / INFO_FILE)
+            try:
+                yield
+            finally:
+                (root / INFO_FILE).unlink(missing_ok=True)
     finally:
-        info_path.unlink(missing_ok=True)
         lock.release()
+
+
+@contextmanager
+def _store_lock(root: Path, store: Store, wait_s: float) -> Iterator[None]:
+    """The advisory lock keyed by the workspace identity, on its own session, checked before each commit."""
+    lock = AdvisoryLock(store.engine, NIGHT_LOCK_CLASS, lock_key(workspace_id(root)))
+    try:
+        deadline = time.monotonic() + wait_s
+        while not lock.try_take():
+            if time.monotonic() >= deadline:
+                raise _refused(root)
+            time.sleep(0.5)
+        store.set_commit_check(lambda: _check_held(lock))
+        try:
+            yield
+        finally:
+            store.set_commit_check(None)
+    finally:
+        lock.close()
+
+
+def _check_held(lock: AdvisoryLock) -> None:
+    """Raise RunLockLost unless the lock session is alive and still holds the night's lock."""
+    why = lock.lost_because()
+    if why is not None:
+        raise RunLockLost(f"this night lost its run lock in the results store: {why}. It stopped before its next "
+                          "write, so that no other night's records are mixed with its own; run it again to finish "
+                          "the night (what was committed stands).")
 
 
 def _write_info(path: Path) -> None:

@@ -7,9 +7,9 @@ the chart types); its ORM rows (``pipeline.records.tables``) never leave it.
 from __future__ import annotations
 
 import datetime as dt
-from collections.abc import Iterator
+from collections.abc import Callable, Iterator
 from contextlib import contextmanager
-from typing import Any
+from typing import Any, ClassVar
 
 from sqlalchemy import func, insert, select, update
 from sqlalchemy.exc import SQLAlchemyError
@@ -41,7 +41,7 @@ from pipeline.records.tables import (
 from pipeline.release.chart_view import ReleasedPoint, StoredLimits
 from pipeline.vocabulary import Disposition
 
-RUN_LOCK_KEY = 472_901_002
+NIGHTS_LOCK_KEY = 472_901_002  # held while a night is started: one workspace claims the store at a time
 AUDIT_LOCK_KEY = 472_901_003
 CHUNK = 500  # values per IN (...) query
 
@@ -67,6 +67,15 @@ class Store:
             raise StoreError(f"cannot open the results store at {safe_url(url)}: {exc.__class__.__name__}: {exc}") from exc
         self._sessions = sessionmaker(self.engine, expire_on_commit=False)
 
+    _commit_checks: ClassVar[dict[str, Callable[[], None]]] = {}  # per URL: the flow opens its own Store
+
+    def set_commit_check(self, check: Callable[[], None] | None) -> None:
+        """Call ``check`` (the run lock's) before every commit on this database in this process; None: no more."""
+        if check is None:
+            Store._commit_checks.pop(self.url, None)
+        else:
+            Store._commit_checks[self.url] = check
+
     @property
     def is_postgresql(self) -> bool:
         return self.engine.dialect.name == "postgresql"
@@ -76,6 +85,8 @@ class Store:
         session = self._sessions()
         try:
             yield session
+            if (check := Store._commit_checks.get(self.url)) is not None:
+                check()  # raises when the night lost its lock: nothing of this session is committed
             session.commit()
         except SQLAlchemyError as exc:
             session.rollback()
@@ -87,12 +98,36 @@ class Store:
             session.close()
 
     # --- nights and files ----------------------------------------------------------------
-    def start_night(self, code_version: str) -> int:
+    def start_night(self, code_version: str, workspace_id: str | None = None, *, shared: bool = False) -> int:
+        """A new night of the workspace ``workspace_id`` (None: of none); refused when the store is another's."""
         with self.session() as s:
-            night = NightRun(started_at_utc=utcnow(), code_version=code_version)
+            if self.is_postgresql:
+                s.connection().exec_driver_sql(f"SELECT pg_advisory_xact_lock({NIGHTS_LOCK_KEY})")
+            if workspace_id is not None:
+                self._check_workspace(s, workspace_id, shared)
+            night = NightRun(started_at_utc=utcnow(), code_version=code_version, workspace_id=workspace_id)
             s.add(night)
             s.flush()
             return night.id
+
+    def check_workspace(self, workspace_id: str, *, shared: bool = False) -> None:
+        """Refuse a workspace whose nights this store must not hold (see ``_check_workspace``)."""
+        with self.session() as s:
+            self._check_workspace(s, workspace_id, shared)
+
+    def _check_workspace(self, s: Session, workspace_id: str, shared: bool) -> None:
+        """A store not declared shared holds the nights of one workspace (nights before identities count for none)."""
+        if shared:
+            return
+        other = s.scalar(select(NightRun).where(NightRun.workspace_id.is_not(None),
+                                                NightRun.workspace_id != workspace_id).limit(1))
+        if other is not None:
+            raise StoreError(
+                f"the results store at {safe_url(self.url)} holds the nights of another workspace (identity "
+                f"{other.workspace_id}, night {other.id}); this workspace's identity is {workspace_id}. "
+                "Point this workspace at its own store, or, if the plant's sites share this store on purpose, "
+                "set 'store_shared: true' in every sharing workspace's workspace.yaml (lot ids must then be "
+                "unique across the sites)")
 
     def finish_night(self, night_id: int, **counts: int) -> None:
         with self.session() as s:
@@ -103,9 +138,11 @@ class Store:
                 setattr(night, key, value)
             night.finished_at_utc = utcnow()
 
-    def unfinished_nights(self) -> list[StoredNight]:
+    def unfinished_nights(self, workspace_id: str) -> list[StoredNight]:
+        """This workspace's nights that never finished (and those of before workspace identities)."""
         with self.session() as s:
-            return [night_of(n) for n in s.scalars(select(NightRun).where(NightRun.finished_at_utc.is_(None))
+            mine = (NightRun.workspace_id == workspace_id) | NightRun.workspace_id.is_(None)
+            return [night_of(n) for n in s.scalars(select(NightRun).where(NightRun.finished_at_utc.is_(None), mine)
                                                    .order_by(NightRun.id))]
 
     def record_files(self, night_id: int, files: list[dict[str, Any]], events: list[dict[str, Any]]) -> None:

@@ -24,6 +24,7 @@ class NightRun(Base):
     started_at_utc: Mapped[dt.datetime] = mapped_column(DateTime(timezone=True))
     finished_at_utc: Mapped[dt.datetime | None] = mapped_column(DateTime(timezone=True), nullable=True)
     code_version: Mapped[str] = mapped_column(String(40))
+    workspace_id: Mapped[str | None] = mapped_column(String(32), nullable=True, index=True)
     files_received: Mapped[int] = mapped_column(Integer, default=0)
     files_archived: Mapped[int] = mapped_column(Integer, default=0)
     files_quarantined: Mapped[int] = mapped_column(Integer, default=0)

@@ -4,7 +4,6 @@ from __future__ import annotations
 
 import difflib
 import os
-import shutil
 import tempfile
 from dataclasses import dataclass
 from pathlib import Path
@@ -32,6 +31,8 @@ class Workspace:
     # The plant's own controlled folders, by kind (see CONTROLLED_KINDS); a kind not named here
     # comes from the environment or lotgate's shipped folders (pipeline.records.controlled_files).
     controlled: tuple[tuple[str, Path], ...] = ()
+    # True when several workspaces (sites) share one results store on purpose (lot ids then unique across them)
+    store_shared: bool = False
 
     @property
     def inbox(self) -> Path:
@@ -100,6 +101,7 @@ class WorkspaceSettings(Strict):
         None, description="a mapping with p12, passphrase_file and signer_name")
     controlled: ControlledSettings | None = Field(
         None, description="a mapping of specifications, methods, layouts to folders")
+    store_shared: bool = Field(False, description="true or false: whether other workspaces (sites) share the store")
 
     @field_validator("time_zone")
     @classmethod
@@ -169,6 +171,7 @@ def open_workspace(root: Path, *, plant_name: str | None = None, signer_name: st
         signing_passphrase_file=Path(signing.passphrase_file) if signing.passphrase_file else None,
         signer_name=signing.signer_name or signer_name or "QA reviewer",
         controlled=_controlled_folders(root, settings.controlled, root / SETTINGS_FILE),
+        store_shared=settings.store_shared,
     )
 
 
@@ -206,10 +209,4 @@ def unique_target(folder: Path, name: str) -> Path:
     while target.exists():
         target = folder / f"{name}.{counter}"
         counter += 1
-    return target
-
-
-def move_into(source: Path, folder: Path) -> Path:
-    target = unique_target(folder, source.name)
-    shutil.move(str(source), str(target))
     return target
