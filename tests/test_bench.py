@@ -2,18 +2,17 @@
 
 import json
 import os
-import subprocess
-import sys
 
 import pytest
+
+from tests.cli import run_cli
 
 pytestmark = pytest.mark.slow
 
 
 def test_bench_prints_its_figures_as_one_json_line(tmp_path):
     env = {**os.environ, "PREFECT_HOME": str(tmp_path / "prefect")}  # its own temporary server's database
-    done = subprocess.run([sys.executable, "-m", "flows.cli", "bench", "--lots", "30", "--json"],
-                          capture_output=True, text=True, timeout=600, check=False, env=env)
+    done = run_cli(["bench", "--lots", "30", "--json"], timeout=600, env=env)
     assert done.returncode == 0, done.stderr[-3000:]
     lines = done.stdout.strip().splitlines()
     figures = json.loads(lines[-1])

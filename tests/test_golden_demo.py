@@ -9,11 +9,10 @@ on purpose, and say so in the commit message.
 import difflib
 import os
 import shutil
-import subprocess
-import sys
 
 import pytest
 
+from tests.cli import run_cli
 from tests.golden import GOLDEN, capture, read_golden
 
 pytestmark = pytest.mark.slow
@@ -25,8 +24,7 @@ def demo_output(tmp_path_factory):
         pytest.skip("pdftotext (Debian package poppler-utils) is not installed; .ci/run installs it")
     root = tmp_path_factory.mktemp("golden") / "plant"
     env = {k: v for k, v in os.environ.items() if not k.startswith(("LOTGATE_", "PREFECT_API_URL"))}
-    done = subprocess.run([sys.executable, "-m", "flows.cli", "demo", "--workspace", str(root)], env=env,
-                          capture_output=True, text=True, timeout=600)
+    done = run_cli(["demo", "--workspace", root], env=env, timeout=600)
     assert done.returncode == 0, done.stdout[-2000:] + done.stderr[-2000:]
     return capture(root)
 

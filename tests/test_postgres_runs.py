@@ -10,6 +10,7 @@ from sqlalchemy import create_engine, text
 
 from pipeline.demo import plant as demo
 from pipeline.records.workspace import atomic_write, write_settings
+from tests.cli import run_cli
 from tests.pg import fresh_database
 
 pytestmark = [pytest.mark.slow, pytest.mark.postgres]
@@ -29,8 +30,7 @@ def _env(url):
 
 
 def test_the_demo_runs_on_postgresql_by_setting_only_the_url(pg_url, tmp_path):
-    out = subprocess.run([sys.executable, "-m", "flows.cli", "demo", "--workspace", str(tmp_path / "w")],
-                         env=_env(pg_url), capture_output=True, text=True, timeout=600)
+    out = run_cli(["demo", "--workspace", tmp_path / "w"], env=_env(pg_url), timeout=600)
     assert out.returncode == 0, out.stderr[-2000:]
     assert "ERROR" not in out.stdout + out.stderr and "Traceback" not in out.stdout + out.stderr
     assert not (tmp_path / "w" / "lotgate.db").exists()

@@ -11,8 +11,6 @@ from __future__ import annotations
 import argparse
 import json
 import shutil
-import subprocess
-import sys
 from pathlib import Path
 
 import pytest
@@ -23,6 +21,7 @@ from pipeline.records.chart_queries import active_limits
 from pipeline.records.store import Store
 from pipeline.records.stored import DecisionWrite
 from pipeline.release.records import DecisionRecord, RecordedResult, TrendFinding
+from tests.cli import run_cli
 
 REPO = Path(__file__).resolve().parents[1]
 PRODUCT, ATTR = "LLC-200", "specific_activity"  # a charted attribute of specs/products/LLC-200.yaml
@@ -242,8 +241,7 @@ def test_rebaseline_refuses_a_broken_log(tmp_path, capsys):
 @pytest.fixture(scope="module")
 def demo_workspace(tmp_path_factory):
     root = tmp_path_factory.mktemp("trend-demo") / "ws"
-    done = subprocess.run([sys.executable, "-m", "flows.cli", "demo", "--workspace", str(root)],
-                          cwd=REPO, capture_output=True, text=True, timeout=600)
+    done = run_cli(["demo", "--workspace", root], cwd=REPO, timeout=600)
     assert done.returncode == 0, done.stderr[-2000:]
     return root
 
