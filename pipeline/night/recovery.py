@@ -7,6 +7,7 @@ from dataclasses import dataclass
 
 from pipeline.intake.assembly import QuarantinedFile
 from pipeline.night.receive import quarantine_record
+from pipeline.night.staging import recover_documents
 from pipeline.records import audit
 from pipeline.records.controlled_files import sha256_file
 from pipeline.records.store import Store
@@ -31,6 +32,7 @@ def recover_interrupted(ws: Workspace, store: Store) -> Recovery:
     for folder in (ws.root, ws.inbox, ws.certificates, ws.reports, ws.lims, ws.archive, ws.quarantine):
         for stale in folder.glob(".*.tmp"):
             stale.unlink(missing_ok=True)
+    recover_documents(ws, store)  # documents a stopped run left staged or without a decision (staging.py)
     unfinished = store.unfinished_nights()
     if not unfinished:
         return Recovery([], [])
