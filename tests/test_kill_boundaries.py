@@ -245,7 +245,8 @@ def _kill_in_child(root: Path, at: int, after: bool) -> None:
     _night(root)
 
 
-def _every_boundary(tmp_path: Path, monkeypatch, pg_url: str | None) -> dict[str, int]:
+def _every_boundary(tmp_path: Path, monkeypatch, pg_url: str | None, *, after_too: bool) -> dict[str, int]:
+    """Stop before every commit (and, ``after_too``, after it, and by SIGKILL at three), restart, compare."""
     if pg_url:
         monkeypatch.setenv("LOTGATE_DATABASE_URL", pg_url)
     spaces = _history(tmp_path, pg_url)
@@ -259,11 +260,13 @@ def _every_boundary(tmp_path: Path, monkeypatch, pg_url: str | None) -> dict[str
         figures = {"boundaries": counter.count, "runs": 0, "records compared": 0, "differences": 0,
                    "stops with a quarantined file not yet recorded": 0}
         failed: list[str] = []
-        cases = [(k, after, False) for k in range(1, counter.count + 1) for after in (False, True)]
-        # A real SIGKILL at a few boundaries: the first decisions' commit (with tonight's limits),
-        # just after a middle one (its documents still staged), and just before the last one.
-        publish = [k for k, table in enumerate(counter.tables, start=1) if table in ("lots", "control_limits")]
-        cases += [(publish[0], False, True), (publish[len(publish) // 2], True, True), (publish[-1], False, True)]
+        cases = [(k, after, False) for k in range(1, counter.count + 1) for after in ((False, True) if after_too
+                                                                                      else (False,))]
+        if after_too:
+            # A real SIGKILL at a few boundaries: the first decisions' commit (with tonight's limits),
+            # just after a middle one (its documents still staged), and just before the last one.
+            publish = [k for k, table in enumerate(counter.tables, start=1) if table in ("lots", "control_limits")]
+            cases += [(publish[0], False, True), (publish[len(publish) // 2], True, True), (publish[-1], False, True)]
         for at, after, sigkill in cases:
             spaces.restore()
             where = f"{'SIGKILL ' if sigkill else ''}{'after' if after else 'before'} commit {at} ({counter.tables[at - 1]})"
@@ -299,7 +302,7 @@ def _every_boundary(tmp_path: Path, monkeypatch, pg_url: str | None) -> dict[str
 
 def test_a_night_stopped_at_every_commit_boundary_ends_as_if_never_stopped_sqlite(tmp_path, monkeypatch):
     monkeypatch.delenv("LOTGATE_DATABASE_URL", raising=False)
-    figures = _every_boundary(tmp_path, monkeypatch, None)
+    figures = _every_boundary(tmp_path, monkeypatch, None, after_too=True)
     print(f"SQLite: {figures}")
     assert figures["boundaries"] >= 20 and figures["runs"] == 2 * figures["boundaries"] + 3
 
@@ -310,8 +313,10 @@ def test_a_night_stopped_at_every_commit_boundary_ends_as_if_never_stopped_postg
 
     url, drop = fresh_database()
     try:
-        figures = _every_boundary(tmp_path, monkeypatch, url)
+        # Stopped before each commit only: a stop after commit k differs from one before commit
+        # k + 1 only in the files written between them, which the SQLite test covers.
+        figures = _every_boundary(tmp_path, monkeypatch, url, after_too=False)
     finally:
         drop()
     print(f"PostgreSQL: {figures}")
-    assert figures["boundaries"] >= 20 and figures["runs"] == 2 * figures["boundaries"] + 3
+    assert figures["boundaries"] >= 20 and figures["runs"] == figures["boundaries"]
