@@ -7,8 +7,6 @@ later rerun that held such a lot left its valid certificate on disk.
 
 from __future__ import annotations
 
-import hashlib
-
 import pytest
 
 from pipeline.demo import plant as demo
@@ -19,6 +17,7 @@ from pipeline.records import audit
 from pipeline.records.store import Store
 from pipeline.vocabulary import Disposition
 from tests.test_crash import _workspace
+from tests.test_kill_boundaries import documents_have_decisions
 
 pytestmark = pytest.mark.slow
 
@@ -27,21 +26,6 @@ def _events(store: Store, kind: str) -> list[dict]:
     import json
 
     return [body for e in store.audit_events() if (body := json.loads(e.body))["kind"] == kind]
-
-
-def _in_place_without_decision(root, store: Store) -> list[str]:
-    named: dict[str, str | None] = {}
-    for decision in store.decisions():
-        named.update(documents_named(decision.record))
-    problems = []
-    for folder in ("certificates", "reports"):
-        for path in sorted((root / folder).glob("*")):
-            relative = f"{folder}/{path.name}"
-            if relative not in named:
-                problems.append(f"{relative}: no committed decision names it")
-            elif named[relative] not in (None, hashlib.sha256(path.read_bytes()).hexdigest()):
-                problems.append(f"{relative}: not the SHA-256 its decision recorded")
-    return problems
 
 
 @pytest.fixture()
@@ -72,7 +56,7 @@ def test_a_store_outage_during_publish_leaves_no_certificate_without_its_decisio
         nightly.run_stages(ws, store, signer, orchestrated=False)
     staged = sorted(p.name for p in (night_root / ".staging" / "certificates").glob("*.pdf"))
     assert staged, "the failing window had signed certificates (written, staged)"
-    assert _in_place_without_decision(night_root, store) == []  # nothing undecided ever reached its place
+    assert documents_have_decisions(night_root, store.url) == []  # nothing undecided ever reached its place
     committed = {row.lot_id for row in store.decisions()}
     assert not any(name.split("_r")[0] in committed for name in staged)
 
@@ -80,7 +64,7 @@ def test_a_store_outage_during_publish_leaves_no_certificate_without_its_decisio
     summary = nightly.run_stages(ws, store, signer, orchestrated=False)
     rows = store.decisions()
     assert {row.lot_id for row in rows} == {o.lot_id for o in summary.outcomes}
-    assert _in_place_without_decision(night_root, store) == []
+    assert documents_have_decisions(night_root, store.url) == []
     assert not [p for p in (night_root / ".staging").rglob("*") if p.is_file()]
     held = {row.lot_id for row in rows if row.disposition != Disposition.RELEASED}
     assert held and not [p for p in (night_root / "certificates").glob("*.pdf") if p.name.split("_r")[0] in held]
@@ -113,7 +97,7 @@ def test_a_committed_decision_whose_documents_are_still_staged_gets_them_placed(
     monkeypatch.setattr(publish, "WINDOW_LOTS", 8)
     ws, store, signer = open_night(night_root)
     nightly.run_stages(ws, store, signer, orchestrated=False)
-    assert _in_place_without_decision(night_root, store) == []
+    assert documents_have_decisions(night_root, store.url) == []
     for row in first:  # the first window's documents, committed then, are in place now
         for relative in documents_named(row.record):
             assert (night_root / relative).is_file(), relative
@@ -132,4 +116,4 @@ def test_an_orphaned_certificate_left_in_place_by_a_stopped_run_is_removed_and_r
     nightly.run_stages(ws, store, signer, orchestrated=False)
     assert not orphan.exists()
     assert [e["file"] for e in _events(store, "document-removed")] == ["certificates/LLC-2611-999_r1_certificate.pdf"]
-    assert _in_place_without_decision(night_root, store) == []
+    assert documents_have_decisions(night_root, store.url) == []
