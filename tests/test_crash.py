@@ -170,8 +170,8 @@ def test_a_night_cut_between_publishing_and_closing_decides_nothing_twice(night,
 
 def test_a_window_that_fails_to_commit_is_decided_once_on_the_restart(tmp_path, monkeypatch):
     """A large night renders on all cores and stores each window of lots in one transaction.
-    A failure after a window's documents are written, before its commit, leaves documents
-    without decisions; the restart decides exactly those lots, once, and rewrites their files."""
+    A failure after a window's documents are written, before its commit, leaves them staged,
+    never in place; the restart removes them, decides exactly those lots, once, and writes their files."""
     from flows import nightly
     from pipeline.night import publish
     from pipeline.night.open import open_night
@@ -183,11 +183,11 @@ def test_a_window_that_fails_to_commit_is_decided_once_on_the_restart(tmp_path, 
     commits = []
     real = Store.add_decisions
 
-    def failing_second_window(self, writes):
+    def failing_second_window(self, writes, limits=()):
         commits.append(len(writes))
         if len(commits) == 2:
             raise RuntimeError("simulated failure before the second window's commit")
-        return real(self, writes)
+        return real(self, writes, limits)
 
     monkeypatch.setattr(Store, "add_decisions", failing_second_window)
     ws, store, signer = open_night(root)
@@ -196,8 +196,10 @@ def test_a_window_that_fails_to_commit_is_decided_once_on_the_restart(tmp_path, 
     stored = {row.lot_id for row in store.decisions()}
     if (os.cpu_count() or 1) > 1:
         assert commits[:2] == [8, 8] and len(stored) == 8  # one window committed, the next one not
-    reports_before = {p.name for p in (root / "reports").glob("*_batch-report.pdf")}
-    assert len(reports_before) > len(stored)  # the failed window's documents were written
+    staged = {p.name for p in (root / ".staging" / "reports").glob("*_batch-report.pdf")}
+    assert len(staged) >= commits[1]  # the failed window's documents were written, into the staging folder only
+    assert {p.name for p in (root / "reports").glob("*_batch-report.pdf")} == {
+        f"{row.lot_id}_r{row.revision}_batch-report.pdf" for row in store.decisions()}
     monkeypatch.setattr(Store, "add_decisions", real)
     summary = nightly.run_stages(ws, store, signer, orchestrated=False)
     rows = store.decisions()

@@ -16,13 +16,27 @@ from pipeline.release.decision import (
     FrozenLimits,
     NightDecisions,
     decide_night,
+    lot_fingerprint,
 )
 from pipeline.release.lot_evaluation import LotEvaluation
 from pipeline.vocabulary import Disposition
 
+BASELINE_REACHED = "lotgate (baseline reached)"  # who froze a chart's first limits: the nightly job
+
 
 def load_charts(store: Store, catalog: Catalog, evaluations: list[LotEvaluation]) -> dict[ChartKey, ChartState]:
-    """Read each chart's state once per night: frozen limits and the recent released lots."""
+    """Read each chart's state once per night, as it stood before any of these lots was decided.
+
+    A run stopped part-way through publishing has committed some of these lots (their decisions'
+    fingerprints are stored), with their chart points and, with the first of them, the limits
+    frozen when a baseline was reached. Those are left out here, so a restart judges every lot
+    against exactly the charts the first attempt saw: within a night each lot's judgement depends
+    on the lots before it, so continuing from a half-published store would judge the rest
+    against other charts. The restart then publishes only the lots not yet stored.
+    """
+    fingerprints = [lot_fingerprint(e, catalog.specifications, catalog.methods, __version__) for e in evaluations]
+    attempt = {stored.id for stored in store.known_fingerprints(fingerprints).values()}
+    attempt_points = store.chart_point_counts(sorted(attempt))
     charts: dict[ChartKey, ChartState] = {}
     wanted: list[tuple[str, Any]] = []
     for product in sorted({e.product_code for e in evaluations}):
@@ -32,13 +46,19 @@ def load_charts(store: Store, catalog: Catalog, evaluations: list[LotEvaluation]
         if isinstance(method, KineticMethod):
             wanted.append((method.method_id, method.recovery_attribute()))
     for product, attribute in wanted:
+        left_out = attempt_points.get((product, attribute.code), 0)
+        total = released_count(store, product, attribute.code) - left_out
         stored = active_limits(store, product, attribute.code)
-        points = released_points(store, product, attribute.code, tail=CHART_TAIL if stored else None)
+        if stored is not None and stored.frozen_by == BASELINE_REACHED and total < len(stored.baseline_lots):
+            stored = None  # frozen by the stopped attempt from lots it released: frozen again, the same way
+        points = [p for p in released_points(store, product, attribute.code,
+                                             tail=CHART_TAIL + left_out if stored else None) if p.order not in attempt]
+        points = points[-CHART_TAIL:] if stored else points
         limits = None if stored is None else FrozenLimits(stored.version, stored.center, stored.sigma,
                                                           stored.mr_bar, tuple(stored.baseline_lots))
         charts[(product, attribute.code)] = ChartState(
             product, attribute.code, limits, tuple(p.lot_id for p in points), tuple(p.value for p in points),
-            total=released_count(store, product, attribute.code))
+            total=total)
     return charts
 
 

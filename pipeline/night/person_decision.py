@@ -14,7 +14,12 @@ import json
 from dataclasses import dataclass
 
 from pipeline.errors import InputError
-from pipeline.night.lot_documents import WrittenDocuments, render_documents, write_documents
+from pipeline.night.lot_documents import (
+    WrittenDocuments,
+    place_documents,
+    render_documents,
+    write_documents,
+)
 from pipeline.night.open import IdentitySigner
 from pipeline.records import audit, ledger
 from pipeline.records.signing import SigningIdentity, sign_record
@@ -105,6 +110,7 @@ def decide_lot(ws: Workspace, store: Store, lot_id: str, *, release: bool, reaso
                                   **vars(record.certificate)))
     store.add_decisions([DecisionWrite(record, identity.signer_name, change_note=f"{record.label}: {reason}",
                                        events=tuple(events))])
+    place_documents(ws, [] if written is None else [written])
     audit.sync_log(store, ws.log)
     return PersonOutcome(lot_id, record.revision, disposition,
                          None if record.certificate is None else f"certificates/{record.certificate.file}",

@@ -1,10 +1,13 @@
-"""Publishing the night's decisions: documents written, then decisions, results and audit events stored.
+"""Publishing the night's decisions: documents staged, decisions stored, then documents put in place.
 
 A large night is rendered and signed across all cores in windows of WINDOW_LOTS lots, and each
-window is one store transaction; a small night is rendered here and committed lot by lot. The
-store and the log are written here, in the lots' order. A run killed mid-window leaves that
-window's documents without decisions: the restart decides those lots again and overwrites the
-documents (same revision, same file names).
+window is one store transaction; a small night is rendered here and committed lot by lot. Per
+window: its documents are written into the staging folder (``lot_documents``), its decisions,
+results, chart points and audit events are committed (the first window also carries the limits
+frozen tonight), and only then are its documents moved into place. A run stopped before a
+window's commit leaves that window's documents staged: the restart removes them
+(``pipeline/night/staging.py``) and decides those lots again, from the charts as the stopped
+run saw them (``decide.load_charts``); one stopped after the commit has them moved into place.
 """
 
 from __future__ import annotations
@@ -16,13 +19,20 @@ from typing import Any
 from pipeline import __version__
 from pipeline.controlled.catalog import Catalog
 from pipeline.controlled.specs import KineticMethod, ProteinMethod
-from pipeline.night.lot_documents import render_documents, write_documents
+from pipeline.night.decide import BASELINE_REACHED
+from pipeline.night.lot_documents import (
+    WrittenDocuments,
+    place_documents,
+    render_documents,
+    write_documents,
+)
 from pipeline.night.open import CertificateSigner
 from pipeline.night.progress import Progress, no_progress
 from pipeline.night.workers import process_pool, render, renderer_start
 from pipeline.records import audit
+from pipeline.records.chart_queries import active_limits
 from pipeline.records.store import Store
-from pipeline.records.stored import DecisionWrite, StoredDecision
+from pipeline.records.stored import DecisionWrite, LimitsWrite, StoredDecision
 from pipeline.records.workspace import Workspace
 from pipeline.release.change_note import change_note
 from pipeline.release.decision import ChartKey, FrozenLimits, LotDecision, NightDecisions
@@ -48,17 +58,22 @@ class Outcome:
     report: str | None
 
 
-def _store_new_limits(ws: Workspace, store: Store, newly_frozen: dict[ChartKey, FrozenLimits]) -> None:
-    """Each chart whose baseline was reached tonight gets its first limits version, with its audit event."""
-    by = "lotgate (baseline reached)"
+def _limits_to_store(ws: Workspace, store: Store, newly_frozen: dict[ChartKey, FrozenLimits]) -> tuple[LimitsWrite, ...]:
+    """The first limits of each chart whose baseline was reached tonight, with their audit events.
+
+    A chart that has limits in the store already got them from a stopped run of this night.
+    """
+    out = []
     for (chart, attribute), frozen in newly_frozen.items():
+        if active_limits(store, chart, attribute) is not None:
+            continue
         reason = f"baseline of {len(frozen.baseline_lots)} released lots reached"
-        store.freeze_limits(chart, attribute, frozen.center, frozen.sigma, frozen.mr_bar, list(frozen.baseline_lots),
-                            frozen_by=by, reason=reason,
-                            events=[audit.event("limits-frozen", time_zone=ws.time_zone, product=chart,
-                                                attribute=attribute, center=frozen.center, sigma=frozen.sigma,
-                                                mr_bar=frozen.mr_bar, baseline_lots=list(frozen.baseline_lots),
-                                                by=by, reason=reason)])
+        out.append(LimitsWrite(chart, attribute, frozen.center, frozen.sigma, frozen.mr_bar, frozen.baseline_lots,
+                               BASELINE_REACHED, reason, (audit.event(
+                                   "limits-frozen", time_zone=ws.time_zone, product=chart, attribute=attribute,
+                                   center=frozen.center, sigma=frozen.sigma, mr_bar=frozen.mr_bar,
+                                   baseline_lots=list(frozen.baseline_lots), by=BASELINE_REACHED, reason=reason),)))
+    return tuple(out)
 
 
 @dataclass(frozen=True)
@@ -122,8 +137,8 @@ def _prepare(ws: Workspace, catalog: Catalog, item: LotDecision, previous: Store
 
 
 def _write(ws: Workspace, job: _Job, night_id: int, report_bytes: bytes, certificate_bytes: bytes | None,
-           signer: CertificateSigner) -> tuple[DecisionWrite, Outcome]:
-    """Write the lot's documents; return its decision record, results and audit events to store."""
+           signer: CertificateSigner) -> tuple[DecisionWrite, Outcome, WrittenDocuments]:
+    """Stage the lot's documents; return its decision record, results and audit events to store."""
     item, decision = job.item, job.item.decision
     written = write_documents(ws, job.stem, job.dossier, report_bytes, certificate_bytes, job.signature, signer)
     record = DecisionRecord.of(decision, item.evaluation.verdicts, revision=job.revision, night_id=night_id,
@@ -145,20 +160,19 @@ def _write(ws: Workspace, job: _Job, night_id: int, report_bytes: bytes, certifi
     outcome = Outcome(decision.lot_id, decision.product, decision.label, decision.reasons, job.revision, True,
                       None if written.certificate is None else f"certificates/{written.certificate.file}",
                       f"reports/{written.report.file}")
-    return write, outcome
+    return write, outcome, written
 
 
 def publish(ws: Workspace, store: Store, catalog: Catalog, decided: NightDecisions, night_id: int,
             signer: CertificateSigner, progress: Progress = no_progress, workers: int | None = None) -> list[Outcome]:
-    """Per lot: batch report and (released) signed certificate written atomically; then the
-    decisions, their results and their audit events in one store transaction; the log follows.
-    The limits frozen tonight are stored first.
+    """Per lot: batch report and (released) signed certificate staged; then the decisions, their
+    results and their audit events in one store transaction (the first also stores the limits
+    frozen tonight); then the documents moved into place; the log follows.
     """
-    _store_new_limits(ws, store, decided.newly_frozen)
-    audit.sync_log(store, ws.log)
     decisions = decided.lots
     known = store.known_fingerprints([d.decision.fingerprint for d in decisions])
     previous = store.previous_decisions([d.decision.lot_id for d in decisions])
+    limits = _limits_to_store(ws, store, decided.newly_frozen)
     outcomes: dict[int, Outcome] = {}
     pending: list[tuple[int, LotDecision]] = []
     for index, item in enumerate(decisions):
@@ -173,6 +187,8 @@ def publish(ws: Workspace, store: Store, catalog: Catalog, decided: NightDecisio
     renderers = _Renderers(ws, signer, len(pending), workers)
     size = WINDOW_LOTS if renderers.pool is not None else 1
     windows = [pending[start:start + size] for start in range(0, len(pending), size)]
+    if not windows:
+        store.add_decisions([], limits)
 
     def start(window: list[tuple[int, LotDecision]]) -> tuple[list[_Job], Any]:
         jobs = [_prepare(ws, catalog, item, previous.get(item.decision.lot_id), signer) for _, item in window]
@@ -186,8 +202,9 @@ def publish(ws: Workspace, store: Store, catalog: Catalog, decided: NightDecisio
             running = start(windows[number + 1]) if number + 1 < len(windows) else None
             written = [_write(ws, job, night_id, report, certificate, signer)
                        for job, (report, certificate) in zip(jobs, renderers.collect(handle), strict=True)]
-            store.add_decisions([write for write, _ in written])
-            for (index, _), (_, outcome) in zip(window, written, strict=True):
+            store.add_decisions([write for write, _, _ in written], limits if number == 0 else ())
+            place_documents(ws, [documents for _, _, documents in written])
+            for (index, _), (_, outcome, _) in zip(window, written, strict=True):
                 outcomes[index] = outcome
             done += len(window)
             progress("publish", done, len(decisions))

@@ -8,6 +8,7 @@ from pathlib import Path
 
 from pipeline.intake.assembly import QuarantinedFile
 from pipeline.night.receive import place_aside
+from pipeline.night.staging import recover_documents
 from pipeline.records import audit
 from pipeline.records.controlled_files import sha256_file
 from pipeline.records.store import Store
@@ -35,12 +36,13 @@ def recover_interrupted(ws: Workspace, store: Store, identity: str | None = None
         for stale in folder.glob(".*.tmp"):
             stale.unlink(missing_ok=True)
     unfinished = store.unfinished_nights(identity)
+    # Documents a stopped run left staged, or in place without a decision (staging.py).
+    recover_documents(ws, store, interrupted=bool(unfinished))
     if not unfinished:
         return Recovery([], [])
     night_ids = [n.id for n in unfinished]
     night_files = store.files_of_nights(night_ids)
     notes = [note for row in night_files if (note := _finish_move(ws, row))]
-    # Documents the interrupted night staged for publishing are settled here, before it is closed.
     for night_run in unfinished:
         store.finish_night(night_run.id)
         store.add_events([audit.event("night-interrupted", time_zone=ws.time_zone, night_id=night_run.id,

@@ -19,6 +19,7 @@ from pipeline.errors import StoreError
 from pipeline.records.database import migrate, open_engine, safe_url
 from pipeline.records.stored import (
     DecisionWrite,
+    LimitsWrite,
     StoredDecision,
     StoredEvent,
     StoredFile,
@@ -208,6 +209,12 @@ class Store:
                             for row in s.scalars(select(DecisionRow).where(DecisionRow.fingerprint.in_(chunk)))})
         return out
 
+    def decisions_of_lots(self, lot_ids: list[str]) -> list[StoredDecision]:
+        """Every revision of these lots, in the order stored (one query per 500 lots)."""
+        with self.session() as s:
+            return [decision_of(row) for chunk in _chunks(lot_ids) for row in s.scalars(
+                select(DecisionRow).where(DecisionRow.lot_id.in_(chunk)).order_by(DecisionRow.id))]
+
     def decisions_by_id(self, decision_ids: list[int]) -> list[StoredDecision]:
         """These decisions, in the order of ``decision_ids`` (read in chunks by the caller to bound memory)."""
         with self.session() as s:
@@ -226,16 +233,19 @@ class Store:
                           .values(lims_export=export_name).execution_options(synchronize_session=False))
             self.chain_events(s, events)
 
-    def add_decisions(self, writes: list[DecisionWrite]) -> list[StoredDecision]:
+    def add_decisions(self, writes: list[DecisionWrite], limits: tuple[LimitsWrite, ...] = ()) -> list[StoredDecision]:
         """Store several lots' decisions, each as a new revision with its audit events, in ONE transaction.
 
-        All or nothing: a failure (or a kill) stores none of them. Lots and latest revisions are
-        read with one query per 500 lots, rows are inserted in batches, and the audit events of
-        every lot are chained after one read of the chain's head, in the order of ``writes``.
+        All or nothing: a failure (or a kill) stores none of them, nor the chart ``limits`` stored
+        first in the same transaction. Lots and latest revisions are read with one query per 500
+        lots, rows are inserted in batches, and the audit events of every lot are chained after one
+        read of the chain's head, in the order of ``writes``.
         """
-        if not writes:
+        if not writes and not limits:
             return []
         with self.session() as s:
+            for frozen in limits:
+                self._freeze(s, frozen)
             latest = self._new_lots_and_latest(s, writes)
             rows: list[tuple[DecisionRow, DecisionRow | None]] = []
             for w in writes:
@@ -300,19 +310,32 @@ class Store:
                       events: list[dict[str, Any]] | None = None) -> StoredLimits:
         """A new version of a chart's limits (earlier ones deactivated), with its audit events."""
         with self.session() as s:
-            current = s.scalar(select(func.max(ControlLimitRow.version)).where(
-                ControlLimitRow.product_code == product_code, ControlLimitRow.attribute == attribute)) or 0
-            s.execute(update(ControlLimitRow).where(ControlLimitRow.product_code == product_code,
-                                                    ControlLimitRow.attribute == attribute).values(active=0))
-            row = ControlLimitRow(product_code=product_code, attribute=attribute, version=current + 1,
-                                  center=center, sigma=sigma, mr_bar=mr_bar, baseline_n=len(baseline_lots),
-                                  baseline_lots=baseline_lots, frozen_at_utc=utcnow(), frozen_by=frozen_by,
-                                  reason=reason, active=1)
-            s.add(row)
-            s.flush()
-            self.chain_events(s, [{**e, "version": row.version, "previous_version": current or None}
-                                  for e in (events or [])])
-            return limits_of(row)
+            return self._freeze(s, LimitsWrite(product_code, attribute, center, sigma, mr_bar, tuple(baseline_lots),
+                                               frozen_by, reason, tuple(events or ())))
+
+    def _freeze(self, s: Session, w: LimitsWrite) -> StoredLimits:
+        where = (ControlLimitRow.product_code == w.product_code, ControlLimitRow.attribute == w.attribute)
+        current = s.scalar(select(func.max(ControlLimitRow.version)).where(*where)) or 0
+        s.execute(update(ControlLimitRow).where(*where).values(active=0))
+        row = ControlLimitRow(product_code=w.product_code, attribute=w.attribute, version=current + 1,
+                              center=w.center, sigma=w.sigma, mr_bar=w.mr_bar, baseline_n=len(w.baseline_lots),
+                              baseline_lots=list(w.baseline_lots), frozen_at_utc=utcnow(), frozen_by=w.frozen_by,
+                              reason=w.reason, active=1)
+        s.add(row)
+        s.flush()
+        self.chain_events(s, [{**e, "version": row.version, "previous_version": current or None} for e in w.events])
+        return limits_of(row)
+
+    def chart_point_counts(self, decision_ids: list[int]) -> dict[tuple[str, str], int]:
+        """How many chart points these decisions put on each chart (chart, attribute)."""
+        out: dict[tuple[str, str], int] = {}
+        with self.session() as s:
+            for chunk in _chunks(decision_ids):
+                for chart, attribute, count in s.execute(
+                        select(ChartPoint.product_code, ChartPoint.attribute, func.count(ChartPoint.id))
+                        .where(ChartPoint.decision_id.in_(chunk)).group_by(ChartPoint.product_code, ChartPoint.attribute)):
+                    out[(chart, attribute)] = out.get((chart, attribute), 0) + int(count)
+        return out
 
     def limit_versions(self, product_code: str, attribute: str) -> tuple[StoredLimits, ...]:
         """Every stored version of a chart's limits, oldest first."""

@@ -73,6 +73,21 @@ class DecisionWrite:
     extra_points: tuple[tuple[str, str, str, float], ...] = ()  # (chart, attribute, point id, value)
 
 
+@dataclass(frozen=True)
+class LimitsWrite:
+    """A chart's new limits to store, with their audit events."""
+
+    product_code: str
+    attribute: str
+    center: float
+    sigma: float
+    mr_bar: float
+    baseline_lots: tuple[str, ...]
+    frozen_by: str
+    reason: str
+    events: tuple[dict[str, Any], ...] = ()
+
+
 def utc(when: dt.datetime) -> dt.datetime:
     """A stored time as an aware UTC datetime (SQLite gives back naive ones; they were written in UTC)."""
     return when.replace(tzinfo=dt.UTC) if when.tzinfo is None else when.astimezone(dt.UTC)

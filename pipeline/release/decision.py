@@ -185,6 +185,18 @@ def fingerprint(evaluation: LotEvaluation, spec: Specification, method_sha: dict
     return hashlib.sha256(json.dumps(payload, sort_keys=True).encode()).hexdigest()
 
 
+def _used_methods(spec: Specification, methods: Mapping[str, Any]) -> dict[str, Any]:
+    return {m: methods[m] for m in (spec.activity_method, spec.protein_method) if m in methods}
+
+
+def lot_fingerprint(evaluation: LotEvaluation, specifications: Mapping[str, Specification],
+                    methods: Mapping[str, Any], code_version: str) -> str:
+    """The fingerprint the night gives a lot's decision (``fingerprint`` with the lot's own methods)."""
+    spec = specifications[evaluation.product_code]
+    method_sha = {m.method_id: m.document.sha256 for m in _used_methods(spec, methods).values()}
+    return fingerprint(evaluation, spec, method_sha, code_version)
+
+
 def decide_night(evaluations: list[LotEvaluation], specifications: dict[str, Specification],
                  methods: dict[str, Any], charts: Mapping[ChartKey, ChartState],
                  code_version: str, earlier: dict[str, str] | None = None) -> NightDecisions:
@@ -202,7 +214,7 @@ def decide_night(evaluations: list[LotEvaluation], specifications: dict[str, Spe
     carried: set[str] = set()
     for evaluation in evaluations:
         spec = specifications[evaluation.product_code]
-        used_methods = {m: methods[m] for m in (spec.activity_method, spec.protein_method) if m in methods}
+        used_methods = _used_methods(spec, methods)
         findings: list[TrendFinding] = []
         pending: dict[str, float] = {}
         for attribute in spec.attributes:
