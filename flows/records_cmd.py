@@ -18,11 +18,6 @@ def _console() -> Console:
     return Console(highlight=False, width=None if sys.stdout.isatty() else 140)
 
 
-def _open(workspace: str):
-    from pipeline.night.open import open_records
-
-    return open_records(Path(workspace))
-
 
 def cmd_keys_demo(args: argparse.Namespace) -> int:
     from pipeline.records import signing
@@ -47,9 +42,10 @@ def cmd_keys_demo(args: argparse.Namespace) -> int:
 
 
 def cmd_history(args: argparse.Namespace) -> int:
+    from pipeline.night.open import open_records
     from pipeline.release.dossier import local_time_text
 
-    ws, store = _open(args.workspace)
+    ws, store = open_records(Path(args.workspace))
     rows = store.decisions(args.lot)
     if not rows:
         raise NotFound(f"no decision for lot {args.lot} in {ws.root}")
@@ -76,11 +72,12 @@ def _passphrase(args: argparse.Namespace) -> bytes | None:
 
 
 def cmd_decide(args: argparse.Namespace) -> int:
+    from pipeline.night.open import open_records
     from pipeline.night.person_decision import decide_lot
     from pipeline.records import signing
     from pipeline.records.run_lock import run_lock
 
-    ws, store = _open(args.workspace)
+    ws, store = open_records(Path(args.workspace))
     if not store.decisions(args.lot):
         raise NotFound(f"lot {args.lot} has no decision in the store at {ws.root}; nothing to review")
     identity = signing.load_identity(Path(args.identity), passphrase=_passphrase(args),
@@ -98,10 +95,11 @@ def cmd_decide(args: argparse.Namespace) -> int:
 def verify_trail_text(log_path: Path) -> tuple[bool, str] | None:
     """Check the log against its workspace's store, when the store can be found."""
     from pipeline.errors import InputError
+    from pipeline.night.open import open_records
     from pipeline.records import audit
 
     try:
-        _, store = _open(str(log_path.resolve().parent))
+        _, store = open_records(log_path.resolve().parent)
     except InputError:  # no store beside the log: the log is checked on its own
         return None
     check = audit.verify_trail(store, log_path)

@@ -28,11 +28,6 @@ def _refuse(command: str, exc: Exception) -> int:
     return EXIT_NOT_FOUND if isinstance(exc, NotFound) else EXIT_SETUP
 
 
-def _open(workspace: str) -> tuple[Any, Any]:
-    from pipeline.night.open import open_records
-
-    return open_records(Path(workspace))
-
 
 def _attribute(product: str, code: str, workspace: str) -> Any:
     """The trended attribute of a product's specification; NotFound naming the choices for an unknown one."""
@@ -157,6 +152,7 @@ def _limit_text(view: Any) -> str:
 def cmd_trend(args: argparse.Namespace) -> int:
     """Print a chart's numbers and write its PNG and PDF."""
     from pipeline.documents.trend_figure import figure_pdf, figure_png
+    from pipeline.night.open import open_records
     from pipeline.records.chart_queries import chart_history
     from pipeline.records.workspace import atomic_write
     from pipeline.release.chart_view import build_chart_view
@@ -165,7 +161,7 @@ def cmd_trend(args: argparse.Namespace) -> int:
         if args.window < 1:
             raise InputError(f"--window must be at least 1 lot, received {args.window}")
         spec, attribute = _attribute(args.product, args.attribute, args.workspace)
-        ws, store = _open(args.workspace)
+        ws, store = open_records(Path(args.workspace))
         view = build_chart_view(chart_history(store, args.product, args.attribute, args.window),
                                 attribute, args.window)
         out = Path(args.out).expanduser() if args.out else ws.root / "charts"
@@ -201,11 +197,12 @@ def _side_by_side(old: Any, new: Any, d: int, unit: str) -> str:
 
 def cmd_rebaseline(args: argparse.Namespace) -> int:
     """Compute new limits from chosen released lots, store them as a new version, log it, print both."""
+    from pipeline.night.open import open_records
     from pipeline.night.rebaseline import rebaseline
 
     try:
         _, attribute = _attribute(args.product, args.attribute, args.workspace)
-        ws, store = _open(args.workspace)
+        ws, store = open_records(Path(args.workspace))
         done = rebaseline(ws, store, args.product, attribute, by=args.by, reason=args.reason,
                           from_lot=args.from_lot, count=args.count)
     except (LotgateError, OSError) as exc:

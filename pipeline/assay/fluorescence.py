@@ -26,8 +26,7 @@ from pipeline.controlled.specs import Document, curve_fields, method_document
 from pipeline.controlled.strict import checked
 from pipeline.errors import SpecificationError
 from pipeline.science.measurement import Measurement
-
-WELLS_LISTED = 8
+from pipeline.science.plate_wells import listed_wells
 
 
 @dataclass(frozen=True)
@@ -82,7 +81,7 @@ def evaluate_fluorescence_plate(plate_id: str, plate: PlateReads, method: Fluore
     missing = merged.loc[merged["intensity_rfu"].isna(), "well"].astype(str).tolist()
     if missing:
         return invalid_protein_plate(plate_id, method, lots, [
-            f"plate {plate_id}: the read has no value for mapped well(s) {_listed(missing)}"])
+            f"plate {plate_id}: the read has no value for mapped well(s) {listed_wells(missing)}"])
     settings = sorted({(int(x), int(m)) for x, m in zip(merged["excitation_nm"], merged["emission_nm"], strict=True)})
     wanted = (int(method.excitation_nm), int(method.emission_nm))
     if settings != [wanted]:
@@ -93,7 +92,7 @@ def evaluate_fluorescence_plate(plate_id: str, plate: PlateReads, method: Fluore
     standards = saturated.loc[saturated["role"] == "standard", "well"].tolist()
     if standards:
         return invalid_protein_plate(plate_id, method, lots, [
-            f"plate {plate_id}: standard well(s) {_listed(standards)} at or above the reader's saturation "
+            f"plate {plate_id}: standard well(s) {listed_wells(standards)} at or above the reader's saturation "
             f"({method.reader_max_rfu:g} RFU); the standard curve cannot be built"])
     signal = Signal(column="intensity_rfu", label="fluorescence (RFU)", heading="Intensity (RFU)")
     result = evaluate_standard_curve_plate(plate_id, merged, method, lots, signal)
@@ -107,11 +106,7 @@ def _saturated_samples_invalid(result: ProteinPlateResult, saturated: pd.DataFra
     for lot, wells in saturated[saturated["role"] == "sample"].groupby("lot_id"):
         names = wells["well"].astype(str).tolist()
         protein[str(lot)] = Measurement("protein", "mg/mL", None, valid=False, reasons=(
-            f"well(s) {_listed(names)} at or above the reader's saturation ({method.reader_max_rfu:g} RFU): "
+            f"well(s) {listed_wells(names)} at or above the reader's saturation ({method.reader_max_rfu:g} RFU): "
             "dilute the sample further and read again",))
     return replace(result, protein=protein)
 
-
-def _listed(wells: list[str]) -> str:
-    more = len(wells) - WELLS_LISTED
-    return ", ".join(wells[:WELLS_LISTED]) + (f" and {more} more" if more > 0 else "")

@@ -37,6 +37,7 @@ from pipeline.controlled.specs import KineticMethod
 from pipeline.intake.row_checks import PLATE_GEOMETRY
 from pipeline.intake.validation import ParsedExport
 from pipeline.release.lot_evaluation import LimsEntry, LotInputs
+from pipeline.science.plate_wells import listed_wells
 
 LOT_ID = re.compile(r"[A-Z0-9][A-Z0-9-]{2,31}")  # the lot_id pattern of the export layouts
 # The kinds of export (``lotgate_export.kind`` of a layout under schemas/) that a night uses.
@@ -44,7 +45,6 @@ LOT_ID = re.compile(r"[A-Z0-9][A-Z0-9-]{2,31}")  # the lot_id pattern of the exp
 REGISTRY, PLATE_MAP, LIMS_RESULTS = "lot-registry", "plate-map", "lims-results"
 USED_KINDS = (REGISTRY, PLATE_MAP, LIMS_RESULTS, *read_kinds())
 _TOKEN = re.compile(r"[A-Za-z0-9][A-Za-z0-9-]*")
-WELLS_LISTED = 8
 
 
 @dataclass(frozen=True)
@@ -145,23 +145,18 @@ def _plate_groups(exports: list[ParsedExport]) -> dict[str, tuple[pd.DataFrame, 
     return out
 
 
-def _listed(wells: list[str]) -> str:
-    more = len(wells) - WELLS_LISTED
-    return ", ".join(wells[:WELLS_LISTED]) + (f" and {more} more" if more > 0 else "")
-
-
 def _well_problem(plate_id: str, plate_map: pd.DataFrame, reads: pd.DataFrame, read_files: list[str]) -> str | None:
     """Every mapped well has a read, and every read well lies on the mapped plate."""
     used = plate_map.loc[plate_map["role"] != "empty", "well"].astype(str)
     read_wells = set(reads["well"].astype(str))
     missing = sorted(set(used) - read_wells)
     if missing:
-        return f"plate {plate_id}: mapped well(s) {_listed(missing)} have no read in {', '.join(read_files)}"
+        return f"plate {plate_id}: mapped well(s) {listed_wells(missing)} have no read in {', '.join(read_files)}"
     plate_format = int(plate_map["plate_format"].iloc[0])
     rows, columns = PLATE_GEOMETRY[plate_format]
     outside = sorted(w for w in read_wells if w[0] not in rows or int(w[1:]) > columns)
     if outside:
-        return (f"plate {plate_id}: the read {', '.join(read_files)} has well(s) {_listed(outside)}, outside the "
+        return (f"plate {plate_id}: the read {', '.join(read_files)} has well(s) {listed_wells(outside)}, outside the "
                 f"{plate_format}-well plate of its plate map")
     return None
 

@@ -12,7 +12,6 @@ removed and recorded too.
 
 from __future__ import annotations
 
-import hashlib
 from pathlib import Path
 
 from pipeline.night.lot_documents import (
@@ -22,12 +21,9 @@ from pipeline.night.lot_documents import (
     staging_folder,
 )
 from pipeline.records import audit
+from pipeline.records.controlled_files import sha256_file
 from pipeline.records.store import Store
 from pipeline.records.workspace import Workspace
-
-
-def _sha256(path: Path) -> str:
-    return hashlib.sha256(path.read_bytes()).hexdigest()
 
 
 def recover_documents(ws: Workspace, store: Store, interrupted: bool) -> None:
@@ -52,7 +48,7 @@ def recover_documents(ws: Workspace, store: Store, interrupted: bool) -> None:
         relative = path.relative_to(staging).as_posix()
         if path.name.startswith(".") and path.name.endswith(".tmp"):
             path.unlink()  # a write cut short: never a whole document
-        elif relative in named and named[relative] in (None, _sha256(path)):
+        elif relative in named and named[relative] in (None, sha256_file(path)):
             place_document(ws, relative)
         else:
             removed.append((path, relative, "staged by a run that stopped before the decision naming it was stored"))
@@ -62,7 +58,7 @@ def recover_documents(ws: Workspace, store: Store, interrupted: bool) -> None:
             removed.append((path, relative, "in place without a stored decision naming it, left by a run that stopped"))
     if removed:  # recorded first, removed after: a run stopped in between finds them again
         store.add_events([audit.event("document-removed", time_zone=ws.time_zone, lot_id=lot_of_document(path.name),
-                                      file=relative, sha256=_sha256(path), reason=why)
+                                      file=relative, sha256=sha256_file(path), reason=why)
                           for path, relative, why in removed])
         audit.sync_log(store, ws.log)
     for path, _, _ in removed:

@@ -50,3 +50,12 @@ def all_wells(plate_format: int = 96) -> tuple[str, ...]:
     return tuple(
         f"{chr(ord('A') + row)}{column + 1:02d}" for row in range(rows) for column in range(columns)
     )
+
+
+WELLS_LISTED = 8  # wells named in a message before "and N more"
+
+
+def listed_wells(wells: list[str]) -> str:
+    """Well names for a message: the first few, then how many more."""
+    more = len(wells) - WELLS_LISTED
+    return ", ".join(wells[:WELLS_LISTED]) + (f" and {more} more" if more > 0 else "")
