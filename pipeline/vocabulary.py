@@ -16,6 +16,8 @@ class Disposition(StrEnum):
     """What became of a lot."""
 
     RELEASED = "released"
+    READY_FOR_RELEASE = "ready for release"  # every criterion met; awaits an authorised person
+    PENDING = "pending"  # required results still due, none of them overdue
     HELD = "held"
     REJECTED = "rejected"  # by an authorised person
 
@@ -28,12 +30,46 @@ class HoldCategory(StrEnum):
     INCOMPLETE = "incomplete"
     OUT_OF_TREND = "out of trend"
     REVIEW_REQUIRED = "review required"  # an earlier hold or a person's decision stands
+    OVERDUE = "overdue"  # a required result is past its expected turnaround
 
     @classmethod
     def in_reading_order(cls, found: Iterable[str]) -> tuple[HoldCategory, ...]:
         """The known categories among ``found``, each once, in reading order."""
         present = set(found)
         return tuple(category for category in cls if category in present)
+
+
+class ReleaseMode(StrEnum):
+    """How a lot meeting every criterion becomes released (per product, with a plant default)."""
+
+    APPROVAL = "approval"  # ready for release, then an authorised person approves
+    AUTOMATIC = "automatic"  # release by exception, where the plant's procedure allows it
+
+
+class SignerRole(StrEnum):
+    """What a person in the register of authorised signers may sign."""
+
+    RELEASE_APPROVAL = "release approval"
+    REJECTION = "rejection"
+    RESULT_INVALIDATION = "result invalidation"
+    REBASELINE = "re-baseline"
+    SPECIFICATION_APPROVAL = "specification approval"
+
+
+class ResultStatus(StrEnum):
+    """The standing of one result in a lot's record."""
+
+    VALID = "valid"
+    INVALID = "invalid"  # the assay failed system suitability (the reason is recorded)
+    SUPERSEDED = "superseded"  # an invalid result replaced by the next valid one of the same test
+    INVALIDATED = "invalidated"  # by an authorised person, with the investigation reference
+
+
+class InvestigationOutcome(StrEnum):
+    """The signed outcome of an out-of-specification investigation."""
+
+    RESULT_INVALIDATED = "assignable laboratory cause: result invalidated"
+    CONFIRMED_OOS = "confirmed OOS"
 
 
 class Verdict(StrEnum):
