@@ -112,3 +112,38 @@ def test_the_night_and_the_chart_view_agree_on_random_series():
             released.append(float(value))
         batch = [(s.index, s.rule) for s in rule_signals(released, 0.0, 1.0, marks=marks)] if released else []
         assert batch == sorted(seen)
+
+
+def test_the_store_remembers_a_held_lots_run_for_the_next_night(tmp_path):
+    # Night 1 through decide_night, its decisions stored as the night stores them; night 2 reads
+    # the charts back from the store (load_charts): B and C are not held by A's points again.
+    from pipeline.controlled.catalog import Catalog
+    from pipeline.night.decide import load_charts
+    from pipeline.records.chart_queries import held_points
+    from pipeline.records.store import Store
+    from pipeline.records.stored import DecisionWrite, LimitsWrite
+    from pipeline.release.records import DecisionRecord, RecordedResult
+
+    store = Store(f"sqlite:///{tmp_path / 'lotgate.db'}")
+    catalog = Catalog({"SIM-2": SPEC}, {})
+    first = decide_night([evaluation(i, v) for i, v in enumerate(BASELINE + RISING + A_B_C[:1])],
+                         {"SIM-2": SPEC}, {}, {}, "test")
+    limits = first.charts[("SIM-2", "specific_activity")].limits
+    assert limits is not None
+    for number, lot in enumerate(first.lots):
+        d = lot.decision
+        record = DecisionRecord(d.lot_id, d.product, d.disposition, d.hold_categories, d.reasons, d.spec_version,
+                                d.spec_sha256, d.fingerprint, d.label,
+                                results=(RecordedResult("specific_activity", lot.evaluation.verdicts[0].value, None,
+                                                        "U/mg", "pass"),),
+                                trend=lot.trend)
+        freeze = (LimitsWrite("SIM-2", "specific_activity", limits.center, limits.sigma, limits.mr_bar,
+                              limits.baseline_lots, "lotgate (baseline reached)", "baseline reached"),) \
+            if number == 20 else ()
+        store.add_decisions([DecisionWrite(record, "lotgate (test)", chart_values=lot.chart_values)], freeze)
+    held = held_points(store, "SIM-2", "specific_activity", after_order=None, limit=30)
+    assert [(h.lot_id, h.rules) for h in held] == [("SIM-025", (NelsonRule.SIX_RISING_OR_FALLING,))]
+    later = [evaluation(26 + i, v) for i, v in enumerate(A_B_C[1:])]
+    charts = load_charts(store, catalog, later)
+    assert charts[("SIM-2", "specific_activity")].marks == ((NelsonRule.SIX_RISING_OR_FALLING, 25),)
+    assert _held(decide_night(later, {"SIM-2": SPEC}, {}, charts, "test")) == []
