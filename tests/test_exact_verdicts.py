@@ -248,3 +248,20 @@ def test_qualified_results_and_e_notation_no_longer_reject_the_lims_file():
             parse_export("lims-LLC-2611-001.csv",
                          ("lot_id,test_code,result,unit,tested_on,analyst\n"
                           f"LLC-2611-001,PH,\"{bad}\",,2026-11-27,K. L.\n").encode(), layouts)
+
+
+# ------------------------------------------------------------------------------ hostile and extreme input
+@pytest.mark.parametrize("text", ["1e999999", "-1E-500", "< 1e101"])
+def test_an_absurd_number_is_an_invalid_result_not_a_crash(text):
+    result = judge_lims(LEAD, text, "mg/kg")
+    assert result.verdict == Verdict.INVALID
+    assert result.reasons == (f"Lead (LIMS test PB): '{text}' is outside the range of a laboratory result "
+                              "(10^-100 to 10^100)",)
+
+
+@pytest.mark.parametrize(("value", "verdict"), [(1e300, Verdict.FAIL), (-1e300, Verdict.PASS), (1e-300, Verdict.PASS),
+                                                (1.7e308, Verdict.FAIL)])
+def test_extreme_computed_values_round_exactly(value, verdict):
+    # A float rounds on its exact decimal text at any magnitude (no 28-digit context overflow).
+    assert judge_numeric(LEAD, value)[0] == verdict
+    assert judge_numeric(EFFICIENCY, abs(value))[0] in (Verdict.PASS, Verdict.FAIL)

@@ -19,7 +19,7 @@ from __future__ import annotations
 import math
 import re
 from dataclasses import dataclass
-from decimal import ROUND_HALF_EVEN, ROUND_HALF_UP, Decimal
+from decimal import ROUND_HALF_EVEN, ROUND_HALF_UP, Context, Decimal, localcontext
 
 from pipeline.controlled.limit_precision import SCIENTIFIC_FIGURES
 from pipeline.vocabulary import ResultQualifier, Rounding
@@ -30,6 +30,8 @@ _ENTERED = re.compile(rf"(?P<q>[<>])?\s*(?P<n>{_NUMBER})")
 _WORD_QUALIFIERS = {"not detected": ResultQualifier.NOT_DETECTED, "nd": ResultQualifier.NOT_DETECTED,
                     "too numerous to count": ResultQualifier.TOO_NUMEROUS, "tntc": ResultQualifier.TOO_NUMEROUS}
 _MODES = {Rounding.HALF_UP: ROUND_HALF_UP, Rounding.HALF_EVEN: ROUND_HALF_EVEN}
+MAX_EXPONENT = 100  # an entered number beyond 10^±100 is no laboratory result: refused, not rounded
+_EXACT = Context(prec=1000)  # enough digits for any float (≤ 1.8e308) rounded to its reported digits, exactly
 # The form a LIMS result cell must have (schemas/lims-results.yaml says the same in its pattern).
 RESULT_PATTERN = (r"^(?:[<>] ?)?[+-]?(?:[0-9]+(?:\.[0-9]*)?|\.[0-9]+)(?:[eE][+-]?[0-9]+)?$"
                   r"|^(?i:absent|present|not detected|nd|too numerous to count|tntc)$")
@@ -67,6 +69,9 @@ def read_entered(text: str) -> EnteredResult:
     number = Decimal(match["n"])
     if not number.is_finite():
         raise ValueError(f"'{cleaned}' is not a finite number")
+    if number != 0 and abs(number.adjusted()) > MAX_EXPONENT:
+        raise ValueError(f"'{cleaned}' is outside the range of a laboratory result (10^-{MAX_EXPONENT} to "
+                         f"10^{MAX_EXPONENT})")
     return EnteredResult(cleaned, number, ResultQualifier(match["q"]) if match["q"] else None)
 
 
@@ -98,9 +103,10 @@ def round_reported(value: float | Decimal, digits: int, rounding: Rounding = Rou
     A zero result loses its sign: −0.04 → 0.0.
     """
     d = exact(value)
-    rounded = d.quantize(_quantum(d, digits, scientific), rounding=_MODES[Rounding(rounding)])
-    if scientific and rounded != 0 and rounded.adjusted() > d.adjusted():  # 9.995 → 10.0: one figure too many
-        rounded = rounded.quantize(_quantum(rounded, digits, scientific), rounding=_MODES[Rounding(rounding)])
+    with localcontext(_EXACT):
+        rounded = d.quantize(_quantum(d, digits, scientific), rounding=_MODES[Rounding(rounding)])
+        if scientific and rounded != 0 and rounded.adjusted() > d.adjusted():  # 9.995 → 10.0: one figure too many
+            rounded = rounded.quantize(_quantum(rounded, digits, scientific), rounding=_MODES[Rounding(rounding)])
     return rounded.copy_abs() if rounded == 0 else rounded
 
 
@@ -124,12 +130,16 @@ def sup_below(bound: Decimal, digits: int, rounding: Rounding, scientific: bool)
     ε is far below both the bound's own last digit and the rounding step, so bound − ε lies in the
     rounding interval just under the bound: '< 5.05' (one decimal, half-up) → 5.0; '< 5.06' → 5.1.
     """
-    return round_reported(bound - _epsilon(bound, digits, scientific), digits, rounding, scientific)
+    with localcontext(_EXACT):
+        below = bound - _epsilon(bound, digits, scientific)
+    return round_reported(below, digits, rounding, scientific)
 
 
 def inf_above(bound: Decimal, digits: int, rounding: Rounding, scientific: bool) -> Decimal:
     """The smallest rounded value that a true value above ``bound`` can have: the rounding of bound + ε."""
-    return round_reported(bound + _epsilon(bound, digits, scientific), digits, rounding, scientific)
+    with localcontext(_EXACT):
+        above = bound + _epsilon(bound, digits, scientific)
+    return round_reported(above, digits, rounding, scientific)
 
 
 def _epsilon(bound: Decimal, digits: int, scientific: bool) -> Decimal:

@@ -29,12 +29,7 @@ from pipeline.release.reported_values import (
 from pipeline.science.measurement import Measurement
 from pipeline.vocabulary import Disposition, HoldCategory, ResultQualifier, TrendStatus, Verdict
 
-__all__ = ["disposition", "format_reported", "judge_lims", "judge_measurement", "judge_numeric", "round_half_up"]
-
-
-def format_reported(value: float, digits: int, scientific: bool = False) -> str:
-    """A computed result as reported: rounded half-up to its digits (3 significant figures if scientific)."""
-    return show_rounded(round_reported(value, digits, scientific=scientific), scientific)
+__all__ = ["disposition", "judge_entered", "judge_lims", "judge_measurement", "judge_numeric", "round_half_up"]
 
 
 def _words(*parts: str) -> str:
