@@ -147,3 +147,22 @@ def test_the_store_remembers_a_held_lots_run_for_the_next_night(tmp_path):
     charts = load_charts(store, catalog, later)
     assert charts[("SIM-2", "specific_activity")].marks == ((NelsonRule.SIX_RISING_OR_FALLING, 25),)
     assert _held(decide_night(later, {"SIM-2": SPEC}, {}, charts, "test")) == []
+
+
+def test_a_result_entered_as_a_bound_is_not_charted():
+    # A trended attribute with a maximum only: "< 250" meets ≤ 260, but 250 is a bound, not the
+    # lot's value, so it is no point on the chart (it was charted as 250 before).
+    from pipeline.controlled.specs import Attribute
+    from pipeline.release.verdicts import judge_lims
+    from pipeline.vocabulary import TrendStatus
+
+    upper = Attribute(code="specific_activity", title="Specific activity", source="lims", test_code="SA",
+                      unit="U/mg", digits=0, maximum=260.0, trend=True, baseline_n=20)
+    spec = SPEC.__class__(**{**vars(SPEC), "attributes": (upper,)})
+    verdict = judge_lims(upper, "< 250", "U/mg")
+    lot = evaluation(99, 205.0)
+    lot = lot.__class__(**{**vars(lot), "verdicts": (verdict,)})
+    night = decide_night([lot], {"SIM-2": spec}, {}, {}, "test")
+    assert night.lots[0].decision.disposition == Disposition.RELEASED
+    assert night.lots[0].trend[0].status == TrendStatus.NOT_EVALUATED
+    assert night.lots[0].chart_values == {}

@@ -19,7 +19,7 @@ from typing import Any
 from pipeline.controlled.specs import Attribute, Specification
 from pipeline.release.lot_evaluation import LotEvaluation
 from pipeline.release.records import Decision, TrendFinding
-from pipeline.release.verdicts import disposition
+from pipeline.release.verdicts import disposition, is_bound
 from pipeline.science import control_charts as trend
 from pipeline.vocabulary import Disposition, HoldCategory, NelsonRule, TrendStatus, Verdict
 
@@ -250,7 +250,7 @@ def decide_night(evaluations: list[LotEvaluation], specifications: dict[str, Spe
             if verdict.verdict != Verdict.PASS and not (verdict.verdict == Verdict.REPORTED and isinstance(value, float)):
                 findings.append(TrendFinding(attribute.code, TrendStatus.NOT_EVALUATED, signals=()))
                 continue
-            if not isinstance(value, float):
+            if not isinstance(value, float) or is_bound(verdict):  # '< 0.5' is no point on a chart
                 findings.append(TrendFinding(attribute.code, TrendStatus.NOT_EVALUATED, signals=()))
                 continue
             working[key], finding = _judge_point(chart, attribute, evaluation.lot_id, value, attribute.digits, frozen)

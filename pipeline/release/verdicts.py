@@ -29,7 +29,15 @@ from pipeline.release.reported_values import (
 from pipeline.science.measurement import Measurement
 from pipeline.vocabulary import Disposition, HoldCategory, ResultQualifier, TrendStatus, Verdict
 
-__all__ = ["disposition", "judge_entered", "judge_lims", "judge_measurement", "judge_numeric", "round_half_up"]
+__all__ = ["disposition", "is_bound", "judge_entered", "judge_lims", "judge_measurement", "judge_numeric", "round_half_up"]
+
+
+def is_bound(verdict: AttributeVerdict) -> bool:
+    """True for a result entered as a bound ('< 0.5', '> 300'): its number is no point for a chart.
+
+    A qualified result is always reported as entered, qualifier first (``EnteredResult.shown``).
+    """
+    return isinstance(verdict.reported, str) and verdict.reported.startswith(("<", ">"))
 
 
 def _words(*parts: str) -> str:
