@@ -265,3 +265,11 @@ def test_extreme_computed_values_round_exactly(value, verdict):
     # A float rounds on its exact decimal text at any magnitude (no 28-digit context overflow).
     assert judge_numeric(LEAD, value)[0] == verdict
     assert judge_numeric(EFFICIENCY, abs(value))[0] in (Verdict.PASS, Verdict.FAIL)
+
+
+def test_a_scientific_limit_is_shown_as_written():
+    small = Attribute(code="kcat_over_km", title="Catalytic efficiency", source="kcat_over_km", unit="1/(M·s)",
+                      digits=0, minimum=0.00125, scientific=True)
+    assert small.limit_text == "≥ 0.00125"  # not "≥ 0" at digits 0
+    assert EFFICIENCY.limit_text == "≤ 12300"
+    assert PH.limit_text == "6.5 – 7.5"

@@ -22,7 +22,7 @@ def limit_decimal(limit: float) -> Decimal:
     return Decimal(repr(float(limit)))
 
 
-def _written(limit: float) -> str:
+def written_limit(limit: float) -> str:
     """The limit as a person wrote it: 12345.0 → '12345', 6.50 → '6.5'."""
     return f"{limit_decimal(limit).normalize():f}"
 
@@ -53,13 +53,13 @@ def check_limit_precision(where: str, code: str, side: str, limit: float | None,
         figures = significant_figures_of(limit)
         if figures > SCIENTIFIC_FIGURES:
             raise SpecificationError(
-                f"{where}, attribute '{code}': the {side} limit {_written(limit)} has {figures} significant "
+                f"{where}, attribute '{code}': the {side} limit {written_limit(limit)} has {figures} significant "
                 f"figures, but results are reported to {SCIENTIFIC_FIGURES}; write the limit with at most "
                 f"{SCIENTIFIC_FIGURES}")
         return
     needed = decimals_of(limit)
     if needed > digits:
         raise SpecificationError(
-            f"{where}, attribute '{code}': the {side} limit {_written(limit)} has {needed} decimal"
+            f"{where}, attribute '{code}': the {side} limit {written_limit(limit)} has {needed} decimal"
             f"{'s' if needed != 1 else ''}, but results are reported to {digits}; write the limit with at most "
             f"{digits} decimal{'s' if digits != 1 else ''} or raise 'digits'")

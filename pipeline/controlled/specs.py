@@ -25,7 +25,7 @@ from pipeline.controlled.file_models import (
     TrendSettings,
     Uv280MethodFile,
 )
-from pipeline.controlled.limit_precision import check_limit_precision
+from pipeline.controlled.limit_precision import check_limit_precision, written_limit
 from pipeline.controlled.strict import checked
 from pipeline.errors import SpecificationError
 from pipeline.vocabulary import NelsonRule, Rounding
@@ -73,13 +73,15 @@ class Attribute:
     def limit_text(self) -> str:
         if self.expect is not None:
             return self.expect
-        fmt = f"{{:.{self.digits}f}}"
+        def show(limit: float) -> str:  # verdicts: a scientific limit as written (≤ 3 significant figures)
+            return written_limit(limit) if self.scientific else f"{limit:.{self.digits}f}"
+
         if self.minimum is not None and self.maximum is not None:
-            return f"{fmt.format(self.minimum)} – {fmt.format(self.maximum)}"
+            return f"{show(self.minimum)} – {show(self.maximum)}"
         if self.minimum is not None:
-            return f"≥ {fmt.format(self.minimum)}"
+            return f"≥ {show(self.minimum)}"
         if self.maximum is not None:
-            return f"≤ {fmt.format(self.maximum)}"
+            return f"≤ {show(self.maximum)}"
         return "report"
 
 
