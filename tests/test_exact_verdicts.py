@@ -273,3 +273,9 @@ def test_a_scientific_limit_is_shown_as_written():
     assert small.limit_text == "≥ 0.00125"  # not "≥ 0" at digits 0
     assert EFFICIENCY.limit_text == "≤ 12300"
     assert PH.limit_text == "6.5 – 7.5"
+
+
+def test_an_undecided_reason_without_a_unit_reads_cleanly():
+    assert judge_lims(PH, "< 7.0", "").reasons == (
+        "pH: < 7.0 cannot be judged against the limit 6.5 – 7.5: a value below the bound may also be below the "
+        "lower limit; held for review (not out of specification)",)

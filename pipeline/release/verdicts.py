@@ -51,9 +51,9 @@ def _limits(attribute: Attribute) -> tuple[Decimal | None, Decimal | None]:
 
 
 def _undecided(attribute: Attribute, reported: str, why: str) -> tuple[Verdict, str, str]:
-    return Verdict.UNDECIDED, reported, _words(
-        f"{attribute.title}: {reported}", attribute.unit, "cannot be judged against the limit", attribute.limit_text,
-        f"{attribute.unit}: {why}; held for review (not out of specification)")
+    judged = _words(f"{attribute.title}: {reported}", attribute.unit, "cannot be judged against the limit",
+                    attribute.limit_text, attribute.unit)
+    return Verdict.UNDECIDED, reported, f"{judged}: {why}; held for review (not out of specification)"
 
 
 def _judge_bounded(attribute: Attribute, entered: EnteredResult) -> tuple[Verdict, str, str | None]:
