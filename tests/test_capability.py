@@ -8,8 +8,9 @@ Check values:
 * Cpk interval — Montgomery, same chapter (from memory), Bissell's approximation with n = 20 and
   Ĉpk = 1.33: 0.88 ≤ Cpk ≤ 1.78. Worked again by hand: 1/(9·20) = 0.005556,
   1.33²/(2·19) = 0.046550, √0.052106 = 0.228267, ×1.96 = 0.447403 → 0.8826 to 1.7774.
-* Coverage of the Ppk interval in simulation (known truth, fixed seed): Bissell's interval is
-  stated for normal data with σ from the sample SD, which is how Ppk is estimated.
+* Coverage of the intervals in simulation (known truth, fixed seed): Bissell's interval is
+  stated for normal data with σ from the sample SD (Ppk); for Cpk, σ = MR̄/d₂ with the effective
+  degrees of freedom 0.62·(n − 1) of an average moving range (Wheeler & Chambers, from memory).
 """
 
 from __future__ import annotations
@@ -65,17 +66,37 @@ def test_capability_refuses_what_it_cannot_compute(kwargs, match):
 
 
 @pytest.mark.slow
-def test_ppk_interval_covers_the_true_value_about_95_percent_of_the_time():
-    # Simulation with known truth: normal lots, μ = 100, σ = 2, USL 108 → true Ppk = 8/6 = 1.333;
-    # n = 50 lots per study, 4,000 studies (seed fixed). Coverage printed, checked within 93–97 %.
-    rng = np.random.default_rng(20261202)
-    true_ppk = (108.0 - 100.0) / (3 * 2.0)
-    covered = 0
-    studies = 4000
+@pytest.mark.parametrize("n", [20, 50])
+def test_cpk_and_ppk_intervals_cover_the_true_value_about_95_percent_of_the_time(n):
+    # Simulation with known truth: normal lots, μ = 100, σ = 2, USL 108 → true Cpk = Ppk = 8/6;
+    # 3,000 studies of n lots each (seed fixed). Coverage printed, checked within 93–97 %.
+    rng = np.random.default_rng(20261202 + n)
+    truth = (108.0 - 100.0) / (3 * 2.0)
+    cpk_hits = ppk_hits = 0
+    studies = 3000
     for _ in range(studies):
-        cap = capability(rng.normal(100.0, 2.0, 50), usl=108.0)
-        assert cap.ppk_interval is not None
-        covered += cap.ppk_interval.low <= true_ppk <= cap.ppk_interval.high
-    coverage = covered / studies
-    print(f"Bissell 95 % interval for Ppk, n = 50: coverage {coverage:.3f} over {studies} studies")
-    assert 0.93 <= coverage <= 0.97
+        cap = capability(rng.normal(100.0, 2.0, n), usl=108.0)
+        assert cap.cpk_interval is not None and cap.ppk_interval is not None
+        cpk_hits += cap.cpk_interval.low <= truth <= cap.cpk_interval.high
+        ppk_hits += cap.ppk_interval.low <= truth <= cap.ppk_interval.high
+    cpk_cover, ppk_cover = cpk_hits / studies, ppk_hits / studies
+    print(f"n = {n}: 95 % interval coverage, Cpk (MR-bar, nu = 0.62(n-1)) {cpk_cover:.3f}, "
+          f"Ppk (s) {ppk_cover:.3f}, over {studies} studies")
+    assert 0.93 <= cpk_cover <= 0.97
+    assert 0.93 <= ppk_cover <= 0.97
+
+
+@pytest.mark.slow
+def test_cp_and_pp_intervals_cover_the_true_value_about_95_percent_of_the_time():
+    # Simulation with known truth: μ = 100, σ = 2, limits 92–108 → Cp = Pp = 16/12; n = 30,
+    # 3,000 studies (seed fixed). Chi-square interval (Pp: n − 1 df; Cp: 0.62·(n − 1) df).
+    rng = np.random.default_rng(20261203)
+    truth = 16.0 / 12.0
+    cp_hits = pp_hits = 0
+    for _ in range(3000):
+        cap = capability(rng.normal(100.0, 2.0, 30), lsl=92.0, usl=108.0)
+        assert cap.cp_interval is not None and cap.pp_interval is not None
+        cp_hits += cap.cp_interval.low <= truth <= cap.cp_interval.high
+        pp_hits += cap.pp_interval.low <= truth <= cap.pp_interval.high
+    print(f"n = 30: 95 % interval coverage, Cp {cp_hits / 3000:.3f}, Pp {pp_hits / 3000:.3f}")
+    assert 0.93 <= cp_hits / 3000 <= 0.97 and 0.93 <= pp_hits / 3000 <= 0.97

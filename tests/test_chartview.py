@@ -103,8 +103,10 @@ def test_capability_over_the_released_lots_only_worked_by_hand():
     # Released: 10, 12, 11, 13, 12 -> mean 11.6; moving ranges 2, 1, 2, 1 -> MR-bar 1.5,
     # sigma within = 1.5/1.128 = 1.329787; squared deviations sum 5.2, s = sqrt(5.2/4) = 1.140175.
     # Nearest limit LSL 5: 6.6. Cpk = 6.6/3.989362 = 1.654400; Ppk = 6.6/3.420526 = 1.929528
-    # (worked by hand). Bissell 1990 (from memory): SE = sqrt(1/45 + 2.737039/8) = sqrt(0.364352)
-    # = 0.603616; 95 % interval 1.6544 -/+ 1.959964*0.603616 = 1.183066 -> 0.471334 to 2.837466.
+    # (worked by hand). Bissell 1990 (from memory) with the moving range's effective degrees of
+    # freedom nu = 0.62*4 = 2.48 (Wheeler & Chambers, from memory): SE = sqrt(1/45 + 2.737039/4.96)
+    # = sqrt(0.574048) = 0.757657; 95 % interval 1.6544 -/+ 1.959964*0.757657 = 1.484981
+    # -> 0.169419 to 3.139381.
     held = HeldPoint("H1", 6.0, 25, "held: out of trend", (HoldCategory.OUT_OF_TREND,), True,
                      ("Specific activity: Nelson rule 1 (one point beyond 3σ) at lot H1, value 6.0 U/mg",))
     view = build_chart_view(history(released(), [held]), ATTRIBUTE)
@@ -117,7 +119,7 @@ def test_capability_over_the_released_lots_only_worked_by_hand():
     assert cap.sigma_overall == pytest.approx(1.140175, rel=1e-6)
     assert cap.cpk == pytest.approx(1.654400, rel=1e-5)
     assert cap.ppk == pytest.approx(1.929528, rel=1e-5)
-    assert (cap.cpk_interval.low, cap.cpk_interval.high) == pytest.approx((0.471334, 2.837466), rel=1e-5)
+    assert (cap.cpk_interval.low, cap.cpk_interval.high) == pytest.approx((0.169419, 3.139381), rel=1e-5)
     assert view.capability_note.startswith("over the 5 released lots in the window (1 held lot left out); "
                                            "only 5 released lots (fewer than 30)")
     # the held lot stays off the charted series: the moving range at A4 is |13 - 11| = 2

@@ -115,9 +115,10 @@ def test_trend_capability_worked_by_hand(tmp_path, capsys):
     ws = workspace(tmp_path)
     assert run(["trend", PRODUCT, ATTR, "--workspace", str(ws), "--out", str(tmp_path / "out")]) == 0
     out = capsys.readouterr().out
-    # Bissell 1990 (from memory): SE(Cpk) = sqrt(1/45 + 6.667733^2/8) = 2.362108, 95 % interval
-    # 6.667733 -/+ 1.959964*2.362108 -> 2.04 to 11.30; Ppk 7.776581: SE 2.753475 -> 2.38 to 13.17.
-    assert "Cpk 6.67, 95% CI 2.04–11.30" in out and "Ppk 7.78, 95% CI 2.38–13.17" in out
+    # Bissell 1990 (from memory): SE(Cpk) = sqrt(1/45 + 6.667733^2/(2*2.48)) = 2.997610 with the
+    # moving range's nu = 0.62*4 (Wheeler & Chambers, from memory), 95 % interval 6.667733 -/+
+    # 1.959964*2.997610 -> 0.79 to 12.54; Ppk 7.776581 (s, nu = 4): SE 2.753475 -> 2.38 to 13.17.
+    assert "Cpk 6.67, 95% CI 0.79–12.54" in out and "Ppk 7.78, 95% CI 2.38–13.17" in out
     assert "over the 5 released lots in the window; only 5 released lots (fewer than 30)" in out
     assert (tmp_path / "out" / f"{PRODUCT}_{ATTR}_trend.png").exists()
 
