@@ -279,3 +279,18 @@ def test_an_undecided_reason_without_a_unit_reads_cleanly():
     assert judge_lims(PH, "< 7.0", "").reasons == (
         "pH: < 7.0 cannot be judged against the limit 6.5 – 7.5: a value below the bound may also be below the "
         "lower limit; held for review (not out of specification)",)
+
+
+def test_a_person_may_release_after_reviewing_an_undecided_result_but_not_a_missing_one():
+    # An undecided qualified result is held for a person's review (like an OOS result, which a
+    # person may still release after investigation); a missing or invalid one leaves nothing to certify.
+    from pipeline.night.person_decision import _blocking_results
+    from pipeline.release.records import DecisionRecord, RecordedResult
+
+    def record(verdict: str) -> DecisionRecord:
+        return DecisionRecord("L-1", "LLC-200", "held", ("undecided result",), (), "3.1", "0" * 64, "1" * 64,
+                              "held: undecided result",
+                              results=(RecordedResult("coliforms", "< 50", "< 50", "CFU/g", verdict),))
+
+    assert _blocking_results(record(Verdict.UNDECIDED)) == []
+    assert _blocking_results(record(Verdict.MISSING)) == ["coliforms"]
