@@ -169,6 +169,8 @@ def test_rounding_is_chosen_per_specification():
     (COLI, "not detected", Verdict.UNDECIDED, "not detected"),
     (COLI, "too numerous to count", Verdict.UNDECIDED, "too numerous to count"),
     (SALM, "not detected", Verdict.UNDECIDED, "not detected"),  # a word the specification does not use
+    (SALM, "< 1", Verdict.UNDECIDED, "< 1"),           # a bound where a word is expected: a person judges
+    (SALM, "0", Verdict.FAIL, "0"),                    # a plain number where a word is expected
     (SALM, "Absent", Verdict.PASS, "absent"),
     (SALM, "present", Verdict.FAIL, "present"),
 ])

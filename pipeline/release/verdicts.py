@@ -111,6 +111,10 @@ def judge_entered(attribute: Attribute, entered: EnteredResult) -> tuple[Verdict
         reported = entered.shown
     if not attribute.has_limit:
         return Verdict.REPORTED, reported, None
+    if attribute.expect is not None and entered.qualifier is not None:  # '< 1' for 'absent': a person judges
+        return Verdict.UNDECIDED, reported, (
+            f"{attribute.title}: {reported} was reported where '{attribute.expect}' is expected; a person must judge "
+            "whether it means the same; held for review (not out of specification)")
     if attribute.expect is not None:
         return Verdict.FAIL, reported, f"{attribute.title}: a number was reported where '{attribute.expect}' is expected"
     if entered.qualifier is not None:
