@@ -14,6 +14,7 @@ from pathlib import Path
 from typing import Any
 
 from pipeline.errors import InputError, LotgateError, NotFound, SpecificationError
+from pipeline.science.process_capability import Interval
 
 DEFAULT_WINDOW = 30
 
@@ -112,9 +113,12 @@ def chart_report(view: Any, product_name: str) -> str:
         lines.append(f"Capability: {view.capability_note}")
     else:
         lines += [f"Capability against {_limit_text(view)}, {view.capability_note}:",
-                  f"  Cpk {cap.cpk:.2f}  (σ within = MR̄/d₂ = {_num(cap.sigma_within, d + 1)} {unit})",
-                  f"  Ppk {cap.ppk:.2f}  (σ overall = s = {_num(cap.sigma_overall, d + 1)} {unit}); "
-                  f"mean {_num(cap.mean, d + 1)} {unit}"]
+                  f"  Cpk {cap.cpk:.2f}{_ci(cap.cpk_interval, cap.confidence)}  "
+                  f"(σ within = MR̄/d₂ = {_num(cap.sigma_within, d + 1)} {unit})",
+                  f"  Ppk {cap.ppk:.2f}{_ci(cap.ppk_interval, cap.confidence)}  "
+                  f"(σ overall = s = {_num(cap.sigma_overall, d + 1)} {unit}); mean {_num(cap.mean, d + 1)} {unit}",
+                  "  (intervals: Bissell 1990 approximation; a capability index is no substitute for the "
+                  "plant's own capability study)"]
     if lim is not None:
         lines.append("")
         if view.signals:
@@ -136,6 +140,11 @@ def _when(iso: str) -> str:
         return dt.datetime.fromisoformat(iso).astimezone(dt.UTC).strftime("%Y-%m-%d %H:%M UTC")
     except ValueError:
         return iso
+
+
+def _ci(interval: Interval | None, confidence: float) -> str:
+    """', 95 % CI 0.88–1.78' beside a capability index."""
+    return "" if interval is None else f", {confidence:.0%} CI {interval.low:.2f}–{interval.high:.2f}"
 
 
 def _limit_text(view: Any) -> str:

@@ -27,6 +27,7 @@ class HoldCategory(StrEnum):
 
     OUT_OF_SPECIFICATION = "out of specification"
     INVALID_ASSAY = "invalid assay"
+    UNDECIDED_RESULT = "undecided result"  # a qualified result ('< 50') that cannot be judged against its limit
     INCOMPLETE = "incomplete"
     OUT_OF_TREND = "out of trend"
     REVIEW_REQUIRED = "review required"  # an earlier hold or a person's decision stands
@@ -80,6 +81,7 @@ class Verdict(StrEnum):
     INVALID = "invalid"
     MISSING = "missing"
     REPORTED = "reported"  # reported without a limit
+    UNDECIDED = "undecided"  # a qualified result whose meaning neither meets nor proves it fails the limit
 
 
 class TrendStatus(StrEnum):
@@ -152,3 +154,20 @@ class ProblemCode(StrEnum):
     # the report itself, and lotgate's own defects
     MORE = "more"  # further problems of the kinds listed are not listed
     INTERNAL_ERROR = "internal-error"  # a defect of lotgate, never of the file
+
+
+# --- how results are rounded and qualified (verdicts) -------------------------------------------
+class Rounding(StrEnum):
+    """How a specification rounds a result to its reported digits before comparing it."""
+
+    HALF_UP = "half-up"  # halves away from zero (the default)
+    HALF_EVEN = "half-even"  # halves to the even digit (ASTM E29)
+
+
+class ResultQualifier(StrEnum):
+    """What a LIMS result says besides (or instead of) a plain number."""
+
+    LESS_THAN = "<"  # the true value is below the number given
+    GREATER_THAN = ">"  # the true value is above the number given
+    NOT_DETECTED = "not detected"  # below the method's detection limit; no number
+    TOO_NUMEROUS = "too numerous to count"  # a count above the countable range; no number

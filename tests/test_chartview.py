@@ -97,25 +97,31 @@ def test_zone_lines_are_not_beyond_themselves(value, zone):
                                               for s in ("above", "below")))
 
 
-def test_capability_over_the_window_counts_held_lots_worked_by_hand():
-    # A held lot H1 (6.0) decided between A3 and A4. Window in decision order:
-    # 10, 12, 11, 6, 13, 12 -> mean 64/6 = 10.666667; moving ranges 2, 1, 5, 7, 1 -> MR-bar 3.2,
-    # sigma within = 3.2/1.128 = 2.836879; squared deviations sum 31.333333, s = sqrt(31.333333/5)
-    # = 2.503331. Nearest limit LSL 5: 5.666667. Cpk = 5.666667 / 8.510638 = 0.665833;
-    # Ppk = 5.666667 / 7.509993 = 0.754550 (worked by hand).
+def test_capability_over_the_released_lots_only_worked_by_hand():
+    # A held lot H1 (6.0) decided between A3 and A4 is under investigation: it is not part of the
+    # process the chart describes, so capability uses the released lots only (as the chart does).
+    # Released: 10, 12, 11, 13, 12 -> mean 11.6; moving ranges 2, 1, 2, 1 -> MR-bar 1.5,
+    # sigma within = 1.5/1.128 = 1.329787; squared deviations sum 5.2, s = sqrt(5.2/4) = 1.140175.
+    # Nearest limit LSL 5: 6.6. Cpk = 6.6/3.989362 = 1.654400; Ppk = 6.6/3.420526 = 1.929528
+    # (worked by hand). Bissell 1990 (from memory) with the moving range's effective degrees of
+    # freedom nu = 0.62*4 = 2.48 (Wheeler & Chambers, from memory): SE = sqrt(1/45 + 2.737039/4.96)
+    # = sqrt(0.574048) = 0.757657; 95 % interval 1.6544 -/+ 1.959964*0.757657 = 1.484981
+    # -> 0.169419 to 3.139381.
     held = HeldPoint("H1", 6.0, 25, "held: out of trend", (HoldCategory.OUT_OF_TREND,), True,
                      ("Specific activity: Nelson rule 1 (one point beyond 3σ) at lot H1, value 6.0 U/mg",))
     view = build_chart_view(history(released(), [held]), ATTRIBUTE)
     assert [r.lot_id for r in view.rows] == ["A1", "A2", "A3", "H1", "A4", "A5"]
     cap = view.capability
-    assert cap is not None
-    assert cap.n == 6
-    assert cap.mean == pytest.approx(10.666667, rel=1e-6)
-    assert cap.sigma_within == pytest.approx(2.836879, rel=1e-6)
-    assert cap.sigma_overall == pytest.approx(2.503331, rel=1e-6)
-    assert cap.cpk == pytest.approx(0.665833, rel=1e-5)
-    assert cap.ppk == pytest.approx(0.754550, rel=1e-5)
-    assert "6 lots in the window with a value (5 released, 1 held)" in view.capability_note
+    assert cap is not None and cap.cpk_interval is not None
+    assert cap.n == 5
+    assert cap.mean == pytest.approx(11.6, rel=1e-9)
+    assert cap.sigma_within == pytest.approx(1.329787, rel=1e-6)
+    assert cap.sigma_overall == pytest.approx(1.140175, rel=1e-6)
+    assert cap.cpk == pytest.approx(1.654400, rel=1e-5)
+    assert cap.ppk == pytest.approx(1.929528, rel=1e-5)
+    assert (cap.cpk_interval.low, cap.cpk_interval.high) == pytest.approx((0.169419, 3.139381), rel=1e-5)
+    assert view.capability_note.startswith("over the 5 released lots in the window (1 held lot left out); "
+                                           "only 5 released lots (fewer than 30)")
     # the held lot stays off the charted series: the moving range at A4 is |13 - 11| = 2
     assert [m.moving_range for m in view.moving_ranges] == pytest.approx([2.0, 1.0, 2.0, 1.0])
     row = view.rows[3]
@@ -155,7 +161,8 @@ def test_rule_signals_on_the_released_series_inside_the_window():
     # a signal completing before the window is not listed
     earlier = build_chart_view(history(points[:9] + (ReleasedPoint("R9", 0.5, 200),), limits=lim),
                                ATTRIBUTE, window=1)
-    assert [s.lot_id for s in earlier.signals] == ["R9"]  # R9 completes rule 2 again (R1 … R9)
+    # R1 … R9 would reuse R1 … R8 of the run that signalled at R8: one run signals once
+    assert earlier.signals == ()
 
 
 def test_moving_range_beyond_its_upper_limit_is_flagged():

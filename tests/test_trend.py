@@ -18,13 +18,13 @@ from pipeline.science.control_charts import (
     D4_N2,
     ChartState,
     ControlLimits,
-    capability,
     imr_limits,
     named_rule,
     rule_signals,
     rule_text,
     rules_named_in,
 )
+from pipeline.science.process_capability import capability
 from pipeline.vocabulary import NelsonRule
 
 
@@ -104,8 +104,11 @@ def test_rule_2_nine_in_a_row_on_one_side():
     assert desc == ["rule 2: nine points in a row on one side of the centre (above the centre line, points 3–11)"]
 
 
-def test_rule_2_run_of_ten_signals_at_both_completing_points():
-    assert [i for i, _, _ in hits([-0.4] * 10, 2)] == [8, 9]
+def test_rule_2_one_run_signals_once():
+    # A point of a signalled run does not count again for the same rule (module convention):
+    # a run of ten signals at its ninth point only; the next signal needs nine fresh points (17).
+    assert [i for i, _, _ in hits([-0.4] * 10, 2)] == [8]
+    assert [(i, f) for i, f, _ in hits([-0.4] * 18, 2)] == [(8, 0), (17, 9)]
 
 
 def test_rule_2_point_on_centre_line_breaks_the_run():
@@ -131,8 +134,8 @@ def test_rule_3_tie_breaks_the_run():
 
 def test_rule_4_fourteen_points_alternating():
     seq = [0.0] + [0.2, -0.2] * 7  # 15 points, every step alternates: up, down, up, ...
-    # so both the run 0..13 and the run 1..14 are fourteen alternating points
-    assert hits(seq, 4) == [(13, 0, None), (14, 1, None)]
+    # the run 0..13 signals; 1..14 reuses its points, so it does not signal again
+    assert hits(seq, 4) == [(13, 0, None)]
     assert hits(seq[:-2], 4) == []
     exact = [0.2, -0.2] * 7  # exactly fourteen points
     assert hits(exact, 4) == [(13, 0, None)]
@@ -167,13 +170,78 @@ def test_rule_7_fifteen_points_within_one_sigma():
     assert hits([1.0] * 15, 7) == [(14, 0, None)]  # on the 1-sigma line counts as within
 
 
-def test_rule_8_eight_points_beyond_one_sigma_either_side():
+def test_rule_8_eight_points_on_both_sides_none_within_one_sigma():
+    # Nelson 1984, test 8: "eight points in a row on both sides of the centre line with none in
+    # zone C" — every point beyond 1σ, and both sides represented.
     seq = [0.2, 1.5, -1.5, 1.2, -1.3, 1.1, -2.0, 1.4, -1.6]  # points 1..8, none within 1 sigma
     assert hits(seq, 8) == [(8, 1, None)]
     assert hits(seq[:-1], 8) == []
     broken = list(seq)
     broken[4] = -0.9
     assert hits(broken, 8) == []
+    one_side = [0.2] + [1.5] * 8  # eight beyond +1σ, none below: rule 2/6 territory, not rule 8
+    assert hits(one_side, 8) == []
+    one_below = [0.2] + [1.5] * 7 + [-1.1]  # a single point on the other side is enough
+    assert hits(one_below, 8) == [(8, 1, None)]
+    state = ChartState.from_history(one_side[:-1], ControlLimits(0.0, 1.0, 1.128, 3.685, 3.0, -3.0, 20))
+    assert state.push(1.5, rules=(8,))[1] == ()
+    assert [s.rule for s in state.push(-1.5, rules=(8,))[1]] == [8]
+
+
+def test_rule_8_wording_and_earlier_records():
+    assert rule_text(NelsonRule.EIGHT_BEYOND_1_SIGMA) == (
+        "rule 8: eight points in a row on both sides of the centre with none within 1σ")
+    # a hold reason stored with the earlier wording is still read as rule 8
+    old = "Km: Nelson rule 8 (eight points in a row beyond 1σ on either side) at lot L9, value 0.41 mM"
+    assert rules_named_in(old) == (NelsonRule.EIGHT_BEYOND_1_SIGMA,)
+
+
+@pytest.mark.parametrize(("rule", "run", "fresh_signal_at"), [
+    # (rule, values forming one run that signals at its last point and continues, first fresh signal)
+    (2, [0.5] * 20, [8, 17]),                     # nine on one side: 9 fresh points each time
+    (3, [0.1 * i for i in range(-5, 11)], [5, 11]),  # six rising: 0..5, then 6..11
+    (6, [1.5] * 10, [3, 7]),                      # four of five beyond 1σ: 0..3, then 4..7
+    (5, [2.5] * 5, [1, 3]),                       # two of three beyond 2σ: 0..1, then 2..3
+    (7, [0.2, -0.2] * 16, [14, 29]),              # fifteen within 1σ
+])
+def test_a_run_signals_once_and_its_points_do_not_count_again(rule, run, fresh_signal_at):
+    # Simulation with known truth: runs built by hand on centre 0, σ 1 (Nelson 1984 patterns;
+    # one signal per run, then counting afresh: Montgomery, Introduction to Statistical Quality
+    # Control, sensitizing rules, from memory).
+    assert [s.index for s in rule_signals(run, 0.0, 1.0, rules=(rule,))] == fresh_signal_at
+    limits = ControlLimits(0.0, 1.0, 1.128, 3.685, 3.0, -3.0, 20)
+    state, seen = ChartState.from_history([], limits), []
+    for value in run:
+        state, new = state.push(value, rules=(rule,))
+        seen += [s.index for s in new]
+    assert seen == fresh_signal_at
+
+
+def test_a_held_lots_run_marks_its_points_for_the_next_lots():
+    # Five rising released points; lot A (held, not charted) completes six rising. The next
+    # lots B and C also rise above the fifth point, but they would reuse A's run: no signal.
+    limits = ControlLimits(0.0, 1.0, 1.128, 3.685, 3.0, -3.0, 20)
+    released = [-0.4, -0.3, -0.2, -0.1, 0.0]
+    state = ChartState.from_history(released, limits)
+    _, signals = state.push(0.1, rules=(3,))
+    assert [s.rule for s in signals] == [3]  # A completes the run
+    # A is held: the chart keeps only the released points, with the run's points marked as used
+    marked = ChartState.from_history(released, limits, marks={NelsonRule.SIX_RISING_OR_FALLING: [len(released)]})
+    assert marked.push(0.15, rules=(3,))[1] == ()  # B: no second hold from the same points
+    unmarked = ChartState.from_history(released, limits)
+    assert [s.rule for s in unmarked.push(0.15, rules=(3,))[1]] == [3]  # what happened before: B held too
+    # only the marked rule is affected: rule 2 still sees all points
+    assert marked.fresh_from[1] == 0
+
+
+def test_history_signals_before_the_judged_points_do_not_mark():
+    # A baseline with nine points above the centre was never judged: its pattern does not use up
+    # the points, so a tenth point above still completes a run and signals.
+    limits = ControlLimits(0.0, 1.0, 1.128, 3.685, 3.0, -3.0, 20)
+    history = [0.5] * 9
+    assert ChartState.from_history(history, limits).push(0.5, rules=(2,))[1] == ()
+    judged_later = ChartState.from_history(history, limits, judged_from=9)
+    assert [s.index for s in judged_later.push(0.5, rules=(2,))[1]] == [9]
 
 
 def test_rules_are_switchable_and_signals_are_json_able():
@@ -339,7 +407,9 @@ def test_one_wording_per_rule_in_legends_and_hold_reasons():
     rule = NelsonRule.ONE_BEYOND_3_SIGMA
     assert rule_text(rule) == "rule 1: one point beyond 3σ"
     assert named_rule(rule) == "Nelson rule 1 (one point beyond 3σ)"
-    assert rule_text(NelsonRule(8)) == "rule 8: eight points in a row beyond 1σ on either side"
+    # rule 8 reads as published since the verdicts work ("both sides", Nelson 1984); the earlier
+    # wording is still recognised in stored reasons (test_rule_8_wording_and_earlier_records)
+    assert rule_text(NelsonRule(8)) == "rule 8: eight points in a row on both sides of the centre with none within 1σ"
 
 
 def test_a_recorded_reason_gives_back_the_rules_it_names():

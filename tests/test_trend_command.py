@@ -86,10 +86,8 @@ def test_trend_prints_the_chart_numbers_worked_by_hand(tmp_path, capsys):
     # Worked by hand: 200, 204, 202, 206, 204 -> centre 1016/5 = 203.2; moving ranges 4, 2, 4, 2 ->
     # MR-bar 3.0; sigma-hat = 3/1.128 = 2.659574; UCL 203.2 + 7.978723 = 211.178723;
     # LCL 195.221277; MR UCL 3.267 * 3 = 9.801.
-    # With the held lot T-006 (190) the window is 200, 204, 202, 206, 204, 190: mean 201.0;
-    # moving ranges 4, 2, 4, 2, 14 -> sigma within 5.2/1.128 = 4.609929; s = sqrt(166/5) = 5.761944;
-    # against 150-260 (LLC-200 v3.1) the nearest limit is LSL, 51.0 away:
-    # Cpk = 51/13.829787 = 3.69, Ppk = 51/17.285832 = 2.95 (worked by hand).
+    # The held lot T-006 (190) is shown but left out of capability (released lots only): against
+    # 150-260 (LLC-200 v3.1) Cpk = 53.2/7.978723 = 6.67, Ppk = 53.2/6.841053 = 7.78 (worked by hand).
     ws = workspace(tmp_path)
     add_lot(Store(f"sqlite:///{ws / 'lotgate.db'}"), "T-006", 190.0, held=("out of trend",),
             trend_signals=("Specific activity: Nelson rule 1 (one point beyond 3σ) at lot T-006",))
@@ -101,8 +99,8 @@ def test_trend_prints_the_chart_numbers_worked_by_hand(tmp_path, capsys):
     assert "sigma           2.66 U/mg" in out
     assert "UCL / LCL       211.18 / 195.22 U/mg" in out
     assert "MR̄ / MR UCL     3.00 / 9.80 U/mg" in out
-    assert "Cpk 3.69" in out and "Ppk 2.95" in out  # the held lot counts for capability
-    assert "6 lots in the window with a value (5 released, 1 held)" in out
+    assert "Cpk 6.67" in out and "Ppk 7.78" in out  # the held lot does not count for capability
+    assert "over the 5 released lots in the window (1 held lot left out)" in out
     row = next(line for line in out.splitlines() if line.strip().startswith("T-006"))
     assert "held: out of trend" in row and ">3σ below" in row and "rule 1" in row  # 190 < LCL 195.2
     first = next(line for line in out.splitlines() if line.strip().startswith("T-001"))
@@ -117,8 +115,11 @@ def test_trend_capability_worked_by_hand(tmp_path, capsys):
     ws = workspace(tmp_path)
     assert run(["trend", PRODUCT, ATTR, "--workspace", str(ws), "--out", str(tmp_path / "out")]) == 0
     out = capsys.readouterr().out
-    assert "Cpk 6.67" in out and "Ppk 7.78" in out
-    assert "5 lots in the window with a value (5 released, 0 held)" in out
+    # Bissell 1990 (from memory): SE(Cpk) = sqrt(1/45 + 6.667733^2/(2*2.48)) = 2.997610 with the
+    # moving range's nu = 0.62*4 (Wheeler & Chambers, from memory), 95 % interval 6.667733 -/+
+    # 1.959964*2.997610 -> 0.79 to 12.54; Ppk 7.776581 (s, nu = 4): SE 2.753475 -> 2.38 to 13.17.
+    assert "Cpk 6.67, 95% CI 0.79–12.54" in out and "Ppk 7.78, 95% CI 2.38–13.17" in out
+    assert "over the 5 released lots in the window; only 5 released lots (fewer than 30)" in out
     assert (tmp_path / "out" / f"{PRODUCT}_{ATTR}_trend.png").exists()
 
 

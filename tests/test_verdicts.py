@@ -76,8 +76,8 @@ def test_the_words_stored_and_printed_are_unchanged():
     # The store's and the documents' words (tests/golden/demo): a member is its word in JSON and text.
     words = [Disposition.HELD, HoldCategory.OUT_OF_TREND, Verdict.REPORTED, TrendStatus.NOT_YET_ESTABLISHED]
     assert json.dumps(words) == '["held", "out of trend", "reported", "not yet established"]'
-    assert f"held: {', '.join(HoldCategory)}" == ("held: out of specification, invalid assay, incomplete, "
-                                                  "out of trend, review required, overdue")
+    assert f"held: {', '.join(HoldCategory)}" == ("held: out of specification, invalid assay, undecided result, "
+                                                  "incomplete, out of trend, review required, overdue")
     assert (json.dumps(NelsonRule.NINE_ON_ONE_SIDE), f"rule {NelsonRule(2)}") == ("2", "rule 2")
 
 

@@ -70,6 +70,8 @@ class SpecificationFile(DocumentHeader):
     a280_extinction_ml_per_mg_per_cm: float | None = Field(None, gt=0)
     trend_defaults: TrendSettings | None = None
     attributes: list[AttributeFile] = Field(min_length=1)
+    # --- verdicts: how results are rounded to their digits before they are compared (half-even: ASTM E29)
+    rounding: Literal["half-up", "half-even"] = "half-up"
 
 
 class MethodHeader(DocumentHeader):

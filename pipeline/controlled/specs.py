@@ -25,9 +25,10 @@ from pipeline.controlled.file_models import (
     TrendSettings,
     Uv280MethodFile,
 )
+from pipeline.controlled.limit_precision import check_limit_precision, written_limit
 from pipeline.controlled.strict import checked
 from pipeline.errors import SpecificationError
-from pipeline.vocabulary import NelsonRule
+from pipeline.vocabulary import NelsonRule, Rounding
 
 COMPUTED_SOURCES = ("activity", "protein", "specific_activity", "km", "vmax", "kcat", "kcat_over_km")
 
@@ -61,6 +62,8 @@ class Attribute:
     baseline_n: int = 20
     scientific: bool = False
     required: bool = True
+    # --- verdicts: the specification's rounding of results to their digits (half-up or half-even, ASTM E29)
+    rounding: Rounding = Rounding.HALF_UP
 
     @property
     def has_limit(self) -> bool:
@@ -70,13 +73,15 @@ class Attribute:
     def limit_text(self) -> str:
         if self.expect is not None:
             return self.expect
-        fmt = f"{{:.{self.digits}f}}"
+        def show(limit: float) -> str:  # verdicts: a scientific limit as written (≤ 3 significant figures)
+            return written_limit(limit) if self.scientific else f"{limit:.{self.digits}f}"
+
         if self.minimum is not None and self.maximum is not None:
-            return f"{fmt.format(self.minimum)} – {fmt.format(self.maximum)}"
+            return f"{show(self.minimum)} – {show(self.maximum)}"
         if self.minimum is not None:
-            return f"≥ {fmt.format(self.minimum)}"
+            return f"≥ {show(self.minimum)}"
         if self.maximum is not None:
-            return f"≤ {fmt.format(self.maximum)}"
+            return f"≤ {show(self.maximum)}"
         return "report"
 
 
@@ -186,7 +191,8 @@ def _document(header: DocumentHeader, name: str, sha256: str) -> Document:
                     approved_by=header.approved_by)
 
 
-def _attribute(raw: AttributeFile, defaults: TrendSettings, where: str) -> Attribute:
+def _attribute(raw: AttributeFile, defaults: TrendSettings, where: str,
+               rounding: Rounding = Rounding.HALF_UP) -> Attribute:
     here = f"{where}, attribute '{raw.code}'"
     if raw.source not in (*COMPUTED_SOURCES, "lims"):
         raise SpecificationError(
@@ -196,13 +202,15 @@ def _attribute(raw: AttributeFile, defaults: TrendSettings, where: str) -> Attri
         raise SpecificationError(f"{here}: a LIMS attribute needs a 'test_code'")
     if raw.min is not None and raw.max is not None and raw.min > raw.max:
         raise SpecificationError(f"{here}: min {raw.min:g} is above max {raw.max:g}; the lower limit comes first")
+    for side, limit in (("lower", raw.min), ("upper", raw.max)):  # verdicts: no limit finer than the result
+        check_limit_precision(where, raw.code, side, limit, raw.digits, raw.scientific)
     rules = _rules(raw.rules if raw.rules is not None else defaults.rules, here)
     baseline_n = raw.baseline_n if raw.baseline_n is not None else defaults.baseline_n
     return Attribute(
         code=raw.code, title=raw.title or raw.code, source=raw.source, unit=raw.unit, digits=raw.digits,
         minimum=raw.min, maximum=raw.max, expect=raw.expect, test_code=raw.test_code, trend=raw.trend,
         trend_rules=rules, baseline_n=20 if baseline_n is None else baseline_n, scientific=raw.scientific,
-        required=raw.required,
+        required=raw.required, rounding=rounding,
     )
 
 
@@ -218,7 +226,7 @@ def parse_specification(raw: dict[str, Any], where: str, sha256: str) -> Specifi
     """Build a Specification from a parsed YAML mapping; ``where`` names the file in errors."""
     spec = checked(SpecificationFile, raw, where)
     defaults = spec.trend_defaults or TrendSettings()
-    attributes = tuple(_attribute(a, defaults, where) for a in spec.attributes)
+    attributes = tuple(_attribute(a, defaults, where, Rounding(spec.rounding)) for a in spec.attributes)
     codes = [a.code for a in attributes]
     if len(set(codes)) != len(codes):
         raise SpecificationError(f"{where}: attribute codes repeat: {codes}")

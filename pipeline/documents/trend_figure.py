@@ -99,7 +99,10 @@ def _subtitle(view: ChartView) -> str:
                 f"UCL {_fmt(lim.ucl, d)}, LCL {_fmt(lim.lcl, d)} · rules {rules}")
     cap = view.capability
     if cap is not None:
-        text += f" · Cpk {cap.cpk:.2f}, Ppk {cap.ppk:.2f} ({cap.n} lots)"
+        text += f" · Cpk {cap.cpk:.2f}, Ppk {cap.ppk:.2f} ({cap.n} released lots"
+        if cap.cpk_interval is not None:
+            text += f"; Cpk {cap.confidence:.0%} CI {cap.cpk_interval.low:.2f}–{cap.cpk_interval.high:.2f}"
+        text += "; fewer than 30 lots: uncertain)" if cap.warning else ")"
     return text
 
 

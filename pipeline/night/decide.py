@@ -7,8 +7,14 @@ from typing import Any
 from pipeline import __version__
 from pipeline.controlled.catalog import Catalog
 from pipeline.controlled.specs import KineticMethod
-from pipeline.records.chart_queries import active_limits, released_count, released_points
+from pipeline.records.chart_queries import (
+    active_limits,
+    held_points,
+    released_count,
+    released_points,
+)
 from pipeline.records.store import Store
+from pipeline.release.chart_view import held_marks
 from pipeline.release.decision import (
     CHART_TAIL,
     ChartKey,
@@ -19,7 +25,7 @@ from pipeline.release.decision import (
     lot_fingerprint,
 )
 from pipeline.release.lot_evaluation import LotEvaluation
-from pipeline.vocabulary import Disposition
+from pipeline.vocabulary import Disposition, NelsonRule
 
 BASELINE_REACHED = "lotgate (baseline reached)"  # who froze a chart's first limits: the nightly job
 
@@ -56,9 +62,15 @@ def load_charts(store: Store, catalog: Catalog, evaluations: list[LotEvaluation]
         points = points[-CHART_TAIL:] if stored else points
         limits = None if stored is None else FrozenLimits(stored.version, stored.center, stored.sigma,
                                                           stored.mr_bar, tuple(stored.baseline_lots))
+        marks: tuple[tuple[NelsonRule, int], ...] = ()
+        if stored is not None and points:  # held lots' signalled runs: their points do not count again
+            held = [h for h in held_points(store, product, attribute.code, after_order=points[0].order,
+                                           limit=CHART_TAIL) if h.order not in attempt]
+            offset = total - len(points)
+            marks = tuple((rule, offset + p) for rule, positions in held_marks(points, held).items() for p in positions)
         charts[(product, attribute.code)] = ChartState(
             product, attribute.code, limits, tuple(p.lot_id for p in points), tuple(p.value for p in points),
-            total=total)
+            total=total, marks=marks)
     return charts
 
 

@@ -46,8 +46,10 @@ class PersonOutcome:
 
 
 def _blocking_results(record: DecisionRecord) -> list[str]:
-    """Results that leave nothing to certify: missing or invalid ones with a limit."""
-    return [r.code for r in record.results if r.verdict not in (Verdict.PASS, Verdict.FAIL, Verdict.REPORTED)]
+    """Results that leave nothing to certify: missing or invalid ones with a limit (an undecided
+    qualified result, like an OOS one, is there for the person to judge)."""
+    return [r.code for r in record.results
+            if r.verdict not in (Verdict.PASS, Verdict.FAIL, Verdict.REPORTED, Verdict.UNDECIDED)]
 
 
 def _reissue(ws: Workspace, record: DecisionRecord, earlier_revision: int, decided_at: dt.datetime,

@@ -55,7 +55,8 @@ def held_points(store: Store, product_code: str, attribute: str, *, after_order:
         else:
             oot, signals = HoldCategory.OUT_OF_TREND in categories, ()
         label = record.label or f"held: {', '.join(categories)}"
-        out.append(HeldPoint(decision.lot_id, value, decision.id, label, categories, oot, signals))
+        rules = finding.rules if finding is not None else ()
+        out.append(HeldPoint(decision.lot_id, value, decision.id, label, categories, oot, signals, rules))
     return tuple(out)
 
 

@@ -7,8 +7,10 @@ frozen dataclasses with ``to_dict()``. Values are in the attribute's own unit (`
   the value of their latest decision but are never part of it (no limits, moving ranges or rule
   patterns are computed with them), exactly as the nightly decision treats them.
 * Zones and rule signals are measured against the limits in force (the active version).
-* Capability covers every lot in the window that has a value, held lots included, so that an
-  out-of-specification lot is not left out of the estimate of what the process makes.
+* Capability covers the released lots of the window only (``pipeline.science.process_capability``),
+  measured with the same kind of σ as the chart: a held lot is under investigation and is not
+  part of the process the chart describes. Each index has its confidence interval, and fewer
+  than 30 lots carry a warning.
 """
 
 from __future__ import annotations
@@ -22,6 +24,7 @@ from pipeline.controlled.specs import Attribute
 from pipeline.errors import CalculationError
 from pipeline.plain_data import to_plain
 from pipeline.science import control_charts as trend
+from pipeline.science.process_capability import Capability, capability
 from pipeline.vocabulary import Disposition, HoldCategory, NelsonRule
 
 
@@ -83,6 +86,7 @@ class HeldPoint:
     hold_categories: tuple[str, ...]
     out_of_trend_here: bool = False  # this attribute's finding in the decision was out of trend
     trend_signals: tuple[str, ...] = ()  # the decision's reasons for this attribute
+    rules: tuple[NelsonRule, ...] = ()  # the rule of each signal (stored, or read from the reasons' wording)
 
 
 @dataclass(frozen=True)
@@ -182,7 +186,7 @@ class ChartView:
     rows: tuple[ChartRow, ...]
     moving_ranges: tuple[MovingRange, ...]
     signals: tuple[ChartSignal, ...]
-    capability: trend.Capability | None
+    capability: Capability | None
     capability_note: str
 
     @property
@@ -248,14 +252,37 @@ def _category(point: HeldPoint) -> str:
 
 
 def _recorded_rules(point: HeldPoint) -> dict[NelsonRule, str]:
-    """The rules the held lot's decision found on this chart, each with the reason that names it."""
+    """The rules the held lot's decision found on this chart, each with the reason that names it.
+
+    Stored rule numbers pair with the reasons in order; records without them are read by wording.
+    """
     if not point.out_of_trend_here:
         return {}
     found: dict[NelsonRule, str] = {}
+    if point.rules and len(point.rules) == len(point.trend_signals):
+        for rule, reason in zip(point.rules, point.trend_signals, strict=True):
+            found.setdefault(rule, reason)
+        return found
     for reason in point.trend_signals:
         for rule in trend.rules_named_in(reason):
             found.setdefault(rule, reason)
     return found
+
+
+def held_marks(released: Sequence[ReleasedPoint], held: Sequence[HeldPoint]) -> dict[NelsonRule, list[int]]:
+    """Where held lots' runs signalled, as positions in ``released`` (``control_charts.rule_signals`` marks).
+
+    A held lot decided after the first p released points (by decision order) that signalled rule r
+    gives the mark p for r: the points of its run do not count toward r again.
+    """
+    orders = [p.order for p in released]
+    marks: dict[NelsonRule, list[int]] = {}
+    for point in held:
+        position = sum(1 for order in orders if order < point.order)
+        for rule in _recorded_rules(point):
+            if position > 0:
+                marks.setdefault(rule, []).append(position)
+    return marks
 
 
 # ------------------------------------------------------------------------------ the view
@@ -265,20 +292,23 @@ def _merged(history: ChartHistory, window: int) -> list[ReleasedPoint | HeldPoin
     return sorted([*history.released, *held], key=lambda p: p.order)[-window:]
 
 
-def _capability(rows: Sequence[ChartRow], attribute: Attribute) -> tuple[trend.Capability | None, str]:
-    """Cpk and Ppk over the window's lots that have a value (see ``pipeline.trend.capability``)."""
-    values = [r.value for r in rows if r.value is not None]
+def _capability(rows: Sequence[ChartRow], attribute: Attribute) -> tuple[Capability | None, str]:
+    """Cpk and Ppk (with intervals) over the window's released lots (``process_capability.capability``)."""
+    values = [r.value for r in rows if r.value is not None and r.released]
     held = sum(1 for r in rows if r.value is not None and not r.released)
     if attribute.minimum is None and attribute.maximum is None:
         return None, "no specification limits for this attribute: capability not computed"
     if len(values) < 2:
-        return None, f"capability needs at least 2 lots with a value; the window has {len(values)}"
+        return None, f"capability needs at least 2 released lots; the window has {len(values)}"
     try:
-        cap = trend.capability(values, attribute.minimum, attribute.maximum)
+        cap = capability(values, attribute.minimum, attribute.maximum)
     except CalculationError as exc:
         return None, f"capability not computed: {exc}"
-    note = (f"over the {len(values)} lots in the window with a value "
-            f"({len(values) - held} released, {held} held)")
+    note = f"over the {len(values)} released lots in the window"
+    if held:
+        note += f" ({held} held {'lot' if held == 1 else 'lots'} left out)"
+    if cap.warning:
+        note += f"; {cap.warning}"
     return cap, note
 
 
@@ -301,7 +331,8 @@ def build_chart_view(history: ChartHistory, attribute: Attribute, window: int = 
     rel_signals: dict[str, list[trend.Signal]] = {}
     signals: list[ChartSignal] = []
     if limits is not None and rel_values.size:
-        for s in trend.rule_signals(rel_values, limits.center, limits.sigma, attribute.trend_rules):
+        marks = held_marks(released_series, history.held)
+        for s in trend.rule_signals(rel_values, limits.center, limits.sigma, attribute.trend_rules, marks):
             lot = released_series[s.index].lot_id
             if lot not in positions:
                 continue

@@ -19,9 +19,9 @@ from typing import Any
 from pipeline.controlled.specs import Attribute, Specification
 from pipeline.release.lot_evaluation import LotEvaluation
 from pipeline.release.records import Decision, TrendFinding
-from pipeline.release.verdicts import disposition
+from pipeline.release.verdicts import disposition, is_bound
 from pipeline.science import control_charts as trend
-from pipeline.vocabulary import Disposition, HoldCategory, TrendStatus, Verdict
+from pipeline.vocabulary import Disposition, HoldCategory, NelsonRule, TrendStatus, Verdict
 
 CHART_TAIL = 30  # points kept for evaluation (≥ 15, the longest rule) and for the plotted chart
 
@@ -45,6 +45,9 @@ class ChartState:
     lots: tuple[str, ...] = ()
     values: tuple[float, ...] = ()
     total: int = 0  # released lots on the chart, all time
+    # (rule, p): a held lot's run of that rule signalled after the chart's first p released points;
+    # those points do not count toward that rule again (pipeline.science.control_charts, one run signals once)
+    marks: tuple[tuple[NelsonRule, int], ...] = ()
 
     def snapshot(self) -> dict[str, Any]:
         return {"lots": list(self.lots[-CHART_TAIL:]), "values": list(self.values[-CHART_TAIL:]),
@@ -146,6 +149,22 @@ def _maybe_freeze(chart: ChartState, attribute: Attribute, frozen: list[ChartKey
                                               tuple(chart.lots[: attribute.baseline_n])))
 
 
+def _judged_from(tail_lots: tuple[str, ...], limits: FrozenLimits) -> int:
+    """The first tail position after the baseline lots: only points from there on were judged."""
+    baseline = set(limits.baseline_lots)
+    return max((i + 1 for i, lot in enumerate(tail_lots) if lot in baseline), default=0)
+
+
+def _tail_marks(chart: ChartState, tail_size: int) -> dict[NelsonRule, list[int]]:
+    """The chart's marks as positions in its tail of ``tail_size`` points (marks before the tail drop out)."""
+    offset = chart.total - tail_size
+    out: dict[NelsonRule, list[int]] = {}
+    for rule, position in chart.marks:
+        if position - offset > 0:
+            out.setdefault(rule, []).append(position - offset)
+    return out
+
+
 def _judge_point(chart: ChartState, attribute: Attribute, lot_id: str, value: float, digits: int,
                  frozen: list[ChartKey], what: str = "lot") -> tuple[ChartState, TrendFinding]:
     chart = _maybe_freeze(chart, attribute, frozen)
@@ -158,8 +177,11 @@ def _judge_point(chart: ChartState, attribute: Attribute, lot_id: str, value: fl
     state = trend.ChartState.from_history(
         list(tail_values), trend.ControlLimits(center=limits.center, sigma=limits.sigma, mr_bar=limits.mr_bar,
                                          mr_ucl=trend.D4_N2 * limits.mr_bar, ucl=limits.center + 3 * limits.sigma,
-                                         lcl=limits.center - 3 * limits.sigma, n=len(limits.baseline_lots)))
+                                         lcl=limits.center - 3 * limits.sigma, n=len(limits.baseline_lots)),
+        judged_from=_judged_from(tail_lots, limits), marks=_tail_marks(chart, len(tail_values)))
     _, signals = state.push(value, attribute.trend_rules)
+    if signals:  # the point is held (out of trend): its runs' released points do not count for those rules again
+        chart = replace(chart, marks=(*chart.marks, *((signal.rule, chart.total) for signal in signals)))
     sequence = [*tail_lots, lot_id]
     reasons, involved = [], []
     fmt = f"{{:.{digits + 1}f}}"
@@ -228,7 +250,7 @@ def decide_night(evaluations: list[LotEvaluation], specifications: dict[str, Spe
             if verdict.verdict != Verdict.PASS and not (verdict.verdict == Verdict.REPORTED and isinstance(value, float)):
                 findings.append(TrendFinding(attribute.code, TrendStatus.NOT_EVALUATED, signals=()))
                 continue
-            if not isinstance(value, float):
+            if not isinstance(value, float) or is_bound(verdict):  # '< 0.5' is no point on a chart
                 findings.append(TrendFinding(attribute.code, TrendStatus.NOT_EVALUATED, signals=()))
                 continue
             working[key], finding = _judge_point(chart, attribute, evaluation.lot_id, value, attribute.digits, frozen)

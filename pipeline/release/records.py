@@ -40,10 +40,12 @@ class TrendFinding:
     baseline_n: int | None = None
     signals: tuple[str, ...] = ()  # one reason per signal, for a person
     lots_involved: tuple[str, ...] = ()
-    rules: tuple[NelsonRule, ...] = ()  # the rule of each signal; not stored (records keep their format)
+    rules: tuple[NelsonRule, ...] = ()  # the rule of each signal; stored only when there are signals
 
     def to_dict(self) -> dict[str, Any]:
-        return to_plain({k: v for k, v in vars(self).items() if k != "rules"})
+        """Plain data for the store; ``rules`` (as numbers) only when the finding has some, so a
+        finding without signals is stored as before and older records read back with rules ()."""
+        return to_plain({k: v for k, v in vars(self).items() if k != "rules" or self.rules})
 
 
 @dataclass(frozen=True)
@@ -158,7 +160,7 @@ class DecisionRecord:
 
     def to_json(self) -> dict[str, Any]:
         plain = to_plain(self)
-        plain["trend"] = [finding.to_dict() for finding in self.trend]  # without the in-memory rule numbers
+        plain["trend"] = [finding.to_dict() for finding in self.trend]
         for key in _ABSENT_WHEN_NONE:
             if plain[key] is None:
                 del plain[key]
@@ -175,7 +177,8 @@ class DecisionRecord:
         values["results"] = tuple(RecordedResult(r["code"], r.get("value"), r.get("reported"), r.get("unit") or "",
                                                  r["verdict"]) for r in values.get("results") or ())
         values["trend"] = tuple(TrendFinding(**{**t, "signals": tuple(t.get("signals") or ()),
-                                                "lots_involved": tuple(t.get("lots_involved") or ())})
+                                                "lots_involved": tuple(t.get("lots_involved") or ()),
+                                                "rules": tuple(NelsonRule(r) for r in t.get("rules") or ())})
                                 for t in values.get("trend") or ())
         if values.get("certificate") is not None:
             values["certificate"] = CertificateFile(**values["certificate"])

@@ -1,69 +1,141 @@
 """Verdicts against a specification and the lot's disposition (docs/assay-rules.md, "Verdicts and disposition"). Pure.
 
-Results are rounded to the digits of the limit before they are compared (the rounding
-convention of the pharmacopoeias' general notices: round half away from zero, common practice).
+A result is rounded to the reported digits of its attribute (the limit is never finer: see
+``pipeline.controlled.limit_precision``) with the specification's rounding (half-up by default,
+half-even per ASTM E29), then compared with the limit: the compendial convention of rounding
+before comparing (USP General Notices 7.20, from memory). A qualified result is judged by what
+it means (``judge_numeric``): it meets the limit only when every value it allows rounds inside
+the limit, fails only when every value it allows rounds outside, and is otherwise undecided.
 """
 
 from __future__ import annotations
 
 import math
 from collections.abc import Iterable
-from decimal import ROUND_HALF_UP, Decimal
+from decimal import Decimal
 
 from pipeline.controlled.specs import Attribute
 from pipeline.release.records import AttributeVerdict, TrendFinding
+from pipeline.release.reported_values import (
+    EnteredResult,
+    exact,
+    inf_above,
+    read_entered,
+    round_half_up,
+    round_reported,
+    show_rounded,
+    sup_below,
+)
 from pipeline.science.measurement import Measurement
-from pipeline.vocabulary import Disposition, HoldCategory, TrendStatus, Verdict
+from pipeline.vocabulary import Disposition, HoldCategory, ResultQualifier, TrendStatus, Verdict
+
+__all__ = ["disposition", "is_bound", "judge_entered", "judge_lims", "judge_measurement", "judge_numeric", "round_half_up"]
 
 
-def round_half_up(value: float, digits: int) -> Decimal:
-    """Round to ``digits`` decimals, halves away from zero: 2.45 → 2.5, −2.45 → −2.5.
+def is_bound(verdict: AttributeVerdict) -> bool:
+    """True for a result entered as a bound ('< 0.5', '> 300'): its number is no point for a chart.
 
-    Goes through ``repr`` so that binary floating point does not turn 2.45 into 2.4499….
+    A qualified result is always reported as entered, qualifier first (``EnteredResult.shown``).
     """
-    if not math.isfinite(value):
-        raise ValueError(f"cannot round a non-finite value {value!r}")
-    quantum = Decimal(1).scaleb(-digits)
-    return Decimal(repr(value)).quantize(quantum, rounding=ROUND_HALF_UP)
-
-
-def format_reported(value: float, digits: int, scientific: bool = False) -> str:
-    if scientific:
-        return f"{value:.3g}" if abs(value) < 1e4 else f"{value:.2e}"
-    return f"{round_half_up(value, digits):f}"
+    return isinstance(verdict.reported, str) and verdict.reported.startswith(("<", ">"))
 
 
 def _words(*parts: str) -> str:
     return " ".join(part for part in parts if part)
 
 
-def judge_numeric(attribute: Attribute, value: float, qualifier: str | None = None) -> tuple[Verdict, str, str | None]:
-    """Compare one numeric result with its limits after rounding.
+def _limits(attribute: Attribute) -> tuple[Decimal | None, Decimal | None]:
+    low = None if attribute.minimum is None else exact(attribute.minimum)
+    high = None if attribute.maximum is None else exact(attribute.maximum)
+    return low, high
 
-    Returns (verdict, reported text, reason or None). A result qualified '<' (below the
-    limit of quantification) passes a maximum at or above that limit and cannot pass a minimum.
-    """
-    reported = format_reported(value, attribute.digits, attribute.scientific)
-    if qualifier == "<":
-        reported = f"< {reported}"
-    if not attribute.has_limit or attribute.expect is not None:
-        return (Verdict.REPORTED if not attribute.has_limit else Verdict.FAIL), reported, (
-            None if not attribute.has_limit else f"{attribute.title}: a number was reported where '{attribute.expect}' is expected"
-        )
-    rounded = float(round_half_up(value, attribute.digits))
-    low, high = attribute.minimum, attribute.maximum
-    if qualifier == "<":
-        if low is not None:
-            return Verdict.FAIL, reported, f"{attribute.title}: {reported} {attribute.unit} cannot show the minimum {attribute.limit_text}"
-        assert high is not None
-        if rounded <= high:
+
+def _undecided(attribute: Attribute, reported: str, why: str) -> tuple[Verdict, str, str]:
+    judged = _words(f"{attribute.title}: {reported}", attribute.unit, "cannot be judged against the limit",
+                    attribute.limit_text, attribute.unit)
+    return Verdict.UNDECIDED, reported, f"{judged}: {why}; held for review (not out of specification)"
+
+
+def _judge_bounded(attribute: Attribute, entered: EnteredResult) -> tuple[Verdict, str, str | None]:
+    """A '<' or '>' result: pass when every value it allows rounds inside, fail when every one rounds outside."""
+    assert entered.number is not None
+    reported = entered.shown
+    low, high = _limits(attribute)
+    args = (attribute.digits, attribute.rounding, attribute.scientific)
+    if entered.qualifier == ResultQualifier.LESS_THAN:
+        highest = sup_below(entered.number, *args)  # the largest reported value a true value below it gives
+        if low is not None and highest < low:
+            return Verdict.FAIL, reported, _words(attribute.title, reported, attribute.unit, "is below the limit",
+                                                  attribute.limit_text, attribute.unit)
+        if low is None and high is not None and highest <= high:
             return Verdict.PASS, reported, None
-        return Verdict.FAIL, reported, f"{attribute.title}: {reported} {attribute.unit} does not show the limit {attribute.limit_text}"
+        if low is not None:
+            return _undecided(attribute, reported, "a value below the bound may also be below the lower limit")
+        return _undecided(attribute, reported, f"values below {entered.number} include some that meet the limit "
+                                               "and some that do not")
+    lowest = inf_above(entered.number, *args)
+    if high is not None and lowest > high:
+        return Verdict.FAIL, reported, _words(attribute.title, reported, attribute.unit, "is above the limit",
+                                              attribute.limit_text, attribute.unit)
+    if high is None and low is not None and lowest >= low:
+        return Verdict.PASS, reported, None
+    if high is not None:
+        return _undecided(attribute, reported, "a value above the bound may also be above the upper limit")
+    return _undecided(attribute, reported, f"values above {entered.number} include some that meet the limit "
+                                           "and some that do not")
+
+
+def judge_entered(attribute: Attribute, entered: EnteredResult) -> tuple[Verdict, str, str | None]:
+    """Compare one result (a number, a '<'/'>' bound, or a word without a number) with its limits.
+
+    Returns (verdict, reported text, reason or None). A plain number is rounded to the attribute's
+    digits and compared; a bound by its meaning (``_judge_bounded``); 'not detected' and 'too
+    numerous to count' carry no number, so against a numeric limit they are undecided.
+    """
+    if entered.word is not None:
+        raise ValueError(f"'{entered.text}' is a word, not a number")
+    if entered.number is None:
+        reported = entered.shown
+        if not attribute.has_limit:
+            return Verdict.REPORTED, reported, None
+        if attribute.expect is not None:
+            return Verdict.UNDECIDED, reported, (
+                f"{attribute.title}: '{reported}' was reported where '{attribute.expect}' is expected; a person must "
+                "judge whether it means the same; held for review (not out of specification)")
+        return _undecided(attribute, reported, f"'{reported}' gives no number (the method's detection or counting "
+                                               "range decides); a person must judge")
+    if entered.qualifier is None:
+        rounded = round_reported(entered.number, attribute.digits, attribute.rounding, attribute.scientific)
+        reported = show_rounded(rounded, attribute.scientific)
+    else:
+        reported = entered.shown
+    if not attribute.has_limit:
+        return Verdict.REPORTED, reported, None
+    if attribute.expect is not None and entered.qualifier is not None:  # '< 1' for 'absent': a person judges
+        return Verdict.UNDECIDED, reported, (
+            f"{attribute.title}: {reported} was reported where '{attribute.expect}' is expected; a person must judge "
+            "whether it means the same; held for review (not out of specification)")
+    if attribute.expect is not None:
+        return Verdict.FAIL, reported, f"{attribute.title}: a number was reported where '{attribute.expect}' is expected"
+    if entered.qualifier is not None:
+        return _judge_bounded(attribute, entered)
+    low, high = _limits(attribute)
     if low is not None and rounded < low:
-        return Verdict.FAIL, reported, _words(attribute.title, reported, attribute.unit, "is below the limit", attribute.limit_text, attribute.unit)
+        return Verdict.FAIL, reported, _words(attribute.title, reported, attribute.unit, "is below the limit",
+                                              attribute.limit_text, attribute.unit)
     if high is not None and rounded > high:
-        return Verdict.FAIL, reported, _words(attribute.title, reported, attribute.unit, "is above the limit", attribute.limit_text, attribute.unit)
+        return Verdict.FAIL, reported, _words(attribute.title, reported, attribute.unit, "is above the limit",
+                                              attribute.limit_text, attribute.unit)
     return Verdict.PASS, reported, None
+
+
+def judge_numeric(attribute: Attribute, value: float, qualifier: str | None = None) -> tuple[Verdict, str, str | None]:
+    """``judge_entered`` for a computed number (optionally qualified '<' or '>')."""
+    if not math.isfinite(value):
+        raise ValueError(f"cannot judge a non-finite value {value!r}")
+    number = exact(value)
+    text = f"{qualifier}{number}" if qualifier else str(number)
+    return judge_entered(attribute, EnteredResult(text, number, ResultQualifier(qualifier) if qualifier else None))
 
 
 def judge_measurement(attribute: Attribute, measurement: Measurement | None, method: str | None) -> AttributeVerdict:
@@ -86,18 +158,8 @@ def judge_measurement(attribute: Attribute, measurement: Measurement | None, met
                             verdict=verdict, reasons=(reason,) if reason else ())
 
 
-def parse_lims_result(text: str) -> tuple[float | str, str | None]:
-    """'7.05' → (7.05, None); '< 0.5' → (0.5, '<'); 'absent' → ('absent', None)."""
-    cleaned = text.strip()
-    if cleaned in ("absent", "present"):
-        return cleaned, None
-    if cleaned.startswith("<"):
-        return float(cleaned[1:].strip()), "<"
-    return float(cleaned), None
-
-
 def judge_lims(attribute: Attribute, result_text: str | None, unit: str | None) -> AttributeVerdict:
-    """Verdict of a LIMS-entered result (pH, dry matter, lead, microbiology)."""
+    """Verdict of a LIMS-entered result (pH, dry matter, lead, microbiology), read as entered."""
     base = dict(code=attribute.code, title=attribute.title, unit=attribute.unit,
                 limit_text=attribute.limit_text, method=f"LIMS test {attribute.test_code}")
     if result_text is None:
@@ -106,17 +168,23 @@ def judge_lims(attribute: Attribute, result_text: str | None, unit: str | None) 
     if attribute.unit and unit and unit.strip() != attribute.unit:
         return AttributeVerdict(**base, value=None, reported=None, se=None, verdict=Verdict.INVALID,
                                 reasons=(f"the LIMS reports the unit '{unit}', the specification expects '{attribute.unit}'",))
-    value, qualifier = parse_lims_result(result_text)
-    if isinstance(value, str):
+    try:
+        entered = read_entered(result_text)
+    except ValueError as exc:
+        return AttributeVerdict(**base, value=None, reported=None, se=None, verdict=Verdict.INVALID,
+                                reasons=(f"{attribute.title} (LIMS test {attribute.test_code}): {exc}",))
+    if entered.word is not None:
+        value = entered.word
         if attribute.expect is None:
             return AttributeVerdict(**base, value=value, reported=value, se=None, verdict=Verdict.FAIL,
                                     reasons=(f"{attribute.title}: '{value}' was reported where a number is expected",))
         verdict = Verdict.PASS if value == attribute.expect else Verdict.FAIL
         reason = () if verdict == Verdict.PASS else (f"{attribute.title}: {value} (specification: {attribute.expect})",)
         return AttributeVerdict(**base, value=value, reported=value, se=None, verdict=verdict, reasons=reason)
-    verdict, reported, reason = judge_numeric(attribute, value, qualifier)
-    return AttributeVerdict(**base, value=value, reported=reported, se=None, verdict=verdict,
-                            reasons=(reason,) if reason else ())
+    verdict, reported, why = judge_entered(attribute, entered)
+    number: float | str = entered.shown if entered.number is None else float(entered.number)
+    return AttributeVerdict(**base, value=number, reported=reported, se=None, verdict=verdict,
+                            reasons=(why,) if why else ())
 
 
 def disposition(verdicts: Iterable[AttributeVerdict], trend: Iterable[TrendFinding],
@@ -142,6 +210,9 @@ def disposition(verdicts: Iterable[AttributeVerdict], trend: Iterable[TrendFindi
                 invalid.setdefault(reason, []).append(verdict.title)
         elif verdict.verdict == Verdict.MISSING:
             categories.add(HoldCategory.INCOMPLETE)
+            reasons.extend(verdict.reasons)
+        elif verdict.verdict == Verdict.UNDECIDED:  # a qualified result the limit cannot settle: held, not OOS
+            categories.add(HoldCategory.UNDECIDED_RESULT)
             reasons.extend(verdict.reasons)
     for reason, titles in invalid.items():
         reasons.append(f"{', '.join(titles)}: invalid assay: {reason}")

@@ -1,4 +1,6 @@
-"""Individuals and moving-range (I-MR) control charts across lots, Nelson run rules, capability.
+"""Individuals and moving-range (I-MR) control charts across lots and the Nelson run rules.
+
+Capability is in ``pipeline.science.process_capability``.
 
 Pure functions over numpy arrays; results are frozen dataclasses with ``to_dict()``.
 
@@ -11,11 +13,21 @@ Conventions used by every rule (in the batch scan and in the incremental state a
   and breaks a rule-2 run.
 * Point numbers (``index``, ``first_index`` and the numbers in descriptions) are 0-based
   positions in the series.
+* One run signals once: a point that is part of a run that has signalled a rule does not count
+  again toward that rule. After a signal of rule r completing at point i, the next signal of
+  rule r must lie wholly after i (points i + 1 on); other rules are not affected. A run of ten
+  points on one side thus signals rule 2 once, at its ninth point; the tenth starts no new run
+  until eight more points follow it. Nelson (J. Quality Technology 16(4), 1984) states each test
+  as a pattern; counting afresh after a signal is the practice of acting on a signal and then
+  restarting the count (Montgomery, Introduction to Statistical Quality Control, the chapter on
+  Shewhart charts and sensitizing rules; from memory). The released series of a product omits
+  held lots, so without this a run completed by one held lot would hold the next lots in turn
+  with the same points (``ChartState.fresh_from`` carries the marks across them).
 """
 
 from __future__ import annotations
 
-from collections.abc import Iterable, Sequence
+from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import asdict, dataclass
 
 import numpy as np
@@ -64,23 +76,6 @@ class Signal:
     description: str  # the rule's wording, then where the pattern lies
 
     def to_dict(self) -> dict[str, int | str | None]:
-        return asdict(self)
-
-
-@dataclass(frozen=True)
-class Capability:
-    """Process capability of one attribute against its specification limits."""
-
-    cpk: float
-    ppk: float
-    mean: float
-    n: int
-    sigma_within: float
-    sigma_overall: float
-    lsl: float | None
-    usl: float | None
-
-    def to_dict(self) -> dict[str, float | int | None]:
         return asdict(self)
 
 
@@ -165,7 +160,7 @@ RULE_WORDING: dict[NelsonRule, str] = {  # the one wording of each rule that a p
     NelsonRule.TWO_OF_THREE_BEYOND_2_SIGMA: "two of three points beyond 2σ on one side",
     NelsonRule.FOUR_OF_FIVE_BEYOND_1_SIGMA: "four of five points beyond 1σ on one side",
     NelsonRule.FIFTEEN_WITHIN_1_SIGMA: "fifteen points in a row within 1σ",
-    NelsonRule.EIGHT_BEYOND_1_SIGMA: "eight points in a row beyond 1σ on either side",
+    NelsonRule.EIGHT_BEYOND_1_SIGMA: "eight points in a row on both sides of the centre with none within 1σ",
 }
 
 
@@ -179,13 +174,21 @@ def named_rule(rule: NelsonRule) -> str:
     return f"Nelson rule {rule.value} ({RULE_WORDING[rule]})"
 
 
-def rules_named_in(reason: str) -> tuple[NelsonRule, ...]:
-    """The rules a recorded hold reason names, by their ``named_rule`` phrase.
+# Wordings that earlier versions wrote into stored hold reasons, still recognised when read back.
+EARLIER_WORDING: dict[NelsonRule, tuple[str, ...]] = {
+    NelsonRule.EIGHT_BEYOND_1_SIGMA: ("eight points in a row beyond 1σ on either side",),
+}
 
-    For decisions read back from the store, whose trend findings keep each signal as the
-    reason text only; a finding made tonight carries its rules typed (``TrendFinding.rules``).
+
+def rules_named_in(reason: str) -> tuple[NelsonRule, ...]:
+    """The rules a recorded hold reason names, by their ``named_rule`` phrase (or an earlier wording).
+
+    For decisions read back from the store whose trend findings keep each signal as the reason
+    text only; findings recorded since rule numbers are stored carry them (``TrendFinding.rules``).
     """
-    return tuple(rule for rule in NelsonRule if named_rule(rule) in reason)
+    return tuple(rule for rule in NelsonRule
+                 if named_rule(rule) in reason
+                 or any(f"Nelson rule {rule.value} ({w})" in reason for w in EARLIER_WORDING.get(rule, ())))
 
 
 def _describe(rule: NelsonRule, first: int, last: int, side: str | None, rising: bool = True) -> str:
@@ -217,32 +220,45 @@ def _windows_all(flags: NDArray[np.bool_], length: int) -> NDArray[np.intp]:
     return np.flatnonzero(sliding_window_view(flags, length).all(axis=1))
 
 
-def _k_of_m(beyond: NDArray[np.bool_], k: int, m: int) -> list[tuple[int, int]]:
-    """(first, last) per point that is beyond and has ≥ k beyond among the m points ending there."""
-    padded = np.concatenate([np.zeros(m - 1, dtype=np.int64), beyond.astype(np.int64)])
-    counts = sliding_window_view(padded, m).sum(axis=1)
-    hits = np.flatnonzero(beyond & (counts >= k))
-    out: list[tuple[int, int]] = []
-    for i in hits:
-        start = max(0, int(i) - m + 1)
-        out.append((start + int(np.argmax(beyond[start : i + 1])), int(i)))
-    return out
+Marks = Mapping[int, Sequence[int]]  # rule → positions p: a run signalled just before point p (by a point not in the series)
+
+
+def _marks_until(marks: Sequence[int], index: int) -> int:
+    """The highest mark at or before ``index`` (0 if none): points before it may not count."""
+    return max((p for p in marks if p <= index), default=0)
+
+
+def _one_per_run(candidates: list[Signal], marks: Sequence[int] = ()) -> list[Signal]:
+    """Of one rule's fixed-length patterns, those that reuse no point of an earlier signal of the rule."""
+    kept: list[Signal] = []
+    fresh = 0
+    for signal in sorted(candidates, key=lambda s: s.index):
+        fresh = max(fresh, _marks_until(marks, signal.index))
+        if signal.first_index >= fresh:
+            kept.append(signal)
+            fresh = signal.index + 1
+    return kept
 
 
 def rule_signals(
-    values: ArrayLike, center: float, sigma: float, rules: Iterable[int] = ALL_RULES
+    values: ArrayLike, center: float, sigma: float, rules: Iterable[int] = ALL_RULES, marks: Marks | None = None
 ) -> tuple[Signal, ...]:
-    """Every Nelson-rule pattern (Nelson, J. Quality Technology 16(4), 1984) in a series.
+    """The Nelson-rule signals (Nelson, J. Quality Technology 16(4), 1984) of a series, one per run.
 
     With zones measured from the centre c in units of σ:
     1 one point beyond c ± 3σ; 2 nine in a row strictly on one side of c; 3 six in a row
     steadily rising or falling (five strict steps; a tie breaks it); 4 fourteen in a row
     alternating up and down (a tie breaks it); 5 two of three in a row beyond 2σ on one side;
     6 four of five in a row beyond 1σ on one side; 7 fifteen in a row within 1σ; 8 eight in a
-    row beyond 1σ on either side. A signal is reported at each point where a pattern completes;
-    for rules 5 and 6 that point is itself beyond the line (a window clipped at the start of
-    the series counts). Returned sorted by (index, rule).
+    row on both sides of c with none within 1σ (every point beyond 1σ, at least one above and
+    one below: Nelson's "on both sides"). A signal is reported where a pattern completes; for
+    rules 5 and 6 that point is itself beyond the line (a window clipped at the start of the
+    series, or at the end of the rule's last signal, counts). A point of a signalled run does not
+    count again for the same rule (module docstring); ``marks`` gives, per rule, the positions p
+    where a run completed by a point outside the series (a held lot, between points p − 1 and p)
+    signalled: signals completing at p or later use no point before p. Sorted by (index, rule).
     """
+    marks = marks or {}
     chosen = _check_rules(rules)
     _check_center_sigma(center, sigma)
     x = _as_series(values, "trend series")
@@ -256,24 +272,50 @@ def rule_signals(
         found += [_signal(_R1, int(i), int(i), "above" if a3[i] else "below")
                   for i in np.flatnonzero(a3 | b3)]
     if _R2 in chosen:
-        for flags, side in ((above, "above"), (below, "below")):
-            found += [_signal(_R2, int(s), int(s) + 8, side) for s in _windows_all(flags, 9)]
+        found += _one_per_run([_signal(_R2, int(s), int(s) + 8, side)
+                               for flags, side in ((above, "above"), (below, "below"))
+                               for s in _windows_all(flags, 9)], marks.get(_R2, ()))
     if _R3 in chosen:
-        for flags, rising in ((diffs > 0, True), (diffs < 0, False)):
-            found += [_signal(_R3, int(s), int(s) + 5, None, rising) for s in _windows_all(flags, 5)]
+        found += _one_per_run([_signal(_R3, int(s), int(s) + 5, None, rising)
+                               for flags, rising in ((diffs > 0, True), (diffs < 0, False))
+                               for s in _windows_all(flags, 5)], marks.get(_R3, ()))
     if _R4 in chosen:
         signs = np.sign(diffs)
         alternating = signs[1:] * signs[:-1] < 0  # a zero step (tie) gives 0: breaks the run
-        found += [_signal(_R4, int(s), int(s) + 13, None) for s in _windows_all(alternating, 12)]
+        found += _one_per_run([_signal(_R4, int(s), int(s) + 13, None) for s in _windows_all(alternating, 12)],
+                              marks.get(_R4, ()))
     for rule, k, m, up, down in ((_R5, 2, 3, a2, b2), (_R6, 4, 5, a1, b1)):
         if rule in chosen:
-            for flags, side in ((up, "above"), (down, "below")):
-                found += [_signal(rule, f, i, side) for f, i in _k_of_m(flags, k, m)]
+            found += _k_of_m(rule, up, down, k, m, marks.get(rule, ()))
     if _R7 in chosen:
-        found += [_signal(_R7, int(s), int(s) + 14, None) for s in _windows_all(~(a1 | b1), 15)]
+        found += _one_per_run([_signal(_R7, int(s), int(s) + 14, None) for s in _windows_all(~(a1 | b1), 15)],
+                              marks.get(_R7, ()))
     if _R8 in chosen:
-        found += [_signal(_R8, int(s), int(s) + 7, None) for s in _windows_all(a1 | b1, 8)]
+        outside = _windows_all(a1 | b1, 8)
+        both = [s for s in outside if a1[s: s + 8].any() and b1[s: s + 8].any()]
+        found += _one_per_run([_signal(_R8, int(s), int(s) + 7, None) for s in both], marks.get(_R8, ()))
     return tuple(sorted(found, key=lambda s: (s.index, s.rule)))
+
+
+def _k_of_m(rule: NelsonRule, up: NDArray[np.bool_], down: NDArray[np.bool_], k: int, m: int,
+            marks: Sequence[int] = ()) -> list[Signal]:
+    """One rule's k-of-m signals on either side, one per run of points.
+
+    A point j beyond the line on one side signals when at least k of the points
+    max(j − m + 1, fresh) … j are beyond on that side; ``fresh`` then moves past j, so the rule's
+    next signal uses none of these points (on either side).
+    """
+    out: list[Signal] = []
+    fresh = 0
+    for j in np.flatnonzero(up | down).tolist():
+        flags, side = (up, "above") if up[j] else (down, "below")
+        fresh = max(fresh, _marks_until(marks, j))
+        start = max(j - m + 1, fresh)
+        window = flags[start: j + 1]
+        if int(window.sum()) >= k:
+            out.append(_signal(rule, start + int(np.argmax(window)), j, side))
+            fresh = j + 1
+    return out
 
 
 # --------------------------------------------------------------------------- incremental state
@@ -317,33 +359,51 @@ def _signals_at_end(
                 out.append(_signal(rule, index - len(window) + 1 + hits[0], index, side))
     if _R7 in chosen and n >= 15 and all(abs(q) <= 1 for q in zones[-15:]):
         out.append(_signal(_R7, index - 14, index, None))
-    if _R8 in chosen and n >= 8 and all(abs(q) >= 2 for q in zones[-8:]):
+    if _R8 in chosen and n >= 8 and all(abs(q) >= 2 for q in zones[-8:]) and \
+            any(q > 0 for q in zones[-8:]) and any(q < 0 for q in zones[-8:]):
         out.append(_signal(_R8, index - 7, index, None))
     return out
 
 
 @dataclass(frozen=True)
 class ChartState:
-    """What a chart must remember to judge the next lot: limits, last 14 points, lot count.
+    """What a chart must remember to judge the next lot: limits, last 14 points, lot count, and
+    for each rule the first point that may still count toward it (``fresh_from``, 0-based).
 
     ``push`` costs O(1) in the length of the history and gives the same signals as
-    ``rule_signals`` on the whole series, restricted to the new point.
+    ``rule_signals`` on the whole series, restricted to the new point: a signal of rule r moves
+    ``fresh_from[r]`` past the new point, so the points of that run do not count for r again.
     """
 
     limits: ControlLimits
     tail_values: tuple[float, ...]
     tail_zones: tuple[int, ...]
     count: int
+    fresh_from: tuple[int, ...] = (0,) * len(ALL_RULES)  # by rule number − 1
 
     @classmethod
-    def from_history(cls, values: ArrayLike, limits: ControlLimits) -> ChartState:
-        """State after the lots in ``values`` (oldest first) have been charted."""
+    def from_history(cls, values: ArrayLike, limits: ControlLimits, *, judged_from: int = 0,
+                     marks: Marks | None = None) -> ChartState:
+        """State after the lots in ``values`` (oldest first) have been charted.
+
+        Runs that signalled in the history mark their points as used (``rule_signals``); only
+        signals completing at point ``judged_from`` or later count (points before it, such as a
+        baseline, were never judged). ``marks`` are runs completed by points not in ``values``
+        (held lots): rule → positions p, as in ``rule_signals``.
+        """
         _check_center_sigma(limits.center, limits.sigma)
         x = _as_series(values, "trend history")
         lines = _thresholds(limits.center, limits.sigma)
         tail = [float(v) for v in x[-HISTORY_POINTS:]] if x.size else []
         zones = tuple(_zone(v, lines, limits.center) for v in tail)
-        return cls(limits, tuple(tail), zones, int(x.size))
+        fresh = [0] * len(ALL_RULES)
+        marks = marks or {}
+        for rule, positions in marks.items():
+            fresh[NelsonRule(rule) - 1] = max([0, *(min(int(p), int(x.size)) for p in positions)])
+        for signal in rule_signals(x, limits.center, limits.sigma, marks=marks) if x.size else ():
+            if signal.index >= judged_from:
+                fresh[signal.rule - 1] = max(fresh[signal.rule - 1], signal.index + 1)
+        return cls(limits, tuple(tail), zones, int(x.size), tuple(fresh))
 
     def push(
         self, value: float, rules: Iterable[int] = ALL_RULES
@@ -358,10 +418,18 @@ class ChartState:
         lines = _thresholds(self.limits.center, self.limits.sigma)
         vals = (*self.tail_values, v)
         zones = (*self.tail_zones, _zone(v, lines, self.limits.center))
-        signals = tuple(_signals_at_end(vals, zones, self.count, chosen))
+        found: list[Signal] = []
+        fresh = list(self.fresh_from)
+        for rule in chosen:
+            usable = self.count - fresh[rule - 1] + 1  # the new point and the history points still free
+            start = max(0, len(vals) - usable)
+            signals = _signals_at_end(vals[start:], zones[start:], self.count, (rule,))
+            if signals:
+                fresh[rule - 1] = self.count + 1
+            found += signals
         state = ChartState(self.limits, vals[-HISTORY_POINTS:], zones[-HISTORY_POINTS:],
-                           self.count + 1)
-        return state, signals
+                           self.count + 1, tuple(fresh))
+        return state, tuple(sorted(found, key=lambda s: s.rule))
 
     def to_dict(self) -> dict[str, object]:
         return {
@@ -369,60 +437,5 @@ class ChartState:
             "tail_values": list(self.tail_values),
             "tail_zones": list(self.tail_zones),
             "count": self.count,
+            "fresh_from": list(self.fresh_from),
         }
-
-
-# --------------------------------------------------------------------------- capability
-def capability(
-    values: ArrayLike,
-    lsl: float | None = None,
-    usl: float | None = None,
-    sigma_within: float | None = None,
-) -> Capability:
-    """Cpk and Ppk of a series against its specification limits.
-
-    Cpk = min(USL − μ, μ − LSL) / (3σ_within), σ_within = MR̄/d₂ unless given;
-    Ppk = the same with σ_overall = sample SD (n − 1). With one limit only, that side's term.
-    """
-    if lsl is None and usl is None:
-        raise CalculationError(
-            "capability needs at least one specification limit (lower or upper); none was given"
-        )
-    for name, lim in (("lower", lsl), ("upper", usl)):
-        if lim is not None and not np.isfinite(lim):
-            raise SpecificationError(
-                f"the {name} specification limit must be finite, received {lim!r}"
-            )
-    if lsl is not None and usl is not None and not lsl < usl:
-        raise SpecificationError(
-            f"the lower specification limit ({lsl}) must be below the upper one ({usl})"
-        )
-    x = _as_series(values, "capability data")
-    if x.size < 2:
-        raise CalculationError(f"capability needs at least 2 values; received {x.size}")
-    mean = float(np.mean(x))
-    sigma_overall = float(np.std(x, ddof=1))
-    if sigma_overall == 0.0:
-        raise CalculationError(
-            f"all {x.size} values are identical, so capability cannot be computed"
-        )
-    if sigma_within is None:
-        sigma_within = float(np.mean(np.abs(np.diff(x)))) / D2_N2
-    if not (np.isfinite(sigma_within) and sigma_within > 0):
-        raise CalculationError(
-            "the short-term sigma (within) must be a finite number above 0, "
-            f"received {sigma_within!r}"
-        )
-    distances = [d for d in (None if usl is None else usl - mean,
-                             None if lsl is None else mean - lsl) if d is not None]
-    nearest = min(distances)
-    return Capability(
-        cpk=nearest / (3.0 * sigma_within),
-        ppk=nearest / (3.0 * sigma_overall),
-        mean=mean,
-        n=int(x.size),
-        sigma_within=float(sigma_within),
-        sigma_overall=sigma_overall,
-        lsl=None if lsl is None else float(lsl),
-        usl=None if usl is None else float(usl),
-    )
