@@ -13,6 +13,7 @@ from collections.abc import Awaitable, Callable
 from typing import Any
 
 from starlette.applications import Starlette
+from starlette.concurrency import run_in_threadpool
 from starlette.datastructures import FormData
 from starlette.middleware import Middleware
 from starlette.middleware.base import BaseHTTPMiddleware
@@ -73,23 +74,26 @@ def create_app(desk: Desk, *, clock: Callable[[], float] | None = None) -> Starl
     def session_of(request: Request) -> Session | None:
         return registry.get(request.cookies.get(SESSION_COOKIE))
 
-    def guarded(handler: Callable[[Request, Session], Awaitable[Response]], act: DeskAct | None = None):
-        """No session: GET goes to the login page, anything else is refused. A form needs the CSRF token."""
+    def guarded(handler: Callable[[Request, Session, FormData], Response], act: DeskAct | None = None):
+        """No session: GET goes to the login page, anything else is refused. A form needs the CSRF token.
+
+        The handler runs in a worker thread: it blocks on the store, Argon2 and signing (whose
+        library runs its own event loop), never on the server's loop.
+        """
         async def endpoint(request: Request) -> Response:
             session = session_of(request)
             if session is None:
                 if request.method == "GET":
                     return RedirectResponse("/login", status_code=303)
                 return refused(request, "Sign in first: your session has ended or never began.", 401)
-            if request.method == "POST":
-                form = await request.form()
-                if not same_token(session.csrf, form.get("csrf")):
-                    return refused(request, "This form is out of date or did not come from the desk; "
-                                            "open the page again.", 403, session)
+            form = await request.form() if request.method == "POST" else FormData()
+            if request.method == "POST" and not same_token(session.csrf, form.get("csrf")):
+                return refused(request, "This form is out of date or did not come from the desk; "
+                                        "open the page again.", 403, session)
             if act is not None and not may(session.role, act):
                 return refused(request, f"Your role ({session.role}) does not allow this ({act}).", 403, session)
             try:
-                return await handler(request, session)
+                return await run_in_threadpool(handler, request, session, form)
             except DeskBusy as exc:
                 return refused(request, str(exc), 503, session)
             except LotgateError as exc:
@@ -107,7 +111,8 @@ def create_app(desk: Desk, *, clock: Callable[[], float] | None = None) -> Starl
         if not same_token(request.cookies.get(PRE_COOKIE, ""), form.get("csrf")) or not request.cookies.get(PRE_COOKIE):
             return refused(request, "This sign-in form is out of date; open the sign-in page again.")
         try:
-            user = sign_in(desk, str(form.get("name", "")), str(form.get("password", "")), client(request))
+            user = await run_in_threadpool(sign_in, desk, str(form.get("name", "")), str(form.get("password", "")),
+                                           client(request))
         except (SignInRefused, DeskBusy) as exc:
             token = secrets.token_urlsafe(32)
             response = page("login.html", 401 if isinstance(exc, SignInRefused) else 503, csrf=token, error=str(exc))
@@ -119,17 +124,17 @@ def create_app(desk: Desk, *, clock: Callable[[], float] | None = None) -> Starl
         response.delete_cookie(PRE_COOKIE, path="/login")
         return response
 
-    async def logout(request: Request, session: Session) -> Response:
+    def logout(request: Request, session: Session, form: FormData) -> Response:
         registry.end(request.cookies.get(SESSION_COOKIE))
         sign_out(desk, session.user_id, session.login, "logout")
         response = RedirectResponse("/login", status_code=303)
         response.delete_cookie(SESSION_COOKIE, path="/")
         return response
 
-    async def morning(request: Request, session: Session) -> Response:
+    def morning(request: Request, session: Session, form: FormData) -> Response:
         return page("morning.html", session=session, view=morning_view(desk.ws, desk.store))
 
-    async def lot(request: Request, session: Session) -> Response:
+    def lot(request: Request, session: Session, form: FormData) -> Response:
         lot_id = request.query_params.get("id", "")
         trended = trended_attributes(desk.ws)
         view = lot_view(desk.ws, desk.store, lot_id, ())
@@ -148,14 +153,13 @@ def create_app(desk: Desk, *, clock: Callable[[], float] | None = None) -> Starl
             raise acts.ActRefused(f"no decision is stored for lot {lot_id}")
         return dict(session=session, lot=latest, act=str(act), meaning=acts.meaning_of(act), error=None)
 
-    async def sign_form(request: Request, session: Session) -> Response:
+    def sign_form(request: Request, session: Session, form: FormData) -> Response:
         act = DeskAct.RELEASE if request.query_params.get("act") == "release" else DeskAct.REJECT
         if not may(session.role, act):
             return refused(request, f"Your role ({session.role}) does not allow this ({act}).", 403, session)
         return page("sign.html", **_sign_context(session, request.query_params.get("id", ""), act))
 
-    async def sign(request: Request, session: Session) -> Response:
-        form: FormData = await request.form()
+    def sign(request: Request, session: Session, form: FormData) -> Response:
         release = form.get("act") == "release"
         lot_id = str(form.get("lot", ""))
         try:
@@ -166,14 +170,13 @@ def create_app(desk: Desk, *, clock: Callable[[], float] | None = None) -> Starl
             return page("sign.html", 403, **{**_sign_context(session, lot_id, act), "error": str(exc)})
         return page("signed.html", session=session, shown=shown)
 
-    async def chart(request: Request, session: Session) -> Response:
+    def chart(request: Request, session: Session, form: FormData) -> Response:
         product, attribute = request.query_params.get("product", ""), request.query_params.get("attribute", "")
         data = chart_page_data(desk.ws, desk.store, product, attribute)
         return page("chart.html", session=session, data=data, may_rebaseline=may(session.role, DeskAct.REBASELINE),
                     error=None, meaning=acts.REBASELINE_MEANING)
 
-    async def rebaseline(request: Request, session: Session) -> Response:
-        form = await request.form()
+    def rebaseline(request: Request, session: Session, form: FormData) -> Response:
         product, code = str(form.get("product", "")), str(form.get("attribute", ""))
         data = chart_page_data(desk.ws, desk.store, product, code)
         count = str(form.get("count", "")).strip()
@@ -187,7 +190,7 @@ def create_app(desk: Desk, *, clock: Callable[[], float] | None = None) -> Starl
                         meaning=acts.REBASELINE_MEANING)
         return page("signed.html", session=session, shown=shown)
 
-    async def trail(request: Request, session: Session) -> Response:
+    def trail(request: Request, session: Session, form: FormData) -> Response:
         q = request.query_params
         try:
             day_from = dt.date.fromisoformat(q["from"]) if q.get("from") else None
@@ -199,7 +202,7 @@ def create_app(desk: Desk, *, clock: Callable[[], float] | None = None) -> Starl
         return page("audit.html", session=session, events=events, check=check, lot=q.get("lot", ""),
                     day_from=q.get("from", ""), day_to=q.get("to", ""))
 
-    async def files(request: Request, session: Session) -> Response:
+    def files(request: Request, session: Session, form: FormData) -> Response:
         relative = request.path_params["path"]
         target = document_path(desk.ws.root, relative, SERVED_FOLDERS)
         if target is None:
@@ -209,12 +212,11 @@ def create_app(desk: Desk, *, clock: Callable[[], float] | None = None) -> Starl
         disposition = "inline" if target.suffix.lower() == ".pdf" else "attachment"
         return FileResponse(target, media_type=media, content_disposition_type=disposition, filename=target.name)
 
-    async def users_page(request: Request, session: Session) -> Response:
+    def users_page(request: Request, session: Session, form: FormData) -> Response:
         rows = [(u, accounts.account_standing(desk.store, u.id)) for u in accounts.users(desk.store)]
         return page("users.html", session=session, rows=rows)
 
-    async def unlock(request: Request, session: Session) -> Response:
-        form = await request.form()
+    def unlock(request: Request, session: Session, form: FormData) -> Response:
         unlock_account(desk, str(form.get("login", "")), session.login)
         return RedirectResponse("/users", status_code=303)
 

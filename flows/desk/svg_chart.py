@@ -32,9 +32,10 @@ def chart_svg(view: ChartView, *, highlight: str | None = None) -> Markup:
         lines.append(("USL", view.usl, "spec"))
     title = escape(f"{view.product_code} {view.title} ({view.unit}): last {len(view.rows)} lots")
     if not values:
-        return Markup(f'<svg class="chart" role="img" viewBox="0 0 {WIDTH} 60" width="{WIDTH}" height="60" '
-                      f'xmlns="http://www.w3.org/2000/svg"><title>{title}</title>'
-                      f'<text x="10" y="30">{escape("No value to chart yet.")}</text></svg>')  # noqa: S704 (texts escaped)
+        empty = (f'<svg class="chart" role="img" viewBox="0 0 {WIDTH} 60" width="{WIDTH}" height="60" '
+                 f'xmlns="http://www.w3.org/2000/svg"><title>{title}</title>'
+                 f'<text x="10" y="30">{escape("No value to chart yet.")}</text></svg>')
+        return Markup(empty)  # noqa: S704 (its texts escaped)
     low = min(values + [v for _, v, _ in lines])
     high = max(values + [v for _, v, _ in lines])
     span = (high - low) or abs(high) or 1.0
