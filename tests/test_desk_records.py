@@ -1,0 +1,89 @@
+"""The desk's records and files: sealed signing identities, the night's static review page, desk settings,
+and the account standing read from append-only events."""
+
+import hashlib
+import re
+
+import pytest
+
+from flows.desk.keystore import seal_identity, unseal_identity
+from flows.desk.settings import DeskSettings, check_cookie_setting, read_desk_settings
+from flows.desk.static_page import write_night_page
+from flows.desk.views import document_path
+from pipeline.errors import SigningError, SpecificationError
+from pipeline.records import desk_accounts as accounts
+from pipeline.records import signing
+from pipeline.records.demo_identity import create_demo_identity
+from tests.desk_fixtures import HOSTILE_LOT, make_workspace
+
+
+def test_a_sealed_identity_opens_only_with_the_desk_password_and_refuses_a_changed_file(tmp_path):
+    person = create_demo_identity(tmp_path / "person", "Brackwater Enzymes (test)", "Ines Varga")
+    root = tmp_path / "ws"
+    root.mkdir()
+    sealed = seal_identity(root, "ines", person.p12_path, None, "a desk password 1",
+                           p12_passphrase_file=person.passphrase_path)
+    path = root / sealed.key_file
+    assert path.stat().st_mode & 0o777 == 0o600
+    original = signing.load_identity(person.p12_path, passphrase_file=person.passphrase_path, passphrase_env="")
+    assert sealed.certificate_sha256 == original.fingerprint_sha256 and sealed.signer_name == "Ines Varga (DEMO)"
+    assert sealed.key_sha256 == hashlib.sha256(path.read_bytes()).hexdigest()
+    # The file is no longer opened by the original passphrase: only the desk password opens it.
+    with pytest.raises(SigningError):
+        signing.load_identity(path, passphrase=person.passphrase_path.read_bytes().strip(), passphrase_env="")
+    with pytest.raises(SigningError):
+        unseal_identity(root, sealed.key_file, sealed.key_sha256, sealed.certificate_sha256, "wrong password!!")
+    opened = unseal_identity(root, sealed.key_file, sealed.key_sha256, sealed.certificate_sha256, "a desk password 1")
+    assert opened.fingerprint_sha256 == original.fingerprint_sha256
+    data = bytearray(path.read_bytes())
+    data[-1] ^= 1
+    path.write_bytes(bytes(data))
+    with pytest.raises(SigningError, match="changed since the account was made"):
+        unseal_identity(root, sealed.key_file, sealed.key_sha256, sealed.certificate_sha256, "a desk password 1")
+
+
+def test_the_night_page_is_self_contained_and_escaped(tmp_path):
+    space = make_workspace(tmp_path / "ws")
+    path = write_night_page(space.desk.ws, space.desk.store, 1)
+    assert path == space.root / "review" / "night-0001.html"
+    html = path.read_text(encoding="utf-8")
+    assert "default-src 'none'" in html  # the page may load nothing at all
+    assert "<script" not in html and not re.findall(r"<[^>]+\s(?:src|href|action)=", html)
+    assert "<form" not in html
+    assert "Held: out of specification" in html and "The counts reconcile." in html
+    assert HOSTILE_LOT not in html and "&lt;script&gt;alert(1)&lt;/script&gt;" in html
+
+
+def test_desk_settings_are_read_strictly(tmp_path):
+    assert read_desk_settings(tmp_path) == DeskSettings()
+    (tmp_path / "desk.yaml").write_text("session_timeout_minutes: 30\nsecure_cookies: false\n")
+    assert read_desk_settings(tmp_path) == DeskSettings(1800.0, 5, False)
+    check_cookie_setting(read_desk_settings(tmp_path), "127.0.0.1")
+    with pytest.raises(SpecificationError, match="loopback"):
+        check_cookie_setting(read_desk_settings(tmp_path), "0.0.0.0")  # noqa: S104 (the refused case)
+    (tmp_path / "desk.yaml").write_text("session_timeout_minuts: 30\n")
+    with pytest.raises(SpecificationError, match="session_timeout_minuts"):
+        read_desk_settings(tmp_path)
+    (tmp_path / "desk.yaml").write_text("session_timeout_minutes: '15'\n")
+    with pytest.raises(SpecificationError, match="session_timeout_minutes"):
+        read_desk_settings(tmp_path)
+
+
+def test_account_standing_counts_failures_since_the_last_success_and_locks_until_unlocked():
+    s = accounts.standing_of
+    assert s([]) == accounts.AccountStanding(0, False)
+    assert s(["login-failed", "login-failed", "login-succeeded", "signing-password-failed"]).failures_since_success == 1
+    assert s(["login-failed"] * 5 + ["locked"]).locked
+    assert s(["login-failed"] * 5 + ["locked", "unlocked"]) == accounts.AccountStanding(0, False)
+
+
+def test_document_path_checks(tmp_path):
+    (tmp_path / "reports").mkdir()
+    (tmp_path / "reports" / "a.pdf").write_bytes(b"x")
+    (tmp_path / "secret.txt").write_text("s")
+    (tmp_path / "reports" / "out.pdf").symlink_to(tmp_path / "secret.txt")
+    allowed = ("reports",)
+    assert document_path(tmp_path, "reports/a.pdf", allowed) == (tmp_path / "reports" / "a.pdf").resolve()
+    for bad in ("../secret.txt", "reports/../secret.txt", "/etc/passwd", "secret.txt", "reports/out.pdf",
+                "reports/.a.pdf", "reports\\..\\secret.txt", "", "reports/a.pdf\x00"):
+        assert document_path(tmp_path, bad, allowed) is None, bad
