@@ -18,7 +18,14 @@ from flows.desk.roles import DeskRole
 from pipeline.records import audit
 from pipeline.records import desk_accounts as accounts
 from pipeline.records.desk_queries import trail_events, trail_length
-from tests.desk_fixtures import HOSTILE_FILE, HOSTILE_LOT, HOSTILE_REASON, PASSWORDS, login_name, make_workspace
+from tests.desk_fixtures import (
+    HOSTILE_FILE,
+    HOSTILE_LOT,
+    HOSTILE_REASON,
+    PASSWORDS,
+    login_name,
+    make_workspace,
+)
 
 
 @pytest.fixture(scope="module")

@@ -37,6 +37,7 @@ from pipeline.records.signing import SigningIdentity
 from pipeline.release.dossier import local_time_text
 from pipeline.release.signature import PERSON_REJECT_MEANING, PERSON_RELEASE_MEANING
 
+MAX_REASON = 2000
 REBASELINE_MEANING = ("Re-baseline of a control chart by its owner: I have reviewed the chosen released lots and "
                       "approve the new control limits for judging the next lots")
 
@@ -64,10 +65,13 @@ def meaning_of(act: DeskAct) -> str:
 
 
 @contextmanager
-def _signing(desk: Desk, session: Session, act: DeskAct, password: str, what: str) -> Iterator[SigningIdentity]:
+def _signing(desk: Desk, session: Session, act: DeskAct, password: str, what: str,
+             reason: str) -> Iterator[SigningIdentity]:
     """Steps 1–3 inside one desk write; yields the unsealed identity for the use case."""
     if not may(session.role, act):
         raise ActRefused(f"your role ({session.role}) does not allow this act ({act})")
+    if len(reason) > MAX_REASON:
+        raise ActRefused(f"a reason is at most {MAX_REASON} characters, received {len(reason)}; nothing was signed")
     with desk_write(desk):
         user = accounts.user_by_id(desk.store, session.user_id)
         if user is None or user.key_file is None or user.key_sha256 is None or user.signer_certificate_sha256 is None:
@@ -99,7 +103,7 @@ def decide(desk: Desk, session: Session, lot_id: str, *, release: bool, reason: 
     """Release or reject a lot, signed: ``lotgate decide`` through the desk."""
     act = DeskAct.RELEASE if release else DeskAct.REJECT
     what = f"lot {lot_id}: {'release' if release else 'rejection'}"
-    with _signing(desk, session, act, password, what) as identity:
+    with _signing(desk, session, act, password, what, reason or "") as identity:
         outcome = decide_lot(desk.ws, desk.store, lot_id, release=release, reason=reason, identity=identity)
         stored = desk.store.latest_decision(lot_id)
         assert stored is not None and stored.revision == outcome.revision
@@ -113,7 +117,7 @@ def rebaseline_chart(desk: Desk, session: Session, product: str, attribute: Attr
                      password: str, from_lot: str | None = None, count: int | None = None) -> Manifestation:
     """New control limits, signed by the chart owner: ``lotgate rebaseline`` through the desk."""
     what = f"control limits of {product} {attribute.code}"
-    with _signing(desk, session, DeskAct.REBASELINE, password, what) as identity:
+    with _signing(desk, session, DeskAct.REBASELINE, password, what, reason or "") as identity:
         pass  # password and key checked; the use case takes the run lock itself
     done = rebaseline(desk.ws, desk.store, product, attribute, by=identity.signer_name, reason=reason,
                       from_lot=from_lot, count=count)

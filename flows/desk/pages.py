@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import json
 from functools import cache
 from importlib import resources
 from typing import Any
@@ -15,6 +16,7 @@ CSS_NAME = "desk.css"
 def environment() -> Environment:
     env = Environment(loader=PackageLoader("flows.desk", "templates"), autoescape=True,
                       undefined=StrictUndefined, trim_blocks=True, lstrip_blocks=True)
+    env.filters["plain"] = lambda v: v if isinstance(v, str) else json.dumps(v, ensure_ascii=False, sort_keys=True)
     env.filters["num"] = lambda v, d=3: "—" if v is None else (f"{v:.{d}f}" if isinstance(v, int | float) else str(v))
     return env
 
