@@ -258,3 +258,18 @@ def test_a_served_document_is_the_file_itself(space):
     assert response.status_code == 200 and response.content == b"%PDF-1.4 test\n"
     assert response.headers["content-type"] == "application/pdf"
     assert response.headers["x-content-type-options"] == "nosniff"
+
+
+def test_wrong_passwords_at_signing_lock_the_account_and_end_its_session(space):
+    c = signed_in(space, DeskRole.CHART_OWNER)
+    page = c.get("/chart", params={"product": "LLC-200", "attribute": "specific_activity"}).text
+    for attempt in range(5):
+        response = c.post("/chart/rebaseline", data={
+            "csrf": csrf_of(page), "product": "LLC-200", "attribute": "specific_activity", "reason": "r",
+            "password": f"wrong {attempt} password"})
+        assert "password is not right" in response.text
+    assert "now locked" in response.text
+    assert c.get("/", follow_redirects=False).status_code == 303  # the session ended with the lock
+    user = accounts.user_by_login(space.desk.store, "chartowner")
+    assert accounts.account_standing(space.desk.store, user.id).locked
+    accounts.record_account_event(space.desk.store, user.id, accounts.UNLOCKED, "test reset", [])

@@ -72,7 +72,13 @@ def create_app(desk: Desk, *, clock: Callable[[], float] | None = None) -> Starl
         return request.client.host if request.client else "unknown"
 
     def session_of(request: Request) -> Session | None:
-        return registry.get(request.cookies.get(SESSION_COOKIE))
+        """The live session of the request; a session of an account locked since it began is ended."""
+        token = request.cookies.get(SESSION_COOKIE)
+        session = registry.get(token)
+        if session is not None and accounts.account_standing(desk.store, session.user_id).locked:
+            registry.end(token)
+            return None
+        return session
 
     def guarded(handler: Callable[[Request, Session, FormData], Response], act: DeskAct | None = None):
         """No session: GET goes to the login page, anything else is refused. A form needs the CSRF token.
@@ -81,7 +87,7 @@ def create_app(desk: Desk, *, clock: Callable[[], float] | None = None) -> Starl
         library runs its own event loop), never on the server's loop.
         """
         async def endpoint(request: Request) -> Response:
-            session = session_of(request)
+            session = await run_in_threadpool(session_of, request)
             if session is None:
                 if request.method == "GET":
                     return RedirectResponse("/login", status_code=303)
