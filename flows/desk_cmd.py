@@ -35,12 +35,13 @@ def _new_password(login: str) -> str:
 
 
 def cmd_users_add(args: argparse.Namespace) -> int:
-    from flows.desk.accounts import create_account
+    from flows.desk.accounts import check_new_account, create_account
     from flows.desk.roles import DeskRole
     from pipeline.records import signing
 
     desk = _open(args.workspace)
     p12 = Path(args.signer_p12).expanduser() if args.signer_p12 else None
+    check_new_account(desk.store, args.name, DeskRole(args.role), p12)
     p12_secret = None
     if p12 is not None and not args.p12_passphrase_file:
         p12_secret = signing.take_passphrase()

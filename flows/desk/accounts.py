@@ -81,10 +81,8 @@ def password_matches(password_hash: str, password: str) -> bool:
         return False
 
 
-def create_account(ws: Workspace, store: Store, login: str, role: DeskRole, password: str, *,
-                   p12: Path | None = None, p12_passphrase: bytes | None = None,
-                   p12_passphrase_file: Path | None = None, by: str | None = None) -> accounts.StoredUser:
-    """A new account; a signing role must bring the person's PKCS#12, sealed under the desk password."""
+def check_new_account(store: Store, login: str, role: DeskRole, p12: Path | None) -> None:
+    """Refuse, before any password is asked: a bad name, a name taken, a signing role without an identity."""
     if not LOGIN_PATTERN.fullmatch(login):
         raise InputError(f"an account name is 2–60 characters: a lower-case letter, then lower-case letters, digits, "
                          f"'.', '_' or '-'; received {login!r}")
@@ -94,10 +92,16 @@ def create_account(ws: Workspace, store: Store, login: str, role: DeskRole, pass
         raise InputError(f"a {role} never signs: an account of this role takes no signing identity")
     if accounts.user_by_login(store, login) is not None:
         raise InputError(f"the desk already has an account named '{login}'; accounts are never replaced")
+
+
+def create_account(ws: Workspace, store: Store, login: str, role: DeskRole, password: str, *,
+                   p12: Path | None = None, p12_passphrase: bytes | None = None,
+                   p12_passphrase_file: Path | None = None, by: str | None = None) -> accounts.StoredUser:
+    """A new account; a signing role must bring the person's PKCS#12, sealed under the desk password."""
+    check_new_account(store, login, role, p12)
     password_hash = hash_password(password)
     by = by or getpass.getuser()
-    desk = Desk(ws, store, DeskSettings())
-    with desk_write(desk):
+    with desk_write(Desk(ws, store, DeskSettings())):
         sealed: SealedIdentity | None = None
         if p12 is not None:
             sealed = seal_identity(ws.root, login, p12, p12_passphrase, password, p12_passphrase_file)
