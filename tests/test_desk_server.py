@@ -273,3 +273,34 @@ def test_wrong_passwords_at_signing_lock_the_account_and_end_its_session(space):
     user = accounts.user_by_login(space.desk.store, "chartowner")
     assert accounts.account_standing(space.desk.store, user.id).locked
     accounts.record_account_event(space.desk.store, user.id, accounts.UNLOCKED, "test reset", [])
+
+
+def test_a_desk_signature_writes_what_the_command_line_writes(space, tmp_path):
+    # The same lot decision through `lotgate decide`'s use case (the person's own PKCS#12) and through the
+    # desk (the sealed copy, opened by the password): the same record fields and the same audit events,
+    # plus the desk's own desk-signature event. A reason typed with markup comes back escaped.
+    from pipeline.night.person_decision import decide_lot
+    from pipeline.records import signing
+
+    store, ws = space.desk.store, space.desk.ws
+    person = space.root.parent / "person-reviewer"
+    identity = signing.load_identity(person / "signer.p12", passphrase_file=person / "signer.passphrase",
+                                     passphrase_env="")
+    decide_lot(ws, store, "LLC-9000-104", release=False, reason="checked on the command line", identity=identity)
+    c = signed_in(space, DeskRole.REVIEWER)
+    reason = "checked at the desk <script>alert(3)</script>"
+    response = c.post("/lot/sign", data={"csrf": csrf_of(c.get("/").text), "lot": "LLC-9000-102", "act": "reject",
+                                         "reason": reason, "password": PASSWORDS[DeskRole.REVIEWER]})
+    assert response.status_code == 200 and "<script>alert(3)" not in response.text
+    by_cli, by_desk = store.latest_decision("LLC-9000-104"), store.latest_decision("LLC-9000-102")
+    assert set(by_cli.record.to_json()) == set(by_desk.record.to_json())
+    assert (by_cli.decided_by, by_cli.record.meaning, by_cli.disposition) == \
+        (by_desk.decided_by, by_desk.record.meaning, by_desk.disposition)
+    assert by_desk.record.reasons == (f"decision of Ines Varga (DEMO): {reason}",)
+    cli_events = [e for e in trail_events(store, lot_id="LLC-9000-104")]
+    desk_events = [e for e in trail_events(store, lot_id="LLC-9000-102")]
+    assert [e.kind for e in cli_events][0] == "person-disposition"
+    assert [e.kind for e in desk_events][:2] == ["desk-signature", "person-disposition"]
+    assert set(cli_events[0].body) == set(desk_events[1].body)
+    history = c.get("/audit", params={"lot": "LLC-9000-102"}).text
+    assert "&lt;script&gt;alert(3)&lt;/script&gt;" in history and "<script>alert(3)" not in history
