@@ -16,6 +16,7 @@ from typing import Any
 from pipeline.records.desk_queries import (
     NightCounts,
     current_decisions,
+    current_disposition_counts,
     decisions_of_night,
     latest_nights,
 )
@@ -80,8 +81,11 @@ def _line(d: StoredDecision, tz: str) -> LotLine:
                    local_time_text(d.decided_at_utc, tz))
 
 
+SETTLED = (Disposition.RELEASED, Disposition.REJECTED)  # need nothing of a person: counted, not listed
+
+
 def group_lots(decisions: list[StoredDecision], tz: str) -> tuple[tuple[Group, ...], tuple[tuple[str, int], ...]]:
-    """Latest decisions into the morning's groups (held by category first); released and rejected counted."""
+    """Latest decisions into the morning's groups (held by category first); any other disposition counted."""
     held: dict[HoldCategory, list[LotLine]] = {c: [] for c in HoldCategory if c != HoldCategory.OVERDUE}
     overdue: list[LotLine] = []
     pending: list[LotLine] = []
@@ -119,14 +123,14 @@ def reconcile(store: Store, night: NightCounts) -> Reconciliation:
 
 
 def morning_view(ws: Workspace, store: Store, *, night_id: int | None = None) -> MorningView:
-    """The morning view of the workspace (or as of one night, for its static page)."""
+    """The morning view of the workspace now; ``night_id``: with that night as the latest (its static page,
+    written as the night ends). Settled lots (released, rejected) are counted in the database, not read."""
     nights = latest_nights(store, 5 if night_id is None else 10_000)
     if night_id is not None:
         nights = [n for n in nights if n.id <= night_id][:5]
-    decisions = current_decisions(store)
-    if night_id is not None:
-        decisions = [d for d in decisions if d.record.night_id is None or d.record.night_id <= night_id]
-    groups, others = group_lots(decisions, ws.time_zone)
+    groups, others = group_lots(current_decisions(store, except_dispositions=SETTLED), ws.time_zone)
+    settled = current_disposition_counts(store)
+    others = tuple(sorted({**dict(others), **{d: n for d, n in settled.items() if d in SETTLED}}.items()))
     latest = nights[0] if nights else None
     quarantined = tuple(f for f in store.files_of_nights([n.id for n in nights]) if f.status != "archived")
     return MorningView(ws.plant_name, ws.time_zone, tuple(nights),
@@ -176,9 +180,8 @@ def lot_view(ws: Workspace, store: Store, lot_id: str, trended: tuple[str, ...])
             documents.append(Document(f"certificate, revision {d.revision}", f"certificates/{d.record.certificate.file}"))
         if d.record.report is not None:
             documents.append(Document(f"batch report, revision {d.revision}", f"reports/{d.record.report.file}"))
-    wanted = set(latest.record.input_files.values())
-    files = [f for f in store.files() if f.sha256 in wanted and f.status == "archived"]
-    inputs = tuple(Document(f.file_name, f.stored_as) for f in files)
+    archived = store.archived_files(sorted(set(latest.record.input_files.values())))
+    inputs = tuple(Document(f.file_name, f.stored_as) for f in sorted(archived.values(), key=lambda f: f.file_name))
     return LotView(latest, history, local_time_text(latest.decided_at_utc, ws.time_zone),
                    tuple(dossier.get("verdicts") or ()), tuple(dossier.get("plates") or ()), tuple(documents),
                    inputs, trended)

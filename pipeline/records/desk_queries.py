@@ -10,7 +10,7 @@ import json
 from dataclasses import dataclass
 from typing import Any
 
-from sqlalchemy import select
+from sqlalchemy import func, select
 
 from pipeline.records.store import Store
 from pipeline.records.stored import StoredDecision, decision_of, utc
@@ -50,11 +50,21 @@ def latest_nights(store: Store, limit: int = 5) -> list[NightCounts]:
                             r.lots_decided or 0) for r in rows]
 
 
-def current_decisions(store: Store) -> list[StoredDecision]:
-    """The latest revision of every lot, in the order decided."""
+def current_decisions(store: Store, *, except_dispositions: tuple[str, ...] = ()) -> list[StoredDecision]:
+    """The latest revision of every lot (but those of ``except_dispositions``), in the order decided."""
+    query = select(DecisionRow).where(DecisionRow.superseded_by.is_(None)).order_by(DecisionRow.id)
+    if except_dispositions:
+        query = query.where(DecisionRow.disposition.not_in(except_dispositions))
     with store.session() as s:
-        return [decision_of(r) for r in s.scalars(select(DecisionRow).where(DecisionRow.superseded_by.is_(None))
-                                                  .order_by(DecisionRow.id))]
+        return [decision_of(r) for r in s.scalars(query)]
+
+
+def current_disposition_counts(store: Store) -> dict[str, int]:
+    """How many lots stand at each disposition (their latest revision), counted in the database."""
+    with store.session() as s:
+        return {str(d): int(n) for d, n in s.execute(
+            select(DecisionRow.disposition, func.count(DecisionRow.id)).where(DecisionRow.superseded_by.is_(None))
+            .group_by(DecisionRow.disposition))}
 
 
 def decisions_of_night(store: Store, night_id: int) -> list[StoredDecision]:
