@@ -87,3 +87,37 @@ def test_document_path_checks(tmp_path):
     for bad in ("../secret.txt", "reports/../secret.txt", "/etc/passwd", "secret.txt", "reports/out.pdf",
                 "reports/.a.pdf", "reports\\..\\secret.txt", "", "reports/a.pdf\x00"):
         assert document_path(tmp_path, bad, allowed) is None, bad
+
+
+@pytest.mark.postgres
+@pytest.mark.slow
+def test_accounts_sign_in_and_lock_on_postgresql(tmp_path):
+    # The desk's writes take the run lock (an advisory lock on PostgreSQL) and chain their audit events.
+    from flows.desk.accounts import Desk, SignInRefused, create_account, sign_in
+    from flows.desk.roles import DeskRole
+    from pipeline.records import audit
+    from pipeline.records.store import Store
+    from pipeline.records.workspace import open_workspace, write_settings
+    from tests.pg import fresh_database
+
+    url, drop = fresh_database()
+    try:
+        write_settings(tmp_path, {"plant_name": "Brackwater Enzymes (test)", "database_url": url})
+        ws = open_workspace(tmp_path)
+        store = Store(ws.database_url)
+        desk = Desk(ws, store, DeskSettings(lock_after_failures=3))
+        create_account(ws, store, "vera", DeskRole.VIEWER, "vera's password 1", by="test")
+        assert sign_in(desk, "vera", "vera's password 1", "127.0.0.1").login == "vera"
+        for _ in range(3):
+            with pytest.raises(SignInRefused):
+                sign_in(desk, "vera", "not her password", "127.0.0.1")
+        with pytest.raises(SignInRefused):
+            sign_in(desk, "vera", "vera's password 1", "127.0.0.1")
+        user = accounts.user_by_login(store, "vera")
+        assert accounts.account_kinds(store, user.id) == ["login-succeeded"] + ["login-failed"] * 3 + ["locked",
+                                                                                                      "login-failed"]
+        check = audit.verify_trail(store, ws.log)
+        assert check.valid and check.store_records == 7, check.reason
+        store.engine.dispose()
+    finally:
+        drop()
