@@ -304,3 +304,14 @@ def test_a_desk_signature_writes_what_the_command_line_writes(space, tmp_path):
     assert set(cli_events[0].body) == set(desk_events[1].body)
     history = c.get("/audit", params={"lot": "LLC-9000-102"}).text
     assert "&lt;script&gt;alert(3)&lt;/script&gt;" in history and "<script>alert(3)" not in history
+
+
+def test_the_morning_view_links_every_charted_attribute(space):
+    # The shipped LLC-200 specification charts activity, specific activity and Km (specs/products/LLC-200.yaml).
+    c = signed_in(space, DeskRole.VIEWER)
+    text = c.get("/").text
+    for code in ("activity", "specific_activity", "km"):
+        assert f"/chart?product=LLC-200&amp;attribute={code}\"" in text
+    chart = c.get("/chart", params={"product": "LLC-200", "attribute": "specific_activity"})
+    assert chart.status_code == 200 and "<svg" in chart.text and "<script" not in chart.text
+    assert c.get("/chart", params={"product": "LLC-200", "attribute": "nope"}).status_code == 404

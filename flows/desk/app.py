@@ -28,7 +28,7 @@ from flows.desk.pages import render, stylesheet
 from flows.desk.roles import DeskAct, may
 from flows.desk.sessions import Session, SessionRegistry, same_token
 from flows.desk.views import document_path, lot_view, morning_view
-from pipeline.errors import LotgateError
+from pipeline.errors import LotgateError, NotFound
 from pipeline.records import audit
 from pipeline.records import desk_accounts as accounts
 from pipeline.records.desk_queries import trail_events
@@ -102,6 +102,8 @@ def create_app(desk: Desk, *, clock: Callable[[], float] | None = None) -> Starl
                 return await run_in_threadpool(handler, request, session, form)
             except DeskBusy as exc:
                 return refused(request, str(exc), 503, session)
+            except NotFound as exc:
+                return refused(request, str(exc), 404, session)
             except LotgateError as exc:
                 return refused(request, str(exc), 400 if not isinstance(exc, acts.ActRefused) else 403, session)
         return endpoint
@@ -138,7 +140,8 @@ def create_app(desk: Desk, *, clock: Callable[[], float] | None = None) -> Starl
         return response
 
     def morning(request: Request, session: Session, form: FormData) -> Response:
-        return page("morning.html", session=session, view=morning_view(desk.ws, desk.store))
+        return page("morning.html", session=session, view=morning_view(desk.ws, desk.store),
+                    charts=sorted(trended_attributes(desk.ws).items()))
 
     def lot(request: Request, session: Session, form: FormData) -> Response:
         lot_id = request.query_params.get("id", "")
