@@ -121,3 +121,26 @@ def test_accounts_sign_in_and_lock_on_postgresql(tmp_path):
         store.engine.dispose()
     finally:
         drop()
+
+
+def test_an_add_that_stopped_before_its_account_was_stored_leaves_nothing_in_the_way(tmp_path):
+    from flows.desk.accounts import create_account
+    from flows.desk.roles import DeskRole
+    from pipeline.records.store import Store
+    from pipeline.records.workspace import open_workspace, write_settings
+
+    root = tmp_path / "ws"
+    write_settings(root, {"plant_name": "Brackwater Enzymes (test)"})
+    ws = open_workspace(root)
+    store = Store(ws.database_url)
+    person = create_demo_identity(tmp_path / "person", ws.plant_name, "Ines Varga")
+    orphan = root / "keys" / "desk" / "ines.p12"
+    orphan.parent.mkdir(parents=True)
+    orphan.write_bytes(b"left by a stopped add")  # a sealed file without its account (a kill in between)
+    user = create_account(ws, store, "ines", DeskRole.REVIEWER, "a desk password 1", p12=person.p12_path,
+                          p12_passphrase_file=person.passphrase_path, by="test")
+    assert user.key_sha256 == hashlib.sha256(orphan.read_bytes()).hexdigest()
+    with pytest.raises(Exception, match="already has an account named 'ines'"):
+        create_account(ws, store, "ines", DeskRole.REVIEWER, "a desk password 1", p12=person.p12_path,
+                       p12_passphrase_file=person.passphrase_path, by="test")
+    assert user.key_sha256 == hashlib.sha256(orphan.read_bytes()).hexdigest()  # an account's key is never replaced

@@ -18,7 +18,7 @@ from pathlib import Path
 from argon2 import PasswordHasher
 from argon2.exceptions import InvalidHashError, VerificationError
 
-from flows.desk.keystore import SealedIdentity, seal_identity
+from flows.desk.keystore import KEY_FOLDER, SealedIdentity, seal_identity
 from flows.desk.roles import DeskRole, signs
 from flows.desk.settings import DeskSettings
 from pipeline.errors import InputError, LotgateError
@@ -102,8 +102,12 @@ def create_account(ws: Workspace, store: Store, login: str, role: DeskRole, pass
     password_hash = hash_password(password)
     by = by or getpass.getuser()
     with desk_write(Desk(ws, store, DeskSettings())):
+        check_new_account(store, login, role, p12)
         sealed: SealedIdentity | None = None
         if p12 is not None:
+            # No account has this name (checked above, under the lock): a sealed file under it was left by an
+            # add that stopped before its account was stored, and no record refers to it.
+            ws.root.joinpath(*KEY_FOLDER, f"{login}.p12").unlink(missing_ok=True)
             sealed = seal_identity(ws.root, login, p12, p12_passphrase, password, p12_passphrase_file)
         printed = sealed.signer_name if sealed else login
         event = audit.event("desk-account-added", time_zone=ws.time_zone, account=login, role=str(role),
