@@ -17,8 +17,10 @@ from pipeline.records.desk_queries import (
     NightCounts,
     current_decisions,
     current_disposition_counts,
-    decisions_of_night,
     latest_nights,
+    night_disposition_counts,
+    night_file_counts,
+    set_aside_files,
 )
 from pipeline.records.store import Store
 from pipeline.records.stored import StoredDecision, StoredFile
@@ -113,13 +115,9 @@ def group_lots(decisions: list[StoredDecision], tz: str) -> tuple[tuple[Group, .
 
 
 def reconcile(store: Store, night: NightCounts) -> Reconciliation:
-    stored = decisions_of_night(store, night.id)
-    counts: dict[str, int] = {}
-    for d in stored:
-        counts[d.disposition] = counts.get(d.disposition, 0) + 1
-    files = store.files(night.id)
-    return Reconciliation(night, len(stored), tuple(sorted(counts.items())), len(files),
-                          sum(f.status != "archived" for f in files))
+    counts = night_disposition_counts(store, night.id)
+    recorded, aside = night_file_counts(store, night.id)
+    return Reconciliation(night, sum(counts.values()), tuple(sorted(counts.items())), recorded, aside)
 
 
 def morning_view(ws: Workspace, store: Store, *, night_id: int | None = None) -> MorningView:
@@ -132,7 +130,7 @@ def morning_view(ws: Workspace, store: Store, *, night_id: int | None = None) ->
     settled = current_disposition_counts(store)
     others = tuple(sorted({**dict(others), **{d: n for d, n in settled.items() if d in SETTLED}}.items()))
     latest = nights[0] if nights else None
-    quarantined = tuple(f for f in store.files_of_nights([n.id for n in nights]) if f.status != "archived")
+    quarantined = tuple(set_aside_files(store, [n.id for n in nights]))
     return MorningView(ws.plant_name, ws.time_zone, tuple(nights),
                        tuple(local_time_text(n.started_at_utc, ws.time_zone) for n in nights), groups, others,
                        None if latest is None else reconcile(store, latest), quarantined)

@@ -13,8 +13,8 @@ from typing import Any
 from sqlalchemy import func, select
 
 from pipeline.records.store import Store
-from pipeline.records.stored import StoredDecision, decision_of, utc
-from pipeline.records.tables import AuditEvent, DecisionRow, NightRun
+from pipeline.records.stored import StoredDecision, StoredFile, decision_of, file_of, utc
+from pipeline.records.tables import AuditEvent, DecisionRow, InputFile, NightRun
 
 
 @dataclass(frozen=True)
@@ -67,11 +67,31 @@ def current_disposition_counts(store: Store) -> dict[str, int]:
             .group_by(DecisionRow.disposition))}
 
 
-def decisions_of_night(store: Store, night_id: int) -> list[StoredDecision]:
-    """Every revision a night stored, in the order stored."""
+def night_disposition_counts(store: Store, night_id: int) -> dict[str, int]:
+    """How many revisions a night stored, by disposition (counted in the database)."""
     with store.session() as s:
-        return [decision_of(r) for r in s.scalars(select(DecisionRow).where(DecisionRow.night_id == night_id)
-                                                  .order_by(DecisionRow.id))]
+        return {str(d): int(n) for d, n in s.execute(
+            select(DecisionRow.disposition, func.count(DecisionRow.id)).where(DecisionRow.night_id == night_id)
+            .group_by(DecisionRow.disposition))}
+
+
+def night_file_counts(store: Store, night_id: int) -> tuple[int, int]:
+    """(files recorded, files set aside: quarantined or duplicates) of a night, counted in the database."""
+    with store.session() as s:
+        recorded = s.scalar(select(func.count(InputFile.id)).where(InputFile.night_id == night_id)) or 0
+        aside = s.scalar(select(func.count(InputFile.id)).where(InputFile.night_id == night_id,
+                                                                InputFile.status != "archived")) or 0
+        return int(recorded), int(aside)
+
+
+def set_aside_files(store: Store, night_ids: list[int]) -> list[StoredFile]:
+    """The files these nights set aside (quarantined or duplicates), in the order recorded."""
+    if not night_ids:
+        return []
+    with store.session() as s:
+        return [file_of(r) for r in s.scalars(select(InputFile).where(InputFile.night_id.in_(night_ids),
+                                                                      InputFile.status != "archived")
+                                              .order_by(InputFile.id))]
 
 
 def trail_events(store: Store, *, lot_id: str | None = None, day_from: dt.date | None = None,
