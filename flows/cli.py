@@ -255,6 +255,9 @@ def build_parser() -> argparse.ArgumentParser:
 
     trend_cmd.add_commands(sub)
     bench.add_commands(sub)
+    from flows import desk_cmd
+
+    desk_cmd.add_commands(sub)
     return parser
 
 

@@ -129,3 +129,36 @@ class ChartPoint(Base):
     lot_id: Mapped[str] = mapped_column(String(40))
     value: Mapped[float] = mapped_column(Float)
     decision_id: Mapped[int] = mapped_column(ForeignKey("decisions.id"))
+
+
+# --- the reviewer's desk: accounts and what happens to them (migration 0006) -------------------
+class DeskUser(Base):
+    """A person's desk account, written once: login, role, Argon2 password hash, and the person's
+    signing identity re-encrypted under the desk password (a file under keys/desk/, its SHA-256 here).
+
+    Nothing about an account is ever updated: failures, locks, unlocks and sign-ins are rows of
+    ``desk_account_events``.
+    """
+
+    __tablename__ = "desk_users"
+    id: Mapped[int] = mapped_column(Integer, primary_key=True)
+    login: Mapped[str] = mapped_column(String(60), unique=True)
+    printed_name: Mapped[str] = mapped_column(String(120))
+    role: Mapped[str] = mapped_column(String(20))
+    password_hash: Mapped[str] = mapped_column(String(200))
+    key_file: Mapped[str | None] = mapped_column(String(200), nullable=True)
+    key_sha256: Mapped[str | None] = mapped_column(String(64), nullable=True)
+    signer_certificate_sha256: Mapped[str | None] = mapped_column(String(64), nullable=True)
+    created_at_utc: Mapped[dt.datetime] = mapped_column(DateTime(timezone=True))
+    created_by: Mapped[str] = mapped_column(String(120))
+
+
+class DeskAccountEvent(Base):
+    """One thing that happened to a desk account (append-only): a sign-in, a failure, a lock, an unlock."""
+
+    __tablename__ = "desk_account_events"
+    id: Mapped[int] = mapped_column(Integer, primary_key=True)
+    user_id: Mapped[int] = mapped_column(ForeignKey("desk_users.id"), index=True)
+    kind: Mapped[str] = mapped_column(String(30))
+    at_utc: Mapped[dt.datetime] = mapped_column(DateTime(timezone=True))
+    detail: Mapped[str | None] = mapped_column(Text, nullable=True)

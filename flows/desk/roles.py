@@ -1,0 +1,53 @@
+"""Desk roles and what each may do (the server checks these on every action)."""
+
+from __future__ import annotations
+
+from enum import StrEnum
+
+from pipeline.vocabulary import SignerRole
+
+
+class DeskRole(StrEnum):
+    VIEWER = "viewer"
+    REVIEWER = "reviewer"
+    INVESTIGATOR = "investigator"
+    CHART_OWNER = "chart-owner"
+    ADMINISTRATOR = "administrator"
+
+
+class DeskAct(StrEnum):
+    """Acts a person does at the desk; every signing act needs the password again."""
+
+    RELEASE = "release"
+    REJECT = "reject"
+    REBASELINE = "re-baseline"
+    INVALIDATE = "invalidate"  # wired when investigations land (a use case of their own)
+    MANAGE_USERS = "manage users"
+
+
+ROLE_ACTS: dict[DeskRole, frozenset[DeskAct]] = {
+    DeskRole.VIEWER: frozenset(),
+    DeskRole.REVIEWER: frozenset({DeskAct.RELEASE, DeskAct.REJECT}),
+    DeskRole.INVESTIGATOR: frozenset({DeskAct.INVALIDATE}),
+    DeskRole.CHART_OWNER: frozenset({DeskAct.REBASELINE}),
+    DeskRole.ADMINISTRATOR: frozenset({DeskAct.MANAGE_USERS}),  # accounts only: an administrator never signs
+}
+
+# What a role signs, in the words of the register of authorised signers.
+SIGNER_ROLES: dict[DeskRole, tuple[SignerRole, ...]] = {
+    DeskRole.REVIEWER: (SignerRole.RELEASE_APPROVAL, SignerRole.REJECTION),
+    DeskRole.INVESTIGATOR: (SignerRole.RESULT_INVALIDATION,),
+    DeskRole.CHART_OWNER: (SignerRole.REBASELINE,),
+}
+
+
+def signs(role: DeskRole) -> bool:
+    """Whether accounts of this role sign (and so must be linked to a signing identity)."""
+    return role in SIGNER_ROLES
+
+
+def may(role: str, act: DeskAct) -> bool:
+    try:
+        return act in ROLE_ACTS[DeskRole(role)]
+    except ValueError:  # a role word this version does not know: nothing
+        return False

@@ -1,0 +1,82 @@
+"""A small workspace for the desk's tests, made directly in the store (a simulation with known content).
+
+Lots with hostile numbers and reasons cannot come through the intake (it refuses them), so they
+are stored here as records, as a store damaged or fed by another system could hold them.
+"""
+
+from __future__ import annotations
+
+import re
+from dataclasses import dataclass
+from pathlib import Path
+
+from flows.desk.accounts import Desk, create_account
+from flows.desk.roles import DeskRole
+from flows.desk.settings import DeskSettings
+from pipeline.records.demo_identity import create_demo_identity
+from pipeline.records.store import Store
+from pipeline.records.stored import DecisionWrite
+from pipeline.records.workspace import open_workspace, write_settings
+from pipeline.release.records import DecisionRecord, RecordedResult
+
+HOSTILE_LOT = "<script>alert(1)</script>"
+HOSTILE_REASON = '"><img src=x onerror=alert(2)> & <b>bold</b>'
+HOSTILE_FILE = "lims-<i>x</i>.csv"
+PASSWORDS = {role: f"{role.value} password 2026" for role in DeskRole}
+SIGNER_NAMES = {DeskRole.REVIEWER: "Ines Varga", DeskRole.INVESTIGATOR: "Tomas Orlik",
+                DeskRole.CHART_OWNER: "Lena Marsh"}
+
+
+@dataclass
+class DeskWorkspace:
+    root: Path
+    desk: Desk
+
+
+def _record(lot: str, disposition: str, label: str, categories=(), reasons=(), value=200.0, night=1):
+    return DecisionRecord(
+        lot_id=lot, product="LLC-200", disposition=disposition, hold_categories=tuple(categories),
+        reasons=tuple(reasons), spec_version="3.1", spec_sha256="0" * 64, fingerprint=f"fp-{lot}", label=label,
+        night_id=night, decided_at_utc="2026-11-27T22:00:00+00:00",
+        results=(RecordedResult("specific_activity", value, f"{value:.0f}", "U/mg", "pass"),))
+
+
+def make_workspace(root: Path) -> DeskWorkspace:
+    write_settings(root, {"plant_name": "Brackwater Enzymes (test)", "time_zone": "Europe/Berlin"})
+    ws = open_workspace(root)
+    ws.make_folders()
+    store = Store(ws.database_url)
+    night = store.start_night("test", "c" * 32)
+    store.record_files(night, [
+        dict(file_name=HOSTILE_FILE, sha256="1" * 64, kind=None, layout_version=None, status="quarantined",
+             reason=f"- {HOSTILE_REASON}", stored_as="quarantine/lims-x.csv")], [])
+    writes = [DecisionWrite(_record(f"LLC-9000-{i:03d}", "released", "released", value=200.0 + (i % 5)),
+                            "nightly", night_id=night, chart_values={"specific_activity": 200.0 + (i % 5)})
+              for i in range(1, 7)]
+    writes += [
+        DecisionWrite(_record(HOSTILE_LOT, "held", "held: out of specification", ["out of specification"],
+                              [HOSTILE_REASON]), "nightly", night_id=night),
+        DecisionWrite(_record("LLC-9000-101", "held", "held: out of trend", ["out of trend"],
+                              ["specific activity far below the trend"]), "nightly", night_id=night),
+        DecisionWrite(_record("LLC-9000-102", "held", "held: overdue", ["overdue"], ["lead result overdue"]),
+                      "nightly", night_id=night),
+        DecisionWrite(_record("LLC-9000-103", "ready for release", "ready for release"), "nightly", night_id=night),
+        DecisionWrite(_record("LLC-9000-104", "pending", "pending", reasons=["protein due"]), "nightly",
+                      night_id=night),
+    ]
+    store.add_decisions(writes)
+    store.finish_night(night, files_received=1, files_archived=0, files_quarantined=1, lots_decided=len(writes))
+    (root / "reports" / "LLC-9000-001_r1_batch-report.pdf").write_bytes(b"%PDF-1.4 test\n")
+    for role in DeskRole:
+        p12 = None
+        passphrase_file = None
+        if role in SIGNER_NAMES:
+            person = create_demo_identity(root.parent / f"person-{role.value}", ws.plant_name, SIGNER_NAMES[role])
+            p12, passphrase_file = person.p12_path, person.passphrase_path
+        create_account(ws, store, re.sub("[^a-z]", "", role.value), role, PASSWORDS[role], p12=p12,
+                       p12_passphrase_file=passphrase_file, by="test administrator")
+    return DeskWorkspace(root, Desk(ws, store, DeskSettings()))
+
+
+def login_name(role: DeskRole) -> str:
+    return re.sub("[^a-z]", "", role.value)
