@@ -149,6 +149,15 @@ class ProblemCode(StrEnum):
     PLATE_INCONSISTENT = "plate-inconsistent"
     TIME_ORDER = "time-order"
     DATE_ORDER = "date-order"
+    # a file against the controlled documents
+    PLATE_FORMAT = "plate-format"  # a read of a plate format its method does not declare
     # the report itself, and lotgate's own defects
     MORE = "more"  # further problems of the kinds listed are not listed
     INTERNAL_ERROR = "internal-error"  # a defect of lotgate, never of the file
+
+
+class SpecificationDate(StrEnum):
+    """Which of a lot's dates chooses the specification version in force (a plant setting)."""
+
+    ASSAY = "assay"  # the version in force on the day the lot was assayed (the default)
+    MANUFACTURE = "manufacture"  # the version in force on the day the lot was made

@@ -88,9 +88,23 @@ class RateWindowFile(Strict):
     max_slope_change: float
 
 
+class ReferenceLotFile(Strict):
+    """One lot of the method's reference standard: its assigned activity and the days it may be used."""
+
+    lot: Text
+    assigned_u_per_ml: float = Positive
+    valid_from: IsoDate
+    valid_to: IsoDate | None = Field(None, description="the last day the lot may be used; empty: until replaced")
+
+    @model_validator(mode="after")
+    def _in_order(self) -> ReferenceLotFile:
+        if self.valid_to is not None and self.valid_to < self.valid_from:
+            raise ValueError(f"has valid_to {self.valid_to} before valid_from {self.valid_from}")
+        return self
+
+
 class KineticSuitability(Strict):
-    reference_lot: Text
-    reference_assigned_u_per_ml: float = Positive
+    reference_lots: list[ReferenceLotFile] = Field(min_length=1)
     recovery_pct: Limits
     replicate_cv_max_pct: float = Positive
     blank_rate_max_au_per_min: float = Positive
@@ -102,15 +116,38 @@ class KineticSettings(Strict):
     km_max_relative_se: float = Field(0.25, gt=0)
 
 
+PlateFormatKey = Literal[96, 384]
+
+
+class KineticFormatFile(Strict):
+    """A kinetic method's settings on one plate format: light path and volumes per well."""
+
+    path_length_cm: float = Positive
+    reaction_volume_ml: float = Positive
+    sample_volume_ml: float = Positive
+
+
+class OpticalFormatFile(Strict):
+    """An A280 method's light path on one plate format."""
+
+    path_length_cm: float = Positive
+
+
+class CurveFormatFile(Strict):
+    """A standard-curve method's volumes on one plate format (recorded; the curve absorbs the path)."""
+
+    reaction_volume_ml: float | None = Field(None, gt=0)
+    sample_volume_ml: float | None = Field(None, gt=0)
+
+
 class KineticMethodFile(MethodHeader):
     wavelength_nm: float = Positive
     temperature_c: float
     ph: float
     unit_definition: str = ""
     epsilon_per_mm_per_cm: float = Positive
-    path_length_cm: float = Positive
-    reaction_volume_ml: float = Positive
-    sample_volume_ml: float = Positive
+    plate_formats: dict[PlateFormatKey, KineticFormatFile] = Field(
+        min_length=1, description="a mapping of plate format (96 or 384) to path_length_cm and volumes")
     assay_substrate_mm: float = Positive
     sample_preparation: Text | None = None
     rate_window: RateWindowFile
@@ -124,7 +161,8 @@ class ProteinSuitability(Strict):
 
 class Uv280MethodFile(MethodHeader):
     wavelength_nm: float = Positive
-    path_length_cm: float = Positive
+    plate_formats: dict[PlateFormatKey, OpticalFormatFile] = Field(
+        min_length=1, description="a mapping of plate format (96 or 384) to path_length_cm")
     linear_range_au: Limits
     suitability: ProteinSuitability | None = None
 
@@ -141,6 +179,8 @@ class CurveMethodFile(MethodHeader):
     """A protein method read against a standard curve (each kind adds its reader's fields)."""
 
     standard: str = ""
+    plate_formats: dict[PlateFormatKey, CurveFormatFile] = Field(
+        min_length=1, description="a mapping of plate format (96 or 384) to the volumes per well")
     curve: CurveFile
     suitability: ProteinSuitability | None = None
 
