@@ -10,7 +10,7 @@ from __future__ import annotations
 
 from typing import Literal
 
-from pydantic import Field, model_validator
+from pydantic import Field, field_validator, model_validator
 
 from pipeline.controlled.strict import IsoDate, Strict, Text
 
@@ -80,6 +80,11 @@ class MethodHeader(DocumentHeader):
     title: Text | None = None
     measurement: Text
 
+    @field_validator("plate_formats", check_fields=False)
+    @classmethod
+    def _formats_once(cls, formats: list[FormatFile]) -> list[FormatFile]:
+        return _one_each(formats)
+
 
 class RateWindowFile(Strict):
     min_points: int
@@ -116,10 +121,20 @@ class KineticSettings(Strict):
     km_max_relative_se: float = Field(0.25, gt=0)
 
 
-PlateFormatKey = Literal[96, 384]
+class FormatFile(Strict):
+    """One plate format a method declares: 96 or 384 wells."""
+
+    wells: Literal[96, 384]
 
 
-class KineticFormatFile(Strict):
+def _one_each(formats: list[FormatFile]) -> list[FormatFile]:
+    wells = [f.wells for f in formats]
+    if len(set(wells)) != len(wells):
+        raise ValueError(f"declares a plate format twice: {wells}; one entry per format")
+    return formats
+
+
+class KineticFormatFile(FormatFile):
     """A kinetic method's settings on one plate format: light path and volumes per well."""
 
     path_length_cm: float = Positive
@@ -127,13 +142,13 @@ class KineticFormatFile(Strict):
     sample_volume_ml: float = Positive
 
 
-class OpticalFormatFile(Strict):
+class OpticalFormatFile(FormatFile):
     """An A280 method's light path on one plate format."""
 
     path_length_cm: float = Positive
 
 
-class CurveFormatFile(Strict):
+class CurveFormatFile(FormatFile):
     """A standard-curve method's volumes on one plate format (recorded; the curve absorbs the path)."""
 
     reaction_volume_ml: float | None = Field(None, gt=0)
@@ -146,8 +161,8 @@ class KineticMethodFile(MethodHeader):
     ph: float
     unit_definition: str = ""
     epsilon_per_mm_per_cm: float = Positive
-    plate_formats: dict[PlateFormatKey, KineticFormatFile] = Field(
-        min_length=1, description="a mapping of plate format (96 or 384) to path_length_cm and volumes")
+    plate_formats: list[KineticFormatFile] = Field(
+        min_length=1, description="a list of plate formats, each with wells (96 or 384) and path_length_cm and volumes")
     assay_substrate_mm: float = Positive
     sample_preparation: Text | None = None
     rate_window: RateWindowFile
@@ -161,8 +176,8 @@ class ProteinSuitability(Strict):
 
 class Uv280MethodFile(MethodHeader):
     wavelength_nm: float = Positive
-    plate_formats: dict[PlateFormatKey, OpticalFormatFile] = Field(
-        min_length=1, description="a mapping of plate format (96 or 384) to path_length_cm")
+    plate_formats: list[OpticalFormatFile] = Field(
+        min_length=1, description="a list of plate formats, each with wells (96 or 384) and path_length_cm")
     linear_range_au: Limits
     suitability: ProteinSuitability | None = None
 
@@ -179,8 +194,8 @@ class CurveMethodFile(MethodHeader):
     """A protein method read against a standard curve (each kind adds its reader's fields)."""
 
     standard: str = ""
-    plate_formats: dict[PlateFormatKey, CurveFormatFile] = Field(
-        min_length=1, description="a mapping of plate format (96 or 384) to the volumes per well")
+    plate_formats: list[CurveFormatFile] = Field(
+        min_length=1, description="a list of plate formats, each with wells (96 or 384) and the volumes per well")
     curve: CurveFile
     suitability: ProteinSuitability | None = None
 

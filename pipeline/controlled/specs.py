@@ -9,7 +9,6 @@ or a SpecificationError naming the file and the field.
 from __future__ import annotations
 
 import datetime as dt
-from collections.abc import Mapping
 from dataclasses import dataclass
 from typing import Any, ClassVar, Protocol
 
@@ -271,9 +270,13 @@ def method_document(method: MethodHeader, sha256: str) -> Document:
     return _document(method, method.method_id, sha256)
 
 
-def _formats(raw: Mapping[int, Any]) -> tuple[PlateFormatSettings, ...]:
+def _formats(raw: list[Any]) -> tuple[PlateFormatSettings, ...]:
     """The per-format settings of a checked method file, by plate format."""
-    return tuple(PlateFormatSettings(plate_format=fmt, **settings.model_dump()) for fmt, settings in sorted(raw.items()))
+    out = []
+    for entry in sorted(raw, key=lambda f: f.wells):
+        settings = entry.model_dump()
+        out.append(PlateFormatSettings(plate_format=settings.pop("wells"), **settings))
+    return tuple(out)
 
 
 def _reference_lots(raw: list[ReferenceLotFile], where: str) -> tuple[ReferenceLot, ...]:
