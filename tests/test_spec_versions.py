@@ -16,7 +16,11 @@ import pytest
 
 from pipeline.controlled.catalog import Catalog
 from pipeline.errors import SpecificationError
-from pipeline.records.controlled_files import load_catalog, open_controlled_documents, shipped_folders
+from pipeline.records.controlled_files import (
+    load_catalog,
+    open_controlled_documents,
+    shipped_folders,
+)
 from pipeline.records.workspace import open_workspace, write_settings
 from pipeline.release.decision import decide_night
 from pipeline.release.lot_evaluation import LimsEntry, LotInputs, evaluate_lots
