@@ -99,7 +99,7 @@ def format_problems(parsed: list[ParsedExport], catalog: Catalog) -> dict[str, E
                 continue  # the assembly names these
             why = undeclared_format(int(frame["plate_format"].iloc[0]), method)
             if why is not None:
-                problems.append(Problem(ProblemCode.PLATE_FORMAT, f"plate {plate_id}: {why}", column="plate_id"))
+                problems.append(Problem(ProblemCode.PLATE_FORMAT, f"plate {plate_id}: {why}"))
         if problems:
             out[export.file_name] = ExportRejected(export.file_name, problems)
     return out
