@@ -15,7 +15,13 @@ import re
 
 import pytest
 
-from pipeline.documents.lims_codes import DISPOSITION_CODES, HOLD_CODES, UCUM_CODES, disposition_code, unit_code
+from pipeline.documents.lims_codes import (
+    DISPOSITION_CODES,
+    HOLD_CODES,
+    UCUM_CODES,
+    disposition_code,
+    unit_code,
+)
 from pipeline.documents.lims_results import COLUMNS, LAYOUT_VERSION, lims_files, result_rows
 from pipeline.release.records import DecisionRecord, RecordedResult
 from pipeline.vocabulary import Disposition, HoldCategory
