@@ -140,3 +140,25 @@ def test_two_versions_of_a_method_on_one_day_are_refused(tmp_path):
     assert catalog.method_on("LIP-PNPB", "2026-11-30").document.version == "1.2"
     assert catalog.method_on("LIP-PNPB", "2026-12-01").document.version == "1.3"
     assert catalog.method_on("LIP-PNPB", "2026-01-14") is None  # before the first version
+
+
+@pytest.mark.slow
+def test_the_night_stops_in_one_line_on_two_versions_effective_the_same_day(tmp_path):
+    """The attack: a second file of LLC-200 dated like the first; which limits apply that day would be a guess."""
+    import subprocess
+    import sys
+    products = _copy_products(tmp_path)
+    text = (products / "LLC-200-v3.2.yaml").read_text(encoding="utf-8")
+    (products / "LLC-200-v3.3.yaml").write_text(text.replace('version: "3.2"', 'version: "3.3"'), encoding="utf-8")
+    write_settings(tmp_path, {"controlled": {"specifications": "products"}})
+    (tmp_path / "keys").mkdir()
+    (tmp_path / "keys" / "use-demo-identity").touch()
+    (tmp_path / "inbox").mkdir()
+    (tmp_path / "inbox" / "lots-20261124.csv").write_bytes(b"lot_id\n")
+    done = subprocess.run([sys.executable, "-m", "flows.cli", "run", "--workspace", str(tmp_path)],
+                          capture_output=True, text=True, timeout=300, cwd=REPO)
+    assert done.returncode == 2, done.stdout + done.stderr
+    assert "Traceback" not in done.stderr and done.stderr.count("\n") == 1, done.stderr
+    assert "version 3.3 takes effect on 2026-11-26, the same day as version 3.2" in done.stderr
+    assert "LLC-200-v3.2.yaml" in done.stderr and "LLC-200-v3.3.yaml" in done.stderr
+    assert (tmp_path / "inbox" / "lots-20261124.csv").exists() and not (tmp_path / "lotgate.db").exists()
