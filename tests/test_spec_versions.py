@@ -162,3 +162,13 @@ def test_the_night_stops_in_one_line_on_two_versions_effective_the_same_day(tmp_
     assert "version 3.3 takes effect on 2026-11-26, the same day as version 3.2" in done.stderr
     assert "LLC-200-v3.2.yaml" in done.stderr and "LLC-200-v3.3.yaml" in done.stderr
     assert (tmp_path / "inbox" / "lots-20261124.csv").exists() and not (tmp_path / "lotgate.db").exists()
+
+
+def test_the_night_notes_each_staged_version():
+    notes = load_catalog().staged_notes([("2026-11-23", "2026-11-25"), ("2026-11-22", "2026-11-24")])
+    assert notes == [
+        "specification LLC-200 v3.2 is on file and takes effect on 2026-11-26: staged, not used tonight (tonight's "
+        "lots were assayed up to 2026-11-25)",
+        "method PROT-FL485 v1.0 is on file and takes effect on 2026-12-01: staged, not used tonight (tonight's lots "
+        "were assayed up to 2026-11-25)"]
+    assert load_catalog().staged_notes([("2026-11-25", "2026-11-26")]) == [notes[1].replace("11-25)", "11-26)")]

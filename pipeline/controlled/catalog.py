@@ -128,9 +128,27 @@ class Catalog:
                 out[method_id] = method
         return out
 
-    def staged(self, on: str | dt.date) -> tuple[Any, ...]:
-        """Every specification and method version on file that takes effect after ``on``."""
-        day = _day(on)
-        documents = [*(s for k in sorted(self.specifications) for s in self.all_specifications(k)),
-                     *self.every_method()]
-        return tuple(d for d in documents if d.document.effective_from > day)
+    def staged(self, on: str | dt.date, methods_on: str | dt.date | None = None) -> tuple[Any, ...]:
+        """Every specification version taking effect after ``on``, and method version after ``methods_on``
+        (default ``on``): on file, not yet in force."""
+        day, method_day = _day(on), _day(methods_on if methods_on is not None else on)
+        specs = [s for k in sorted(self.specifications) for s in self.all_specifications(k)
+                 if s.document.effective_from > day]
+        return (*specs, *(m for m in self.every_method() if m.document.effective_from > method_day))
+
+    def staged_notes(self, lot_dates: list[tuple[str, str]]) -> list[str]:
+        """A note for each version on file that none of the night's lots (manufactured, assayed) is judged by yet."""
+        if not lot_dates:
+            return []
+        spec_day = max(self.specification_date_of(made, assayed) for made, assayed in lot_dates)
+        assay_day = max(_day(assayed) for _, assayed in lot_dates)
+        which = "made" if self.specification_date == SpecificationDate.MANUFACTURE else "assayed"
+        notes = []
+        for document in self.staged(spec_day, assay_day):
+            header = document.document
+            what = (f"method {header.name}" if hasattr(document, "method_id") else f"specification {header.name}")
+            last = assay_day if hasattr(document, "method_id") else spec_day
+            verb = "assayed" if hasattr(document, "method_id") else which
+            notes.append(f"{what} v{header.version} is on file and takes effect on {header.effective_from}: staged, "
+                         f"not used tonight (tonight's lots were {verb} up to {last})")
+        return notes

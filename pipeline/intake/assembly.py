@@ -293,4 +293,5 @@ def assemble(parsed_exports: list[ParsedExport], quarantined: list[QuarantinedFi
         lots.append(LotInputs(lot_id=lot_id, product_code=product, manufactured_on=row["manufactured_on"],
                               assay_date=row["assay_date"], activity_plate=None, protein_plate=None,
                               lims=lims.get(lot_id, {}), input_files=files, problems=tuple(problems)))
+    notes += catalog.staged_notes([(lot.manufactured_on, lot.assay_date) for lot in lots])
     return Assembly(lots, activity_plates, protein_plates, notes, {k: v[0] for k, v in registry_file.items()})
