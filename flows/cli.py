@@ -141,7 +141,7 @@ def print_summary(summary, console=None) -> None:
         first = [line for line in reason.splitlines() if line.startswith("- ")][:2]
         console.print(f"[red]Quarantined[/] {name}: {' '.join(f.lstrip('- ') for f in first)}")
     for note in summary.notes:
-        console.print(f"[yellow]Not decided[/]: {note}")
+        console.print(f"[yellow]Note[/]: {note}")
     if summary.lims_files:
         console.print(f"LIMS results: {', '.join(summary.lims_files)}")
 

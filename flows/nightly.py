@@ -24,6 +24,7 @@ from pipeline.night.decide import load_charts as read_charts
 from pipeline.night.evaluate import evaluate as evaluate_lots
 from pipeline.night.open import CertificateSigner, open_night
 from pipeline.night.publish import publish as publish_lots
+from pipeline.night.read_formats import set_aside_undeclared_formats
 from pipeline.night.receive import assemble_intake, check_folders_writable
 from pipeline.night.receive import receive as receive_exports
 from pipeline.night.recovery import recover_interrupted
@@ -114,6 +115,7 @@ def _stages(ws: Workspace, store: Store, signer: CertificateSigner, step: dict,
     recovered = recover_interrupted(ws, store, identity)
     night_id = store.start_night(__version__, identity, shared=ws.store_shared)
     intake = timed("receive", ws, store, layouts, night_id, _progress, recovered.quarantined)
+    set_aside_undeclared_formats(ws, store, intake, catalog)
     assembly = timed("assemble", intake, catalog)
     evaluations, _plates = timed("evaluate", assembly, catalog)
     charts = timed("load_charts", store, catalog, evaluations)

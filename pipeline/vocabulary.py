@@ -151,6 +151,8 @@ class ProblemCode(StrEnum):
     PLATE_INCONSISTENT = "plate-inconsistent"
     TIME_ORDER = "time-order"
     DATE_ORDER = "date-order"
+    # a file against the controlled documents
+    PLATE_FORMAT = "plate-format"  # a read of a plate format its method does not declare
     # the report itself, and lotgate's own defects
     MORE = "more"  # further problems of the kinds listed are not listed
     INTERNAL_ERROR = "internal-error"  # a defect of lotgate, never of the file
@@ -171,3 +173,8 @@ class ResultQualifier(StrEnum):
     GREATER_THAN = ">"  # the true value is above the number given
     NOT_DETECTED = "not detected"  # below the method's detection limit; no number
     TOO_NUMEROUS = "too numerous to count"  # a count above the countable range; no number
+class SpecificationDate(StrEnum):
+    """Which of a lot's dates chooses the specification version in force (a plant setting)."""
+
+    ASSAY = "assay"  # the version in force on the day the lot was assayed (the default)
+    MANUFACTURE = "manufacture"  # the version in force on the day the lot was made

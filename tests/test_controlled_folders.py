@@ -62,8 +62,9 @@ def test_the_workspace_setting_comes_before_the_environment(tmp_path, monkeypatc
     assert folders.methods == environment / "methods"  # not named in the setting: the environment
     assert folders.layouts == REPO / "schemas"
     catalog, layouts = open_controlled_documents(open_workspace(tmp_path))
-    assert catalog.specifications["LLC-200"].document.version == "3.1-P2"
-    assert catalog.specifications["PGR-040"].document.version != "3.1-P2"
+    # specs/products also holds LLC-200 3.2 (effective 2026-11-26): 3.1-P2 is the version in force before it
+    assert catalog.specification_on("LLC-200", "2026-11-25").document.version == "3.1-P2"
+    assert catalog.specification_on("PGR-040", "2026-11-25").document.version != "3.1-P2"
     assert sorted(catalog.methods) == ["LIP-PNPB", "PROT-A280", "PROT-DYE595", "PROT-FL485", "PRT-SAAPF"]
     assert len(layouts) == 6
 

@@ -15,6 +15,7 @@ import datetime as dt
 import numpy as np
 import pytest
 
+from pipeline.controlled.catalog import Catalog
 from pipeline.controlled.specs import parse_specification
 from pipeline.release.decision import ChartState, decide_night
 from pipeline.release.lot_evaluation import LotEvaluation
@@ -62,7 +63,8 @@ def evaluation(number: int, value: float) -> LotEvaluation:
 def test_drift_is_held_out_of_trend_before_the_first_oos_lot(direction, limit):
     values = simulated_history(direction)
     charts: dict[tuple[str, str], ChartState] = {}
-    night = decide_night([evaluation(i, v) for i, v in enumerate(values)], {"SIM-1": SPEC}, {}, charts, "test")
+    night = decide_night([evaluation(i, v) for i, v in enumerate(values)], Catalog({"SIM-1": SPEC}, {}), charts,
+                         "test")
     decisions = night.lots
     categories = [d.decision.hold_categories for d in decisions]
     first_oot = next(i for i, c in enumerate(categories) if HoldCategory.OUT_OF_TREND in c)

@@ -82,7 +82,9 @@ def test_lims_files_name_the_decisions_and_list_every_result():
     rows = result_rows([_record(revision=2, decided_at_utc="2026-12-01T02:00:00+00:00")])
     export = lims_files([7, 9], rows, "0.0-test")
     assert export.stem == "results-000007-000009"
+    # layout 2.0 (docs/lims-results-layout.md): coded disposition, the unrounded value beside the reported text
     assert export.files["results-000007-000009.csv"].decode().splitlines() == [
-        "lot_id,product_code,attribute,value,unit,verdict,disposition,revision,spec_version,decided_at_utc",
-        "L-1,LLC-200,activity,1200,U/mL,pass,released,2,3.1,2026-12-01T02:00:00+00:00"]
+        "layout_version,lot_id,product_code,revision,disposition_code,hold_codes,decided_by_kind,decided_by,"
+        "decided_at_utc,spec_version,attribute,value,reported,unit,unit_system,verdict",
+        "2.0,L-1,LLC-200,2,REL,,NIGHTLY,,2026-12-01T02:00:00+00:00,3.1,activity,1200.4,1200,U/mL,UCUM,pass"]
     assert json.loads(export.files["results-000007-000009.json"])["decisions"] == [7, 9]

@@ -7,6 +7,7 @@ The recoveries are SIMULATED (invented); the rule is Nelson's rule 1, one point 
 import dataclasses
 import datetime as dt
 
+from pipeline.controlled.catalog import Catalog
 from pipeline.records.controlled_files import load_catalog
 from pipeline.release.decision import ChartState, decide_night
 from pipeline.release.lot_evaluation import LotEvaluation
@@ -37,7 +38,7 @@ def test_a_reference_out_of_trend_holds_the_plates_lots():
     # Plate 9 recovers 106.5 %: inside the method's 90–110 % window, far beyond 3σ of the baseline.
     lots += [lot(8, "AK-T-08", 106.5), lot(9, "AK-T-08", 106.5), lot(10, "AK-T-10", 100.1)]
     charts: dict[tuple[str, str], ChartState] = {}
-    night = decide_night(lots, {"LLC-200": SPEC}, METHODS, charts, "test")
+    night = decide_night(lots, Catalog({"LLC-200": SPEC}, METHODS), charts, "test")
     decisions = night.lots
     assert all(d.decision.disposition == Disposition.RELEASED for d in decisions[:8])
     for held in decisions[8:10]:

@@ -22,7 +22,7 @@ from pipeline.assay.protein_plates import (
     invalid_protein_plate,
 )
 from pipeline.controlled.file_models import CurveMethodFile
-from pipeline.controlled.specs import Document, curve_fields, method_document
+from pipeline.controlled.specs import Document, PlateFormatSettings, curve_fields, method_document
 from pipeline.controlled.strict import checked
 from pipeline.errors import SpecificationError
 from pipeline.science.measurement import Measurement
@@ -46,6 +46,7 @@ class FluorescenceMethod:
     bias_limit_pct: float
     lowest_bias_limit_pct: float
     replicate_cv_max_pct: float
+    plate_formats: tuple[PlateFormatSettings, ...] = ()  # the volumes per well on each plate format
     measurement: ClassVar[str] = "fluorescence-endpoint"
 
 

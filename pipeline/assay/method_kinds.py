@@ -52,7 +52,7 @@ class MethodKind:
 
 
 def _activity(plate_id: str, plate: PlateReads, method: Any, context: PlateContext) -> ActivityPlateResult:
-    return evaluate_activity_plate(plate_id, plate.plate_map, plate.reads, method)
+    return evaluate_activity_plate(plate_id, plate.plate_map, plate.reads, method, plate.assay_date)
 
 
 def _protein(plate_id: str, plate: PlateReads, method: Any, context: PlateContext) -> ProteinPlateResult:

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import datetime as dt
 from collections.abc import Mapping
 from dataclasses import dataclass, field
 
@@ -15,6 +16,8 @@ class PlateReads:
     plate_map: pd.DataFrame
     reads: pd.DataFrame
     method_id: str
+    assay_date: dt.date | None = None  # the registered assay date of the plate's lots (chooses versions)
+    method_version: str | None = None  # the method version in force on that date (None: the newest)
 
 
 @dataclass(frozen=True)

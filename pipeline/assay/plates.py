@@ -8,13 +8,19 @@ plate — and says why (docs/assay-rules.md, "Assay validity"). Nothing is dropp
 
 from __future__ import annotations
 
+import datetime as dt
 from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
 import pandas as pd
 
-from pipeline.controlled.specs import KineticMethod
+from pipeline.controlled.specs import (
+    KineticMethod,
+    PlateFormatSettings,
+    declared_formats,
+    format_settings,
+)
 from pipeline.errors import CalculationError, LotgateError
 from pipeline.plain_data import to_plain
 from pipeline.science import protein_readings, rates, units
@@ -50,7 +56,7 @@ class ActivityPlateResult:
 
     def summary(self) -> dict[str, Any]:
         return to_plain({"plate_id": self.plate_id, "method": f"{self.method_id} v{self.method_version}",
-                       "method_id": self.method_id, "kind": "activity",
+                       "method_id": self.method_id, "method_version": self.method_version, "kind": "activity",
                        "valid": self.valid, "reasons": list(self.reasons),
                        "reference_recovery_pct": self.reference_recovery_pct,
                        "blank_rate_au_per_min": self.blank_rate_au_per_min})
@@ -101,10 +107,12 @@ def _reads_matrix(plate_id: str, reads: pd.DataFrame, wells: list[str]) -> tuple
     return times[0] / 60.0, matrix
 
 
-def _activity_u_per_ml(method: KineticMethod, rate_au_per_min: np.ndarray, dilution: np.ndarray) -> np.ndarray:
+def _activity_u_per_ml(method: KineticMethod, well: PlateFormatSettings, rate_au_per_min: np.ndarray,
+                       dilution: np.ndarray) -> np.ndarray:
+    """Activity with the light path and volumes of the plate's format (``well``)."""
     return np.asarray(units.activity_u_per_ml(
-        rate_au_per_min, method.epsilon_per_mm_per_cm, method.path_length_cm,
-        method.reaction_volume_ml, method.sample_volume_ml, dilution))
+        rate_au_per_min, method.epsilon_per_mm_per_cm, well.path_length_cm,
+        well.reaction_volume_ml, well.sample_volume_ml, dilution))
 
 
 def _invalid_plate(plate_id: str, method: KineticMethod, lots: list[str], reasons: list[str]) -> ActivityPlateResult:
@@ -115,14 +123,27 @@ def _invalid_plate(plate_id: str, method: KineticMethod, lots: list[str], reason
 
 
 def evaluate_activity_plate(plate_id: str, plate_map: pd.DataFrame, reads: pd.DataFrame,
-                            method: KineticMethod) -> ActivityPlateResult:
+                            method: KineticMethod, assay_date: dt.date | None) -> ActivityPlateResult:
     """Rates, blanks, reference recovery, lot activities and kinetic series of one plate.
 
-    activity [U/mL] = (ΔA/min − blank ΔA/min) / (ε·l) · V_reaction / V_sample · DF
-    recovery [%] = mean reference activity / assigned activity · 100
+    activity [U/mL] = (ΔA/min − blank ΔA/min) / (ε·l) · V_reaction / V_sample · DF, with the path
+    length l and the volumes the method declares for the plate's format (96 or 384 wells);
+    recovery [%] = mean reference activity / assigned activity · 100, against the reference
+    standard lot valid on the plate's assay date.
     """
     used = plate_map[plate_map["role"] != "empty"].reset_index(drop=True)
     lots = sorted({str(x) for x in used.loc[used["role"].isin(["sample", "kinetic"]), "lot_id"].dropna()})
+    plate_format = int(plate_map["plate_format"].iloc[0])
+    well_settings = format_settings(method, plate_format)
+    if well_settings is None:
+        return _invalid_plate(plate_id, method, lots, [
+            f"plate {plate_id}: method {method.method_id} v{method.document.version} declares no settings for "
+            f"{plate_format}-well plates (it declares {', '.join(map(str, declared_formats(method)))})"])
+    reference = method.reference_on(assay_date) if assay_date is not None else None
+    if reference is None:
+        return _invalid_plate(plate_id, method, lots, [
+            f"plate {plate_id}: no reference standard lot of method {method.method_id} v{method.document.version} "
+            f"is valid on the assay date {assay_date or '(unknown: no registered lot on the plate)'}"])
     reasons: list[str] = []
     wavelengths = sorted(set(int(x) for x in reads["wavelength_nm"]))
     if wavelengths != [int(method.wavelength_nm)]:
@@ -166,18 +187,23 @@ def evaluate_activity_plate(plate_id: str, plate_map: pd.DataFrame, reads: pd.Da
     refs = np.flatnonzero(plate.roles == "reference")
     if not plate_reasons:
         if refs.size == 0:
-            plate_reasons.append(f"no reference standard ({method.reference_lot}) on the plate")
+            plate_reasons.append(f"no reference standard ({reference.lot}) on the plate")
+        elif set(plate.lots[refs]) - {"", reference.lot}:  # a map that names its reference wells' lot is checked
+            found = ", ".join(sorted({str(x) for x in plate.lots[refs]} - {""}))
+            plate_reasons.append(f"the reference wells hold {found}; the reference standard lot valid on "
+                                 f"{assay_date} is {reference.lot}")
         else:
             good = refs[plate.ok[refs]]
             if good.size < 2:
                 plate_reasons.append(f"reference standard: only {good.size} of {refs.size} wells have a usable rate")
             else:
-                ref_activity = _activity_u_per_ml(method, plate.slope[good] - blank_rate, plate.dilution[good])
-                recovery = float(ref_activity.mean() / method.reference_assigned_u_per_ml * 100.0)
+                ref_activity = _activity_u_per_ml(method, well_settings, plate.slope[good] - blank_rate,
+                                                  plate.dilution[good])
+                recovery = float(ref_activity.mean() / reference.assigned_u_per_ml * 100.0)
                 if not method.recovery_min_pct <= recovery <= method.recovery_max_pct:
                     plate_reasons.append(
-                        f"reference standard {method.reference_lot} recovered {recovery:.1f} % of its assigned "
-                        f"{method.reference_assigned_u_per_ml:g} U/mL; the method allows "
+                        f"reference standard {reference.lot} recovered {recovery:.1f} % of its assigned "
+                        f"{reference.assigned_u_per_ml:g} U/mL; the method allows "
                         f"{method.recovery_min_pct:g}–{method.recovery_max_pct:g} %")
     traces = _traces(plate, time_min, absorbance, by_well)
     if plate_reasons:
@@ -192,13 +218,13 @@ def evaluate_activity_plate(plate_id: str, plate_map: pd.DataFrame, reads: pd.Da
         samples = np.flatnonzero((plate.roles == "sample") & (plate.lots == lot))
         excluded = [f"well {plate.wells[i]}: {by_well[plate.wells[i]].reason}" for i in samples if not plate.ok[i]]
         good = samples[plate.ok[samples]]
-        values = _activity_u_per_ml(method, plate.slope[good] - blank_rate, plate.dilution[good])
+        values = _activity_u_per_ml(method, well_settings, plate.slope[good] - blank_rate, plate.dilution[good])
         m = replicate_measurement("activity", "U/mL", values, method.replicate_cv_max_pct, f"lot {lot} activity")
         activity[lot] = Measurement(m.name, m.unit, m.value, se=m.se, n=m.n, valid=m.valid,
                                     reasons=(*m.reasons, *excluded) if not m.valid else m.reasons,
                                     detail={**m.detail, "excluded_wells": excluded,
                                             "wells": [plate.wells[i] for i in good]})
-        kinetics[lot] = _kinetic_series(lot, plate, method, by_well)
+        kinetics[lot] = _kinetic_series(lot, plate, method, well_settings, by_well)
     return ActivityPlateResult(plate_id, method.method_id, method.document.version, True, (), recovery,
                                blank_rate, activity, kinetics, details, traces)
 
@@ -222,7 +248,8 @@ class _Columns:
         return np.flatnonzero(self._blank & (np.abs(self.substrate - level) < SUBSTRATE_MATCH_MM))
 
 
-def _kinetic_series(lot: str, plate: _Columns, method: KineticMethod, by_well: dict[str, rates.WellRate]) -> KineticSeries:
+def _kinetic_series(lot: str, plate: _Columns, method: KineticMethod, well: PlateFormatSettings,
+                    by_well: dict[str, rates.WellRate]) -> KineticSeries:
     wells = np.flatnonzero((plate.roles == "kinetic") & (plate.lots == lot))
     if wells.size == 0:
         return KineticSeries((), (), valid=False, reasons=(f"lot {lot}: no kinetic (substrate series) wells on the plate",))
@@ -244,7 +271,7 @@ def _kinetic_series(lot: str, plate: _Columns, method: KineticMethod, by_well: d
                 excluded.append(f"well {plate.wells[i]} ({float(level):g} mM): {by_well[plate.wells[i]].reason}")
         good = group[plate.ok[group]]
         s_out.extend([float(level)] * good.size)
-        v_out.extend(float(v) for v in _activity_u_per_ml(method, plate.slope[good] - blank, plate.dilution[good]))
+        v_out.extend(float(v) for v in _activity_u_per_ml(method, well, plate.slope[good] - blank, plate.dilution[good]))
     levels = len(set(s_out))
     if levels < 4:
         return KineticSeries(tuple(s_out), tuple(v_out), tuple(excluded), False,

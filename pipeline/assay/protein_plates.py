@@ -13,7 +13,7 @@ import numpy as np
 import pandas as pd
 
 from pipeline.assay.plates import replicate_measurement
-from pipeline.controlled.specs import ProteinMethod
+from pipeline.controlled.specs import ProteinMethod, declared_formats, format_settings
 from pipeline.errors import LotgateError
 from pipeline.plain_data import to_plain
 from pipeline.science import protein_readings, standard_curves
@@ -61,9 +61,17 @@ def evaluate_a280_plate(plate_id: str, merged: pd.DataFrame, method: ProteinMeth
                         extinction_by_lot: dict[str, float]) -> ProteinPlateResult:
     """Protein by absorbance at 280 nm, blank-corrected, inside the photometer's linear range only.
 
-    protein [mg/mL] = (A280 − mean buffer blank) / (ε [mL·mg⁻¹·cm⁻¹] · l [cm]) · DF
+    protein [mg/mL] = (A280 − mean buffer blank) / (ε [mL·mg⁻¹·cm⁻¹] · l [cm]) · DF, with the
+    path length l the method declares for the plate's format (96 or 384 wells)
     """
     version = method.document.version
+    plate_format = int(merged["plate_format"].iloc[0])
+    well = format_settings(method, plate_format)
+    if well is None or well.path_length_cm is None:
+        return invalid_protein_plate(plate_id, method, lots, [
+            f"plate {plate_id}: method {method.method_id} v{version} declares no path length for {plate_format}-well "
+            f"plates (it declares {', '.join(map(str, declared_formats(method)))})"])
+    path_length_cm = well.path_length_cm
     blanks = merged.loc[merged["role"] == "blank", "absorbance"].to_numpy(dtype=float)
     if blanks.size == 0:
         return invalid_protein_plate(plate_id, method, lots, [f"plate {plate_id}: no buffer blank wells for the A280 reading"])
@@ -89,11 +97,11 @@ def evaluate_a280_plate(plate_id: str, merged: pd.DataFrame, method: ProteinMeth
                 f"{int((~inside).sum())} of {corrected.size} replicates read {side} the linear range "
                 f"{low:g}–{high:g} AU at 280 nm: re-assay at another dilution",))
             continue
-        values = np.asarray(protein_readings.protein_from_a280(corrected, epsilon, float(method.path_length_cm or 0.0), dilution),
+        values = np.asarray(protein_readings.protein_from_a280(corrected, epsilon, path_length_cm, dilution),
                             dtype=float)
         result[lot] = replicate_measurement("protein", "mg/mL", values, method.replicate_cv_max_pct, f"lot {lot} protein")
     curve = {"model": "A280", "blank_au": blank, "linear_range_au": [low, high], "signal_label": ABSORBANCE.label, "signal_heading": ABSORBANCE.heading,
-             "path_length_cm": method.path_length_cm, "accepted": True, "reasons": []}
+             "path_length_cm": path_length_cm, "plate_format": plate_format, "accepted": True, "reasons": []}
     return ProteinPlateResult(plate_id, method.method_id, version, True, (), result, curve, samples_out)
 
 

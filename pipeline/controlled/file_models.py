@@ -10,7 +10,7 @@ from __future__ import annotations
 
 from typing import Literal
 
-from pydantic import Field, model_validator
+from pydantic import Field, field_validator, model_validator
 
 from pipeline.controlled.strict import IsoDate, Strict, Text
 
@@ -82,6 +82,11 @@ class MethodHeader(DocumentHeader):
     title: Text | None = None
     measurement: Text
 
+    @field_validator("plate_formats", check_fields=False)
+    @classmethod
+    def _formats_once(cls, formats: list[FormatFile]) -> list[FormatFile]:
+        return _one_each(formats)
+
 
 class RateWindowFile(Strict):
     min_points: int
@@ -90,9 +95,23 @@ class RateWindowFile(Strict):
     max_slope_change: float
 
 
+class ReferenceLotFile(Strict):
+    """One lot of the method's reference standard: its assigned activity and the days it may be used."""
+
+    lot: Text
+    assigned_u_per_ml: float = Positive
+    valid_from: IsoDate
+    valid_to: IsoDate | None = Field(None, description="the last day the lot may be used; empty: until replaced")
+
+    @model_validator(mode="after")
+    def _in_order(self) -> ReferenceLotFile:
+        if self.valid_to is not None and self.valid_to < self.valid_from:
+            raise ValueError(f"has valid_to {self.valid_to} before valid_from {self.valid_from}")
+        return self
+
+
 class KineticSuitability(Strict):
-    reference_lot: Text
-    reference_assigned_u_per_ml: float = Positive
+    reference_lots: list[ReferenceLotFile] = Field(min_length=1)
     recovery_pct: Limits
     replicate_cv_max_pct: float = Positive
     blank_rate_max_au_per_min: float = Positive
@@ -104,15 +123,48 @@ class KineticSettings(Strict):
     km_max_relative_se: float = Field(0.25, gt=0)
 
 
+class FormatFile(Strict):
+    """One plate format a method declares: 96 or 384 wells."""
+
+    wells: Literal[96, 384]
+
+
+def _one_each(formats: list[FormatFile]) -> list[FormatFile]:
+    wells = [f.wells for f in formats]
+    if len(set(wells)) != len(wells):
+        raise ValueError(f"declares a plate format twice: {wells}; one entry per format")
+    return formats
+
+
+class KineticFormatFile(FormatFile):
+    """A kinetic method's settings on one plate format: light path and volumes per well."""
+
+    path_length_cm: float = Positive
+    reaction_volume_ml: float = Positive
+    sample_volume_ml: float = Positive
+
+
+class OpticalFormatFile(FormatFile):
+    """An A280 method's light path on one plate format."""
+
+    path_length_cm: float = Positive
+
+
+class CurveFormatFile(FormatFile):
+    """A standard-curve method's volumes on one plate format (recorded; the curve absorbs the path)."""
+
+    reaction_volume_ml: float | None = Field(None, gt=0)
+    sample_volume_ml: float | None = Field(None, gt=0)
+
+
 class KineticMethodFile(MethodHeader):
     wavelength_nm: float = Positive
     temperature_c: float
     ph: float
     unit_definition: str = ""
     epsilon_per_mm_per_cm: float = Positive
-    path_length_cm: float = Positive
-    reaction_volume_ml: float = Positive
-    sample_volume_ml: float = Positive
+    plate_formats: list[KineticFormatFile] = Field(
+        min_length=1, description="a list of plate formats, each with wells (96 or 384) and path_length_cm and volumes")
     assay_substrate_mm: float = Positive
     sample_preparation: Text | None = None
     rate_window: RateWindowFile
@@ -126,7 +178,8 @@ class ProteinSuitability(Strict):
 
 class Uv280MethodFile(MethodHeader):
     wavelength_nm: float = Positive
-    path_length_cm: float = Positive
+    plate_formats: list[OpticalFormatFile] = Field(
+        min_length=1, description="a list of plate formats, each with wells (96 or 384) and path_length_cm")
     linear_range_au: Limits
     suitability: ProteinSuitability | None = None
 
@@ -143,6 +196,8 @@ class CurveMethodFile(MethodHeader):
     """A protein method read against a standard curve (each kind adds its reader's fields)."""
 
     standard: str = ""
+    plate_formats: list[CurveFormatFile] = Field(
+        min_length=1, description="a list of plate formats, each with wells (96 or 384) and the volumes per well")
     curve: CurveFile
     suitability: ProteinSuitability | None = None
 

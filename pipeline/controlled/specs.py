@@ -21,6 +21,7 @@ from pipeline.controlled.file_models import (
     KineticSettings,
     MethodHeader,
     ProteinSuitability,
+    ReferenceLotFile,
     SpecificationFile,
     TrendSettings,
     Uv280MethodFile,
@@ -115,6 +116,38 @@ class AssayMethod(Protocol):
 
 
 @dataclass(frozen=True)
+class PlateFormatSettings:
+    """A method's settings on one plate format (96 or 384 wells); None where the kind has no such setting."""
+
+    plate_format: int
+    path_length_cm: float | None = None
+    reaction_volume_ml: float | None = None
+    sample_volume_ml: float | None = None
+
+
+@dataclass(frozen=True)
+class ReferenceLot:
+    """One lot of a reference standard: its assigned activity, usable from ``valid_from`` to ``valid_to``."""
+
+    lot: str
+    assigned_u_per_ml: float
+    valid_from: dt.date
+    valid_to: dt.date | None = None  # None: until a later lot takes over
+
+    def valid_on(self, day: dt.date) -> bool:
+        return self.valid_from <= day and (self.valid_to is None or day <= self.valid_to)
+
+
+def declared_formats(method: Any) -> tuple[int, ...]:
+    """The plate formats a method declares (every method kind has ``plate_formats``)."""
+    return tuple(f.plate_format for f in getattr(method, "plate_formats", ()))
+
+
+def format_settings(method: Any, plate_format: int) -> PlateFormatSettings | None:
+    return next((f for f in getattr(method, "plate_formats", ()) if f.plate_format == plate_format), None)
+
+
+@dataclass(frozen=True)
 class RateWindow:
     min_points: int
     min_r2: float
@@ -134,13 +167,10 @@ class KineticMethod:
     ph: float
     unit_definition: str
     epsilon_per_mm_per_cm: float
-    path_length_cm: float
-    reaction_volume_ml: float
-    sample_volume_ml: float
+    plate_formats: tuple[PlateFormatSettings, ...]
     assay_substrate_mm: float
     rate_window: RateWindow
-    reference_lot: str
-    reference_assigned_u_per_ml: float
+    reference_lots: tuple[ReferenceLot, ...]
     recovery_min_pct: float
     recovery_max_pct: float
     replicate_cv_max_pct: float
@@ -151,6 +181,11 @@ class KineticMethod:
     recovery_trend_rules: tuple[int, ...] = (1, 2, 3, 4)
     recovery_baseline_n: int = 20
     measurement: ClassVar[str] = "kinetic"  # the method file's 'measurement' (see pipeline.assay.method_kinds)
+
+    def reference_on(self, day: dt.date) -> ReferenceLot | None:
+        """The reference standard lot valid on ``day`` (the latest to take over, if validities overlap)."""
+        valid = [r for r in self.reference_lots if r.valid_on(day)]
+        return max(valid, key=lambda r: r.valid_from) if valid else None
 
     def recovery_attribute(self) -> Attribute:
         """The reference standard's recovery as a charted attribute of this method."""
@@ -176,7 +211,7 @@ class ProteinMethod:
     lowest_bias_limit_pct: float
     replicate_cv_max_pct: float
     kind: str = "standard-curve"  # or "uv280"
-    path_length_cm: float | None = None  # A280 only
+    plate_formats: tuple[PlateFormatSettings, ...] = ()  # per format: A280's path length, curve volumes
     linear_min_au: float | None = None  # A280 only: the photometer's linear range
     linear_max_au: float | None = None
 
@@ -243,6 +278,26 @@ def method_document(method: MethodHeader, sha256: str) -> Document:
     return _document(method, method.method_id, sha256)
 
 
+def _formats(raw: list[Any]) -> tuple[PlateFormatSettings, ...]:
+    """The per-format settings of a checked method file, by plate format."""
+    out = []
+    for entry in sorted(raw, key=lambda f: f.wells):
+        settings = entry.model_dump()
+        out.append(PlateFormatSettings(plate_format=settings.pop("wells"), **settings))
+    return tuple(out)
+
+
+def _reference_lots(raw: list[ReferenceLotFile], where: str) -> tuple[ReferenceLot, ...]:
+    """The reference standard lots, by first valid day; two lots may not share one."""
+    lots = tuple(sorted((ReferenceLot(r.lot, r.assigned_u_per_ml, r.valid_from, r.valid_to) for r in raw),
+                        key=lambda r: r.valid_from))
+    for earlier, later in zip(lots, lots[1:], strict=False):
+        if earlier.valid_from == later.valid_from:
+            raise SpecificationError(f"{where}: reference lots {earlier.lot} and {later.lot} are both valid from "
+                                     f"{later.valid_from}; which one a plate of that day uses would be undecided")
+    return lots
+
+
 def parse_kinetic_method(raw: dict[str, Any], where: str, sha256: str) -> KineticMethod:
     """A kinetic activity method (``measurement: kinetic``) from a parsed YAML mapping."""
     m = checked(KineticMethodFile, raw, where)
@@ -251,10 +306,9 @@ def parse_kinetic_method(raw: dict[str, Any], where: str, sha256: str) -> Kineti
     return KineticMethod(
         document=method_document(m, sha256), method_id=m.method_id, title=m.title or m.method_id,
         wavelength_nm=m.wavelength_nm, temperature_c=m.temperature_c, ph=m.ph, unit_definition=m.unit_definition,
-        epsilon_per_mm_per_cm=m.epsilon_per_mm_per_cm, path_length_cm=m.path_length_cm,
-        reaction_volume_ml=m.reaction_volume_ml, sample_volume_ml=m.sample_volume_ml,
+        epsilon_per_mm_per_cm=m.epsilon_per_mm_per_cm, plate_formats=_formats(m.plate_formats),
         assay_substrate_mm=m.assay_substrate_mm, rate_window=RateWindow(**m.rate_window.model_dump()),
-        reference_lot=suit.reference_lot, reference_assigned_u_per_ml=suit.reference_assigned_u_per_ml,
+        reference_lots=_reference_lots(suit.reference_lots, where),
         recovery_min_pct=suit.recovery_pct.min, recovery_max_pct=suit.recovery_pct.max,
         replicate_cv_max_pct=suit.replicate_cv_max_pct, blank_rate_max_au_per_min=suit.blank_rate_max_au_per_min,
         model_selection_alpha=kin.model_selection_alpha, km_max_relative_se=kin.km_max_relative_se,
@@ -275,7 +329,7 @@ def parse_uv280_method(raw: dict[str, Any], where: str, sha256: str) -> ProteinM
         wavelength_nm=m.wavelength_nm, standard="", curve_model="none", curve_weighting=None,
         curve_min_r2=0.0, bias_limit_pct=0.0, lowest_bias_limit_pct=0.0,
         replicate_cv_max_pct=(m.suitability or ProteinSuitability()).replicate_cv_max_pct, kind="uv280",
-        path_length_cm=m.path_length_cm, linear_min_au=low, linear_max_au=high)
+        plate_formats=_formats(m.plate_formats), linear_min_au=low, linear_max_au=high)
 
 
 def curve_fields(m: CurveMethodFile, where: str) -> dict[str, Any]:
@@ -289,7 +343,8 @@ def curve_fields(m: CurveMethodFile, where: str) -> dict[str, Any]:
     return dict(standard=m.standard, curve_model=curve.model, curve_weighting=curve.weighting,
                 curve_min_r2=curve.min_r2, bias_limit_pct=curve.bias_limit_pct,
                 lowest_bias_limit_pct=curve.lowest_bias_limit_pct,
-                replicate_cv_max_pct=(m.suitability or ProteinSuitability()).replicate_cv_max_pct)
+                replicate_cv_max_pct=(m.suitability or ProteinSuitability()).replicate_cv_max_pct,
+                plate_formats=_formats(m.plate_formats))
 
 
 def parse_endpoint_method(raw: dict[str, Any], where: str, sha256: str) -> ProteinMethod:

@@ -158,7 +158,7 @@ def _plates(dossier: dict[str, Any]) -> list[Any]:
     if not plates:
         out.append(Paragraph("No plate results in this dossier.", st["body"]))
     known = {"plate_id", "method", "valid", "reasons", "reference_recovery_pct", "blank_rate_au_per_min",
-             "curve_accepted", "curve_r2"}
+             "curve_accepted", "curve_r2", "method_version"}
     rows: list[list[Any]] = [["Plate", "Method", "Valid", "Criteria", "Reasons"]]
     extra: list[tuple[Any, ...]] = []
     for p in plates:

@@ -34,6 +34,7 @@ from pipeline.assay.method_kinds import Measures, kind_of, read_kinds, read_labe
 from pipeline.assay.plate_reads import PlateReads
 from pipeline.controlled.catalog import Catalog
 from pipeline.controlled.specs import KineticMethod
+from pipeline.intake.plate_methods import plate_method
 from pipeline.intake.row_checks import PLATE_GEOMETRY
 from pipeline.intake.validation import ParsedExport
 from pipeline.release.lot_evaluation import LimsEntry, LotInputs
@@ -187,9 +188,12 @@ def assemble(parsed_exports: list[ParsedExport], quarantined: list[QuarantinedFi
             plate_problem[plate_id] = f"plate {plate_id} has more than one plate map ({', '.join(f for f, _ in files)})"
             continue
         methods = sorted(set(frame["method_id"]))
-        method = catalog.methods.get(methods[0]) if len(methods) == 1 else None
-        if method is None:
+        if len(methods) != 1 or not catalog.all_methods(methods[0]):
             plate_problem[plate_id] = f"plate {plate_id}: method {', '.join(methods)} is not a single known method under specs/methods"
+            continue
+        assay_date, method, problem = plate_method(plate_id, frame, registry, catalog)
+        if method is None:
+            plate_problem[plate_id] = str(problem)
             continue
         method_kind = kind_of(method)
         kind = method_kind.read_label
@@ -216,7 +220,8 @@ def assemble(parsed_exports: list[ParsedExport], quarantined: list[QuarantinedFi
             plate_problem[plate_id] = problem
             continue
         target = activity_plates if method_kind.measures == Measures.ACTIVITY else protein_plates
-        target[plate_id] = PlateReads(frame.reset_index(drop=True), reads[0].reset_index(drop=True), method.method_id)
+        target[plate_id] = PlateReads(frame.reset_index(drop=True), reads[0].reset_index(drop=True), method.method_id,
+                                      assay_date, method.document.version)
     for read_kind, groups in read_groups.items():
         for plate_id in sorted(set(groups) - set(maps)):
             aside = _naming(setaside, plate_id)
@@ -250,7 +255,7 @@ def assemble(parsed_exports: list[ParsedExport], quarantined: list[QuarantinedFi
     for plate_id, (frame, _files) in maps.items():
         for lot in frame.loc[frame["role"].isin(["sample", "kinetic"]), "lot_id"].dropna().unique():
             plate_lots[str(lot)].add(plate_id)
-    references = {m.reference_lot for m in catalog.methods.values() if isinstance(m, KineticMethod)}
+    references = {r.lot for m in catalog.every_method() if isinstance(m, KineticMethod) for r in m.reference_lots}
     mentioned = set(plate_lots) | set(lims)
     for lot in sorted(mentioned - set(registry) - references):
         aside = [q.file.file_name for q in setaside if lot in q.lots and q.file.file_name.startswith("lots-")]
@@ -288,4 +293,5 @@ def assemble(parsed_exports: list[ParsedExport], quarantined: list[QuarantinedFi
         lots.append(LotInputs(lot_id=lot_id, product_code=product, manufactured_on=row["manufactured_on"],
                               assay_date=row["assay_date"], activity_plate=None, protein_plate=None,
                               lims=lims.get(lot_id, {}), input_files=files, problems=tuple(problems)))
+    notes += catalog.staged_notes([(lot.manufactured_on, lot.assay_date) for lot in lots])
     return Assembly(lots, activity_plates, protein_plates, notes, {k: v[0] for k, v in registry_file.items()})

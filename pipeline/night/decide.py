@@ -40,15 +40,23 @@ def load_charts(store: Store, catalog: Catalog, evaluations: list[LotEvaluation]
     on the lots before it, so continuing from a half-published store would judge the rest
     against other charts. The restart then publishes only the lots not yet stored.
     """
-    fingerprints = [lot_fingerprint(e, catalog.specifications, catalog.methods, __version__) for e in evaluations]
+    fingerprints = [lot_fingerprint(e, catalog, __version__) for e in evaluations]
     attempt = {stored.id for stored in store.known_fingerprints(fingerprints).values()}
     attempt_points = store.chart_point_counts(sorted(attempt))
     charts: dict[ChartKey, ChartState] = {}
     wanted: list[tuple[str, Any]] = []
-    for product in sorted({e.product_code for e in evaluations}):
-        wanted += [(product, a) for a in catalog.specifications[product].attributes if a.trend]
-    for method_id in sorted({p.get("method_id") for e in evaluations for p in e.plates if p.get("kind") == "activity"}):
-        method = catalog.methods.get(str(method_id))
+    trended: dict[tuple[str, str], Any] = {}
+    for evaluation in evaluations:  # each lot's own specification version: versions may trend other attributes
+        spec = catalog.specification_for_lot(evaluation.product_code, evaluation.manufactured_on, evaluation.assay_date)
+        for attribute in spec.attributes:
+            if attribute.trend:
+                trended.setdefault((spec.product_code, attribute.code), attribute)
+    wanted += [(product, attribute) for (product, _), attribute in sorted(trended.items(), key=lambda kv: kv[0])]
+    plates = {(str(p.get("method_id")), p.get("method_version")) for e in evaluations for p in e.plates
+              if p.get("kind") == "activity"}
+    for method_id in sorted({m for m, _ in plates}):
+        method = next((found for found in (catalog.method_version(m, v) for m, v in sorted(plates, key=str)
+                                           if m == method_id) if found is not None), None)
         if isinstance(method, KineticMethod):
             wanted.append((method.method_id, method.recovery_attribute()))
     for product, attribute in wanted:
@@ -86,4 +94,4 @@ def decide(evaluations: list[LotEvaluation], catalog: Catalog, charts: dict[Char
            earlier: dict[str, str] | None = None) -> NightDecisions:
     """Trend and disposition of the night's lots, by product, date of manufacture and lot."""
     ordered = sorted(evaluations, key=lambda e: (e.product_code, e.manufactured_on, e.lot_id))
-    return decide_night(ordered, catalog.specifications, catalog.methods, charts, __version__, earlier or {})
+    return decide_night(ordered, catalog, charts, __version__, earlier or {})

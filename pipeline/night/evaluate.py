@@ -20,20 +20,21 @@ def evaluate(assembly: Assembly, catalog: Catalog) -> tuple[list[LotEvaluation],
     protein: dict[str, ProteinPlateResult] = {}
     # Each plate's tables are let go as soon as the plate is evaluated: the night's reads and its
     # results are then never all in memory at once. Only file names and checksums go on.
-    context = PlateContext({lot.lot_id: catalog.specifications[lot.product_code].a280_extinction_ml_per_mg_per_cm
-                            for lot in assembly.lots
-                            if catalog.specifications[lot.product_code].a280_extinction_ml_per_mg_per_cm})
+    specs = {lot.lot_id: catalog.specification_for_lot(lot.product_code, lot.manufactured_on, lot.assay_date)
+             for lot in assembly.lots}
+    context = PlateContext({lot: spec.a280_extinction_ml_per_mg_per_cm
+                            for lot, spec in specs.items() if spec.a280_extinction_ml_per_mg_per_cm})
     for plates, results in ((assembly.activity_plates, activity), (assembly.protein_plates, protein)):
         for plate_id in list(plates):
             plate = plates.pop(plate_id)
-            method = catalog.methods[plate.method_id]
+            method = catalog.method_version(plate.method_id, plate.method_version)  # in force on its assay date
             results[plate_id] = kind_of(method).evaluate(plate_id, plate, method, context)
     on_activity, on_protein = plates_by_lot(list(activity.values()), list(protein.values()))
     lots = []
     for lot in assembly.lots:
-        choice = choose_plates(lot.lot_id, catalog.specifications[lot.product_code],
+        choice = choose_plates(lot.lot_id, specs[lot.lot_id],
                                on_activity.get(lot.lot_id, []), on_protein.get(lot.lot_id, []))
         lots.append(LotInputs(lot.lot_id, lot.product_code, lot.manufactured_on, lot.assay_date, choice.activity,
                               choice.protein, lot.lims, lot.input_files, (*lot.problems, *choice.problems)))
     plate_summaries = [p.summary() for p in (*activity.values(), *protein.values())]
-    return evaluate_lots(lots, catalog.specifications, catalog.methods), plate_summaries
+    return evaluate_lots(lots, catalog), plate_summaries

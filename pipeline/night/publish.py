@@ -35,7 +35,13 @@ from pipeline.records.store import Store
 from pipeline.records.stored import DecisionWrite, LimitsWrite, StoredDecision
 from pipeline.records.workspace import Workspace
 from pipeline.release.change_note import change_note
-from pipeline.release.decision import ChartKey, FrozenLimits, LotDecision, NightDecisions
+from pipeline.release.decision import (
+    ChartKey,
+    FrozenLimits,
+    LotDecision,
+    NightDecisions,
+    lot_documents,
+)
 from pipeline.release.dossier import build_dossier
 from pipeline.release.records import DecisionRecord
 from pipeline.release.signature import NIGHTLY_RELEASE_MEANING, signature_block
@@ -120,9 +126,9 @@ def _prepare(ws: Workspace, catalog: Catalog, item: LotDecision, previous: Store
              signer: CertificateSigner) -> _Job:
     decision = item.decision
     revision = previous.revision + 1 if previous else 1
-    spec = catalog.specifications[decision.product]
-    activity_method = catalog.methods.get(spec.activity_method)
-    protein_method = catalog.methods.get(spec.protein_method)
+    spec, methods = lot_documents(item.evaluation, catalog)  # the versions the decision used
+    activity_method = methods.get(spec.activity_method)
+    protein_method = methods.get(spec.protein_method)
     decided_at = dt.datetime.now(dt.UTC)
     dossier = build_dossier(item, spec, activity_method if isinstance(activity_method, KineticMethod) else None,
                             protein_method if isinstance(protein_method, ProteinMethod) else None,

@@ -1,4 +1,4 @@
-"""Reads the controlled documents in force (adapter: file I/O and SHA-256).
+"""Reads the controlled documents on file, every version (adapter: file I/O and SHA-256).
 
 Three folders hold them: product specifications, assay methods and export layouts. Each folder
 is chosen on its own, first match wins:
@@ -22,9 +22,11 @@ import yaml
 from pipeline.assay.method_kinds import parse_method
 from pipeline.controlled.catalog import Catalog
 from pipeline.controlled.specs import AssayMethod, ProteinMethod, Specification, parse_specification
+from pipeline.controlled.versions import ordered_versions
 from pipeline.errors import SpecificationError
 from pipeline.intake.layouts import ExportLayout, load_layouts
 from pipeline.records.workspace import Workspace
+from pipeline.vocabulary import SpecificationDate
 
 SPECS_ENV, SCHEMAS_ENV = "LOTGATE_SPECS_DIR", "LOTGATE_SCHEMAS_DIR"
 
@@ -88,7 +90,8 @@ def open_controlled_documents(ws: Workspace | None = None) -> tuple[Catalog, dic
     Without a workspace: the environment's folders, else the shipped ones.
     """
     folders = controlled_folders(ws)
-    return load_catalog(folders), load_layouts(folders.layouts)
+    basis = ws.specification_date if ws is not None else SpecificationDate.ASSAY
+    return load_catalog(folders, basis), load_layouts(folders.layouts)
 
 
 def sha256_file(path: Path) -> str:
@@ -110,37 +113,44 @@ def _read_yaml(path: Path) -> tuple[dict, str]:
     return raw, hashlib.sha256(data).hexdigest()
 
 
-def _load_methods(folder: Path) -> dict[str, AssayMethod]:
-    methods: dict[str, AssayMethod] = {}
+def _load_methods(folder: Path) -> dict[str, tuple[AssayMethod, ...]]:
+    """Every version of every method under ``folder``, oldest first (ambiguous versions refused)."""
+    found = []
     for path in sorted(folder.glob("*.yaml")):
         raw, sha = _read_yaml(path)
         method = parse_method(raw, str(path), sha)
-        if method.method_id in methods:
-            raise SpecificationError(f"{path}: method '{method.method_id}' defined twice")
-        methods[method.method_id] = method
-    return methods
+        found.append((str(path), method.method_id, method))
+    return ordered_versions(found, "method")
 
 
-def load_catalog(folders: ControlledFolders | None = None) -> Catalog:
-    """Load every product specification and method; check the cross references."""
-    folders = folders or controlled_folders()
-    methods = _load_methods(folders.methods)
-    specifications: dict[str, Specification] = {}
-    for path in sorted(folders.specifications.glob("*.yaml")):
-        raw, sha = _read_yaml(path)
-        spec = parse_specification(raw, str(path), sha)
-        if spec.product_code in specifications:
-            raise SpecificationError(f"{path}: product '{spec.product_code}' defined twice")
-        for method_id in (spec.activity_method, spec.protein_method):
-            if method_id not in methods:
-                raise SpecificationError(
-                    f"{path}: refers to method '{method_id}', which is not under {folders.methods}")
-        protein = methods[spec.protein_method]
+def _check_references(path: str, spec: Specification, methods: dict[str, tuple[AssayMethod, ...]],
+                      folder: Path) -> None:
+    for method_id in (spec.activity_method, spec.protein_method):
+        if method_id not in methods:
+            raise SpecificationError(f"{path}: refers to method '{method_id}', which is not under {folder}")
+    for protein in methods[spec.protein_method]:
         if isinstance(protein, ProteinMethod) and protein.kind == "uv280" and not spec.a280_extinction_ml_per_mg_per_cm:
             raise SpecificationError(
                 f"{path}: protein by A280 ({spec.protein_method}) needs the product's "
                 "'a280_extinction_ml_per_mg_per_cm' (absorbance of 1 mg/mL in 1 cm)")
-        specifications[spec.product_code] = spec
+
+
+def load_catalog(folders: ControlledFolders | None = None,
+                 specification_date: SpecificationDate = SpecificationDate.ASSAY) -> Catalog:
+    """Load every version of every product specification and method; check the cross references.
+
+    A version effective in the future is loaded too (staged); the night uses the version in force
+    on each lot's date (pipeline.controlled.catalog).
+    """
+    folders = folders or controlled_folders()
+    methods = _load_methods(folders.methods)
+    found = []
+    for path in sorted(folders.specifications.glob("*.yaml")):
+        raw, sha = _read_yaml(path)
+        spec = parse_specification(raw, str(path), sha)
+        _check_references(str(path), spec, methods, folders.methods)
+        found.append((str(path), spec.product_code, spec))
+    specifications = ordered_versions(found, "product")
     if not specifications:
         raise SpecificationError(f"no product specification found under {folders.specifications}")
-    return Catalog(specifications=specifications, methods=methods)
+    return Catalog.of_versions(specifications, methods, specification_date)

@@ -7,6 +7,7 @@ import os
 import tempfile
 from dataclasses import dataclass
 from pathlib import Path
+from typing import Literal
 from zoneinfo import ZoneInfo, ZoneInfoNotFoundError, available_timezones
 
 import yaml
@@ -15,6 +16,7 @@ from pydantic import Field, field_validator
 from pipeline.controlled.strict import Strict, Text, checked
 from pipeline.errors import SpecificationError
 from pipeline.records.database import check_url
+from pipeline.vocabulary import SpecificationDate
 
 DEFAULT_TIME_ZONE = "Europe/Berlin"
 
@@ -33,6 +35,8 @@ class Workspace:
     controlled: tuple[tuple[str, Path], ...] = ()
     # True when several workspaces (sites) share one results store on purpose (lot ids then unique across them)
     store_shared: bool = False
+    # Which of a lot's dates chooses its specification version (pipeline.controlled.catalog)
+    specification_date: SpecificationDate = SpecificationDate.ASSAY
 
     @property
     def inbox(self) -> Path:
@@ -102,6 +106,8 @@ class WorkspaceSettings(Strict):
     controlled: ControlledSettings | None = Field(
         None, description="a mapping of specifications, methods, layouts to folders")
     store_shared: bool = Field(False, description="true or false: whether other workspaces (sites) share the store")
+    specification_date: Literal["assay", "manufacture"] = Field(
+        "assay", description="assay or manufacture: the lot's date that chooses its specification")
 
     @field_validator("time_zone")
     @classmethod
@@ -172,6 +178,7 @@ def open_workspace(root: Path, *, plant_name: str | None = None, signer_name: st
         signer_name=signing.signer_name or signer_name or "QA reviewer",
         controlled=_controlled_folders(root, settings.controlled, root / SETTINGS_FILE),
         store_shared=settings.store_shared,
+        specification_date=SpecificationDate(settings.specification_date),
     )
 
 

@@ -16,6 +16,7 @@ from collections.abc import Mapping
 from dataclasses import dataclass, replace
 from typing import Any
 
+from pipeline.controlled.catalog import Catalog
 from pipeline.controlled.specs import Attribute, Specification
 from pipeline.release.lot_evaluation import LotEvaluation
 from pipeline.release.records import Decision, TrendFinding
@@ -98,7 +99,7 @@ def _picture(chart: ChartState, attribute: Attribute, point_id: str, value: floa
     return picture
 
 
-def _judge_reference_plates(evaluations: list[LotEvaluation], methods: dict[str, Any],
+def _judge_reference_plates(evaluations: list[LotEvaluation], catalog: Catalog,
                             charts: dict[ChartKey, ChartState], frozen: list[ChartKey]) -> dict[str, tuple[
                                 TrendFinding, dict[str, Any] | None, tuple[str, str, str, float] | None]]:
     """Each valid activity plate's reference recovery on its method's chart, plates in id order.
@@ -115,7 +116,7 @@ def _judge_reference_plates(evaluations: list[LotEvaluation], methods: dict[str,
     out: dict[str, tuple[TrendFinding, dict[str, Any] | None, tuple[str, str, str, float] | None]] = {}
     for plate_id in sorted(plates):
         plate = plates[plate_id]
-        method = methods.get(plate.get("method_id"))
+        method = catalog.method_version(str(plate.get("method_id")), plate.get("method_version"))
         recovery = plate.get("reference_recovery_pct")
         if method is None or not hasattr(method, "recovery_attribute"):
             continue
@@ -207,20 +208,20 @@ def fingerprint(evaluation: LotEvaluation, spec: Specification, method_sha: dict
     return hashlib.sha256(json.dumps(payload, sort_keys=True).encode()).hexdigest()
 
 
-def _used_methods(spec: Specification, methods: Mapping[str, Any]) -> dict[str, Any]:
-    return {m: methods[m] for m in (spec.activity_method, spec.protein_method) if m in methods}
+def lot_documents(evaluation: LotEvaluation, catalog: Catalog) -> tuple[Specification, dict[str, Any]]:
+    """The lot's specification version and the methods in force on its assay date (by method id)."""
+    spec = catalog.specification_for_lot(evaluation.product_code, evaluation.manufactured_on, evaluation.assay_date)
+    return spec, catalog.lot_methods(spec, evaluation.assay_date)
 
 
-def lot_fingerprint(evaluation: LotEvaluation, specifications: Mapping[str, Specification],
-                    methods: Mapping[str, Any], code_version: str) -> str:
-    """The fingerprint the night gives a lot's decision (``fingerprint`` with the lot's own methods)."""
-    spec = specifications[evaluation.product_code]
-    method_sha = {m.method_id: m.document.sha256 for m in _used_methods(spec, methods).values()}
+def lot_fingerprint(evaluation: LotEvaluation, catalog: Catalog, code_version: str) -> str:
+    """The fingerprint the night gives a lot's decision (``fingerprint`` with the lot's own documents)."""
+    spec, used_methods = lot_documents(evaluation, catalog)
+    method_sha = {m.method_id: m.document.sha256 for m in used_methods.values()}
     return fingerprint(evaluation, spec, method_sha, code_version)
 
 
-def decide_night(evaluations: list[LotEvaluation], specifications: dict[str, Specification],
-                 methods: dict[str, Any], charts: Mapping[ChartKey, ChartState],
+def decide_night(evaluations: list[LotEvaluation], catalog: Catalog, charts: Mapping[ChartKey, ChartState],
                  code_version: str, earlier: dict[str, str] | None = None) -> NightDecisions:
     """Trend and disposition for each lot, in the given order; the charts advance as lots release.
 
@@ -232,11 +233,10 @@ def decide_night(evaluations: list[LotEvaluation], specifications: dict[str, Spe
     out = []
     working = dict(charts)
     frozen: list[ChartKey] = []
-    references = _judge_reference_plates(evaluations, methods, working, frozen)
+    references = _judge_reference_plates(evaluations, catalog, working, frozen)
     carried: set[str] = set()
     for evaluation in evaluations:
-        spec = specifications[evaluation.product_code]
-        used_methods = _used_methods(spec, methods)
+        spec, used_methods = lot_documents(evaluation, catalog)
         findings: list[TrendFinding] = []
         pending: dict[str, float] = {}
         for attribute in spec.attributes:

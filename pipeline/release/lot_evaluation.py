@@ -8,7 +8,6 @@ is then expressed per mg protein, kcat and kcat/Km from the product's molecular 
 
 from __future__ import annotations
 
-import datetime as dt
 import math
 from dataclasses import dataclass, field
 from typing import Any
@@ -17,6 +16,7 @@ import numpy as np
 
 from pipeline.assay.plates import ActivityPlateResult, KineticSeries
 from pipeline.assay.protein_plates import ProteinPlateResult
+from pipeline.controlled.catalog import Catalog
 from pipeline.controlled.specs import KineticMethod, Specification
 from pipeline.errors import CalculationError
 from pipeline.plain_data import to_plain
@@ -195,19 +195,24 @@ class _KmView:
     converged: bool
 
 
-def evaluate_lots(lots: list[LotInputs], specifications: dict[str, Specification],
-                  methods: dict[str, Any]) -> list[LotEvaluation]:
-    """Numbers and verdicts of every lot of the night (trend comes after, in pipeline.oot)."""
+def evaluate_lots(lots: list[LotInputs], catalog: Catalog) -> list[LotEvaluation]:
+    """Numbers and verdicts of every lot of the night (trend comes after, in pipeline.oot).
+
+    Each lot is judged against its own specification version (in force on its assay or
+    manufacture date) and the methods in force on its assay date (pipeline.controlled.catalog).
+    """
     series = {lot.lot_id: lot.activity_plate.kinetics.get(lot.lot_id) for lot in lots if lot.activity_plate}
+    specs = {lot.lot_id: catalog.specification_for_lot(lot.product_code, lot.manufactured_on, lot.assay_date)
+             for lot in lots}
     alpha = {}
     for lot in lots:
-        method = methods.get(specifications[lot.product_code].activity_method)
+        method = catalog.lot_methods(specs[lot.lot_id], lot.assay_date).get(specs[lot.lot_id].activity_method)
         alpha[lot.lot_id] = getattr(method, "model_selection_alpha", 0.05)
     fits = _fit_batch({k: v for k, v in series.items() if v is not None}, alpha)
     evaluations = []
     for lot in lots:
-        spec = specifications[lot.product_code]
-        method = methods.get(spec.activity_method)
+        spec = specs[lot.lot_id]
+        method = catalog.lot_methods(spec, lot.assay_date).get(spec.activity_method)
         plate = lot.activity_plate
         activity = (plate.activity.get(lot.lot_id) if plate else None) or missing(
             "activity", "U/mL", f"no activity plate for lot {lot.lot_id} arrived tonight")
@@ -218,9 +223,9 @@ def evaluate_lots(lots: list[LotInputs], specifications: dict[str, Specification
             lot.lot_id, series.get(lot.lot_id), fits.get(lot.lot_id), protein, method, spec)
         measurements = {"activity": activity, "protein": protein, "specific_activity": specific, **kinetic_values}
         incomplete = list(lot.problems)
-        if dt.date.fromisoformat(lot.assay_date) < spec.document.effective_from:
-            incomplete.append(f"specification {spec.product_code} v{spec.document.version} is effective from "
-                              f"{spec.document.effective_from}; the lot was assayed on {lot.assay_date}, before it was in force")
+        not_in_force = catalog.not_in_force(spec, lot.manufactured_on, lot.assay_date)
+        if not_in_force is not None:
+            incomplete.append(not_in_force)
         verdicts = []
         for attribute in spec.attributes:
             if attribute.source == "lims":
