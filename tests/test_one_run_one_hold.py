@@ -16,6 +16,7 @@ import datetime as dt
 
 import numpy as np
 
+from pipeline.controlled.catalog import Catalog
 from pipeline.controlled.specs import parse_specification
 from pipeline.release.decision import ChartState, decide_night
 from pipeline.release.lot_evaluation import LotEvaluation
@@ -56,7 +57,7 @@ def _held(night) -> list[str]:
 
 def test_a_run_holds_exactly_one_lot_in_one_night():
     values = BASELINE + RISING + A_B_C
-    night = decide_night([evaluation(i, v) for i, v in enumerate(values)], {"SIM-2": SPEC}, {}, {}, "test")
+    night = decide_night([evaluation(i, v) for i, v in enumerate(values)], Catalog({"SIM-2": SPEC}, {}), {}, "test")
     assert _held(night) == ["SIM-025"]  # A only; B (SIM-026) and C (SIM-027) are released
     held = night.lots[25]
     assert held.decision.hold_categories == (HoldCategory.OUT_OF_TREND,)
@@ -69,15 +70,15 @@ def test_a_run_holds_exactly_one_lot_in_one_night():
 
 def test_a_run_holds_exactly_one_lot_across_nights():
     first = decide_night([evaluation(i, v) for i, v in enumerate(BASELINE + RISING + A_B_C[:1])],
-                         {"SIM-2": SPEC}, {}, {}, "test")
+                         Catalog({"SIM-2": SPEC}, {}), {}, "test")
     assert _held(first) == ["SIM-025"]
-    second = decide_night([evaluation(26 + i, v) for i, v in enumerate(A_B_C[1:])], {"SIM-2": SPEC}, {},
+    second = decide_night([evaluation(26 + i, v) for i, v in enumerate(A_B_C[1:])], Catalog({"SIM-2": SPEC}, {}),
                           first.charts, "test")
     assert _held(second) == []
     # without the mark (a chart that forgot the held lot's run) B would be held again: the old defect
     forgot = {key: ChartState(c.product_code, c.attribute, c.limits, c.lots, c.values, c.total)
               for key, c in first.charts.items()}
-    again = decide_night([evaluation(26 + i, v) for i, v in enumerate(A_B_C[1:])], {"SIM-2": SPEC}, {}, forgot,
+    again = decide_night([evaluation(26 + i, v) for i, v in enumerate(A_B_C[1:])], Catalog({"SIM-2": SPEC}, {}), forgot,
                          "test")
     assert _held(again) == ["SIM-026"]  # (C is then spared by B's own mark)
 
@@ -85,7 +86,7 @@ def test_a_run_holds_exactly_one_lot_across_nights():
 def test_a_fresh_run_after_the_held_one_is_held_again():
     # After A's run, six fresh rising points (B … and five more) make a new run: held once more.
     values = BASELINE + RISING + [206.0, 206.5, 207.0, 207.5, 208.0, 208.5, 209.0]
-    night = decide_night([evaluation(i, v) for i, v in enumerate(values)], {"SIM-2": SPEC}, {}, {}, "test")
+    night = decide_night([evaluation(i, v) for i, v in enumerate(values)], Catalog({"SIM-2": SPEC}, {}), {}, "test")
     assert _held(night) == ["SIM-025", "SIM-031"]  # B = SIM-026 … SIM-031: six fresh points
 
 
@@ -117,7 +118,6 @@ def test_the_night_and_the_chart_view_agree_on_random_series():
 def test_the_store_remembers_a_held_lots_run_for_the_next_night(tmp_path):
     # Night 1 through decide_night, its decisions stored as the night stores them; night 2 reads
     # the charts back from the store (load_charts): B and C are not held by A's points again.
-    from pipeline.controlled.catalog import Catalog
     from pipeline.night.decide import load_charts
     from pipeline.records.chart_queries import held_points
     from pipeline.records.store import Store
@@ -127,7 +127,7 @@ def test_the_store_remembers_a_held_lots_run_for_the_next_night(tmp_path):
     store = Store(f"sqlite:///{tmp_path / 'lotgate.db'}")
     catalog = Catalog({"SIM-2": SPEC}, {})
     first = decide_night([evaluation(i, v) for i, v in enumerate(BASELINE + RISING + A_B_C[:1])],
-                         {"SIM-2": SPEC}, {}, {}, "test")
+                         Catalog({"SIM-2": SPEC}, {}), {}, "test")
     limits = first.charts[("SIM-2", "specific_activity")].limits
     assert limits is not None
     for number, lot in enumerate(first.lots):
@@ -146,7 +146,7 @@ def test_the_store_remembers_a_held_lots_run_for_the_next_night(tmp_path):
     later = [evaluation(26 + i, v) for i, v in enumerate(A_B_C[1:])]
     charts = load_charts(store, catalog, later)
     assert charts[("SIM-2", "specific_activity")].marks == ((NelsonRule.SIX_RISING_OR_FALLING, 25),)
-    assert _held(decide_night(later, {"SIM-2": SPEC}, {}, charts, "test")) == []
+    assert _held(decide_night(later, Catalog({"SIM-2": SPEC}, {}), charts, "test")) == []
 
 
 def test_a_result_entered_as_a_bound_is_not_charted():
@@ -162,7 +162,7 @@ def test_a_result_entered_as_a_bound_is_not_charted():
     verdict = judge_lims(upper, "< 250", "U/mg")
     lot = evaluation(99, 205.0)
     lot = lot.__class__(**{**vars(lot), "verdicts": (verdict,)})
-    night = decide_night([lot], {"SIM-2": spec}, {}, {}, "test")
+    night = decide_night([lot], Catalog({"SIM-2": spec}, {}), {}, "test")
     assert night.lots[0].decision.disposition == Disposition.RELEASED
     assert night.lots[0].trend[0].status == TrendStatus.NOT_EVALUATED
     assert night.lots[0].chart_values == {}

@@ -25,6 +25,7 @@ DISPOSITION_CODES: dict[Disposition, str] = {
 HOLD_CODES: dict[HoldCategory, str] = {
     HoldCategory.OUT_OF_SPECIFICATION: "OOS",
     HoldCategory.INVALID_ASSAY: "INV",
+    HoldCategory.UNDECIDED_RESULT: "UND",
     HoldCategory.INCOMPLETE: "INC",
     HoldCategory.OUT_OF_TREND: "OOT",
     HoldCategory.REVIEW_REQUIRED: "REV",
