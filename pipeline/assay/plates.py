@@ -101,6 +101,15 @@ def _reads_matrix(plate_id: str, reads: pd.DataFrame, wells: list[str]) -> tuple
     return times[0] / 60.0, matrix
 
 
+def rate_settings(method: KineticMethod) -> rates.RateWindowSettings:
+    """The method's initial-rate rules (docs/assay-rules.md, "Initial rates")."""
+    w = method.rate_window
+    return rates.RateWindowSettings(
+        min_points=w.min_points, linear_limit_au=w.linear_limit_au, max_conversion=w.max_conversion_pct / 100.0,
+        max_slope_change=w.max_slope_change, curvature_alpha=w.curvature_alpha,
+        shape_action=rates.ShapeAction(w.lag_burst_action), blank_window_min=w.blank_window_min)
+
+
 def _activity_u_per_ml(method: KineticMethod, rate_au_per_min: np.ndarray, dilution: np.ndarray) -> np.ndarray:
     return np.asarray(units.activity_u_per_ml(
         rate_au_per_min, method.epsilon_per_mm_per_cm, method.path_length_cm,
@@ -136,11 +145,9 @@ def evaluate_activity_plate(plate_id: str, plate_map: pd.DataFrame, reads: pd.Da
     try:
         time_min, absorbance = _reads_matrix(plate_id, reads, wells)
         blank_names = used.loc[used["role"] == "blank", "well"].tolist()
-        window = method.rate_window
-        settings = rates.RateWindowSettings(min_points=window.min_points, min_r2=window.min_r2,
-                                            linear_limit_au=window.linear_limit_au,
-                                            max_slope_change=window.max_slope_change)
-        well_rates = rates.initial_rates(time_min, absorbance, wells, settings, blank_wells=blank_names)
+        well_rates = rates.initial_rates(time_min, absorbance, wells, rate_settings(method), blank_wells=blank_names,
+                                         substrate_mm=used["substrate_mm"].to_numpy(dtype=float),
+                                         au_per_mm=method.epsilon_per_mm_per_cm * method.path_length_cm)
     except LotgateError as exc:
         return _invalid_plate(plate_id, method, lots, [str(exc)])
     by_well = {r.well: r for r in well_rates}

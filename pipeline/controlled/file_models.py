@@ -82,10 +82,15 @@ class MethodHeader(DocumentHeader):
 
 
 class RateWindowFile(Strict):
-    min_points: int
-    min_r2: float
-    linear_limit_au: float
-    max_slope_change: float
+    # Initial-rate rules (docs/assay-rules.md, "Initial rates"): window from the first read,
+    # limited by substrate conversion; lag and burst by a one-sided curvature test.
+    min_points: int = Field(ge=5)
+    linear_limit_au: float = Positive
+    max_slope_change: float = Positive
+    max_conversion_pct: float = Field(10.0, gt=0, le=50)
+    curvature_alpha: float = Field(0.01, gt=0, le=0.5)
+    lag_burst_action: Literal["exclude", "steady-state"] = "exclude"
+    blank_window_min: float | None = Field(None, gt=0)
 
 
 class KineticSuitability(Strict):

@@ -112,9 +112,13 @@ class AssayMethod(Protocol):
 @dataclass(frozen=True)
 class RateWindow:
     min_points: int
-    min_r2: float
     linear_limit_au: float
     max_slope_change: float
+    # initial-rate rules (docs/assay-rules.md, "Initial rates")
+    max_conversion_pct: float = 10.0
+    curvature_alpha: float = 0.01
+    lag_burst_action: str = "exclude"
+    blank_window_min: float | None = None
 
 
 @dataclass(frozen=True)
