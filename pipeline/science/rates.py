@@ -43,10 +43,14 @@ from scipy import stats
 from pipeline.errors import CalculationError, InputError, SpecificationError
 from pipeline.plain_data import to_plain
 from pipeline.science.progress_fits import WindowFits, fit_windows, prefix_rises, running_sums
+from pipeline.science.read_noise import read_noise
 
 FloatArray = npt.NDArray[np.float64]
 IntArray = npt.NDArray[np.int64]
 POWER = 0.80  # the power at which the curvature test's detectable change is stated
+# Residual SD below which no lack of fit is judged (round-off on exact data): far below any
+# reader's resolution (0.0001 AU is common practice for plate readers).
+ROUND_OFF_AU = 1e-6
 
 
 class RateFlag(StrEnum):
@@ -231,30 +235,40 @@ class _Shape:
     burst: npt.NDArray[np.bool_]
 
 
-def _shape(fits: WindowFits, slope: FloatArray, conversion: FloatArray, settings: RateWindowSettings) -> _Shape:
-    """Lag and burst: a change of slope that exceeds its allowance significantly (module text).
+def _shape(fits: WindowFits, slope: FloatArray, conversion: FloatArray, settings: RateWindowSettings,
+           noise: tuple[FloatArray, FloatArray], early_slope: FloatArray) -> _Shape:
+    """Lag and burst: a change of slope beyond its allowance, or a shape no quadratic follows.
 
     With r the change relative to the rate and SE(r) its standard error, a lag is
     (r − a) / SE(r) > t₁₋α (a = ``max_slope_change``) and a burst (−r − a − conversion) / SE(r) > t₁₋α,
     one-sided at ``curvature_alpha``: a bend inside the allowance is flagged in at most α of wells.
     The change found with 80 % probability is the allowance plus (t₁₋α + t₀.₈)·SE(r).
+    A sharp lag or burst bends the curve where no quadratic follows it: the quadratic's residual
+    variance is then above the well's read-noise variance, F = σ̂²/σ̂²_noise > F₁₋α; it is a lag when
+    the first reads rise more slowly than the fitted start slope, a burst when faster.
     """
     change, change_se = fits.slope_change()
     dof = np.maximum(fits.dof, 1)
     t_crit = stats.t.ppf(1.0 - settings.curvature_alpha, dof)
     t_power = stats.t.ppf(POWER, dof)
     allowed_drop = settings.max_slope_change + np.nan_to_num(conversion, nan=0.0)
+    noise_sd, noise_dof = noise
     with np.errstate(invalid="ignore", divide="ignore"):
         relative = change * np.sign(slope) / np.abs(slope)
         relative_se = change_se / np.abs(slope)
         detectable = settings.max_slope_change + (t_crit + t_power) * relative_se
         lag = (relative - settings.max_slope_change) > t_crit * relative_se
         burst = (-relative - allowed_drop) > t_crit * relative_se
+        misfit = fits.sigma2 / noise_sd**2 > stats.f.ppf(1.0 - settings.curvature_alpha, dof, noise_dof)
+        slower_start = early_slope * np.sign(slope) < np.abs(slope)
+    misfit &= (fits.dof > 0) & (fits.sigma2 > ROUND_OFF_AU**2)
+    lag |= misfit & slower_start
+    burst |= misfit & ~slower_start
     return _Shape(relative, detectable, lag & np.isfinite(relative), burst & np.isfinite(relative))
 
 
 def _steady_starts(sums: Any, wells: IntArray, stop: IntArray, conversion: FloatArray,
-                   settings: RateWindowSettings) -> tuple[IntArray, WindowFits | None]:
+                   settings: RateWindowSettings, noise: tuple[FloatArray, FloatArray]) -> tuple[IntArray, WindowFits | None]:
     """For each listed well, the first later start whose window to ``stop`` no longer bends (−1: none)."""
     m = settings.min_points
     reads = sums.x.size
@@ -264,7 +278,9 @@ def _steady_starts(sums: Any, wells: IntArray, stop: IntArray, conversion: Float
     rows_e = np.repeat(stop, starts.size)
     fits = fit_windows(sums, rows_w, rows_s, np.maximum(rows_e, rows_s + 1), 3)
     slope, _ = fits.start_slope()
-    shape = _shape(fits, slope, np.repeat(conversion, starts.size), settings)
+    early = fit_windows(sums, rows_w, rows_s, np.minimum(rows_s + m, rows_e), 2).start_slope()[0]
+    shape = _shape(fits, slope, np.repeat(conversion, starts.size), settings,
+                   (np.repeat(noise[0], starts.size), np.repeat(noise[1], starts.size)), early)
     good = ((rows_e - rows_s) >= m) & ~shape.lag & ~shape.burst & np.isfinite(slope)
     good = good.reshape(wells.size, starts.size)
     found = good.any(axis=1)
@@ -335,13 +351,16 @@ def initial_rates(
     line = fit_windows(sums, index, zero, stop, 2)
     q_slope, q_var = quad.start_slope()
     l_slope, l_var = line.start_slope()
-    shape = _shape(quad, q_slope, conversion, settings)
+    noise = read_noise(t, a, usable_n)
+    early = fit_windows(sums, index, zero, np.minimum(stop, m), 2).start_slope()[0]
+    shape = _shape(quad, q_slope, conversion, settings, noise, early)
 
     steady_start = np.full(n_wells, -1)
     steady: WindowFits | None = None
     shaped = np.flatnonzero((shape.lag | shape.burst) & ~is_blank & (stop >= m))
     if settings.shape_action is ShapeAction.STEADY_STATE and shaped.size:
-        first, steady = _steady_starts(sums, shaped, stop[shaped], conversion[shaped], settings)
+        first, steady = _steady_starts(sums, shaped, stop[shaped], conversion[shaped], settings,
+                                       (noise[0][shaped], noise[1][shaped]))
         steady_start[shaped] = first
     steady_slope, steady_var = steady.start_slope() if steady is not None else (np.array([]), np.array([]))
     steady_rows = {int(w): k for k, w in enumerate(shaped[steady_start[shaped] >= 0])}
@@ -350,7 +369,7 @@ def initial_rates(
     for i, name in enumerate(names):
         usable = int(usable_n[i])
         cut = None if usable >= n_reads else ("saturated" if saturated[i, usable] else "not a number")
-        results.append(_well_result(name, i, t, a[i], sums, settings, usable, cut, int(stop[i]), bool(is_blank[i]),
+        results.append(_well_result(name, i, t, a[i], sums, settings, usable, cut, int(stop[i]), bool(is_blank[i]), bool(limited[i]),
                                     (quad, q_slope, q_var), (line, l_slope, l_var), shape,
                                     float(conversion[i]), steady_rows.get(i), int(steady_start[i]),
                                     (steady, steady_slope, steady_var)))
@@ -358,7 +377,7 @@ def initial_rates(
 
 
 def _well_result(name: str, i: int, t: FloatArray, a_well: FloatArray, sums: Any, settings: RateWindowSettings,
-                 usable: int, cut: str | None, stop: int, blank: bool, quad: Any, line: Any, shape: _Shape,
+                 usable: int, cut: str | None, stop: int, blank: bool, limited: bool, quad: Any, line: Any, shape: _Shape,
                  conversion: float, steady_row: int | None, steady_start: int, steady: Any) -> WellRate:
     """One well's rate, flag and analyst wording."""
     m = settings.min_points
@@ -371,7 +390,7 @@ def _well_result(name: str, i: int, t: FloatArray, a_well: FloatArray, sums: Any
     if stop < m:
         if t.size < m:
             return flagged(RateFlag.TOO_FEW_POINTS, f"only {t.size} reads on the plate; at least {m} are needed")
-        if not blank and np.isfinite(conversion) and stop < usable:
+        if limited and stop < usable:
             return flagged(RateFlag.CONVERSION_LIMIT,
                            f"more than {100 * settings.max_conversion:g} % of the substrate is converted within "
                            f"{stop + 1} reads (by {t[min(stop, t.size - 1)]:g} min); at least {m} reads are needed "
@@ -393,11 +412,11 @@ def _well_result(name: str, i: int, t: FloatArray, a_well: FloatArray, sums: Any
     note = ""
     if not blank and (shape.lag[i] or shape.burst[i]):
         shape_name = RateFlag.LAG.value if shape.lag[i] else RateFlag.BURST.value
-        what = ("a lag: the rate rises" if shape.lag[i] else "a burst: the rate falls") + (
-            f" by {100 * abs(shape.change[i]):.0f} % across {t[0]:g}–{t[stop - 1]:g} min (beyond the allowed "
-            f"{100 * settings.max_slope_change:g} %"
-            + ("" if shape.lag[i] else f" plus the {100 * conversion:.1f} % converted")
-            + f", one-sided at {settings.curvature_alpha:g})")
+        what = (("a lag: the first reads rise more slowly" if shape.lag[i] else "a burst: the first reads rise faster")
+                + f" than the rest of {t[0]:g}–{t[stop - 1]:g} min allows (fitted slope change "
+                f"{100 * float(shape.change[i]):+.0f} %, allowed {100 * settings.max_slope_change:g} %"
+                + ("" if shape.lag[i] else f" plus the {100 * conversion:.1f} % converted")
+                + f"; or the curve bends more sharply than its read noise allows; tested at {settings.curvature_alpha:g})")
         if settings.shape_action is ShapeAction.EXCLUDE or steady_row is None:
             why = "" if settings.shape_action is ShapeAction.EXCLUDE else "; no later stretch is free of it"
             return flagged(RateFlag(shape_name), f"{what}{why}; excluded as the method says",
