@@ -18,6 +18,7 @@ from pipeline.controlled.specs import KineticMethod
 from pipeline.errors import CalculationError, LotgateError
 from pipeline.plain_data import to_plain
 from pipeline.science import protein_readings, rates, units
+from pipeline.science.combined_uncertainty import RelativeTerm, combined
 from pipeline.science.measurement import Measurement
 
 SUBSTRATE_MATCH_MM = 1e-6
@@ -72,8 +73,10 @@ def replicate_measurement(name: str, unit: str, values: np.ndarray, cv_max_pct: 
     elif cv > cv_max_pct:
         valid = False
         reasons.append(f"replicate CV {cv:.1f} % of {what} exceeds the method limit {cv_max_pct:.1f} %")
+    dof = n - 1 if se is not None else None
+    ci95 = combined(mean, [RelativeTerm(abs(se / mean), dof)]).ci95 if se is not None and dof and mean else None
     return Measurement(name, unit, mean, se=se, n=n, valid=valid, reasons=tuple(reasons),
-                       detail={"replicates": [float(v) for v in values], "cv_pct": cv})
+                       detail={"replicates": [float(v) for v in values], "cv_pct": cv}, dof=dof, ci95=ci95)
 
 
 def _reads_matrix(plate_id: str, reads: pd.DataFrame, wells: list[str]) -> tuple[np.ndarray, np.ndarray]:
@@ -201,7 +204,7 @@ def evaluate_activity_plate(plate_id: str, plate_map: pd.DataFrame, reads: pd.Da
         good = samples[plate.ok[samples]]
         values = _activity_u_per_ml(method, plate.slope[good] - blank_rate, plate.dilution[good])
         m = replicate_measurement("activity", "U/mL", values, method.replicate_cv_max_pct, f"lot {lot} activity")
-        activity[lot] = Measurement(m.name, m.unit, m.value, se=m.se, n=m.n, valid=m.valid,
+        activity[lot] = Measurement(m.name, m.unit, m.value, se=m.se, n=m.n, valid=m.valid, dof=m.dof, ci95=m.ci95,
                                     reasons=(*m.reasons, *excluded) if not m.valid else m.reasons,
                                     detail={**m.detail, "excluded_wells": excluded,
                                             "wells": [plate.wells[i] for i in good]})

@@ -105,6 +105,10 @@ class KineticSuitability(Strict):
 class KineticSettings(Strict):
     model_selection_alpha: float = Field(0.05, gt=0, lt=1)
     km_max_relative_se: float = Field(0.25, gt=0)
+    # Model choice (docs/assay-rules.md, "Kinetic constants"): the model Km is reported and trended
+    # from, and how far beyond the highest substrate tested a Ki may lie for inhibition to be chosen.
+    km_model: Literal["michaelis-menten", "substrate-inhibition"] = "michaelis-menten"
+    ki_max_multiple: float = Field(10.0, gt=0)
 
 
 class KineticMethodFile(MethodHeader):
