@@ -24,7 +24,11 @@ from pipeline.release.records import AttributeVerdict
 from pipeline.release.verdicts import judge_lims, judge_measurement
 from pipeline.science.combined_uncertainty import RelativeTerm, combined, fit_ratio_term
 from pipeline.science.kinetic_constants import km_determination
-from pipeline.science.kinetic_model_choice import KI_MAX_MULTIPLE, KineticModelChoice, choose_kinetic_models
+from pipeline.science.kinetic_model_choice import (
+    KI_MAX_MULTIPLE,
+    KineticModelChoice,
+    choose_kinetic_models,
+)
 from pipeline.science.measurement import Measurement
 from pipeline.science.michaelis_menten import MICHAELIS_MENTEN, fit_michaelis_menten_batch
 from pipeline.vocabulary import Verdict

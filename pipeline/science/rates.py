@@ -31,159 +31,34 @@ well (``pipeline.science.progress_fits``).
 
 from __future__ import annotations
 
-from collections.abc import Mapping, Sequence
-from dataclasses import asdict, dataclass, fields
-from enum import StrEnum
+from collections.abc import Sequence
 from typing import Any
 
 import numpy as np
 import numpy.typing as npt
 from scipy import stats
 
-from pipeline.errors import CalculationError, InputError, SpecificationError
-from pipeline.plain_data import to_plain
+from pipeline.errors import CalculationError, InputError
 from pipeline.science.progress_fits import WindowFits, fit_windows, prefix_rises, running_sums
+from pipeline.science.rate_types import (
+    POWER,
+    ROUND_OFF_AU,
+    BlankCorrection,
+    RateFlag,
+    RateShape,
+    RateWindowSettings,
+    ShapeAction,
+    SlopeKind,
+    WellRate,
+)
+from pipeline.science.rate_wording import well_result
 from pipeline.science.read_noise import read_noise
+
+__all__ = ["BlankCorrection", "RateFlag", "RateWindowSettings", "ShapeAction", "SlopeKind", "WellRate",
+           "blank_corrected", "initial_rates"]
 
 FloatArray = npt.NDArray[np.float64]
 IntArray = npt.NDArray[np.int64]
-POWER = 0.80  # the power at which the curvature test's detectable change is stated
-# Residual SD below which no lack of fit is judged (round-off on exact data): far below any
-# reader's resolution (0.0001 AU is common practice for plate readers).
-ROUND_OFF_AU = 1e-6
-
-
-class RateFlag(StrEnum):
-    """Why a well has no usable initial rate."""
-
-    TOO_FEW_POINTS = "too-few-points"
-    SATURATED = "saturated"
-    NON_FINITE = "non-finite"
-    CONVERSION_LIMIT = "conversion-limit"
-    LAG = "lag"
-    BURST = "burst"
-
-
-class ShapeAction(StrEnum):
-    """What a well with a lag or a burst gives, as the method says."""
-
-    EXCLUDE = "exclude"
-    STEADY_STATE = "steady-state"
-
-
-class SlopeKind(StrEnum):
-    INITIAL = "initial"  # quadratic from the first read, slope at the first read
-    STEADY_STATE = "steady-state"  # quadratic from a later read, after a lag or burst
-    WHOLE_READ = "blank-line"  # straight line over a blank's whole read (or fixed window)
-
-
-# --------------------------------------------------------------------------- settings and results
-
-
-@dataclass(frozen=True)
-class RateWindowSettings:
-    """Method parameters of the initial-rate window (defaults: common practice)."""
-
-    min_points: int = 5
-    linear_limit_au: float = 2.0
-    max_conversion: float = 0.10
-    max_slope_change: float = 0.10
-    curvature_alpha: float = 0.01
-    shape_action: ShapeAction = ShapeAction.EXCLUDE
-    blank_window_min: float | None = None
-
-    def __post_init__(self) -> None:
-        if isinstance(self.min_points, bool) or not isinstance(self.min_points, int):
-            raise SpecificationError(f"min_points must be a whole number; received {self.min_points!r}")
-        if self.min_points < 5:
-            raise SpecificationError(
-                f"min_points must be at least 5 (a quadratic and 2 degrees of freedom for its "
-                f"curvature test); received {self.min_points}"
-            )
-        checks = (
-            ("linear_limit_au", self.linear_limit_au, 0.0, np.inf, "a positive absorbance"),
-            ("max_conversion", self.max_conversion, 0.0, 0.5, "a fraction above 0 and at most 0.5"),
-            ("max_slope_change", self.max_slope_change, 0.0, np.inf, "a positive fraction"),
-            ("curvature_alpha", self.curvature_alpha, 0.0, 0.5, "between 0 and 0.5"),
-        )
-        for name, value, low, high, allowed in checks:
-            number = value if isinstance(value, int | float) and not isinstance(value, bool) else None
-            if number is None or not np.isfinite(number) or not (low < number <= high):
-                raise SpecificationError(f"{name} must be {allowed}; received {value!r}")
-        try:
-            object.__setattr__(self, "shape_action", ShapeAction(self.shape_action))
-        except ValueError as exc:
-            raise SpecificationError(
-                f"shape_action must be one of {[a.value for a in ShapeAction]}; received {self.shape_action!r}"
-            ) from exc
-        window = self.blank_window_min
-        if window is not None and (isinstance(window, bool) or not isinstance(window, int | float)
-                                   or not np.isfinite(window) or window <= 0):
-            raise SpecificationError(f"blank_window_min must be a positive time in minutes or absent; received {window!r}")
-
-    @classmethod
-    def from_mapping(cls, mapping: Mapping[str, Any]) -> RateWindowSettings:
-        """Build settings from a method file section; unknown keys are an error."""
-        known = {f.name for f in fields(cls)}
-        unknown = sorted(set(mapping) - known)
-        if unknown:
-            raise SpecificationError(f"unknown rate-window setting(s) {unknown}; allowed: {sorted(known)}")
-        return cls(**dict(mapping))
-
-    def to_dict(self) -> dict[str, Any]:
-        return dict(to_plain(asdict(self)))
-
-
-@dataclass(frozen=True)
-class WellRate:
-    """Initial rate of one well; ``flag`` is None when the rate can be used.
-
-    ``slope_dof`` is the degrees of freedom of the slope's SE (n − 3 for a quadratic, n − 2 for a
-    blank's line); ``conversion_pct`` the substrate converted by the window's end;
-    ``slope_change_pct`` the fitted change of slope across the window relative to the rate, and
-    ``detectable_change_pct`` the change the curvature test finds with 80 % probability.
-    """
-
-    well: str
-    slope_au_per_min: float
-    slope_se_au_per_min: float
-    intercept_au: float
-    r2: float
-    window_start_min: float
-    window_end_min: float
-    n_points: int
-    flag: str | None
-    reason: str
-    slope_dof: int = 0
-    conversion_pct: float = float("nan")
-    slope_change_pct: float = float("nan")
-    detectable_change_pct: float = float("nan")
-    shape: str | None = None
-    slope_kind: str | None = None
-
-    @property
-    def ok(self) -> bool:
-        return self.flag is None
-
-    def to_dict(self) -> dict[str, Any]:
-        out: dict[str, Any] = to_plain(vars(self))  # flat fields (a night has ~10^5 wells)
-        out["ok"] = self.ok
-        return out
-
-
-@dataclass(frozen=True)
-class BlankCorrection:
-    """Sample rates minus the mean blank rate (spontaneous reaction without enzyme)."""
-
-    corrected_slopes_au_per_min: tuple[float, ...]
-    blank_mean_au_per_min: float
-    blank_se_au_per_min: float
-    n_blanks: int
-
-    def to_dict(self) -> dict[str, Any]:
-        return dict(to_plain(self))
-
-
 # --------------------------------------------------------------------------- inputs
 
 
@@ -227,16 +102,8 @@ def _substrates(substrate_mm: npt.ArrayLike | None, wells: int) -> FloatArray:
 # --------------------------------------------------------------------------- the search
 
 
-@dataclass(frozen=True)
-class _Shape:
-    change: FloatArray  # relative change of slope across the window (signed: + = speeding up)
-    detectable: FloatArray
-    lag: npt.NDArray[np.bool_]
-    burst: npt.NDArray[np.bool_]
-
-
 def _shape(fits: WindowFits, slope: FloatArray, conversion: FloatArray, settings: RateWindowSettings,
-           noise: tuple[FloatArray, FloatArray], early_slope: FloatArray) -> _Shape:
+           noise: tuple[FloatArray, FloatArray], early_slope: FloatArray) -> RateShape:
     """Lag and burst: a change of slope beyond its allowance, or a shape no quadratic follows.
 
     With r the change relative to the rate and SE(r) its standard error, a lag is
@@ -264,7 +131,7 @@ def _shape(fits: WindowFits, slope: FloatArray, conversion: FloatArray, settings
     misfit &= (fits.dof > 0) & (fits.sigma2 > ROUND_OFF_AU**2)
     lag |= misfit & slower_start
     burst |= misfit & ~slower_start
-    return _Shape(relative, detectable, lag & np.isfinite(relative), burst & np.isfinite(relative))
+    return RateShape(relative, detectable, lag & np.isfinite(relative), burst & np.isfinite(relative))
 
 
 def _steady_starts(sums: Any, wells: IntArray, stop: IntArray, conversion: FloatArray,
@@ -369,86 +236,11 @@ def initial_rates(
     for i, name in enumerate(names):
         usable = int(usable_n[i])
         cut = None if usable >= n_reads else ("saturated" if saturated[i, usable] else "not a number")
-        results.append(_well_result(name, i, t, a[i], sums, settings, usable, cut, int(stop[i]), bool(is_blank[i]), bool(limited[i]),
+        results.append(well_result(name, i, t, a[i], sums, settings, usable, cut, int(stop[i]), bool(is_blank[i]), bool(limited[i]),
                                     (quad, q_slope, q_var), (line, l_slope, l_var), shape,
                                     float(conversion[i]), steady_rows.get(i), int(steady_start[i]),
                                     (steady, steady_slope, steady_var)))
     return tuple(results)
-
-
-def _well_result(name: str, i: int, t: FloatArray, a_well: FloatArray, sums: Any, settings: RateWindowSettings,
-                 usable: int, cut: str | None, stop: int, blank: bool, limited: bool, quad: Any, line: Any, shape: _Shape,
-                 conversion: float, steady_row: int | None, steady_start: int, steady: Any) -> WellRate:
-    """One well's rate, flag and analyst wording."""
-    m = settings.min_points
-    nan = float("nan")
-    cut_text = "" if cut is None else f"; reads from {t[usable]:g} min excluded ({cut})"
-
-    def flagged(flag: RateFlag, text: str, **extra: Any) -> WellRate:
-        return WellRate(name, nan, nan, nan, nan, nan, nan, 0, flag.value, f"well {name}: {text}", **extra)
-
-    if stop < m:
-        if t.size < m:
-            return flagged(RateFlag.TOO_FEW_POINTS, f"only {t.size} reads on the plate; at least {m} are needed")
-        if limited and stop < usable:
-            return flagged(RateFlag.CONVERSION_LIMIT,
-                           f"more than {100 * settings.max_conversion:g} % of the substrate is converted within "
-                           f"{stop + 1} reads (by {t[min(stop, t.size - 1)]:g} min); at least {m} reads are needed "
-                           f"below the limit: dilute the sample further or read more often")
-        if cut == "saturated" and usable < m:
-            return flagged(RateFlag.SATURATED, f"only {usable} reads before {t[usable]:g} min, where the well reaches "
-                                               f"the linear limit {settings.linear_limit_au:g} AU; at least {m} are needed")
-        if cut == "not a number" and usable < m:
-            return flagged(RateFlag.NON_FINITE, f"only {usable} reads before {t[usable]:g} min, where the well has a "
-                                                f"non-numeric read; at least {m} are needed")
-        return flagged(RateFlag.TOO_FEW_POINTS, f"only {stop} reads in the window; at least {m} are needed")
-
-    fits, slope, var = line if blank else quad
-    x_to_min = sums.span_min
-    start_read = 0
-    kind = SlopeKind.WHOLE_READ if blank else SlopeKind.INITIAL
-    row = i
-    shape_name: str | None = None
-    note = ""
-    if not blank and (shape.lag[i] or shape.burst[i]):
-        shape_name = RateFlag.LAG.value if shape.lag[i] else RateFlag.BURST.value
-        what = (("a lag: the first reads rise more slowly" if shape.lag[i] else "a burst: the first reads rise faster")
-                + f" than the rest of {t[0]:g}–{t[stop - 1]:g} min allows (fitted slope change "
-                f"{100 * float(shape.change[i]):+.0f} %, allowed {100 * settings.max_slope_change:g} %"
-                + ("" if shape.lag[i] else f" plus the {100 * conversion:.1f} % converted")
-                + f"; or the curve bends more sharply than its read noise allows; tested at {settings.curvature_alpha:g})")
-        if settings.shape_action is ShapeAction.EXCLUDE or steady_row is None:
-            why = "" if settings.shape_action is ShapeAction.EXCLUDE else "; no later stretch is free of it"
-            return flagged(RateFlag(shape_name), f"{what}{why}; excluded as the method says",
-                           conversion_pct=100 * conversion, slope_change_pct=100 * float(shape.change[i]),
-                           shape=shape_name)
-        fits, slope, var = steady
-        row, start_read, kind = steady_row, steady_start, SlopeKind.STEADY_STATE
-        note = f"; {what}: steady-state slope from {t[start_read]:g} min, as the method says"
-    b = float(slope[row]) / x_to_min
-    se = float(np.sqrt(var[row])) / x_to_min
-    x_s = fits.x_start[row]
-    beta = fits.beta[row]
-    fitted_start = beta[0] + beta[1] * x_s + (beta[2] * x_s * x_s if fits.params == 3 else 0.0)
-    intercept = float(sums.y0[i] + fitted_start - b * t[start_read])
-    n = int(fits.n[row])
-    end = start_read + n - 1
-    if blank:
-        text = f"blank line over {t[0]:g}–{t[end]:g} min ({n} reads)"
-    else:
-        text = (f"window {t[start_read]:g}–{t[end]:g} min ({n} reads), "
-                f"{100 * conversion:.1f} % of the substrate converted" if np.isfinite(conversion)
-                else f"window {t[start_read]:g}–{t[end]:g} min ({n} reads)")
-        text += (f"; slope change {100 * float(shape.change[i]):+.1f} % (a change of "
-                 f"{100 * float(shape.detectable[i]):.0f} % is found with 80 % probability)")
-    return WellRate(
-        well=name, slope_au_per_min=b, slope_se_au_per_min=se, intercept_au=intercept,
-        r2=float(fits.r2()[row]), window_start_min=float(t[start_read]), window_end_min=float(t[end]),
-        n_points=n, flag=None, reason=f"well {name}: {text}{note}{cut_text}", slope_dof=int(fits.dof[row]),
-        conversion_pct=100 * conversion, slope_change_pct=nan if blank else 100 * float(shape.change[i]),
-        detectable_change_pct=nan if blank else 100 * float(shape.detectable[i]),
-        shape=shape_name, slope_kind=kind.value,
-    )
 
 
 def blank_corrected(sample_slopes: npt.ArrayLike, blank_slopes: npt.ArrayLike) -> BlankCorrection:
