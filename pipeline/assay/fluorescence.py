@@ -46,6 +46,8 @@ class FluorescenceMethod:
     bias_limit_pct: float
     lowest_bias_limit_pct: float
     replicate_cv_max_pct: float
+    min_calibrator_pct: float = 75.0  # standard-curve acceptance (docs/assay-rules.md, "Protein")
+    min_curve_levels: int = 6
     measurement: ClassVar[str] = "fluorescence-endpoint"
 
 

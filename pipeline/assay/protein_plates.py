@@ -16,7 +16,8 @@ from pipeline.assay.plates import replicate_measurement
 from pipeline.controlled.specs import ProteinMethod
 from pipeline.errors import LotgateError
 from pipeline.plain_data import to_plain
-from pipeline.science import protein_readings, standard_curves
+from pipeline.science import protein_readings
+from pipeline.science.curve_acceptance import accept_standard_curve
 from pipeline.science.measurement import Measurement
 
 
@@ -136,19 +137,24 @@ def evaluate_standard_curve_plate(plate_id: str, merged: pd.DataFrame, method: A
     if standards.empty:
         return invalid_protein_plate(plate_id, method, lots, [f"plate {plate_id}: no standard curve wells"])
     try:
-        curve = standard_curves.fit_standard_curve(
+        acceptance = accept_standard_curve(
             standards["nominal_mg_per_ml"].to_numpy(dtype=float), standards[column].to_numpy(dtype=float),
             method.curve_model, weighting=method.curve_weighting, min_r2=method.curve_min_r2,
-            bias_limit_pct=method.bias_limit_pct, lowest_bias_limit_pct=method.lowest_bias_limit_pct)
+            bias_limit_pct=method.bias_limit_pct, lowest_bias_limit_pct=method.lowest_bias_limit_pct,
+            min_fraction=method.min_calibrator_pct / 100.0, min_levels=method.min_curve_levels)
     except LotgateError as exc:
         return invalid_protein_plate(plate_id, method, lots, [f"plate {plate_id}: the standard curve cannot be fitted: {exc}"])
-    curve_dict = {**curve.to_dict(), "params": [float(v) for v in curve.params], "points": curve.response_curve(),
+    curve = acceptance.curve
+    curve_dict = {**curve.to_dict(), **acceptance.to_dict(), "accepted": acceptance.accepted,
+                  "reasons": list(acceptance.reasons),
+                  "params": [float(v) for v in curve.params], "points": curve.response_curve(),
                   "param_names": list(curve.param_names), "standards": [[float(x), float(y)] for x, y in
                                                    zip(standards["nominal_mg_per_ml"], standards[column], strict=True)],
                   "signal_label": signal.label, "signal_heading": signal.heading}
-    if not curve.accepted:
-        return invalid_protein_plate(plate_id, method, lots,
-                                     [f"plate {plate_id}: standard curve not accepted: {'; '.join(curve.reasons)}"], curve_dict)
+    if not acceptance.accepted:
+        why = "; ".join((*acceptance.reasons, *acceptance.exclusions))
+        return invalid_protein_plate(plate_id, method, lots, [f"plate {plate_id}: standard curve not accepted: {why}"],
+                                     curve_dict)
     result: dict[str, Measurement] = {}
     samples_out: dict[str, list[dict[str, Any]]] = {}
     for lot in lots:

@@ -144,6 +144,9 @@ class CurveFile(Strict):
     min_r2: float
     bias_limit_pct: float
     lowest_bias_limit_pct: float
+    # Acceptance (docs/assay-rules.md, "Protein"): share of non-zero standards and levels within limits.
+    min_calibrator_pct: float = Field(75.0, gt=0, le=100)
+    min_levels: int = Field(6, ge=1)
 
 
 class CurveMethodFile(MethodHeader):

@@ -181,6 +181,9 @@ class ProteinMethod:
     path_length_cm: float | None = None  # A280 only
     linear_min_au: float | None = None  # A280 only: the photometer's linear range
     linear_max_au: float | None = None
+    # standard-curve acceptance (docs/assay-rules.md, "Protein")
+    min_calibrator_pct: float = 75.0
+    min_curve_levels: int = 6
 
     @property
     def measurement(self) -> str:
@@ -289,6 +292,7 @@ def curve_fields(m: CurveMethodFile, where: str) -> dict[str, Any]:
     return dict(standard=m.standard, curve_model=curve.model, curve_weighting=curve.weighting,
                 curve_min_r2=curve.min_r2, bias_limit_pct=curve.bias_limit_pct,
                 lowest_bias_limit_pct=curve.lowest_bias_limit_pct,
+                min_calibrator_pct=curve.min_calibrator_pct, min_curve_levels=curve.min_levels,
                 replicate_cv_max_pct=(m.suitability or ProteinSuitability()).replicate_cv_max_pct)
 
 
