@@ -75,3 +75,49 @@ def test_settings_out_of_range_are_refused() -> None:
 
     with pytest.raises(CalculationError, match="calibrator fraction"):
         accept_standard_curve(X, _signal(X), "linear", min_fraction=1.5)
+
+
+# --------------------------------------------------------------------------- the curve's share of a protein SE
+
+
+def test_inverse_prediction_se_of_a_line_matches_the_textbook_formula() -> None:
+    # Straight-line calibration (Draper & Smith, Applied Regression Analysis, 3rd ed., 3.2):
+    # SE of x̂ from the line alone = (s/|b|)·√(1/n + (x̂ − x̄)²/Sxx).
+    from pipeline.science.curve_uncertainty import inverse_prediction_se
+    from pipeline.science.standard_curves import fit_standard_curve
+
+    y = _signal(X, seed=8)
+    curve = fit_standard_curve(X, y, "linear")
+    b = curve.params[1]
+    s = np.sqrt(np.sum((y - (curve.params[0] + b * X)) ** 2) / (X.size - 2))
+    x_hat = 0.6
+    expected = s / abs(b) * np.sqrt(1 / X.size + (x_hat - X.mean()) ** 2 / np.sum((X - X.mean()) ** 2))
+    assert inverse_prediction_se(curve, x_hat) == pytest.approx(expected, rel=1e-6)
+
+
+@pytest.mark.slow
+def test_protein_interval_with_the_curve_share_covers() -> None:
+    # Simulated plates (known truth 0.6 mg/mL in the well, triplicates read with 0.004 AU scatter,
+    # standards with 0.01 AU): the replicates alone miss the curve's error shared by all three
+    # (89 % measured); replicate ⊕ curve (Welch–Satterthwaite) covers. Where the replicates'
+    # 2-dof SE dominates, Welch–Satterthwaite measures 92.6–93.0 % (docs/assay-rules.md).
+    from pipeline.assay.protein_plates import with_curve_uncertainty
+    from pipeline.science.measurement import Measurement
+    from pipeline.science.standard_curves import fit_standard_curve
+
+    rng = np.random.default_rng(31)
+    hits = hits_replicates_only = 0
+    trials = 2000
+    for _ in range(trials):
+        y = 0.05 + 0.8 * X + rng.normal(0, 0.01, X.size)
+        curve = fit_standard_curve(X, y, "linear", min_r2=0.9)
+        reads = 0.05 + 0.8 * 0.6 + rng.normal(0, 0.004, 3)
+        values = (reads - curve.params[0]) / curve.params[1]
+        mean, se = values.mean(), values.std(ddof=1) / np.sqrt(3)
+        half = 4.303 * se  # t(0.975, 2), statistical tables
+        hits_replicates_only += abs(mean - 0.6) <= half
+        replicates = Measurement("protein", "mg/mL", mean, se=se, n=3, dof=2, ci95=(mean - half, mean + half))
+        low, high = with_curve_uncertainty(replicates, curve, mean).ci95
+        hits += low <= 0.6 <= high
+    assert 0.93 <= hits / trials <= 0.97
+    assert hits_replicates_only < hits

@@ -17,7 +17,9 @@ from pipeline.controlled.specs import ProteinMethod
 from pipeline.errors import LotgateError
 from pipeline.plain_data import to_plain
 from pipeline.science import protein_readings
+from pipeline.science.combined_uncertainty import RelativeTerm, combined
 from pipeline.science.curve_acceptance import accept_standard_curve
+from pipeline.science.curve_uncertainty import inverse_prediction_se
 from pipeline.science.measurement import Measurement
 
 
@@ -172,5 +174,26 @@ def evaluate_standard_curve_plate(plate_id: str, merged: pd.DataFrame, method: A
                                       reasons=(f"{len(outside)} of {len(readings)} replicates {outside[0].reason}",))
             continue
         values = np.array([r.concentration_mg_per_ml for r in readings], dtype=float)
-        result[lot] = replicate_measurement("protein", "mg/mL", values, method.replicate_cv_max_pct, f"lot {lot} protein")
+        replicates = replicate_measurement("protein", "mg/mL", values, method.replicate_cv_max_pct, f"lot {lot} protein")
+        in_well = float(np.mean([r.in_well_mg_per_ml for r in readings]))
+        result[lot] = with_curve_uncertainty(replicates, curve, in_well)
     return ProteinPlateResult(plate_id, method.method_id, version, True, (), result, curve_dict, samples_out)
+
+
+def with_curve_uncertainty(replicates: Measurement, curve: Any, in_well_mg_per_ml: float) -> Measurement:
+    """The replicates' SE (n − 1 dof) combined with the curve's inverse-prediction SE (its n − p dof).
+
+    Both as relative SEs, Welch–Satterthwaite dof, 95 % interval (docs/assay-rules.md, "Protein").
+    """
+    curve_se = inverse_prediction_se(curve, in_well_mg_per_ml)
+    if replicates.value is None or replicates.se is None or replicates.dof is None or not np.isfinite(curve_se) \
+            or not in_well_mg_per_ml:
+        return replicates
+    terms = [RelativeTerm(abs(replicates.se / replicates.value), replicates.dof),
+             RelativeTerm(curve_se / in_well_mg_per_ml, float(curve.dof))]
+    total = combined(replicates.value, terms)
+    detail = {**replicates.detail, "replicate_se": replicates.se, "replicate_dof": replicates.dof,
+              "curve_se_mg_per_ml": abs(replicates.value) * curve_se / in_well_mg_per_ml, "curve_dof": curve.dof}
+    return Measurement(replicates.name, replicates.unit, replicates.value, se=total.se, ci95=total.ci95,
+                       n=replicates.n, valid=replicates.valid, reasons=replicates.reasons, detail=detail,
+                       dof=total.dof)
