@@ -109,6 +109,7 @@ class KineticSettings(Strict):
     # from, and how far beyond the highest substrate tested a Ki may lie for inhibition to be chosen.
     km_model: Literal["michaelis-menten", "substrate-inhibition"] = "michaelis-menten"
     ki_max_multiple: float = Field(10.0, gt=0)
+    error_model: Literal["constant", "proportional"] = "constant"  # the rates' SD: fit weights
 
 
 class KineticMethodFile(MethodHeader):

@@ -152,6 +152,7 @@ class KineticMethod:
     # kinetic model choice (docs/assay-rules.md, "Kinetic constants")
     km_model: str = "michaelis-menten"
     ki_max_multiple: float = 10.0
+    error_model: str = "constant"
     measurement: ClassVar[str] = "kinetic"  # the method file's 'measurement' (see pipeline.assay.method_kinds)
 
     def recovery_attribute(self) -> Attribute:
@@ -263,7 +264,7 @@ def parse_kinetic_method(raw: dict[str, Any], where: str, sha256: str) -> Kineti
         sample_preparation=m.sample_preparation,
         recovery_trend_rules=_rules(trend.rules, f"{where}, suitability.recovery_trend"),
         recovery_baseline_n=20 if trend.baseline_n is None else trend.baseline_n,
-        km_model=kin.km_model, ki_max_multiple=kin.ki_max_multiple,
+        km_model=kin.km_model, ki_max_multiple=kin.ki_max_multiple, error_model=kin.error_model,
     )
 
 

@@ -24,6 +24,7 @@ from pipeline.release.records import AttributeVerdict
 from pipeline.release.verdicts import judge_lims, judge_measurement
 from pipeline.science.combined_uncertainty import RelativeTerm, combined, fit_ratio_term
 from pipeline.science.kinetic_constants import km_determination
+from pipeline.science.kinetic_error_models import ErrorModel, error_model_weights, residual_check
 from pipeline.science.kinetic_model_choice import (
     KI_MAX_MULTIPLE,
     KineticModelChoice,
@@ -103,7 +104,7 @@ def _term(m: Measurement) -> RelativeTerm:
     return RelativeTerm(m.relative_se or 0.0, m.dof if m.dof and m.dof > 0 else math.inf)
 
 
-def _fit_batch(series: dict[str, KineticSeries], alpha: dict[str, tuple[float, float]]) -> dict[str, KineticModelChoice | str]:
+def _fit_batch(series: dict[str, KineticSeries], alpha: dict[str, tuple[float, float, str]]) -> dict[str, KineticModelChoice | str]:
     """The night's kinetic fits in vectorised solves: Michaelis–Menten for every lot's substrate
     series, then the model choice (substrate inhibition by the F test) for those that fitted."""
     usable = {lot: s for lot, s in series.items() if s.valid and len(s.substrate_mm) >= 3}
@@ -136,7 +137,8 @@ def _fit_batch(series: dict[str, KineticSeries], alpha: dict[str, tuple[float, f
     for level in sorted({alpha[lot] for lot in fitted}):
         group = [lot for lot in fitted if alpha[lot] == level]
         s, v, mask = stack(group)
-        choices = choose_kinetic_models(s, v, mask=mask, alpha=level[0], ki_max_multiple=level[1])
+        weights = error_model_weights(s, v, mask, level[2])  # the method's declared error model
+        choices = choose_kinetic_models(s, v, weights=weights, mask=mask, alpha=level[0], ki_max_multiple=level[1])
         for lot, choice in zip(group, choices, strict=True):
             out[lot] = choice
     return out
@@ -175,10 +177,17 @@ def _kinetic_measurements(lot: str, series: KineticSeries | None, choice: Kineti
         fit_dict, curve = si.to_dict(), si.curve(series.substrate_mm)
     quality = km_determination(_KmView(km, km_se, fit.converged), series.substrate_mm, method.km_max_relative_se)
     notes = [choice.reason] if choice.flagged else []
+    error_model = getattr(method, "error_model", ErrorModel.CONSTANT.value)
+    weights = error_model_weights(series.substrate_mm, series.rate_u_per_ml, None, error_model)
+    check = residual_check(series.substrate_mm, series.rate_u_per_ml, fit.vmax, fit.km,
+                           None if weights is None else weights[0], error_model)
+    if not check.holds:
+        notes.append(check.text)
     detail = {"model": declared, "chosen_model": model, "fit": fit_dict, "flagged": choice.flagged,
               "reason": choice.reason, "f_statistic": choice.f_statistic, "p_value": choice.p_value,
               "points": {"substrate_mm": list(series.substrate_mm), "rate_u_per_ml": list(series.rate_u_per_ml)},
-              "excluded": list(series.excluded), "km_quality": quality.to_dict(), "curve": curve.to_dict()}
+              "excluded": list(series.excluded), "km_quality": quality.to_dict(), "curve": curve.to_dict(),
+              "error_model": error_model, "residual_check": to_plain(check)}
     out: dict[str, Measurement] = {}
     if quality.well_determined:
         # Km's interval from the declared fit: t on its own n − p degrees of freedom.
@@ -228,7 +237,8 @@ def evaluate_lots(lots: list[LotInputs], specifications: dict[str, Specification
     for lot in lots:
         method = methods.get(specifications[lot.product_code].activity_method)
         alpha[lot.lot_id] = (getattr(method, "model_selection_alpha", 0.05),
-                             getattr(method, "ki_max_multiple", KI_MAX_MULTIPLE))
+                             getattr(method, "ki_max_multiple", KI_MAX_MULTIPLE),
+                             getattr(method, "error_model", ErrorModel.CONSTANT.value))
     fits = _fit_batch({k: v for k, v in series.items() if v is not None}, alpha)
     evaluations = []
     for lot in lots:
