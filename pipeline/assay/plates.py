@@ -17,7 +17,7 @@ import pandas as pd
 from pipeline.controlled.specs import KineticMethod
 from pipeline.errors import CalculationError, LotgateError
 from pipeline.plain_data import to_plain
-from pipeline.science import protein_readings, rates, units
+from pipeline.science import integrated_michaelis_menten, protein_readings, rates, units
 from pipeline.science.combined_uncertainty import RelativeTerm, combined
 from pipeline.science.measurement import Measurement
 
@@ -37,6 +37,7 @@ class KineticSeries:
     excluded: tuple[str, ...] = ()
     valid: bool = True
     reasons: tuple[str, ...] = ()
+    integrated: dict[str, Any] | None = None  # whole-curve cross-check (integrated Michaelis–Menten)
 
 
 @dataclass(frozen=True)
@@ -215,7 +216,8 @@ def evaluate_activity_plate(plate_id: str, plate_map: pd.DataFrame, reads: pd.Da
                                     reasons=(*m.reasons, *excluded) if not m.valid else m.reasons,
                                     detail={**m.detail, "excluded_wells": excluded,
                                             "wells": [plate.wells[i] for i in good]})
-        kinetics[lot] = _kinetic_series(lot, plate, method, by_well)
+        kinetics[lot] = with_integrated_check(_kinetic_series(lot, plate, method, by_well), lot, plate, method,
+                                              time_min, absorbance)
     return ActivityPlateResult(plate_id, method.method_id, method.document.version, True, (), recovery,
                                blank_rate, activity, kinetics, details, traces)
 
@@ -267,6 +269,32 @@ def _kinetic_series(lot: str, plate: _Columns, method: KineticMethod, by_well: d
         return KineticSeries(tuple(s_out), tuple(v_out), tuple(excluded), False,
                              (f"lot {lot}: only {levels} substrate levels with usable rates; at least 4 are needed",))
     return KineticSeries(tuple(s_out), tuple(v_out), tuple(excluded))
+
+
+def with_integrated_check(series: KineticSeries, lot: str, plate: _Columns, method: KineticMethod,
+                          time_min: np.ndarray, absorbance: np.ndarray) -> KineticSeries:
+    """The series with the integrated Michaelis–Menten fit of the lot's usable substrate-series wells.
+
+    A cross-check only (pipeline.science.integrated_michaelis_menten): a fit that fails is said so,
+    never an error of the plate. Each well's substrate blank rate (at its level) is subtracted.
+    """
+    if not series.valid:
+        return series
+    wells = np.flatnonzero((plate.roles == "kinetic") & (plate.lots == lot) & plate.ok)
+    blank = np.array([plate.slope[plate.blanks_at(float(level))].mean() for level in plate.substrate[wells]])
+    a = absorbance[wells]
+    stop = ~np.isfinite(a) | (a >= method.rate_window.linear_limit_au)
+    usable = np.where(stop.any(axis=1), stop.argmax(axis=1), a.shape[1])
+    au_per_mm = method.epsilon_per_mm_per_cm * method.path_length_cm
+    vmax0 = float(np.nanmax(plate.slope[wells])) / au_per_mm * 1.5
+    try:
+        fit = integrated_michaelis_menten.fit_integrated(time_min, a, plate.substrate[wells], au_per_mm, blank,
+                                                         usable, (vmax0, float(np.median(plate.substrate[wells]))))
+        check: dict[str, Any] = fit.to_dict()
+    except (LotgateError, ValueError, FloatingPointError, np.linalg.LinAlgError) as exc:
+        check = {"failed": f"the whole-curve fit could not be made: {exc}"}
+    return KineticSeries(series.substrate_mm, series.rate_u_per_ml, series.excluded, series.valid, series.reasons,
+                         check)
 
 
 def _traces(plate: _Columns, time_min: np.ndarray, absorbance: np.ndarray,

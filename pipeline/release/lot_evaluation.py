@@ -187,7 +187,8 @@ def _kinetic_measurements(lot: str, series: KineticSeries | None, choice: Kineti
               "reason": choice.reason, "f_statistic": choice.f_statistic, "p_value": choice.p_value,
               "points": {"substrate_mm": list(series.substrate_mm), "rate_u_per_ml": list(series.rate_u_per_ml)},
               "excluded": list(series.excluded), "km_quality": quality.to_dict(), "curve": curve.to_dict(),
-              "error_model": error_model, "residual_check": to_plain(check)}
+              "error_model": error_model, "residual_check": to_plain(check),
+              "integrated_check": _integrated_check(series, km)}
     out: dict[str, Measurement] = {}
     if quality.well_determined:
         # Km's interval from the declared fit: t on its own n − p degrees of freedom.
@@ -220,6 +221,14 @@ def _kinetic_measurements(lot: str, series: KineticSeries | None, choice: Kineti
     else:
         out["kcat_over_km"] = Measurement("kcat_over_km", "1/(M·s)", None, reasons=("Km poorly determined",))
     return out, detail
+
+
+def _integrated_check(series: KineticSeries, km: float) -> dict[str, Any] | None:
+    """The whole-curve Km beside the reported one, with their relative difference (a cross-check)."""
+    check = getattr(series, "integrated", None)
+    if not isinstance(check, dict) or "km_mm" not in check or not km:
+        return check
+    return {**check, "difference_pct": 100.0 * (check["km_mm"] - km) / km}
 
 
 @dataclass(frozen=True)
