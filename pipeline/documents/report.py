@@ -27,6 +27,7 @@ from pipeline.documents.certificate import (
     key_value_table,
     method_label,
 )
+from pipeline.documents.kinetic_checks import kinetic_checks
 from pipeline.documents.text import (
     DASH,
     HOLD_FILL,
@@ -300,6 +301,7 @@ def _kinetics(dossier: dict[str, Any]) -> list[Any]:
         out.append(mpara("cov(Vmax, Km) = {cov}; residual SE {rse} U/mL on {dof} degrees of freedom; n = {n}; "
                          "converged: {conv}.", "note", cov=num(get(fit, "cov_vmax_km")), rse=num(get(fit, "residual_se")),
                          dof=get(fit, "dof"), n=get(fit, "n"), conv=_yes_no(get(fit, "converged"))))
+        out += kinetic_checks(k)
     else:
         out.append(Paragraph("No fit: the data could not support kinetic constants.", st["body"]))
     return out
