@@ -30,6 +30,7 @@ from pipeline.science.kinetic_model_choice import (
     KineticModelChoice,
     choose_kinetic_models,
 )
+from pipeline.science.km_profile import km_profile_interval
 from pipeline.science.measurement import Measurement
 from pipeline.science.michaelis_menten import MICHAELIS_MENTEN, fit_michaelis_menten_batch
 from pipeline.vocabulary import Verdict
@@ -188,7 +189,10 @@ def _kinetic_measurements(lot: str, series: KineticSeries | None, choice: Kineti
               "points": {"substrate_mm": list(series.substrate_mm), "rate_u_per_ml": list(series.rate_u_per_ml)},
               "excluded": list(series.excluded), "km_quality": quality.to_dict(), "curve": curve.to_dict(),
               "error_model": error_model, "residual_check": to_plain(check),
-              "integrated_check": _integrated_check(series, km)}
+              "integrated_check": _integrated_check(series, km),
+              "km_profile_ci95": (km_profile_interval(series.substrate_mm, series.rate_u_per_ml, km,
+                                                      None if weights is None else weights[0])
+                                  if declared == MICHAELIS_MENTEN else None)}
     out: dict[str, Measurement] = {}
     if quality.well_determined:
         # Km's interval from the declared fit: t on its own n − p degrees of freedom.
