@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import datetime as dt
 import math
+from collections.abc import Callable
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -213,18 +214,27 @@ def _kinetic_measurements(lot: str, series: KineticSeries | None, choice: Kineti
     # kcat [1/s] = Vmax [U/mg] · MW [g/mol] / 60 / 1000 (MW exact): the same relative terms.
     kcat = vmax_mg * spec.molecular_weight_g_per_mol / 60.0 / 1000.0
     for code, value in (("vmax", vmax_mg), ("kcat", kcat)):
-        result = combined(value, [fit_term, protein_term])
-        out[code] = Measurement(code, names[code], value, se=result.se, ci95=result.ci95, n=n, dof=result.dof)
+        out[code] = _with_uncertainty(code, names[code], value, n, lambda: [fit_term, protein_term])
     if quality.well_determined:
         # kcat/Km [1/(M·s)] = kcat / (Km/1000); Vmax and Km from one fit: full covariance (GUM 5.2.2).
         efficiency = kcat / (km / 1000.0)
-        pair = fit_ratio_term(rel_v, km_se / km, cov / (vmax * km), float(dof))
-        result = combined(efficiency, [pair, protein_term])
-        out["kcat_over_km"] = Measurement("kcat_over_km", "1/(M·s)", efficiency, se=result.se, ci95=result.ci95,
-                                          n=n, dof=result.dof)
+        out["kcat_over_km"] = _with_uncertainty(
+            "kcat_over_km", names["kcat_over_km"], efficiency, n,
+            lambda: [fit_ratio_term(rel_v, km_se / km, cov / (vmax * km), float(dof)), protein_term])
     else:
         out["kcat_over_km"] = Measurement("kcat_over_km", "1/(M·s)", None, reasons=("Km poorly determined",))
     return out, detail
+
+
+def _with_uncertainty(code: str, unit: str, value: float, n: int,
+                      terms: Callable[[], list[RelativeTerm]]) -> Measurement:
+    """The value with its combined SE, dof and 95 % interval; without them (and saying why) when the
+    fit gives no usable SE, so that one odd curve never stops the night."""
+    try:
+        result = combined(value, terms())
+    except (CalculationError, ZeroDivisionError, ValueError) as exc:
+        return Measurement(code, unit, value, n=n, reasons=(f"no uncertainty could be combined: {exc}",))
+    return Measurement(code, unit, value, se=result.se, ci95=result.ci95, n=n, dof=result.dof)
 
 
 def _integrated_check(series: KineticSeries, km: float) -> dict[str, Any] | None:

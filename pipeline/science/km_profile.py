@@ -43,6 +43,8 @@ def km_profile_interval(substrate: npt.ArrayLike, rate: npt.ArrayLike, km_hat: f
     def excess(k: float) -> float:
         return profile_rss(k, s, v, w) - threshold
 
+    if excess(km_hat) > 0 or not math.isfinite(threshold):
+        return float("nan"), float("nan")  # km_hat is not this profile's minimum (another weighting)
     low_end = km_hat * 1e-6
     low = 0.0 if excess(low_end) <= 0 else optimize.brentq(excess, low_end, km_hat, xtol=1e-12 * km_hat)
     high = math.inf
