@@ -212,14 +212,31 @@ def evaluate_activity_plate(plate_id: str, plate_map: pd.DataFrame, reads: pd.Da
         good = samples[plate.ok[samples]]
         values = _activity_u_per_ml(method, plate.slope[good] - blank_rate, plate.dilution[good])
         m = replicate_measurement("activity", "U/mL", values, method.replicate_cv_max_pct, f"lot {lot} activity")
-        activity[lot] = Measurement(m.name, m.unit, m.value, se=m.se, n=m.n, valid=m.valid, dof=m.dof, ci95=m.ci95,
+        se, dof, ci95, blank_detail = _with_blank_share(m, method, plate, assay_blanks, good)
+        activity[lot] = Measurement(m.name, m.unit, m.value, se=se, n=m.n, valid=m.valid, dof=dof, ci95=ci95,
                                     reasons=(*m.reasons, *excluded) if not m.valid else m.reasons,
-                                    detail={**m.detail, "excluded_wells": excluded,
+                                    detail={**m.detail, **blank_detail, "excluded_wells": excluded,
                                             "wells": [plate.wells[i] for i in good]})
         kinetics[lot] = with_integrated_check(_kinetic_series(lot, plate, method, by_well), lot, plate, method,
                                               time_min, absorbance)
     return ActivityPlateResult(plate_id, method.method_id, method.document.version, True, (), recovery,
                                blank_rate, activity, kinetics, details, traces)
+
+
+def _with_blank_share(m: Measurement, method: KineticMethod, plate: _Columns, blanks: np.ndarray,
+                      good: np.ndarray) -> tuple[float | None, float | None, tuple[float, float] | None, dict[str, Any]]:
+    """The replicates' SE (n − 1 dof) with the mean blank's SE, which every replicate shares (nb − 1 dof).
+
+    u_blank [U/mL] = SE(mean blank slope) / (ε·l) · V_reaction / V_sample · mean DF; the two by
+    Welch–Satterthwaite (docs/assay-rules.md, "Specific activity and its uncertainty").
+    """
+    if m.value is None or m.se is None or m.dof is None or blanks.size < 2 or good.size == 0 or not m.value:
+        return m.se, m.dof, m.ci95, {}
+    blank_se = float(np.std(plate.slope[blanks], ddof=1) / np.sqrt(blanks.size))
+    blank_u = float(_activity_u_per_ml(method, np.array([blank_se]), np.array([plate.dilution[good].mean()]))[0])
+    total = combined(m.value, [RelativeTerm(abs(m.se / m.value), m.dof),
+                               RelativeTerm(abs(blank_u / m.value), float(blanks.size - 1))])
+    return total.se, total.dof, total.ci95, {"replicate_se": m.se, "blank_se_u_per_ml": blank_u}
 
 
 class _Columns:
