@@ -134,7 +134,9 @@ ENDPOINT = _shipped(FOLDERS.methods, "PROT-DYE595.yaml")
 FLUORESCENCE = _shipped(FOLDERS.methods, "PROT-FL485.yaml")
 METHOD_CASES = [
     ("extinction negative", _set(KINETIC, "epsilon_per_mm_per_cm", -8.8), "'epsilon_per_mm_per_cm' must be above zero"),
-    ("rate window R² NaN", _set(KINETIC, "rate_window.min_r2", math.nan), "'rate_window.min_r2' must be a finite number"),
+    ("conversion limit NaN", _set(KINETIC, "rate_window.max_conversion_pct", math.nan),
+     "'rate_window.max_conversion_pct' must be a finite number"),
+    ("lag action unknown", _set(KINETIC, "rate_window.lag_burst_action", "ignore"), "'rate_window.lag_burst_action'"),
     ("recovery window reversed", _set(KINETIC, "suitability.recovery_pct", {"min": 110.0, "max": 90.0}),
      "'suitability.recovery_pct' has min 110 above max 90"),
     ("path length key mistyped", _rename(KINETIC, "plate_formats.0.path_length_cm", "path_lenght_cm"),

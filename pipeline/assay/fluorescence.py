@@ -47,6 +47,8 @@ class FluorescenceMethod:
     lowest_bias_limit_pct: float
     replicate_cv_max_pct: float
     plate_formats: tuple[PlateFormatSettings, ...] = ()  # the volumes per well on each plate format
+    min_calibrator_pct: float = 75.0  # standard-curve acceptance (docs/assay-rules.md, "Protein")
+    min_curve_levels: int = 6
     measurement: ClassVar[str] = "fluorescence-endpoint"
 
 

@@ -23,10 +23,15 @@ from pipeline.controlled.specs import (
 )
 from pipeline.errors import CalculationError, LotgateError
 from pipeline.plain_data import to_plain
-from pipeline.science import protein_readings, rates, units
+from pipeline.science import integrated_michaelis_menten, protein_readings, rates, units
+from pipeline.science.combined_uncertainty import RelativeTerm, combined
 from pipeline.science.measurement import Measurement
 
 SUBSTRATE_MATCH_MM = 1e-6
+# Reads per well a kinetic plate may have (a read every 10 s for 24 h is 8,640): beyond it the plate
+# is refused with the reason, so that one file cannot hold the night's memory (the rate search is
+# O(reads) per well, its steady-state search O(reads) windows per flagged well).
+MAX_READS_PER_WELL = 10_000
 
 
 @dataclass(frozen=True)
@@ -38,6 +43,7 @@ class KineticSeries:
     excluded: tuple[str, ...] = ()
     valid: bool = True
     reasons: tuple[str, ...] = ()
+    integrated: dict[str, Any] | None = None  # whole-curve cross-check (integrated Michaelis–Menten)
 
 
 @dataclass(frozen=True)
@@ -78,8 +84,10 @@ def replicate_measurement(name: str, unit: str, values: np.ndarray, cv_max_pct: 
     elif cv > cv_max_pct:
         valid = False
         reasons.append(f"replicate CV {cv:.1f} % of {what} exceeds the method limit {cv_max_pct:.1f} %")
+    dof = n - 1 if se is not None else None
+    ci95 = combined(mean, [RelativeTerm(abs(se / mean), dof)]).ci95 if se is not None and dof and mean else None
     return Measurement(name, unit, mean, se=se, n=n, valid=valid, reasons=tuple(reasons),
-                       detail={"replicates": [float(v) for v in values], "cv_pct": cv})
+                       detail={"replicates": [float(v) for v in values], "cv_pct": cv}, dof=dof, ci95=ci95)
 
 
 def _reads_matrix(plate_id: str, reads: pd.DataFrame, wells: list[str]) -> tuple[np.ndarray, np.ndarray]:
@@ -91,6 +99,9 @@ def _reads_matrix(plate_id: str, reads: pd.DataFrame, wells: list[str]) -> tuple
     if counts.loc[wells].nunique() != 1:
         odd = counts.loc[wells].idxmin()
         raise CalculationError(f"plate {plate_id}: well {odd} has {counts[odd]} reads, other wells {counts.loc[wells].max()}")
+    if counts.loc[wells].max() > MAX_READS_PER_WELL:
+        raise CalculationError(f"plate {plate_id}: well {counts.loc[wells].idxmax()} has {counts.loc[wells].max():,} reads; "
+                               f"a kinetic plate may have at most {MAX_READS_PER_WELL:,} reads per well")
     order = {w: i for i, w in enumerate(wells)}
     subset = reads[reads["well"].isin(order)]
     key = subset["well"].map(order).to_numpy()
@@ -105,6 +116,15 @@ def _reads_matrix(plate_id: str, reads: pd.DataFrame, wells: list[str]) -> tuple
     if differs.size:
         raise CalculationError(f"plate {plate_id}: well {wells[differs[0]]} was read at other times than well {wells[0]}")
     return times[0] / 60.0, matrix
+
+
+def rate_settings(method: KineticMethod) -> rates.RateWindowSettings:
+    """The method's initial-rate rules (docs/assay-rules.md, "Initial rates")."""
+    w = method.rate_window
+    return rates.RateWindowSettings(
+        min_points=w.min_points, linear_limit_au=w.linear_limit_au, max_conversion=w.max_conversion_pct / 100.0,
+        max_slope_change=w.max_slope_change, curvature_alpha=w.curvature_alpha,
+        shape_action=rates.ShapeAction(w.lag_burst_action), blank_window_min=w.blank_window_min)
 
 
 def _activity_u_per_ml(method: KineticMethod, well: PlateFormatSettings, rate_au_per_min: np.ndarray,
@@ -157,11 +177,9 @@ def evaluate_activity_plate(plate_id: str, plate_map: pd.DataFrame, reads: pd.Da
     try:
         time_min, absorbance = _reads_matrix(plate_id, reads, wells)
         blank_names = used.loc[used["role"] == "blank", "well"].tolist()
-        window = method.rate_window
-        settings = rates.RateWindowSettings(min_points=window.min_points, min_r2=window.min_r2,
-                                            linear_limit_au=window.linear_limit_au,
-                                            max_slope_change=window.max_slope_change)
-        well_rates = rates.initial_rates(time_min, absorbance, wells, settings, blank_wells=blank_names)
+        well_rates = rates.initial_rates(time_min, absorbance, wells, rate_settings(method), blank_wells=blank_names,
+                                         substrate_mm=used["substrate_mm"].to_numpy(dtype=float),
+                                         au_per_mm=method.epsilon_per_mm_per_cm * well_settings.path_length_cm)
     except LotgateError as exc:
         return _invalid_plate(plate_id, method, lots, [str(exc)])
     by_well = {r.well: r for r in well_rates}
@@ -220,13 +238,31 @@ def evaluate_activity_plate(plate_id: str, plate_map: pd.DataFrame, reads: pd.Da
         good = samples[plate.ok[samples]]
         values = _activity_u_per_ml(method, well_settings, plate.slope[good] - blank_rate, plate.dilution[good])
         m = replicate_measurement("activity", "U/mL", values, method.replicate_cv_max_pct, f"lot {lot} activity")
-        activity[lot] = Measurement(m.name, m.unit, m.value, se=m.se, n=m.n, valid=m.valid,
+        se, dof, ci95, blank_detail = _with_blank_share(m, method, well_settings, plate, assay_blanks, good)
+        activity[lot] = Measurement(m.name, m.unit, m.value, se=se, n=m.n, valid=m.valid, dof=dof, ci95=ci95,
                                     reasons=(*m.reasons, *excluded) if not m.valid else m.reasons,
-                                    detail={**m.detail, "excluded_wells": excluded,
+                                    detail={**m.detail, **blank_detail, "excluded_wells": excluded,
                                             "wells": [plate.wells[i] for i in good]})
-        kinetics[lot] = _kinetic_series(lot, plate, method, well_settings, by_well)
+        kinetics[lot] = with_integrated_check(_kinetic_series(lot, plate, method, well_settings, by_well), lot,
+                                              plate, method, well_settings, time_min, absorbance)
     return ActivityPlateResult(plate_id, method.method_id, method.document.version, True, (), recovery,
                                blank_rate, activity, kinetics, details, traces)
+
+
+def _with_blank_share(m: Measurement, method: KineticMethod, well: PlateFormatSettings, plate: _Columns, blanks: np.ndarray,
+                      good: np.ndarray) -> tuple[float | None, float | None, tuple[float, float] | None, dict[str, Any]]:
+    """The replicates' SE (n − 1 dof) with the mean blank's SE, which every replicate shares (nb − 1 dof).
+
+    u_blank [U/mL] = SE(mean blank slope) / (ε·l) · V_reaction / V_sample · mean DF; the two by
+    Welch–Satterthwaite (docs/assay-rules.md, "Specific activity and its uncertainty").
+    """
+    if m.value is None or m.se is None or m.dof is None or blanks.size < 2 or good.size == 0 or not m.value:
+        return m.se, m.dof, m.ci95, {}
+    blank_se = float(np.std(plate.slope[blanks], ddof=1) / np.sqrt(blanks.size))
+    blank_u = float(_activity_u_per_ml(method, well, np.array([blank_se]), np.array([plate.dilution[good].mean()]))[0])
+    total = combined(m.value, [RelativeTerm(abs(m.se / m.value), m.dof),
+                               RelativeTerm(abs(blank_u / m.value), float(blanks.size - 1))])
+    return total.se, total.dof, total.ci95, {"replicate_se": m.se, "blank_se_u_per_ml": blank_u}
 
 
 class _Columns:
@@ -277,6 +313,32 @@ def _kinetic_series(lot: str, plate: _Columns, method: KineticMethod, well: Plat
         return KineticSeries(tuple(s_out), tuple(v_out), tuple(excluded), False,
                              (f"lot {lot}: only {levels} substrate levels with usable rates; at least 4 are needed",))
     return KineticSeries(tuple(s_out), tuple(v_out), tuple(excluded))
+
+
+def with_integrated_check(series: KineticSeries, lot: str, plate: _Columns, method: KineticMethod,
+                          well: PlateFormatSettings, time_min: np.ndarray, absorbance: np.ndarray) -> KineticSeries:
+    """The series with the integrated Michaelis–Menten fit of the lot's usable substrate-series wells.
+
+    A cross-check only (pipeline.science.integrated_michaelis_menten): a fit that fails is said so,
+    never an error of the plate. Each well's substrate blank rate (at its level) is subtracted.
+    """
+    if not series.valid:
+        return series
+    wells = np.flatnonzero((plate.roles == "kinetic") & (plate.lots == lot) & plate.ok)
+    blank = np.array([plate.slope[plate.blanks_at(float(level))].mean() for level in plate.substrate[wells]])
+    a = absorbance[wells]
+    stop = ~np.isfinite(a) | (a >= method.rate_window.linear_limit_au)
+    usable = np.where(stop.any(axis=1), stop.argmax(axis=1), a.shape[1])
+    au_per_mm = method.epsilon_per_mm_per_cm * well.path_length_cm
+    vmax0 = float(np.nanmax(plate.slope[wells])) / au_per_mm * 1.5
+    try:
+        fit = integrated_michaelis_menten.fit_integrated(time_min, a, plate.substrate[wells], au_per_mm, blank,
+                                                         usable, (vmax0, float(np.median(plate.substrate[wells]))))
+        check: dict[str, Any] = fit.to_dict()
+    except (LotgateError, ValueError, FloatingPointError, np.linalg.LinAlgError) as exc:
+        check = {"failed": f"the whole-curve fit could not be made: {exc}"}
+    return KineticSeries(series.substrate_mm, series.rate_u_per_ml, series.excluded, series.valid, series.reasons,
+                         check)
 
 
 def _traces(plate: _Columns, time_min: np.ndarray, absorbance: np.ndarray,

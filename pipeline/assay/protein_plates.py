@@ -16,7 +16,10 @@ from pipeline.assay.plates import replicate_measurement
 from pipeline.controlled.specs import ProteinMethod, declared_formats, format_settings
 from pipeline.errors import LotgateError
 from pipeline.plain_data import to_plain
-from pipeline.science import protein_readings, standard_curves
+from pipeline.science import protein_readings
+from pipeline.science.combined_uncertainty import RelativeTerm, combined
+from pipeline.science.curve_acceptance import accept_standard_curve
+from pipeline.science.curve_uncertainty import inverse_prediction_se
 from pipeline.science.measurement import Measurement
 
 
@@ -144,19 +147,24 @@ def evaluate_standard_curve_plate(plate_id: str, merged: pd.DataFrame, method: A
     if standards.empty:
         return invalid_protein_plate(plate_id, method, lots, [f"plate {plate_id}: no standard curve wells"])
     try:
-        curve = standard_curves.fit_standard_curve(
+        acceptance = accept_standard_curve(
             standards["nominal_mg_per_ml"].to_numpy(dtype=float), standards[column].to_numpy(dtype=float),
             method.curve_model, weighting=method.curve_weighting, min_r2=method.curve_min_r2,
-            bias_limit_pct=method.bias_limit_pct, lowest_bias_limit_pct=method.lowest_bias_limit_pct)
+            bias_limit_pct=method.bias_limit_pct, lowest_bias_limit_pct=method.lowest_bias_limit_pct,
+            min_fraction=method.min_calibrator_pct / 100.0, min_levels=method.min_curve_levels)
     except LotgateError as exc:
         return invalid_protein_plate(plate_id, method, lots, [f"plate {plate_id}: the standard curve cannot be fitted: {exc}"])
-    curve_dict = {**curve.to_dict(), "params": [float(v) for v in curve.params], "points": curve.response_curve(),
+    curve = acceptance.curve
+    curve_dict = {**curve.to_dict(), **acceptance.to_dict(), "accepted": acceptance.accepted,
+                  "reasons": list(acceptance.reasons),
+                  "params": [float(v) for v in curve.params], "points": curve.response_curve(),
                   "param_names": list(curve.param_names), "standards": [[float(x), float(y)] for x, y in
                                                    zip(standards["nominal_mg_per_ml"], standards[column], strict=True)],
                   "signal_label": signal.label, "signal_heading": signal.heading}
-    if not curve.accepted:
-        return invalid_protein_plate(plate_id, method, lots,
-                                     [f"plate {plate_id}: standard curve not accepted: {'; '.join(curve.reasons)}"], curve_dict)
+    if not acceptance.accepted:
+        why = "; ".join((*acceptance.reasons, *acceptance.exclusions))
+        return invalid_protein_plate(plate_id, method, lots, [f"plate {plate_id}: standard curve not accepted: {why}"],
+                                     curve_dict)
     result: dict[str, Measurement] = {}
     samples_out: dict[str, list[dict[str, Any]]] = {}
     for lot in lots:
@@ -174,5 +182,26 @@ def evaluate_standard_curve_plate(plate_id: str, merged: pd.DataFrame, method: A
                                       reasons=(f"{len(outside)} of {len(readings)} replicates {outside[0].reason}",))
             continue
         values = np.array([r.concentration_mg_per_ml for r in readings], dtype=float)
-        result[lot] = replicate_measurement("protein", "mg/mL", values, method.replicate_cv_max_pct, f"lot {lot} protein")
+        replicates = replicate_measurement("protein", "mg/mL", values, method.replicate_cv_max_pct, f"lot {lot} protein")
+        in_well = float(np.mean([r.in_well_mg_per_ml for r in readings]))
+        result[lot] = with_curve_uncertainty(replicates, curve, in_well)
     return ProteinPlateResult(plate_id, method.method_id, version, True, (), result, curve_dict, samples_out)
+
+
+def with_curve_uncertainty(replicates: Measurement, curve: Any, in_well_mg_per_ml: float) -> Measurement:
+    """The replicates' SE (n − 1 dof) combined with the curve's inverse-prediction SE (its n − p dof).
+
+    Both as relative SEs, Welch–Satterthwaite dof, 95 % interval (docs/assay-rules.md, "Protein").
+    """
+    curve_se = inverse_prediction_se(curve, in_well_mg_per_ml)
+    if replicates.value is None or replicates.se is None or replicates.dof is None or not np.isfinite(curve_se) \
+            or not in_well_mg_per_ml:
+        return replicates
+    terms = [RelativeTerm(abs(replicates.se / replicates.value), replicates.dof),
+             RelativeTerm(curve_se / in_well_mg_per_ml, float(curve.dof))]
+    total = combined(replicates.value, terms)
+    detail = {**replicates.detail, "replicate_se": replicates.se, "replicate_dof": replicates.dof,
+              "curve_se_mg_per_ml": abs(replicates.value) * curve_se / in_well_mg_per_ml, "curve_dof": curve.dof}
+    return Measurement(replicates.name, replicates.unit, replicates.value, se=total.se, ci95=total.ci95,
+                       n=replicates.n, valid=replicates.valid, reasons=replicates.reasons, detail=detail,
+                       dof=total.dof)

@@ -89,10 +89,15 @@ class MethodHeader(DocumentHeader):
 
 
 class RateWindowFile(Strict):
-    min_points: int
-    min_r2: float
-    linear_limit_au: float
-    max_slope_change: float
+    # Initial-rate rules (docs/assay-rules.md, "Initial rates"): window from the first read,
+    # limited by substrate conversion; lag and burst by a one-sided curvature test.
+    min_points: int = Field(ge=5)
+    linear_limit_au: float = Positive
+    max_slope_change: float = Positive
+    max_conversion_pct: float = Field(10.0, gt=0, le=50)
+    curvature_alpha: float = Field(0.01, gt=0, le=0.5)
+    lag_burst_action: Literal["exclude", "steady-state"] = "exclude"
+    blank_window_min: float | None = Field(None, gt=0)
 
 
 class ReferenceLotFile(Strict):
@@ -121,6 +126,11 @@ class KineticSuitability(Strict):
 class KineticSettings(Strict):
     model_selection_alpha: float = Field(0.05, gt=0, lt=1)
     km_max_relative_se: float = Field(0.25, gt=0)
+    # Model choice (docs/assay-rules.md, "Kinetic constants"): the model Km is reported and trended
+    # from, and how far beyond the highest substrate tested a Ki may lie for inhibition to be chosen.
+    km_model: Literal["michaelis-menten", "substrate-inhibition"] = "michaelis-menten"
+    ki_max_multiple: float = Field(10.0, gt=0)
+    error_model: Literal["constant", "proportional"] = "constant"  # the rates' SD: fit weights
 
 
 class FormatFile(Strict):
@@ -190,6 +200,9 @@ class CurveFile(Strict):
     min_r2: float
     bias_limit_pct: float
     lowest_bias_limit_pct: float
+    # Acceptance (docs/assay-rules.md, "Protein"): share of non-zero standards and levels within limits.
+    min_calibrator_pct: float = Field(75.0, gt=0, le=100)
+    min_levels: int = Field(6, ge=1)
 
 
 class CurveMethodFile(MethodHeader):

@@ -150,9 +150,13 @@ def format_settings(method: Any, plate_format: int) -> PlateFormatSettings | Non
 @dataclass(frozen=True)
 class RateWindow:
     min_points: int
-    min_r2: float
     linear_limit_au: float
     max_slope_change: float
+    # initial-rate rules (docs/assay-rules.md, "Initial rates")
+    max_conversion_pct: float = 10.0
+    curvature_alpha: float = 0.01
+    lag_burst_action: str = "exclude"
+    blank_window_min: float | None = None
 
 
 @dataclass(frozen=True)
@@ -180,6 +184,10 @@ class KineticMethod:
     sample_preparation: str | None = None
     recovery_trend_rules: tuple[int, ...] = (1, 2, 3, 4)
     recovery_baseline_n: int = 20
+    # kinetic model choice (docs/assay-rules.md, "Kinetic constants")
+    km_model: str = "michaelis-menten"
+    ki_max_multiple: float = 10.0
+    error_model: str = "constant"
     measurement: ClassVar[str] = "kinetic"  # the method file's 'measurement' (see pipeline.assay.method_kinds)
 
     def reference_on(self, day: dt.date) -> ReferenceLot | None:
@@ -214,6 +222,9 @@ class ProteinMethod:
     plate_formats: tuple[PlateFormatSettings, ...] = ()  # per format: A280's path length, curve volumes
     linear_min_au: float | None = None  # A280 only: the photometer's linear range
     linear_max_au: float | None = None
+    # standard-curve acceptance (docs/assay-rules.md, "Protein")
+    min_calibrator_pct: float = 75.0
+    min_curve_levels: int = 6
 
     @property
     def measurement(self) -> str:
@@ -315,6 +326,7 @@ def parse_kinetic_method(raw: dict[str, Any], where: str, sha256: str) -> Kineti
         sample_preparation=m.sample_preparation,
         recovery_trend_rules=_rules(trend.rules, f"{where}, suitability.recovery_trend"),
         recovery_baseline_n=20 if trend.baseline_n is None else trend.baseline_n,
+        km_model=kin.km_model, ki_max_multiple=kin.ki_max_multiple, error_model=kin.error_model,
     )
 
 
@@ -343,6 +355,7 @@ def curve_fields(m: CurveMethodFile, where: str) -> dict[str, Any]:
     return dict(standard=m.standard, curve_model=curve.model, curve_weighting=curve.weighting,
                 curve_min_r2=curve.min_r2, bias_limit_pct=curve.bias_limit_pct,
                 lowest_bias_limit_pct=curve.lowest_bias_limit_pct,
+                min_calibrator_pct=curve.min_calibrator_pct, min_curve_levels=curve.min_levels,
                 replicate_cv_max_pct=(m.suitability or ProteinSuitability()).replicate_cv_max_pct,
                 plate_formats=_formats(m.plate_formats))
 

@@ -27,6 +27,7 @@ from pipeline.documents.certificate import (
     key_value_table,
     method_label,
 )
+from pipeline.documents.kinetic_checks import kinetic_checks
 from pipeline.documents.text import (
     DASH,
     HOLD_FILL,
@@ -197,6 +198,13 @@ def _protein_curve(curve: Any) -> list[Any]:
                      lo=num(get(curve, "range_low_mg_per_ml")), hi=num(get(curve, "range_high_mg_per_ml")),
                      a=_yes_no(get(curve, "accepted"))))
     out += _bullets(_items(get(curve, "reasons", [])), "body")
+    if get(curve, "calibrators") is not None:
+        out.append(mpara("{k} of {n} standards kept on {lv} levels; excluded and refitted without:", "body",
+                         k=get(curve, "calibrators_kept"), n=get(curve, "calibrators"), lv=get(curve, "levels_kept"))
+                   if _items(get(curve, "exclusions", [])) else
+                   mpara("All {n} standards kept on {lv} levels.", "body", n=get(curve, "calibrators"),
+                         lv=get(curve, "levels_kept")))
+        out += _bullets(_items(get(curve, "exclusions", [])), "body")
     rows: list[list[Any]] = [["Nominal (mg/mL)", "Back-calculated (mg/mL)", "Bias (%)", "Within limit"]]
     extra: list[tuple[Any, ...]] = []
     for b in [b for b in _items(get(curve, "back_calculated", [])) if isinstance(b, dict)]:
@@ -222,7 +230,7 @@ def _protein_curve(curve: Any) -> list[Any]:
 
 
 def _windows(wells: Any, traces: Any) -> list[Any]:
-    """Every well behind the lot's numbers: its role, chosen linear window, slope ± SE, R², flag."""
+    """Every well behind the lot's numbers: its role, window, slope ± SE, substrate converted, flag."""
     st = styles()
     out: list[Any] = [Paragraph("Initial-rate windows (every well behind this lot's activity)", st["h3"])]
     rows_in = [dict(w, well=name) for name, w in (wells or {}).items() if isinstance(w, dict)] if isinstance(wells, dict) else []
@@ -232,7 +240,8 @@ def _windows(wells: Any, traces: Any) -> list[Any]:
         return out + [Paragraph("No kinetic wells in this dossier.", st["body"])]
     order = {"reference": 0, "blank": 1, "sample": 2, "kinetic": 3}
     rows_in.sort(key=lambda w: (order.get(str(get(w, "role")), 9), get(w, "substrate_mm") or 0.0, str(get(w, "well"))))
-    rows: list[list[Any]] = [["Well", "Role", "[S] (mM)", "Window (min)", "n", "Slope ± SE (AU/min)", "R²", "Flag / note"]]
+    rows: list[list[Any]] = [["Well", "Role", "[S] (mM)", "Window (min)", "n", "Slope ± SE (AU/min)", "Conv. %",
+                              "Flag / note"]]
     extra: list[tuple[Any, ...]] = []
     for w in rows_in:
         flag = get(w, "flag")
@@ -241,17 +250,19 @@ def _windows(wells: Any, traces: Any) -> list[Any]:
             extra.append(("TEXTCOLOR", (7, len(rows)), (7, len(rows)), HOLD_INK))
         window = (f"{num(get(w, 'window_start_min'), 3)}–{num(get(w, 'window_end_min'), 3)}"
                   if get(w, "window_start_min") is not None else DASH)
-        slope, se, r2 = get(w, "slope_au_per_min"), get(w, "slope_se_au_per_min"), get(w, "r2")
+        slope, se, converted = get(w, "slope_au_per_min"), get(w, "slope_se_au_per_min"), get(w, "conversion_pct")
         role = str(get(w, "role") or "")
+        shaped = get(w, "slope_kind") == "steady-state"
         rows.append([clean(get(w, "well"), 8), clean(role, 12), num(get(w, "substrate_mm"), 3), window,
                      clean(get(w, "n_points"), 4),
                      DASH if not isinstance(slope, float) else
                      f"{slope:.4f} ± {se:.4f}" if isinstance(se, float) else f"{slope:.4f}",
-                     DASH if not isinstance(r2, float) or role == "blank" else f"{r2:.4f}",
-                     clean(f"{flag}: {note}" if flag else (note if "excluded" in note else "ok"), 160)])
-    out.append(Paragraph("R² is not shown for substrate blanks: without enzyme their slope is near zero and R² "
-                         "says nothing; blanks are judged by their rate against the method's limit.", st["small"]
-                         if "small" in st else st["body"]))
+                     DASH if not isinstance(converted, float) else f"{converted:.1f}",
+                     clean(f"{flag}: {note}" if flag else (note if "excluded" in note or shaped else "ok"), 160)])
+    out.append(Paragraph("Each window starts at the first read and ends before the method's limit on substrate "
+                         "converted; its slope is a quadratic's slope at the first read. Substrate blanks get a "
+                         "straight line over their whole read and are judged by their rate against the method's "
+                         "limit (docs/assay-rules.md).", st["small"] if "small" in st else st["body"]))
     return out + [grid_table(rows, [12 * mm, 18 * mm, 14 * mm, 18 * mm, 8 * mm, 34 * mm, 15 * mm, CONTENT_W - 119 * mm],
                              col_styles={0: "cellb"}, extra=extra)]
 
@@ -290,6 +301,7 @@ def _kinetics(dossier: dict[str, Any]) -> list[Any]:
         out.append(mpara("cov(Vmax, Km) = {cov}; residual SE {rse} U/mL on {dof} degrees of freedom; n = {n}; "
                          "converged: {conv}.", "note", cov=num(get(fit, "cov_vmax_km")), rse=num(get(fit, "residual_se")),
                          dof=get(fit, "dof"), n=get(fit, "n"), conv=_yes_no(get(fit, "converged"))))
+        out += kinetic_checks(k)
     else:
         out.append(Paragraph("No fit: the data could not support kinetic constants.", st["body"]))
     return out

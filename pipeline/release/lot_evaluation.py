@@ -9,6 +9,7 @@ is then expressed per mg protein, kcat and kcat/Km from the product's molecular 
 from __future__ import annotations
 
 import math
+from collections.abc import Callable
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -22,8 +23,15 @@ from pipeline.errors import CalculationError
 from pipeline.plain_data import to_plain
 from pipeline.release.records import AttributeVerdict
 from pipeline.release.verdicts import judge_lims, judge_measurement
-from pipeline.science.kinetic_constants import km_determination, turnover
-from pipeline.science.kinetic_model_choice import KineticModelChoice, choose_kinetic_models
+from pipeline.science.combined_uncertainty import RelativeTerm, combined, fit_ratio_term
+from pipeline.science.kinetic_constants import km_determination
+from pipeline.science.kinetic_error_models import ErrorModel, error_model_weights, residual_check
+from pipeline.science.kinetic_model_choice import (
+    KI_MAX_MULTIPLE,
+    KineticModelChoice,
+    choose_kinetic_models,
+)
+from pipeline.science.km_profile import km_profile_interval
 from pipeline.science.measurement import Measurement
 from pipeline.science.michaelis_menten import MICHAELIS_MENTEN, fit_michaelis_menten_batch
 from pipeline.vocabulary import Verdict
@@ -88,11 +96,17 @@ def _ratio(name: str, unit: str, top: Measurement, bottom: Measurement) -> Measu
     if top.value is None or bottom.value is None or bottom.value == 0:
         return Measurement(name, unit, None, valid=False, reasons=(*top.reasons, *bottom.reasons) or ("no value",))
     value = top.value / bottom.value
-    rel = math.hypot(top.relative_se or 0.0, bottom.relative_se or 0.0)
-    return Measurement(name, unit, value, se=abs(value) * rel, n=min(top.n, bottom.n))
+    # Welch–Satterthwaite effective dof over the two independent relative SEs (GUM G.2b).
+    result = combined(value, [_term(top), _term(bottom)])
+    return Measurement(name, unit, value, se=result.se, n=min(top.n, bottom.n), dof=result.dof, ci95=result.ci95)
 
 
-def _fit_batch(series: dict[str, KineticSeries], alpha: dict[str, float]) -> dict[str, KineticModelChoice | str]:
+def _term(m: Measurement) -> RelativeTerm:
+    """A measurement's relative SE and its dof (a result without an SE counts as exact)."""
+    return RelativeTerm(m.relative_se or 0.0, m.dof if m.dof and m.dof > 0 else math.inf)
+
+
+def _fit_batch(series: dict[str, KineticSeries], alpha: dict[str, tuple[float, float, str]]) -> dict[str, KineticModelChoice | str]:
     """The night's kinetic fits in vectorised solves: Michaelis–Menten for every lot's substrate
     series, then the model choice (substrate inhibition by the F test) for those that fitted."""
     usable = {lot: s for lot, s in series.items() if s.valid and len(s.substrate_mm) >= 3}
@@ -125,7 +139,9 @@ def _fit_batch(series: dict[str, KineticSeries], alpha: dict[str, float]) -> dic
     for level in sorted({alpha[lot] for lot in fitted}):
         group = [lot for lot in fitted if alpha[lot] == level]
         s, v, mask = stack(group)
-        for lot, choice in zip(group, choose_kinetic_models(s, v, mask=mask, alpha=level), strict=True):
+        weights = error_model_weights(s, v, mask, level[2])  # the method's declared error model
+        choices = choose_kinetic_models(s, v, weights=weights, mask=mask, alpha=level[0], ki_max_multiple=level[1])
+        for lot, choice in zip(group, choices, strict=True):
             out[lot] = choice
     return out
 
@@ -147,23 +163,42 @@ def _kinetic_measurements(lot: str, series: KineticSeries | None, choice: Kineti
         return {k: Measurement(k, u, None, valid=False, reasons=(reason,)) for k, u in names.items()}, None
     fit = choice.michaelis_menten
     model = choice.model
+    declared = getattr(method, "km_model", MICHAELIS_MENTEN)
+    # The reported (and trended) constants always come from the method's declared model; the
+    # model choice is reported beside them and flags the lot for review when it disagrees.
     vmax, vmax_se, km, km_se, cov = fit.vmax, fit.vmax_se, fit.km, fit.km_se, fit.cov_vmax_km
+    km_ci, dof, n = fit.km_ci95, fit.dof, fit.n
     fit_dict, curve = fit.to_dict(), fit.curve(series.substrate_mm)
-    if model != MICHAELIS_MENTEN and choice.substrate_inhibition is not None:
-        si = choice.substrate_inhibition
-        vmax, vmax_se, km, km_se, cov = si.vmax, si.vmax_se, si.km, si.km_se, 0.0
+    si = choice.substrate_inhibition
+    if declared != MICHAELIS_MENTEN:
+        if si is None or not si.converged:
+            reason = f"the method declares {declared} for Km, and that fit is not available: {choice.reason}"
+            return {k: Measurement(k, u, None, valid=False, reasons=(reason,)) for k, u in names.items()}, None
+        vmax, vmax_se, km, km_se, cov = si.vmax, si.vmax_se, si.km, si.km_se, si.cov_vmax_km
+        km_ci, dof, n = si.km_ci95, si.dof, si.n
         fit_dict, curve = si.to_dict(), si.curve(series.substrate_mm)
     quality = km_determination(_KmView(km, km_se, fit.converged), series.substrate_mm, method.km_max_relative_se)
     notes = [choice.reason] if choice.flagged else []
-    detail = {"model": model, "fit": fit_dict, "flagged": choice.flagged, "reason": choice.reason,
-              "f_statistic": choice.f_statistic, "p_value": choice.p_value,
+    error_model = getattr(method, "error_model", ErrorModel.CONSTANT.value)
+    weights = error_model_weights(series.substrate_mm, series.rate_u_per_ml, None, error_model)
+    check = residual_check(series.substrate_mm, series.rate_u_per_ml, fit.vmax, fit.km,
+                           None if weights is None else weights[0], error_model)
+    if not check.holds:
+        notes.append(check.text)
+    detail = {"model": declared, "chosen_model": model, "fit": fit_dict, "flagged": choice.flagged,
+              "reason": choice.reason, "f_statistic": choice.f_statistic, "p_value": choice.p_value,
               "points": {"substrate_mm": list(series.substrate_mm), "rate_u_per_ml": list(series.rate_u_per_ml)},
-              "excluded": list(series.excluded), "km_quality": quality.to_dict(), "curve": curve.to_dict()}
-    t = float(fit.km_ci95[1] - fit.km) / fit.km_se if fit.km_se and math.isfinite(fit.km_se) and fit.km_se > 0 else None
+              "excluded": list(series.excluded), "km_quality": quality.to_dict(), "curve": curve.to_dict(),
+              "error_model": error_model, "residual_check": to_plain(check),
+              "integrated_check": _integrated_check(series, km),
+              "km_profile_ci95": (km_profile_interval(series.substrate_mm, series.rate_u_per_ml, km,
+                                                      None if weights is None else weights[0])
+                                  if declared == MICHAELIS_MENTEN else None)}
     out: dict[str, Measurement] = {}
     if quality.well_determined:
-        out["km"] = Measurement("km", "mM", km, se=km_se, ci95=(km - t * km_se, km + t * km_se) if t else None,
-                                n=fit.n, reasons=tuple(notes))
+        # Km's interval from the declared fit: t on its own n − p degrees of freedom.
+        out["km"] = Measurement("km", "mM", km, se=km_se, ci95=(float(km_ci[0]), float(km_ci[1])), n=n,
+                                reasons=tuple(notes), dof=float(dof))
     else:
         out["km"] = Measurement("km", "mM", None, reasons=(f"Km poorly determined: {quality.reason}",))
     if is_missing(protein) or not protein.valid or protein.value is None:
@@ -172,20 +207,42 @@ def _kinetic_measurements(lot: str, series: KineticSeries | None, choice: Kineti
             out[k] = missing(k, names[k], reason) if is_missing(protein) else \
                 Measurement(k, names[k], None, valid=False, reasons=(reason,))
         return out, detail
-    p, rel_p = protein.value, protein.relative_se or 0.0
-    vmax_mg = vmax / p
-    vmax_mg_se = abs(vmax_mg) * math.hypot(vmax_se / vmax if vmax else 0.0, rel_p)
-    out["vmax"] = Measurement("vmax", "U/mg", vmax_mg, se=vmax_mg_se,
-                              ci95=(vmax_mg - t * vmax_mg_se, vmax_mg + t * vmax_mg_se) if t else None, n=fit.n)
-    turn = turnover(vmax_mg, vmax_mg_se, km, km_se, spec.molecular_weight_g_per_mol,
-                             cov_vmax_km=cov / p)
-    out["kcat"] = Measurement("kcat", "1/s", turn.kcat_per_s, se=turn.kcat_se_per_s, n=fit.n)
+    protein_term = _term(protein)
+    rel_v = vmax_se / vmax if vmax else 0.0
+    fit_term = RelativeTerm(abs(rel_v), float(dof))
+    vmax_mg = vmax / protein.value
+    # kcat [1/s] = Vmax [U/mg] · MW [g/mol] / 60 / 1000 (MW exact): the same relative terms.
+    kcat = vmax_mg * spec.molecular_weight_g_per_mol / 60.0 / 1000.0
+    for code, value in (("vmax", vmax_mg), ("kcat", kcat)):
+        out[code] = _with_uncertainty(code, names[code], value, n, lambda: [fit_term, protein_term])
     if quality.well_determined:
-        out["kcat_over_km"] = Measurement("kcat_over_km", "1/(M·s)", turn.kcat_over_km_per_m_per_s,
-                                          se=turn.kcat_over_km_se_per_m_per_s, n=fit.n)
+        # kcat/Km [1/(M·s)] = kcat / (Km/1000); Vmax and Km from one fit: full covariance (GUM 5.2.2).
+        efficiency = kcat / (km / 1000.0)
+        out["kcat_over_km"] = _with_uncertainty(
+            "kcat_over_km", names["kcat_over_km"], efficiency, n,
+            lambda: [fit_ratio_term(rel_v, km_se / km, cov / (vmax * km), float(dof)), protein_term])
     else:
         out["kcat_over_km"] = Measurement("kcat_over_km", "1/(M·s)", None, reasons=("Km poorly determined",))
     return out, detail
+
+
+def _with_uncertainty(code: str, unit: str, value: float, n: int,
+                      terms: Callable[[], list[RelativeTerm]]) -> Measurement:
+    """The value with its combined SE, dof and 95 % interval; without them (and saying why) when the
+    fit gives no usable SE, so that one odd curve never stops the night."""
+    try:
+        result = combined(value, terms())
+    except (CalculationError, ZeroDivisionError, ValueError) as exc:
+        return Measurement(code, unit, value, n=n, reasons=(f"no uncertainty could be combined: {exc}",))
+    return Measurement(code, unit, value, se=result.se, ci95=result.ci95, n=n, dof=result.dof)
+
+
+def _integrated_check(series: KineticSeries, km: float) -> dict[str, Any] | None:
+    """The whole-curve Km beside the reported one, with their relative difference (a cross-check)."""
+    check = getattr(series, "integrated", None)
+    if not isinstance(check, dict) or "km_mm" not in check or not km:
+        return check
+    return {**check, "difference_pct": 100.0 * (check["km_mm"] - km) / km}
 
 
 @dataclass(frozen=True)
@@ -207,7 +264,9 @@ def evaluate_lots(lots: list[LotInputs], catalog: Catalog) -> list[LotEvaluation
     alpha = {}
     for lot in lots:
         method = catalog.lot_methods(specs[lot.lot_id], lot.assay_date).get(specs[lot.lot_id].activity_method)
-        alpha[lot.lot_id] = getattr(method, "model_selection_alpha", 0.05)
+        alpha[lot.lot_id] = (getattr(method, "model_selection_alpha", 0.05),
+                             getattr(method, "ki_max_multiple", KI_MAX_MULTIPLE),
+                             getattr(method, "error_model", ErrorModel.CONSTANT.value))
     fits = _fit_batch({k: v for k, v in series.items() if v is not None}, alpha)
     evaluations = []
     for lot in lots:

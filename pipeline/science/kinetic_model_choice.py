@@ -55,15 +55,22 @@ class KineticModelChoice:
         }
 
 
+# Default plausibility bound: Ki at most this multiple of the highest substrate tested (common
+# practice: inhibition that halves the rate only far beyond the tested range is not measured).
+KI_MAX_MULTIPLE = 10.0
+
+
 def choose_kinetic_model(
-    substrate: ArrayLike, rate: ArrayLike, weights: ArrayLike | None = None, alpha: float = 0.05
+    substrate: ArrayLike, rate: ArrayLike, weights: ArrayLike | None = None, alpha: float = 0.05,
+    ki_max_multiple: float = KI_MAX_MULTIPLE,
 ) -> KineticModelChoice:
     """Michaelis-Menten or substrate inhibition, by the extra-sum-of-squares F test.
 
     F = ((RSS1 - RSS2)/(df1 - df2)) / (RSS2/df2), df1 = n - 2, df2 = n - 3,
     p = P(F(df1 - df2, df2) > F). Substrate inhibition is chosen, and flagged, only when
-    p < alpha and the fitted Ki is finite and positive. A significant departure that is not
-    inhibition (1/Ki <= 0) keeps Michaelis-Menten but is flagged for review.
+    p < alpha and the fitted Ki is finite, positive and plausible: Ki ≤ ``ki_max_multiple`` × the
+    highest substrate tested. A significant departure that is not inhibition (1/Ki <= 0), or
+    whose Ki lies beyond that bound, keeps Michaelis-Menten but is flagged for review.
     """
     if not (isinstance(alpha, float | int) and 0 < alpha < 1):
         raise CalculationError(
@@ -101,16 +108,24 @@ def choose_kinetic_model(
         p_value = float(stats.f.sf(f_stat, df1 - df2, df2))
     else:
         f_stat, p_value = (float("inf"), 0.0) if gain > 0 else (0.0, 1.0)
-    return model_choice(mm, si, float(f_stat), p_value, float(alpha))
+    top = float(np.nanmax(np.asarray(substrate, dtype=float)))
+    return model_choice(mm, si, float(f_stat), p_value, float(alpha), ki_max_multiple * top)
 
 
 def model_choice(mm: MichaelisMentenFit, si: SubstrateInhibitionFit, f_stat: float, p_value: float,
-                 alpha: float) -> KineticModelChoice:
+                 alpha: float, ki_max_mm: float = np.inf) -> KineticModelChoice:
     """The decision and its wording once both fits and the F test are known (one-curve and batch)."""
     test = f"F = {f_stat:.4g} on {mm.dof - si.dof} and {si.dof} df, p = {p_value:.3g}"
     significant = p_value < alpha
     inhibits = si.converged and np.isfinite(si.ki) and si.ki > 0
-    if significant and inhibits:
+    if significant and inhibits and si.ki > ki_max_mm:
+        model, flagged = MICHAELIS_MENTEN, True
+        reason = (
+            f"Michaelis-Menten kept: substrate inhibition fits better ({test} < {alpha:g}) but its "
+            f"Ki = {si.ki:.4g} lies beyond the plausible {ki_max_mm:.4g} (the method's multiple of the "
+            f"highest substrate tested): review the curve"
+        )
+    elif significant and inhibits:
         model, flagged = SUBSTRATE_INHIBITION, True
         reason = f"substrate inhibition chosen ({test} < {alpha:g}; Ki = {si.ki:.4g})"
     elif significant:
@@ -133,6 +148,7 @@ def choose_kinetic_models(
     weights: ArrayLike | None = None,
     mask: ArrayLike | None = None,
     alpha: float = 0.05,
+    ki_max_multiple: float = KI_MAX_MULTIPLE,
 ) -> tuple[KineticModelChoice, ...]:
     """Michaelis-Menten or substrate inhibition for every curve, by the extra-sum-of-squares F.
 
@@ -166,8 +182,9 @@ def choose_kinetic_models(
         )
         p_value = np.where(si.rss > 0, stats.f.sf(f_stat, df_extra, np.maximum(df2, 1)), 0.0)
     p_value = np.where((si.rss == 0) & ~(gain > 0), 1.0, p_value)
+    top = np.max(np.where(w > 0, s, -np.inf), axis=1)  # highest substrate tested, per curve
     return tuple(
-        _choice(mm, si, i, float(f_stat[i]), float(p_value[i]), float(alpha))
+        _choice(mm, si, i, float(f_stat[i]), float(p_value[i]), float(alpha), float(ki_max_multiple * top[i]))
         for i in range(len(mm))
     )
 
@@ -179,6 +196,7 @@ def _choice(
     f_stat: float,
     p_value: float,
     alpha: float,
+    ki_max_mm: float,
 ) -> KineticModelChoice:
     """Curve ``i``'s decision, worded as ``choose_kinetic_model`` words it."""
     mm = mm_batch.fit(i)
@@ -188,4 +206,4 @@ def _choice(
     if si_batch.start[i] < 0:
         reason = f"substrate inhibition could not be tested: {si_batch.failure[i]}"
         return KineticModelChoice(MICHAELIS_MENTEN, mm, None, None, None, alpha, False, reason)
-    return model_choice(mm, si_batch.fit(i), f_stat, p_value, alpha)
+    return model_choice(mm, si_batch.fit(i), f_stat, p_value, alpha, ki_max_mm)

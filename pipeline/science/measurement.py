@@ -14,6 +14,7 @@ class Measurement:
 
     ``value`` is None when the data cannot support a number; ``reasons`` then says why.
     ``valid`` is False when a system-suitability criterion touching it failed.
+    ``ci95`` is value ± t₀.₉₇₅(dof)·se where both are known.
     """
 
     name: str
@@ -25,6 +26,7 @@ class Measurement:
     valid: bool = True
     reasons: tuple[str, ...] = ()
     detail: dict[str, Any] = field(default_factory=dict)
+    dof: float | None = None  # degrees of freedom of ``se`` (effective, Welch–Satterthwaite, when combined)
 
     @property
     def relative_se(self) -> float | None:

@@ -1,181 +1,65 @@
-"""Initial rates from kinetic plate reads, with an automatically chosen linear window.
+"""Initial rates from kinetic plate reads: a window from the start of the read, fitted honestly.
 
-A kinetic read gives A(t) per well at read times shared by the whole plate. The initial rate
-is the OLS slope of the initial linear part of A(t), in AU/min. The window is chosen, not
-assumed (docs/assay-rules.md, "Activity"). With m = ``min_points``:
+A kinetic read gives A(t) per well at read times shared by the whole plate. The initial rate is
+dA/dt at the first read, in AU/min (docs/assay-rules.md, "Initial rates"). With m = ``min_points``:
 
 * usable reads are those before the first read at or above ``linear_limit_au`` (the reader's
   linear range) or the first non-finite read (an overflow exported as a blank cell);
-* a candidate window is a run of at least m consecutive usable reads whose line has
-  R² ≥ ``min_r2`` and whose slope does not change by more than ``max_slope_change`` (relative
-  to its slope b), judged three ways: the quadratic term across the window,
-  |2·c₂·(t_end − t_start)| / |b|; for windows of ≥ 2m reads, the slopes of the first and the
-  last m reads; and the slope of the next m usable reads after the window. A change counts only
-  when it is also significant against the well's read noise σ̂ (Student's t at
-  ``curvature_alpha``), so noise alone does not reject a window;
-* it must start within the first ``max_start_fraction`` of the usable read time (a linear
-  stretch found only late in the read is not an initial rate);
-* the earliest-starting candidate wins; for that start, the longest.
+* the window always starts at the first read. It ends before the read at which the substrate
+  converted, (fitted ΔA / (ε·l)) / S₀, first exceeds ``max_conversion`` (default 10 %): under
+  Michaelis–Menten kinetics the rate has then fallen by at most that fraction (v(S)/v(S₀) ≥ S/S₀);
+* the window is fitted by a quadratic A = β₀ + β₁·t + β₂·t², and the rate is β₁ (the slope at
+  the first read). The bend that substrate depletion puts into the window is a fitted term, not
+  a bias, so the slope's SE (from n − 3 degrees of freedom) includes the allowed curvature and a
+  95 % interval slope ± t·SE holds its coverage (tests/test_rate_truth.py, by simulation);
+* a window of fewer than m reads is not fitted: the well is flagged with the reason (too fast for
+  the conversion limit, saturated, unreadable) — never fitted on a shorter, noisier stretch;
+* curvature test: r, the change of slope across the window, 2·β₂·(t_end − t_start), relative to
+  β₁, with its SE from the quadratic fit. An acceleration that exceeds ``max_slope_change``
+  significantly (one-sided Student's t at ``curvature_alpha``, n − 3 df) is a lag (depletion
+  never speeds a reaction up); a slowing that exceeds ``max_slope_change`` plus the window's
+  conversion significantly is a burst. Its power is stated per well: the change found with 80 %
+  probability, allowance + (t₁₋α + t₀.₈)·SE(r). The method says what a
+  lag or burst well does: ``exclude`` (flagged, with the reason) or ``steady-state`` (the slope at
+  the first later start from which the window no longer bends so, stated as such);
+* blank wells (no enzyme) are fitted by a straight line over their whole usable read, or over the
+  method's fixed ``blank_window_min``, so that no blank window is chosen from noise.
 
-A lag (slow start), a burst (fast start), saturation and substrate depletion (bending at the
-end) therefore fall outside the window, provided the bend is resolvable above the read noise
-within m reads; a well without a candidate is flagged, not fitted. The maths runs per window
-length over all wells and window starts at once: the least-squares projections depend only on
-the read times, so they are computed once per window and applied to every well.
+Cost: running sums give every window's normal equations in O(1), so a plate costs O(reads) per
+well (``pipeline.science.progress_fits``).
 """
 
 from __future__ import annotations
 
-from collections.abc import Mapping, Sequence
-from dataclasses import asdict, dataclass, fields
+from collections.abc import Sequence
 from typing import Any
 
 import numpy as np
 import numpy.typing as npt
+from scipy import stats
 
-from pipeline.errors import CalculationError, InputError, SpecificationError
-from pipeline.plain_data import to_plain
-from pipeline.science.rate_window_search import Best, plate_quantities, scan_length
+from pipeline.errors import CalculationError, InputError
+from pipeline.science.progress_fits import WindowFits, fit_windows, prefix_rises, running_sums
+from pipeline.science.rate_types import (
+    POWER,
+    ROUND_OFF_AU,
+    BlankCorrection,
+    RateFlag,
+    RateShape,
+    RateWindowSettings,
+    ShapeAction,
+    SlopeKind,
+    WellRate,
+)
+from pipeline.science.rate_wording import well_result
+from pipeline.science.read_noise import read_noise
+
+__all__ = ["BlankCorrection", "RateFlag", "RateWindowSettings", "ShapeAction", "SlopeKind", "WellRate",
+           "blank_corrected", "initial_rates"]
 
 FloatArray = npt.NDArray[np.float64]
-
-
-# --------------------------------------------------------------------------- settings and results
-
-
-@dataclass(frozen=True)
-class RateWindowSettings:
-    """Method parameters of the linear-window search (defaults: common practice)."""
-
-    min_points: int = 5
-    min_r2: float = 0.98
-    linear_limit_au: float = 2.0
-    max_slope_change: float = 0.10
-    curvature_alpha: float = 0.05
-    max_start_fraction: float = 0.5
-
-    def __post_init__(self) -> None:
-        if isinstance(self.min_points, bool) or not isinstance(self.min_points, int):
-            raise SpecificationError(
-                f"min_points must be a whole number; received {self.min_points!r}"
-            )
-        if self.min_points < 4:
-            raise SpecificationError(
-                f"min_points must be at least 4 (a line plus a curvature test); "
-                f"received {self.min_points}"
-            )
-        checks = (
-            ("min_r2", self.min_r2, 0.0, 1.0, "between 0 and 1"),
-            ("linear_limit_au", self.linear_limit_au, 0.0, np.inf, "a positive absorbance"),
-            ("max_slope_change", self.max_slope_change, 0.0, np.inf, "a positive fraction"),
-            ("curvature_alpha", self.curvature_alpha, 0.0, 1.0, "between 0 and 1"),
-            ("max_start_fraction", self.max_start_fraction, 0.0, 1.0, "between 0 and 1"),
-        )
-        for name, value, low, high, allowed in checks:
-            number = (
-                value if isinstance(value, int | float) and not isinstance(value, bool) else None
-            )
-            if number is None or not (low < number <= high) or not np.isfinite(number):
-                raise SpecificationError(f"{name} must be {allowed}; received {value!r}")
-
-    @classmethod
-    def from_mapping(cls, mapping: Mapping[str, Any]) -> RateWindowSettings:
-        """Build settings from a method file section; unknown keys are an error."""
-        known = {f.name for f in fields(cls)}
-        unknown = sorted(set(mapping) - known)
-        if unknown:
-            raise SpecificationError(
-                f"unknown rate-window setting(s) {unknown}; allowed: {sorted(known)}"
-            )
-        return cls(**dict(mapping))
-
-    def to_dict(self) -> dict[str, Any]:
-        return asdict(self)
-
-
-@dataclass(frozen=True)
-class WellRate:
-    """Initial rate of one well; ``flag`` is None when the rate can be used."""
-
-    well: str
-    slope_au_per_min: float
-    slope_se_au_per_min: float
-    intercept_au: float
-    r2: float
-    window_start_min: float
-    window_end_min: float
-    n_points: int
-    flag: str | None
-    reason: str
-
-    @property
-    def ok(self) -> bool:
-        return self.flag is None
-
-    def to_dict(self) -> dict[str, Any]:
-        out: dict[str, Any] = to_plain(vars(self))  # flat fields (a night has ~10^5 wells)
-        out["ok"] = self.ok
-        return out
-
-
-@dataclass(frozen=True)
-class BlankCorrection:
-    """Sample rates minus the mean blank rate (spontaneous reaction without enzyme)."""
-
-    corrected_slopes_au_per_min: tuple[float, ...]
-    blank_mean_au_per_min: float
-    blank_se_au_per_min: float
-    n_blanks: int
-
-    def to_dict(self) -> dict[str, Any]:
-        return dict(to_plain(self))
-
-
-def _early_shape(t: FloatArray, a_well: FloatArray, start: int, slope: float) -> str:
-    early = (a_well[start] - a_well[0]) / (t[start] - t[0])
-    kind = "slower start (lag)" if abs(early) < abs(slope) else "faster start (burst)"
-    return f"; reads before {t[start]:g} min excluded: {kind}"
-
-
-def _describe(
-    well: str,
-    t: FloatArray,
-    a_well: FloatArray,
-    usable: int,
-    cut_kind: str | None,
-    best: Best,
-    i: int,
-    settings: RateWindowSettings,
-) -> tuple[str | None, str]:
-    """Flag code and analyst wording for well ``i``."""
-    rule = (
-        f"allowed: ≥ {settings.min_points} consecutive reads below {settings.linear_limit_au:g} AU, "
-        f"R² ≥ {settings.min_r2:g}, slope change ≤ {100 * settings.max_slope_change:g} %"
-    )
-    cut = ""
-    if cut_kind is not None:
-        cut = f"; reads from {t[usable]:g} min excluded ({cut_kind})"
-    if best.n[i] > 0:
-        start, n = int(best.start[i]), int(best.n[i])
-        text = (
-            f"well {well}: linear window {t[start]:g}–{t[start + n - 1]:g} min "
-            f"({n} reads), R² {best.r2[i]:.4f}"
-        )
-        if start > 0:
-            text += _early_shape(t, a_well, start, float(best.slope[i]))
-        return None, text + cut
-    if len(t) < settings.min_points:
-        return "too-few-points", f"well {well}: only {len(t)} reads on the plate; {rule}"
-    if usable < settings.min_points:
-        code = {"saturated": "saturated", "not a number": "non-finite"}.get(cut_kind or "", "")
-        seen = f"only {usable} reads before {t[usable]:g} min, where the well " + (
-            "reaches the linear limit" if code == "saturated" else "has a non-numeric read"
-        )
-        return code or "too-few-points", f"well {well}: {seen}; {rule}"
-    seen = (
-        f"best R² {best.max_r2[i]:.4f}" if np.isfinite(best.max_r2[i]) else "no rise in absorbance"
-    )
-    return "no-linear-window", f"well {well}: no linear window ({seen}){cut}; {rule}"
+IntArray = npt.NDArray[np.int64]
+# --------------------------------------------------------------------------- inputs
 
 
 def _validated(
@@ -197,13 +81,82 @@ def _validated(
     if len(names) != a.shape[0]:
         raise InputError(f"{len(names)} well names given for {a.shape[0]} absorbance traces")
     if len(set(names)) != len(names):
-        twice = sorted({w for w in names if names.count(w) > 1})
+        seen: set[str] = set()
+        twice = sorted({w for w in names if w in seen or seen.add(w)})  # type: ignore[func-returns-value]
         raise InputError(f"well names must be unique; repeated: {twice}")
     if not np.all(np.isfinite(t)) or np.any(np.diff(t) <= 0):
-        raise InputError(
-            f"read times must be finite and strictly increasing; received {t.tolist()}"
-        )
+        raise InputError(f"read times must be finite and strictly increasing; received {t.tolist()}")
     return t, a, names
+
+
+def _substrates(substrate_mm: npt.ArrayLike | None, wells: int) -> FloatArray:
+    if substrate_mm is None:
+        return np.full(wells, np.nan)
+    s = np.asarray([np.nan if v is None else v for v in np.atleast_1d(np.asarray(substrate_mm, dtype=object))],
+                   dtype=float)
+    if s.shape != (wells,):
+        raise InputError(f"{s.size} substrate concentrations given for {wells} wells")
+    return s
+
+
+# --------------------------------------------------------------------------- the search
+
+
+def _shape(fits: WindowFits, slope: FloatArray, conversion: FloatArray, settings: RateWindowSettings,
+           noise: tuple[FloatArray, FloatArray], early_slope: FloatArray) -> RateShape:
+    """Lag and burst: a change of slope beyond its allowance, or a shape no quadratic follows.
+
+    With r the change relative to the rate and SE(r) its standard error, a lag is
+    (r − a) / SE(r) > t₁₋α (a = ``max_slope_change``) and a burst (−r − a − conversion) / SE(r) > t₁₋α,
+    one-sided at ``curvature_alpha``: a bend inside the allowance is flagged in at most α of wells.
+    The change found with 80 % probability is the allowance plus (t₁₋α + t₀.₈)·SE(r).
+    A sharp lag or burst bends the curve where no quadratic follows it: the quadratic's residual
+    variance is then above the well's read-noise variance, F = σ̂²/σ̂²_noise > F₁₋α; it is a lag when
+    the first reads rise more slowly than the fitted start slope, a burst when faster.
+    """
+    change, change_se = fits.slope_change()
+    dof = np.maximum(fits.dof, 1)
+    t_crit = stats.t.ppf(1.0 - settings.curvature_alpha, dof)
+    t_power = stats.t.ppf(POWER, dof)
+    allowed_drop = settings.max_slope_change + np.nan_to_num(conversion, nan=0.0)
+    noise_sd, noise_dof = noise
+    with np.errstate(invalid="ignore", divide="ignore"):
+        relative = change * np.sign(slope) / np.abs(slope)
+        relative_se = change_se / np.abs(slope)
+        detectable = settings.max_slope_change + (t_crit + t_power) * relative_se
+        lag = (relative - settings.max_slope_change) > t_crit * relative_se
+        burst = (-relative - allowed_drop) > t_crit * relative_se
+        misfit = fits.sigma2 / noise_sd**2 > stats.f.ppf(1.0 - settings.curvature_alpha, dof, noise_dof)
+        slower_start = early_slope * np.sign(slope) < np.abs(slope)
+    misfit &= (fits.dof > 0) & (fits.sigma2 > ROUND_OFF_AU**2)
+    lag |= misfit & slower_start
+    burst |= misfit & ~slower_start
+    return RateShape(relative, detectable, lag & np.isfinite(relative), burst & np.isfinite(relative))
+
+
+def _steady_starts(sums: Any, wells: IntArray, stop: IntArray, conversion: FloatArray,
+                   settings: RateWindowSettings, noise: tuple[FloatArray, FloatArray]) -> tuple[IntArray, WindowFits | None]:
+    """For each listed well, the first later start whose window to ``stop`` no longer bends (−1: none)."""
+    m = settings.min_points
+    reads = sums.x.size
+    starts = np.arange(1, reads)
+    rows_w = np.repeat(wells, starts.size)
+    rows_s = np.tile(starts, wells.size)
+    rows_e = np.repeat(stop, starts.size)
+    fits = fit_windows(sums, rows_w, rows_s, np.maximum(rows_e, rows_s + 1), 3)
+    slope, _ = fits.start_slope()
+    early = fit_windows(sums, rows_w, rows_s, np.minimum(rows_s + m, rows_e), 2).start_slope()[0]
+    shape = _shape(fits, slope, np.repeat(conversion, starts.size), settings,
+                   (np.repeat(noise[0], starts.size), np.repeat(noise[1], starts.size)), early)
+    good = ((rows_e - rows_s) >= m) & ~shape.lag & ~shape.burst & np.isfinite(slope)
+    good = good.reshape(wells.size, starts.size)
+    found = good.any(axis=1)
+    first = np.where(found, starts[good.argmax(axis=1)], -1)
+    if not found.any():
+        return first, None
+    pick = np.flatnonzero(found)
+    chosen = fit_windows(sums, wells[pick], first[pick], stop[pick], 3)
+    return first, chosen
 
 
 def initial_rates(
@@ -213,58 +166,80 @@ def initial_rates(
     settings: RateWindowSettings | None = None,
     *,
     blank_wells: Sequence[str] = (),
+    substrate_mm: npt.ArrayLike | None = None,
+    au_per_mm: float | None = None,
 ) -> tuple[WellRate, ...]:
-    """Initial rate (OLS slope of the chosen linear window) of every well of a plate.
+    """Initial rate of every well of a plate (see the module text for the rules).
 
-    slope b = Σ(t − t̄)(A − Ā) / Σ(t − t̄)², SE(b) = √(SSR / (n − 2) / Σ(t − t̄)²),
-    R² = 1 − SSR / SST, intercept = A at t = 0 on the fitted line.
-
-    ``time_min`` has shape (T,), ``absorbance`` shape (W, T), ``wells`` W names. Wells named in
-    ``blank_wells`` (no enzyme: a slope near zero makes R² meaningless) skip the R² test but
-    not the saturation and curvature tests.
+    ``time_min`` has shape (T,), ``absorbance`` shape (W, T), ``wells`` W names;
+    ``substrate_mm`` the starting substrate of each well (None or NaN: unknown, no conversion
+    limit) and ``au_per_mm`` = ε·l, the absorbance of 1 mM product. Wells named in
+    ``blank_wells`` get a straight line over their whole read (or the fixed blank window).
     """
     settings = settings or RateWindowSettings()
     t, a, names = _validated(time_min, absorbance, wells)
     unknown_blanks = sorted(set(blank_wells) - set(names))
     if unknown_blanks:
         raise InputError(f"blank well(s) {unknown_blanks} are not among the plate's wells")
+    if au_per_mm is not None and not (np.isfinite(au_per_mm) and au_per_mm != 0):
+        raise InputError(f"ε·l must be a finite, non-zero absorbance per mM; received {au_per_mm!r}")
     n_wells, n_reads = a.shape
+    s0 = _substrates(substrate_mm, n_wells)
+    m = settings.min_points
 
     not_number = ~np.isfinite(a)
     saturated = ~not_number & (a >= settings.linear_limit_au)
-    stop = not_number | saturated
-    usable_n = np.where(stop.any(axis=1), stop.argmax(axis=1), n_reads).astype(np.int64)
-    exempt = np.isin(np.asarray(names, dtype=object), np.asarray(tuple(blank_wells), dtype=object))
+    stop_read = not_number | saturated
+    usable_n = np.where(stop_read.any(axis=1), stop_read.argmax(axis=1), n_reads).astype(np.int64)
+    is_blank = np.isin(np.asarray(names, dtype=object), np.asarray(tuple(blank_wells), dtype=object))
+    sums = running_sums(t, a, usable_n)
 
-    best = Best.empty(n_wells, n_reads)
-    if n_reads >= settings.min_points:
-        plate = plate_quantities(t, a, usable_n, exempt, settings)
-        for n in range(settings.min_points, n_reads + 1):
-            scan_length(plate, n, settings, best)
+    # Window ends: the conversion limit for enzyme wells, the whole read (or fixed window) for blanks.
+    capacity = abs(au_per_mm) * s0 if au_per_mm is not None else np.full(n_wells, np.nan)
+    limited = np.isfinite(capacity) & (capacity > 0) & ~is_blank
+    stop = usable_n.copy()
+    conversion_at = np.full((n_wells, n_reads + 1), np.nan)
+    if limited.any():
+        rises = prefix_rises(sums, m, usable_n)
+        with np.errstate(invalid="ignore"):
+            conversion_at = np.abs(rises) / capacity[:, None]
+        over = conversion_at > settings.max_conversion
+        first_over = np.where(over.any(axis=1), over.argmax(axis=1), n_reads + 1)
+        stop = np.where(limited, np.minimum(usable_n, first_over - 1), usable_n)
+    if settings.blank_window_min is not None:
+        fixed = int(np.searchsorted(t - t[0], settings.blank_window_min, side="right"))
+        stop = np.where(is_blank, np.minimum(usable_n, fixed), stop)
+    stop = np.maximum(stop, 0)
+    conversion = np.where(limited, conversion_at[np.arange(n_wells), stop], np.nan)
+
+    index = np.arange(n_wells)
+    zero = np.zeros(n_wells, dtype=np.int64)
+    quad = fit_windows(sums, index, zero, stop, 3)
+    line = fit_windows(sums, index, zero, stop, 2)
+    q_slope, q_var = quad.start_slope()
+    l_slope, l_var = line.start_slope()
+    noise = read_noise(t, a, usable_n)
+    early = fit_windows(sums, index, zero, np.minimum(stop, m), 2).start_slope()[0]
+    shape = _shape(quad, q_slope, conversion, settings, noise, early)
+
+    steady_start = np.full(n_wells, -1)
+    steady: WindowFits | None = None
+    shaped = np.flatnonzero((shape.lag | shape.burst) & ~is_blank & (stop >= m))
+    if settings.shape_action is ShapeAction.STEADY_STATE and shaped.size:
+        first, steady = _steady_starts(sums, shaped, stop[shaped], conversion[shaped], settings,
+                                       (noise[0][shaped], noise[1][shaped]))
+        steady_start[shaped] = first
+    steady_slope, steady_var = steady.start_slope() if steady is not None else (np.array([]), np.array([]))
+    steady_rows = {int(w): k for k, w in enumerate(shaped[steady_start[shaped] >= 0])}
 
     results = []
     for i, name in enumerate(names):
         usable = int(usable_n[i])
-        cut_kind = None
-        if usable < n_reads:
-            cut_kind = "saturated" if saturated[i, usable] else "not a number"
-        flag, reason = _describe(name, t, a[i], usable, cut_kind, best, i, settings)
-        fitted = flag is None
-        start, n = int(best.start[i]), int(best.n[i])
-        results.append(
-            WellRate(
-                well=name,
-                slope_au_per_min=float(best.slope[i]) if fitted else float("nan"),
-                slope_se_au_per_min=float(best.se[i]) if fitted else float("nan"),
-                intercept_au=float(best.intercept[i]) if fitted else float("nan"),
-                r2=float(best.r2[i]) if fitted else float("nan"),
-                window_start_min=float(t[start]) if fitted else float("nan"),
-                window_end_min=float(t[start + n - 1]) if fitted else float("nan"),
-                n_points=n if fitted else 0,
-                flag=flag,
-                reason=reason,
-            )
-        )
+        cut = None if usable >= n_reads else ("saturated" if saturated[i, usable] else "not a number")
+        results.append(well_result(name, i, t, a[i], sums, settings, usable, cut, int(stop[i]), bool(is_blank[i]), bool(limited[i]),
+                                    (quad, q_slope, q_var), (line, l_slope, l_var), shape,
+                                    float(conversion[i]), steady_rows.get(i), int(steady_start[i]),
+                                    (steady, steady_slope, steady_var)))
     return tuple(results)
 
 

@@ -82,6 +82,11 @@ def _fit_linear_in_params(x: FloatArray, y: FloatArray, w: FloatArray, degree: i
     return params
 
 
+def parameter_gradient(model: str, params: FloatArray, x: FloatArray) -> FloatArray:
+    """d absorbance / d params at each x, shape (n, p) (see ``_gradient``)."""
+    return _gradient(model, params, x)
+
+
 def _gradient(model: str, params: FloatArray, x: FloatArray) -> FloatArray:
     """d absorbance / d params at each x, shape (n, p).
 
@@ -234,6 +239,9 @@ class StandardCurve:
             "model": self.model,
             "weighting": self.weighting,
             "params": {n: to_plain(v) for n, v in zip(self.param_names, self.params, strict=True)},
+            "param_se": {n: to_plain(float(np.sqrt(max(self.covariance[i][i], 0.0))) if self.covariance else None)
+                         for i, n in enumerate(self.param_names)},
+            "dof": self.dof,
             "r2": to_plain(self.r2),
             "range_low_mg_per_ml": self.range_low_mg_per_ml,
             "range_high_mg_per_ml": self.range_high_mg_per_ml,

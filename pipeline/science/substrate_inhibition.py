@@ -64,6 +64,7 @@ class SubstrateInhibitionFit:
     dof: int
     converged: bool
     message: str
+    cov_vmax_km: float = float("nan")  # covariance of Vmax and Km, rate units × substrate units
 
     def rate_at(self, substrate: ArrayLike) -> FloatArray:
         """v = Vmax S / (Km + S + S^2/Ki) at each substrate level."""
@@ -255,4 +256,5 @@ def fit_substrate_inhibition(
         dof=best.dof,
         converged=best.converged,
         message=best.message,
+        cov_vmax_km=float(best.covariance[0][1]),
     )

@@ -85,6 +85,7 @@ class SubstrateInhibitionBatch:
     iterations: NDArray[np.int64]
     start: NDArray[np.int64]
     failure: NDArray[np.str_]
+    cov_vmax_km: FloatArray | None = None
 
     def __len__(self) -> int:
         return int(self.vmax.shape[0])
@@ -128,6 +129,7 @@ class SubstrateInhibitionBatch:
             dof=int(self.dof[i]),
             converged=bool(self.converged[i]),
             message=self.message(i),
+            cov_vmax_km=float(self.cov_vmax_km[i]) if self.cov_vmax_km is not None else float("nan"),
         )
 
     def to_dict(self) -> dict[str, Any]:
@@ -241,6 +243,7 @@ def fit_batch_from(s: FloatArray, v: FloatArray, w: FloatArray,
         iterations=frozen(np.where(fitted, fits.iterations[pick] if k_idx.size else 0, 0).astype(np.int64)),
         start=frozen(np.where(fitted, k_idx[pick] if k_idx.size else -1, -1).astype(np.int64)),
         failure=frozen(failure),
+        cov_vmax_km=frozen(chosen(fits.covariance[:, 0, 1]) if k_idx.size else nan),
     )
 
 
