@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import datetime as dt
 import io
 
 import numpy as np
@@ -28,7 +29,7 @@ def _method():
 
 def test_wells_get_conversion_limited_windows_and_blanks_their_whole_read() -> None:
     plate_map, reads = _plate()
-    result = plates.evaluate_activity_plate("AK-TEST", plate_map, reads, _method())
+    result = plates.evaluate_activity_plate("AK-TEST", plate_map, reads, _method(), dt.date(2026, 11, 20))
     assert result.valid, result.reasons
     wells = result.wells.values()
     blanks = [w for w in wells if w["role"] == "blank"]
@@ -47,6 +48,6 @@ def test_wells_get_conversion_limited_windows_and_blanks_their_whole_read() -> N
 def test_a_plate_with_too_many_reads_per_well_is_refused(monkeypatch) -> None:
     plate_map, reads = _plate()
     monkeypatch.setattr(plates, "MAX_READS_PER_WELL", 20)
-    result = plates.evaluate_activity_plate("AK-TEST", plate_map, reads, _method())
+    result = plates.evaluate_activity_plate("AK-TEST", plate_map, reads, _method(), dt.date(2026, 11, 20))
     assert not result.valid
     assert "has 21 reads; a kinetic plate may have at most 20 reads per well" in result.reasons[0]

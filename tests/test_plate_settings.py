@@ -65,7 +65,7 @@ def test_no_reference_lot_valid_on_the_assay_date_makes_the_plate_invalid():
         ReferenceLot("REF-LIP-B", 1185.0, dt.date(2026, 11, 25))))
     result = _evaluate(expired)
     assert not result.valid
-    assert result.reasons == (f"plate {PLATE}: no reference standard lot of method LIP-PNPB v1.2 is valid on the "
+    assert result.reasons == (f"plate {PLATE}: no reference standard lot of method LIP-PNPB v1.3 is valid on the "
                               "assay date 2026-11-24",)
     assert all(not m.valid and m.reasons == result.reasons for m in result.activity.values())
 
@@ -79,9 +79,12 @@ def test_reference_wells_of_another_lot_than_the_one_in_force_make_the_plate_inv
 
 
 def test_each_plate_format_uses_its_own_path_length_and_volumes():
-    by_96 = _evaluate(METHOD)
+    # The rate window's conversion limit depends on the path too (product = ΔA / (ε·l)); lifted here so
+    # that both computations fit the same reads and only the conversion of a rate to U/mL differs.
+    method = dataclasses.replace(METHOD, rate_window=dataclasses.replace(METHOD.rate_window, max_conversion_pct=50.0))
+    by_96 = _evaluate(method)
     # half the path: every activity doubles, the reference's too (its assigned value doubled keeps the plate valid)
-    half_path = dataclasses.replace(METHOD, plate_formats=(PlateFormatSettings(96, 0.275, 0.200, 0.020),),
+    half_path = dataclasses.replace(method, plate_formats=(PlateFormatSettings(96, 0.275, 0.200, 0.020),),
                                     reference_lots=(ReferenceLot("REF-LIP-A", 2400.0, dt.date(2026, 1, 15)),))
     halved = _evaluate(half_path)
     assert halved.valid and halved.reference_recovery_pct == pytest.approx(by_96.reference_recovery_pct)
@@ -107,6 +110,6 @@ def test_a_read_of_a_format_the_method_does_not_declare_is_set_aside_with_its_co
     assert sorted(rejected) == lipase_reads  # the protease plates' method declares 96: not touched
     problem = rejected[lipase_reads[0]].problems[0]
     assert problem.code == ProblemCode.PLATE_FORMAT
-    assert "its plate map says 96-well plate, and method LIP-PNPB v1.2 declares settings for 384-well plates only" \
+    assert "its plate map says 96-well plate, and method LIP-PNPB v1.3 declares settings for 384-well plates only" \
         in problem.message
     assert rejected[lipase_reads[0]].report().startswith(f"File {lipase_reads[0]} was set aside (quarantined)")

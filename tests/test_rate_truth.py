@@ -10,6 +10,7 @@ coverage 93–97 %.
 
 from __future__ import annotations
 
+import datetime as dt
 import io
 
 import numpy as np
@@ -88,7 +89,7 @@ def _simulated_lots(product: plant.ProductModel, method_name: str, plates: int, 
                 for j in range(4)]
         files = plant._activity_plate(f"P{k:04d}", product, lots, rng, 1.0)
         read = {name.split("-")[0]: pd.read_csv(io.BytesIO(data)) for name, data in files.items()}
-        result = evaluate_activity_plate(f"P{k:04d}", read["platemap"], read["kinread"], method)
+        result = evaluate_activity_plate(f"P{k:04d}", read["platemap"], read["kinread"], method, dt.date(2026, 11, 20))
         out.extend((lot.km_mm, result.kinetics[lot.lot_id]) for lot in lots)
     return out
 

@@ -129,16 +129,16 @@ def test_two_versions_of_a_method_on_one_day_are_refused(tmp_path):
     methods = tmp_path / "methods"
     shutil.copytree(folders.methods, methods)
     text = (methods / "LIP-PNPB.yaml").read_text(encoding="utf-8")
-    (methods / "LIP-PNPB-1.3.yaml").write_text(text.replace('version: "1.2"', 'version: "1.3"'), encoding="utf-8")
-    with pytest.raises(SpecificationError, match=r"LIP-PNPB.yaml: method 'LIP-PNPB' version 1.2 takes effect on "
-                                                 r"2026-01-15, the same day as version 1.3 in .*LIP-PNPB-1.3.yaml"):
+    (methods / "LIP-PNPB-1.4.yaml").write_text(text.replace('version: "1.3"', 'version: "1.4"'), encoding="utf-8")
+    with pytest.raises(SpecificationError, match=r"LIP-PNPB.yaml: method 'LIP-PNPB' version 1.3 takes effect on "
+                                                 r"2026-01-15, the same day as version 1.4 in .*LIP-PNPB-1.4.yaml"):
         load_catalog(type(folders)(specifications=folders.specifications, methods=methods, layouts=folders.layouts))
-    (methods / "LIP-PNPB-1.3.yaml").write_text(
-        text.replace('version: "1.2"', 'version: "1.3"').replace("2026-01-15", "2026-12-01"), encoding="utf-8")
+    (methods / "LIP-PNPB-1.4.yaml").write_text(
+        text.replace('version: "1.3"', 'version: "1.4"').replace("2026-01-15", "2026-12-01"), encoding="utf-8")
     catalog = load_catalog(type(folders)(specifications=folders.specifications, methods=methods,
                                          layouts=folders.layouts))
-    assert catalog.method_on("LIP-PNPB", "2026-11-30").document.version == "1.2"
-    assert catalog.method_on("LIP-PNPB", "2026-12-01").document.version == "1.3"
+    assert catalog.method_on("LIP-PNPB", "2026-11-30").document.version == "1.3"
+    assert catalog.method_on("LIP-PNPB", "2026-12-01").document.version == "1.4"
     assert catalog.method_on("LIP-PNPB", "2026-01-14") is None  # before the first version
 
 
@@ -169,6 +169,6 @@ def test_the_night_notes_each_staged_version():
     assert notes == [
         "specification LLC-200 v3.2 is on file and takes effect on 2026-11-26: staged, not used tonight (tonight's "
         "lots were assayed up to 2026-11-25)",
-        "method PROT-FL485 v1.0 is on file and takes effect on 2026-12-01: staged, not used tonight (tonight's lots "
+        "method PROT-FL485 v1.1 is on file and takes effect on 2026-12-01: staged, not used tonight (tonight's lots "
         "were assayed up to 2026-11-25)"]
     assert load_catalog().staged_notes([("2026-11-25", "2026-11-26")]) == [notes[1].replace("11-25)", "11-26)")]
