@@ -21,6 +21,7 @@ from pipeline.night.close import close as close_night
 from pipeline.night.decide import decide as decide_lots
 from pipeline.night.decide import earlier_decisions
 from pipeline.night.decide import load_charts as read_charts
+from pipeline.night.decide import lot_records
 from pipeline.night.evaluate import evaluate as evaluate_lots
 from pipeline.night.open import CertificateSigner, open_night
 from pipeline.night.publish import publish as publish_lots
@@ -117,7 +118,8 @@ def _stages(ws: Workspace, store: Store, signer: CertificateSigner, step: dict,
     assembly = timed("assemble", intake, catalog)
     evaluations, _plates = timed("evaluate", assembly, catalog)
     charts = timed("load_charts", store, catalog, evaluations)
-    decided = timed("decide", evaluations, catalog, charts, earlier_decisions(store, evaluations))
+    decided = timed("decide", evaluations, catalog, charts, earlier_decisions(store, evaluations),
+                    lot_records(store, catalog, evaluations))
     outcomes = timed("publish", ws, store, catalog, decided, night_id, signer, _progress)
     return timed("close", ws, store, intake, outcomes, [*recovered.notes, *assembly.notes])
 

@@ -61,6 +61,7 @@ class Attribute:
     baseline_n: int = 20
     scientific: bool = False
     required: bool = True
+    turnaround_days: int | None = None  # expected within these days of manufacture; None: with the lot's data
 
     @property
     def has_limit(self) -> bool:
@@ -202,7 +203,7 @@ def _attribute(raw: AttributeFile, defaults: TrendSettings, where: str) -> Attri
         code=raw.code, title=raw.title or raw.code, source=raw.source, unit=raw.unit, digits=raw.digits,
         minimum=raw.min, maximum=raw.max, expect=raw.expect, test_code=raw.test_code, trend=raw.trend,
         trend_rules=rules, baseline_n=20 if baseline_n is None else baseline_n, scientific=raw.scientific,
-        required=raw.required,
+        required=raw.required, turnaround_days=raw.turnaround_days,
     )
 
 

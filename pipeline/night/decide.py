@@ -2,12 +2,14 @@
 
 from __future__ import annotations
 
+from dataclasses import dataclass
 from typing import Any
 
 from pipeline import __version__
 from pipeline.controlled.catalog import Catalog
 from pipeline.controlled.specs import KineticMethod
 from pipeline.records.chart_queries import active_limits, released_count, released_points
+from pipeline.records.lot_record_store import charted_lots, load_histories
 from pipeline.records.store import Store
 from pipeline.release.decision import (
     CHART_TAIL,
@@ -19,7 +21,8 @@ from pipeline.release.decision import (
     lot_fingerprint,
 )
 from pipeline.release.lot_evaluation import LotEvaluation
-from pipeline.vocabulary import Disposition
+from pipeline.release.lot_record import LotHistory
+from pipeline.vocabulary import Disposition, HoldCategory
 
 BASELINE_REACHED = "lotgate (baseline reached)"  # who froze a chart's first limits: the nightly job
 
@@ -62,16 +65,51 @@ def load_charts(store: Store, catalog: Catalog, evaluations: list[LotEvaluation]
     return charts
 
 
+# Holds the lot record governs on its own: new results settle them (an invalid assay is superseded by
+# the next valid result, an awaited result arrives, an OOS result stands until an investigation).
+RECORD_GOVERNED = frozenset({HoldCategory.INVALID_ASSAY, HoldCategory.INCOMPLETE, HoldCategory.OVERDUE,
+                             HoldCategory.OUT_OF_SPECIFICATION})
+
+
 def earlier_decisions(store: Store, evaluations: list[LotEvaluation]) -> dict[str, str]:
-    """For each lot decided before, a note on its latest decision (one query for the night)."""
+    """For each lot whose latest decision a person must review first, a note on it (one query for the night).
+
+    A person's decision, and a nightly hold for a reason the lot record does not settle (out of
+    trend, review required), stand until an authorised person decides. A nightly hold for an
+    invalid assay, missing, overdue or out-of-specification results, and a pending lot, are
+    decided again from the lot's whole record.
+    """
     latest = store.previous_decisions([e.lot_id for e in evaluations])
-    return {lot: f"revision {stored.revision}: {stored.record.label} (decided by {stored.decided_by})"
-            for lot, stored in latest.items()
-            if stored.disposition != Disposition.RELEASED or not stored.decided_by.startswith("lotgate")}
+    out = {}
+    for lot, stored in latest.items():
+        nightly = stored.decided_by.startswith("lotgate")
+        settled = stored.disposition in (Disposition.RELEASED, Disposition.PENDING) or (
+            stored.disposition == Disposition.HELD and set(stored.record.hold_categories) <= RECORD_GOVERNED)
+        if not (nightly and settled):
+            out[lot] = f"revision {stored.revision}: {stored.record.label} (decided by {stored.decided_by})"
+    return out
+
+
+@dataclass(frozen=True)
+class NightRecords:
+    """The night's lots' records before tonight, and which of them are on a control chart already."""
+
+    histories: dict[str, LotHistory]
+    charted: frozenset[tuple[str, str, str]]
+
+
+def lot_records(store: Store, catalog: Catalog, evaluations: list[LotEvaluation]) -> NightRecords:
+    """Each lot's record as it stood before tonight (what a stopped attempt of this night stored left out,
+    as ``load_charts`` does)."""
+    fingerprints = [lot_fingerprint(e, catalog.specifications, catalog.methods, __version__) for e in evaluations]
+    attempt = {stored.id for stored in store.known_fingerprints(fingerprints).values()}
+    lots = [e.lot_id for e in evaluations]
+    return NightRecords(load_histories(store, lots, attempt), charted_lots(store, lots, attempt))
 
 
 def decide(evaluations: list[LotEvaluation], catalog: Catalog, charts: dict[ChartKey, ChartState],
-           earlier: dict[str, str] | None = None) -> NightDecisions:
+           earlier: dict[str, str] | None = None, records: NightRecords | None = None) -> NightDecisions:
     """Trend and disposition of the night's lots, by product, date of manufacture and lot."""
     ordered = sorted(evaluations, key=lambda e: (e.product_code, e.manufactured_on, e.lot_id))
-    return decide_night(ordered, catalog.specifications, catalog.methods, charts, __version__, earlier or {})
+    return decide_night(ordered, catalog.specifications, catalog.methods, charts, __version__, earlier or {},
+                        records.histories if records else None, records.charted if records else frozenset())

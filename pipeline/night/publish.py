@@ -152,11 +152,21 @@ def _write(ws: Workspace, job: _Job, night_id: int, report_bytes: bytes, certifi
     if written.certificate is not None:
         events.append(audit.event("certificate-signed", time_zone=ws.time_zone, lot_id=decision.lot_id,
                                   **vars(written.certificate)))
+    record_view = item.record
+    if record_view is not None and (record_view.new_results or record_view.status_changes):
+        events.append(audit.event(
+            "lot-record", time_zone=ws.time_zone, lot_id=decision.lot_id, night_id=night_id,
+            new_results=[{"attribute": r.attribute, "status": r.status, "verdict": r.verdict, "value": r.value,
+                          "source": r.source, "files": r.files} for r in record_view.new_results],
+            status_changes=[{"result_id": c.result_id, "attribute": c.attribute, "status": c.status,
+                             "reason": c.reason} for c in record_view.status_changes]))
     write = DecisionWrite(
         record, NIGHTLY_JOB, night_id=night_id, manufactured_on=item.evaluation.manufactured_on,
         standard_errors={v.code: v.se for v in item.evaluation.verdicts}, chart_values=dict(item.chart_values),
         change_note=None if job.previous is None else change_note(job.previous, record),
-        events=tuple(events), extra_points=tuple(item.extra_points))
+        events=tuple(events), extra_points=tuple(item.extra_points),
+        lot_results=() if record_view is None else record_view.new_results,
+        status_changes=() if record_view is None else record_view.status_changes)
     outcome = Outcome(decision.lot_id, decision.product, decision.label, decision.reasons, job.revision, True,
                       None if written.certificate is None else f"certificates/{written.certificate.file}",
                       f"reports/{written.report.file}")
