@@ -251,9 +251,10 @@ def build_parser() -> argparse.ArgumentParser:
     from flows import records_cmd
 
     records_cmd.add_commands(sub)
-    from flows import bench, trend_cmd
+    from flows import bench, investigate_cmd, trend_cmd
 
     trend_cmd.add_commands(sub)
+    investigate_cmd.add_commands(sub)
     bench.add_commands(sub)
     return parser
 
