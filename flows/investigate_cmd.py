@@ -50,3 +50,25 @@ def add_commands(sub: argparse._SubParsersAction) -> None:
                    help="file (mode 0600) holding the passphrase; else LOTGATE_SIGNING_PASSPHRASE or a prompt")
     p.add_argument("--workspace", required=True, metavar="DIR")
     p.set_defaults(func=cmd_investigate)
+
+
+def demo_investigations(root: Path, investigations: tuple, console) -> None:
+    """The demo's investigation outcomes, recorded with the workspace's DEMO identity (never for real use)."""
+    from pipeline.errors import InputError
+    from pipeline.night.investigation import record_investigation
+    from pipeline.night.open import open_records, signer_for
+    from pipeline.records.run_lock import run_lock
+
+    ws, store = open_records(root)
+    identity = signer_for(ws).identity
+    for inv in investigations:
+        try:
+            with run_lock(ws.root, store):
+                done = record_investigation(ws, store, inv.lot_id, test=inv.test, outcome=inv.outcome,
+                                            reference=inv.reference, reason=inv.reason, retest_plan=inv.retest_plan,
+                                            identity=identity)
+        except InputError as exc:  # a demo run again: the outcome is on record already
+            console.print(f"Investigation {inv.reference} of lot {inv.lot_id}: not recorded again ({exc})")
+            continue
+        console.print(f"Investigation {done.reference} of lot {done.lot_id} ({done.attribute}) recorded by "
+                      f"{identity.signer_name}: {done.outcome}")

@@ -17,6 +17,7 @@ from reportlab.pdfgen.canvas import Canvas
 from reportlab.platypus import CondPageBreak, KeepTogether, Spacer, Table, TableStyle
 
 from pipeline.documents import charts
+from pipeline.documents.record_section import record_section
 from pipeline.documents.certificate import (
     CONTENT_W,
     MARGIN_X,
@@ -416,6 +417,7 @@ def render_batch_report(dossier: dict[str, Any]) -> bytes:
     story += _kinetics(dossier)
     story += _charts(dossier)
     story += _trend(dossier)
+    story += record_section(dossier)
     story += _traceability(dossier)
     buffer = io.BytesIO()
     doc = doc_template(buffer, dossier, "Batch report", FOOTER_H)

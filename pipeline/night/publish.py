@@ -117,7 +117,7 @@ class _Renderers:
 
 
 def _prepare(ws: Workspace, catalog: Catalog, item: LotDecision, previous: StoredDecision | None,
-             signer: CertificateSigner) -> _Job:
+             signer: CertificateSigner, revisions: tuple[dict[str, Any], ...] = ()) -> _Job:
     decision = item.decision
     revision = previous.revision + 1 if previous else 1
     spec = catalog.specifications[decision.product]
@@ -127,7 +127,7 @@ def _prepare(ws: Workspace, catalog: Catalog, item: LotDecision, previous: Store
     dossier = build_dossier(item, spec, activity_method if isinstance(activity_method, KineticMethod) else None,
                             protein_method if isinstance(protein_method, ProteinMethod) else None,
                             plant_name=ws.plant_name, time_zone=ws.time_zone, revision=revision,
-                            decided_at=decided_at)
+                            decided_at=decided_at, revisions=revisions)
     signature = None
     if decision.disposition == Disposition.RELEASED:
         signature = signature_block(signer.signer_name, signer.fingerprint_sha256, decided_at.replace(microsecond=0),
@@ -182,6 +182,11 @@ def publish(ws: Workspace, store: Store, catalog: Catalog, decided: NightDecisio
     decisions = decided.lots
     known = store.known_fingerprints([d.decision.fingerprint for d in decisions])
     previous = store.previous_decisions([d.decision.lot_id for d in decisions])
+    revisions: dict[str, list[dict[str, Any]]] = {}
+    for stored in store.decisions_of_lots(sorted(previous)):
+        revisions.setdefault(stored.lot_id, []).append({
+            "revision": stored.revision, "decided_by": stored.decided_by, "label": stored.record.label,
+            "decided_at_utc": stored.decided_at_utc.isoformat(timespec="seconds")})
     limits = _limits_to_store(ws, store, decided.newly_frozen)
     outcomes: dict[int, Outcome] = {}
     pending: list[tuple[int, LotDecision]] = []
@@ -201,7 +206,8 @@ def publish(ws: Workspace, store: Store, catalog: Catalog, decided: NightDecisio
         store.add_decisions([], limits)
 
     def start(window: list[tuple[int, LotDecision]]) -> tuple[list[_Job], Any]:
-        jobs = [_prepare(ws, catalog, item, previous.get(item.decision.lot_id), signer) for _, item in window]
+        jobs = [_prepare(ws, catalog, item, previous.get(item.decision.lot_id), signer,
+                         tuple(revisions.get(item.decision.lot_id, ()))) for _, item in window]
         return jobs, renderers.submit(jobs)
 
     try:
