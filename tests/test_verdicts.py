@@ -77,7 +77,7 @@ def test_the_words_stored_and_printed_are_unchanged():
     words = [Disposition.HELD, HoldCategory.OUT_OF_TREND, Verdict.REPORTED, TrendStatus.NOT_YET_ESTABLISHED]
     assert json.dumps(words) == '["held", "out of trend", "reported", "not yet established"]'
     assert f"held: {', '.join(HoldCategory)}" == ("held: out of specification, invalid assay, incomplete, "
-                                                  "out of trend, review required")
+                                                  "out of trend, review required, overdue")
     assert (json.dumps(NelsonRule.NINE_ON_ONE_SIDE), f"rule {NelsonRule(2)}") == ("2", "rule 2")
 
 

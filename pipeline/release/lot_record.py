@@ -2,7 +2,7 @@
 
 Every result a lot ever had stays in its record with its provenance and a status
 (``ResultStatus``). A night's new results join the record; the lot's verdicts are then taken
-from the WHOLE record, attribute by attribute (docs/assay-rules.md, "The lot record"):
+from the WHOLE record, attribute by attribute:
 
 - an invalid result (the assay failed system suitability) is superseded by the next valid
   result of the same test, automatically (common practice: an invalid run yields no result);
