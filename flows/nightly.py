@@ -19,9 +19,8 @@ from pipeline import __version__
 from pipeline.night.close import NightSummary
 from pipeline.night.close import close as close_night
 from pipeline.night.decide import decide as decide_lots
-from pipeline.night.decide import earlier_decisions
+from pipeline.night.decide import earlier_decisions, lot_records
 from pipeline.night.decide import load_charts as read_charts
-from pipeline.night.decide import lot_records
 from pipeline.night.evaluate import evaluate as evaluate_lots
 from pipeline.night.open import CertificateSigner, open_night
 from pipeline.night.publish import publish as publish_lots

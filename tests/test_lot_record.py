@@ -8,10 +8,23 @@ an invalid run (failed system suitability) yields no result and is repeated is c
 """
 
 from pipeline.controlled.specs import Attribute
-from pipeline.release.lot_record import Investigation, LotHistory, LotResult, apply_record, awaited, choose
+from pipeline.release.lot_record import (
+    Investigation,
+    LotHistory,
+    LotResult,
+    apply_record,
+    awaited,
+    choose,
+)
 from pipeline.release.pending import record_disposition
 from pipeline.release.records import AttributeVerdict
-from pipeline.vocabulary import Disposition, HoldCategory, InvestigationOutcome, ResultStatus, Verdict
+from pipeline.vocabulary import (
+    Disposition,
+    HoldCategory,
+    InvestigationOutcome,
+    ResultStatus,
+    Verdict,
+)
 
 SA = Attribute(code="specific_activity", title="Specific activity", source="specific_activity", unit="U/mg",
                digits=0, minimum=150, maximum=260)

@@ -17,7 +17,6 @@ from reportlab.pdfgen.canvas import Canvas
 from reportlab.platypus import CondPageBreak, KeepTogether, Spacer, Table, TableStyle
 
 from pipeline.documents import charts
-from pipeline.documents.record_section import record_section
 from pipeline.documents.certificate import (
     CONTENT_W,
     MARGIN_X,
@@ -28,6 +27,7 @@ from pipeline.documents.certificate import (
     key_value_table,
     method_label,
 )
+from pipeline.documents.record_section import record_section
 from pipeline.documents.text import (
     DASH,
     HOLD_FILL,

@@ -17,7 +17,13 @@ from sqlalchemy import insert, select
 from sqlalchemy.orm import Session
 
 from pipeline.records.stored import DecisionWrite, utc
-from pipeline.records.tables import ChartPoint, DecisionRow, DocumentStatusRow, InvestigationRow, LotResultRow
+from pipeline.records.tables import (
+    ChartPoint,
+    DecisionRow,
+    DocumentStatusRow,
+    InvestigationRow,
+    LotResultRow,
+)
 from pipeline.release.lot_record import Investigation, LotHistory, LotResult
 from pipeline.vocabulary import InvestigationOutcome, ResultStatus, Verdict
 

@@ -15,7 +15,13 @@ from dataclasses import replace
 
 from pipeline.controlled.specs import Specification
 from pipeline.release.lot_evaluation import LotEvaluation
-from pipeline.release.lot_record import LotHistory, LotRecordView, LotResult, apply_record, result_of
+from pipeline.release.lot_record import (
+    LotHistory,
+    LotRecordView,
+    LotResult,
+    apply_record,
+    result_of,
+)
 from pipeline.release.records import TrendFinding
 from pipeline.release.verdicts import disposition
 from pipeline.vocabulary import Disposition, HoldCategory
