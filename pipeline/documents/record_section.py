@@ -47,7 +47,7 @@ def record_section(dossier: dict[str, Any]) -> list[Any]:
                          clean(str(get(result, "verdict", "")).upper(), 12),
                          Paragraph(clean(standing, 40) + (f"<br/><font size=6.5>{clean(why, 200)}</font>" if why else ""),
                                    st["cell"])])
-    widths = [34 * mm, 18 * mm, 44 * mm, 22 * mm, 16 * mm]
+    widths = [30 * mm, 21 * mm, 40 * mm, 24 * mm, 21 * mm]
     out.append(grid_table(rows, [*widths, CONTENT_W - sum(widths)], col_styles={0: "cellb"}, extra=extra))
     awaited = _list(get(record, "awaited", []))
     if awaited:
@@ -64,7 +64,8 @@ def record_section(dossier: dict[str, Any]) -> list[Any]:
     out += [Paragraph("Revisions", st["h2"])]
     rev_rows: list[list[Any]] = [["Rev.", "Decided (UTC)", "By", "Disposition"]]
     for r in revisions:
-        rev_rows.append([clean(get(r, "revision"), 6), clean(get(r, "decided_at_utc"), 30), clean(get(r, "decided_by"), 60),
+        when = str(get(r, "decided_at_utc", "")).replace("T", " ").replace("+00:00", " UTC")
+        rev_rows.append([clean(get(r, "revision"), 6), clean(when, 30), clean(get(r, "decided_by"), 60),
                          clean(get(r, "label"), 80)])
     widths = [12 * mm, 40 * mm, 50 * mm]
     out.append(grid_table(rev_rows, [*widths, CONTENT_W - sum(widths)], col_styles={0: "cellb"}))

@@ -127,7 +127,7 @@ def _prepare(ws: Workspace, catalog: Catalog, item: LotDecision, previous: Store
     dossier = build_dossier(item, spec, activity_method if isinstance(activity_method, KineticMethod) else None,
                             protein_method if isinstance(protein_method, ProteinMethod) else None,
                             plant_name=ws.plant_name, time_zone=ws.time_zone, revision=revision,
-                            decided_at=decided_at, revisions=revisions)
+                            decided_at=decided_at, revisions=revisions, decided_by=NIGHTLY_JOB)
     signature = None
     if decision.disposition == Disposition.RELEASED:
         signature = signature_block(signer.signer_name, signer.fingerprint_sha256, decided_at.replace(microsecond=0),

@@ -29,11 +29,11 @@ def local_time_text(moment: dt.datetime, time_zone: str) -> str:
 def build_dossier(item: LotDecision, spec: Specification, activity_method: KineticMethod | None,
                   protein_method: ProteinMethod | None, *, plant_name: str, time_zone: str,
                   revision: int, decided_at: dt.datetime,
-                  revisions: tuple[dict[str, Any], ...] = ()) -> dict[str, Any]:
+                  revisions: tuple[dict[str, Any], ...] = (), decided_by: str = "lotgate (nightly job)") -> dict[str, Any]:
     """``revisions``: the lot's earlier revisions (revision, decided_at_utc, decided_by, label); this one is added."""
     evaluation, decision = item.evaluation, item.decision
     this = {"revision": revision, "decided_at_utc": decided_at.astimezone(dt.UTC).isoformat(timespec="seconds"),
-            "decided_by": "lotgate (nightly job)", "label": decision.label}
+            "decided_by": decided_by, "label": decision.label}
     return to_plain({
         "plant": {"name": plant_name, "time_zone": time_zone},
         "lot": {"lot_id": evaluation.lot_id, "product_code": spec.product_code, "product_name": spec.product_name,
