@@ -118,7 +118,7 @@ def _stages(ws: Workspace, store: Store, signer: CertificateSigner, step: dict,
     evaluations, _plates = timed("evaluate", assembly, catalog)
     charts = timed("load_charts", store, catalog, evaluations)
     decided = timed("decide", evaluations, catalog, charts, earlier_decisions(store, evaluations),
-                    lot_records(store, catalog, evaluations))
+                    lot_records(store, catalog, evaluations, ws.time_zone))
     outcomes = timed("publish", ws, store, catalog, decided, night_id, signer, _progress)
     return timed("close", ws, store, intake, outcomes, [*recovered.notes, *assembly.notes])
 

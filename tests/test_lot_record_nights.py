@@ -7,10 +7,11 @@ repeated, common practice):
 
 night 1  lipase L1–L4 on a plate whose reference standard recovers 82 % (window 90–110 %): held,
          invalid assay; protease P1 released; P2 specific activity 64 % of target: held, OOS;
-         P3 without its microbiology (turnaround 5 days): pending
+         P3 and P4 (made 5 days earlier) without their microbiology (turnaround 5 days): pending
 night 2  L1–L4 re-assayed: released (revision 2); P1 (released) re-assayed: released again, its
          chart points not doubled, its first certificate superseded; P2 retested in
-         specification without an investigation: still held OOS; P3's microbiology: released
+         specification without an investigation: still held OOS; P3's microbiology: released;
+         P4 has no data, but its microbiology is now overdue: decided again, held overdue
 then     an authorised person invalidates P2's OOS result (investigation INV-T-1) and rejects P1
 night 3  P2 retested: released; P1 (rejected) re-assayed: held, review required
 """
@@ -42,9 +43,10 @@ DAY = dt.date(2026, 11, 24)
 def _lots():
     rng = np.random.default_rng(7)
     lipase = demo._plan_lots(demo.LIPASE, 0, DAY, 4, rng)
-    protease = demo._plan_lots(demo.PROTEASE, 0, DAY, 3, rng)
+    protease = demo._plan_lots(demo.PROTEASE, 0, DAY, 4, rng)
     protease[1] = replace(protease[1], vmax_u_per_mg=demo.PROTEASE.vmax_u_per_mg * 0.64)
     protease[2] = replace(protease[2], missing_tests=demo.MICRO)
+    protease[3] = replace(protease[3], missing_tests=demo.MICRO, manufactured_on=DAY - dt.timedelta(days=5))
     return lipase, protease
 
 
@@ -85,7 +87,7 @@ def _scenario(root, person, database_url=None):
     (root / "inbox").mkdir(exist_ok=True)
     rng = np.random.default_rng(11)
     lipase, protease = _lots()
-    l_ids, (p1, p2, p3) = [lot.lot_id for lot in lipase], protease
+    l_ids, (p1, p2, p3, p4) = [lot.lot_id for lot in lipase], protease
     nights = []
 
     got, ws, store = _night(root, _files(DAY, lipase, protease, rng, lipase_recovery=0.82))
@@ -105,7 +107,7 @@ def _scenario(root, person, database_url=None):
 
     got, ws, store = _night(root, _files(DAY + dt.timedelta(2), [], [p1, retest], rng, lims=False))
     nights.append(got)
-    return nights, store, l_ids, (p1.lot_id, p2.lot_id, p3.lot_id), first_certificate
+    return nights, store, l_ids, (p1.lot_id, p2.lot_id, p3.lot_id, p4.lot_id), first_certificate
 
 
 @pytest.fixture(scope="module")
@@ -124,11 +126,11 @@ def database(request):
 
 
 def test_each_night_of_the_lot_record(database, person, tmp_path):
-    nights, store, lipase, (p1, p2, p3), first_certificate = _scenario(tmp_path / "w", person, database)
+    nights, store, lipase, (p1, p2, p3, p4), first_certificate = _scenario(tmp_path / "w", person, database)
     assert nights[0] == {**{lot: (1, "held: invalid assay") for lot in lipase}, p1: (1, "released"),
-                         p2: (1, "held: out of specification"), p3: (1, "pending")}
+                         p2: (1, "held: out of specification"), p3: (1, "pending"), p4: (1, "pending")}
     assert nights[1] == {**{lot: (2, "released") for lot in lipase}, p1: (2, "released"),
-                         p2: (2, "held: out of specification"), p3: (2, "released")}
+                         p2: (2, "held: out of specification"), p3: (2, "released"), p4: (2, "held: overdue")}
     assert nights[2] == {p1: (4, "held: review required"), p2: (3, "released")}
 
     # P3: pending listed what was awaited, then its microbiology completed the record.
@@ -136,6 +138,11 @@ def test_each_night_of_the_lot_record(database, person, tmp_path):
     assert [r for r in first.reasons if r.startswith("awaiting")] == [
         "awaiting Total coliforms (expected by 2026-11-27)", "awaiting Escherichia coli (expected by 2026-11-27)",
         "awaiting Salmonella (expected by 2026-11-27)"]
+    # P4 (made 2026-11-19, due 2026-11-24): pending on its due day, overdue the night after, without new data.
+    overdue = store.decisions(p4)[-1].record
+    assert overdue.reasons == tuple(f"{t}: no result; it was due by 2026-11-24, overdue since 2026-11-25"
+                                    for t in ("Total coliforms", "Escherichia coli", "Salmonella"))
+    assert overdue.input_files == {} and overdue.results[0].value is not None  # carried from the record
     history = load_histories(store, [p1, p2, p3, lipase[0]])
     # The invalid lipase results were superseded by the re-assay's valid results (new rows, not edits).
     activity = [r for r in history[lipase[0]].results if r.attribute == "activity"]

@@ -2,14 +2,16 @@
 
 from __future__ import annotations
 
+import datetime as dt
 from dataclasses import dataclass
 from typing import Any
+from zoneinfo import ZoneInfo
 
 from pipeline import __version__
 from pipeline.controlled.catalog import Catalog
 from pipeline.controlled.specs import KineticMethod
 from pipeline.records.chart_queries import active_limits, released_count, released_points
-from pipeline.records.lot_record_store import charted_lots, load_histories
+from pipeline.records.lot_record_store import charted_lots, load_histories, pending_lots
 from pipeline.records.store import Store
 from pipeline.release.decision import (
     CHART_TAIL,
@@ -22,6 +24,7 @@ from pipeline.release.decision import (
 )
 from pipeline.release.lot_evaluation import LotEvaluation
 from pipeline.release.lot_record import LotHistory
+from pipeline.release.pending import overdue_recheck
 from pipeline.vocabulary import Disposition, HoldCategory
 
 BASELINE_REACHED = "lotgate (baseline reached)"  # who froze a chart's first limits: the nightly job
@@ -92,24 +95,42 @@ def earlier_decisions(store: Store, evaluations: list[LotEvaluation]) -> dict[st
 
 @dataclass(frozen=True)
 class NightRecords:
-    """The night's lots' records before tonight, and which of them are on a control chart already."""
+    """The night's lots' records before tonight, which of them are on a control chart already, and
+    the pending lots without data tonight whose awaited results have turned overdue."""
 
     histories: dict[str, LotHistory]
     charted: frozenset[tuple[str, str, str]]
+    rechecks: tuple[LotEvaluation, ...] = ()
 
 
-def lot_records(store: Store, catalog: Catalog, evaluations: list[LotEvaluation]) -> NightRecords:
+def night_date(evaluations: list[LotEvaluation], time_zone: str) -> str:
+    """The night's date: its newest assay date, or today in the plant's time zone when no lot has data."""
+    if evaluations:
+        return max(e.assay_date for e in evaluations)
+    return dt.datetime.now(ZoneInfo(time_zone)).date().isoformat()
+
+
+def lot_records(store: Store, catalog: Catalog, evaluations: list[LotEvaluation],
+                time_zone: str = "UTC") -> NightRecords:
     """Each lot's record as it stood before tonight (what a stopped attempt of this night stored left out,
-    as ``load_charts`` does)."""
+    as ``load_charts`` does), and the pending lots to decide again because a result turned overdue."""
     fingerprints = [lot_fingerprint(e, catalog.specifications, catalog.methods, __version__) for e in evaluations]
     attempt = {stored.id for stored in store.known_fingerprints(fingerprints).values()}
     lots = [e.lot_id for e in evaluations]
-    return NightRecords(load_histories(store, lots, attempt), charted_lots(store, lots, attempt))
+    tonight = set(lots)
+    waiting = [(lot, product, made) for lot, product, made in pending_lots(store)
+               if lot not in tonight and product in catalog.specifications and made]
+    histories = load_histories(store, [*lots, *(lot for lot, _, _ in waiting)], attempt)
+    as_of = night_date(evaluations, time_zone)
+    rechecks = tuple(check for lot, product, made in waiting if (check := overdue_recheck(
+        catalog.specifications[product], lot, made, as_of, histories.get(lot, LotHistory()))) is not None)
+    return NightRecords(histories, charted_lots(store, lots, attempt), rechecks)
 
 
 def decide(evaluations: list[LotEvaluation], catalog: Catalog, charts: dict[ChartKey, ChartState],
            earlier: dict[str, str] | None = None, records: NightRecords | None = None) -> NightDecisions:
     """Trend and disposition of the night's lots, by product, date of manufacture and lot."""
-    ordered = sorted(evaluations, key=lambda e: (e.product_code, e.manufactured_on, e.lot_id))
+    everyone = [*evaluations, *(records.rechecks if records else ())]
+    ordered = sorted(everyone, key=lambda e: (e.product_code, e.manufactured_on, e.lot_id))
     return decide_night(ordered, catalog.specifications, catalog.methods, charts, __version__, earlier or {},
                         records.histories if records else None, records.charted if records else frozenset())

@@ -22,6 +22,7 @@ from pipeline.records.tables import (
     DecisionRow,
     DocumentStatusRow,
     InvestigationRow,
+    Lot,
     LotResultRow,
 )
 from pipeline.release.lot_record import Investigation, LotHistory, LotResult
@@ -109,6 +110,17 @@ def charted_lots(store: Any, lot_ids: list[str], exclude_decisions: set[int] | N
                 if point.decision_id not in exclude:
                     out.add((point.product_code, point.attribute, point.lot_id))
     return frozenset(out)
+
+
+def pending_lots(store: Any) -> list[tuple[str, str, str]]:
+    """(lot, product, manufactured on) of every lot whose latest decision is the nightly job's "pending"."""
+    with store.session() as s:
+        rows = s.execute(select(DecisionRow.lot_id, Lot.product_code, Lot.manufactured_on)
+                         .join(Lot, Lot.lot_id == DecisionRow.lot_id)
+                         .where(DecisionRow.superseded_by.is_(None), DecisionRow.disposition == "pending",
+                                DecisionRow.decided_by.startswith("lotgate"))
+                         .order_by(DecisionRow.lot_id)).all()
+    return [(lot, product, made or "") for lot, product, made in rows]
 
 
 @dataclass(frozen=True)

@@ -229,6 +229,9 @@ def decide_night(evaluations: list[LotEvaluation], specifications: dict[str, Spe
         for attribute in spec.attributes:
             if not attribute.trend:
                 continue
+            if evaluation.record_only:
+                findings.append(TrendFinding(attribute.code, TrendStatus.NOT_EVALUATED, signals=()))
+                continue
             if (spec.product_code, attribute.code, evaluation.lot_id) in charted:
                 findings.append(TrendFinding(attribute.code, TrendStatus.NOT_EVALUATED, signals=(
                     f"{attribute.title}: lot {evaluation.lot_id} is on the chart already (from its release); "

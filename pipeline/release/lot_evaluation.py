@@ -67,6 +67,7 @@ class LotEvaluation:
     input_files: dict[str, str]
     report: dict[str, Any] = field(default_factory=dict)
     provenance: dict[str, dict[str, Any]] = field(default_factory=dict)  # per attribute: where its result came from
+    record_only: bool = False  # no data tonight: decided again from its record alone (a result turned overdue)
 
     def verdict(self, code: str) -> AttributeVerdict:
         return next(v for v in self.verdicts if v.code == code)

@@ -23,7 +23,7 @@ from pipeline.release.lot_record import (
     result_of,
 )
 from pipeline.release.records import TrendFinding
-from pipeline.release.verdicts import disposition
+from pipeline.release.verdicts import disposition, judge_lims, judge_measurement
 from pipeline.vocabulary import Disposition, HoldCategory
 
 
@@ -69,3 +69,16 @@ def record_disposition(evaluation: LotEvaluation, trend: Iterable[TrendFinding],
     elif waiting and state == Disposition.RELEASED:
         state = Disposition.PENDING
     return state, categories, (*reasons, *extra)
+
+
+def overdue_recheck(spec: Specification, lot_id: str, manufactured_on: str, as_of: str,
+                    history: LotHistory) -> LotEvaluation | None:
+    """A pending lot with no data tonight, to be decided again from its record alone when one of its
+    awaited results has turned overdue by ``as_of``; None while it is still only pending."""
+    verdicts = tuple(judge_lims(a, None, None) if a.source == "lims" else judge_measurement(a, None, None)
+                     for a in spec.attributes)
+    evaluation = LotEvaluation(lot_id=lot_id, product_code=spec.product_code, manufactured_on=manufactured_on,
+                               assay_date=as_of, measurements={}, verdicts=verdicts, incomplete=(), kinetics=None,
+                               plates=(), input_files={}, record_only=True)
+    _, view = apply_record(spec, verdicts, {}, history, manufactured_on, as_of)
+    return evaluation if any(a.overdue for a in view.awaited) else None
