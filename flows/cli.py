@@ -133,9 +133,10 @@ def print_summary(summary, console=None) -> None:
     else:
         console.print("No lot to decide tonight.")
     released = sum(o.label == Disposition.RELEASED and o.new for o in summary.outcomes)
-    held = sum(o.label != Disposition.RELEASED and o.new for o in summary.outcomes)
+    pending = sum(o.label == Disposition.PENDING and o.new for o in summary.outcomes)
+    held = sum(o.label not in (Disposition.RELEASED, Disposition.PENDING) and o.new for o in summary.outcomes)
     console.print(f"Files received {summary.received} = archived {summary.archived} + quarantined {summary.quarantined}.  "
-                  f"Lots decided {released + held}: released {released}, held {held}; "
+                  f"Lots decided {released + pending + held}: released {released}, pending {pending}, held {held}; "
                   f"unchanged {sum(not o.new for o in summary.outcomes)}.")
     for name, reason in summary.quarantine_reasons:
         first = [line for line in reason.splitlines() if line.startswith("- ")][:2]
@@ -166,6 +167,10 @@ def cmd_demo(args: argparse.Namespace) -> int:
         console.rule(f"Night of {night_data.assay_date:%Y-%m-%d}: {len(night_data.files)} exports")
         summary = _run_night(root)
         print_summary(summary, console)
+        if night_data.investigations:
+            from flows.investigate_cmd import demo_investigations
+
+            demo_investigations(root, night_data.investigations, console)
     console.print(f"\nOutputs in {root}: certificates/, reports/, lims/, decisions.jsonl, archive/, quarantine/.")
     console.print("Check a certificate:  lotgate verify " + str(root / "certificates" / "<file>.pdf"))
     return 0
@@ -251,9 +256,10 @@ def build_parser() -> argparse.ArgumentParser:
     from flows import records_cmd
 
     records_cmd.add_commands(sub)
-    from flows import bench, trend_cmd
+    from flows import bench, investigate_cmd, trend_cmd
 
     trend_cmd.add_commands(sub)
+    investigate_cmd.add_commands(sub)
     bench.add_commands(sub)
     from flows import desk_cmd
 

@@ -19,7 +19,7 @@ from pipeline import __version__
 from pipeline.night.close import NightSummary
 from pipeline.night.close import close as close_night
 from pipeline.night.decide import decide as decide_lots
-from pipeline.night.decide import earlier_decisions
+from pipeline.night.decide import earlier_decisions, lot_records
 from pipeline.night.decide import load_charts as read_charts
 from pipeline.night.evaluate import evaluate as evaluate_lots
 from pipeline.night.open import CertificateSigner, open_night
@@ -119,7 +119,8 @@ def _stages(ws: Workspace, store: Store, signer: CertificateSigner, step: dict,
     assembly = timed("assemble", intake, catalog)
     evaluations, _plates = timed("evaluate", assembly, catalog)
     charts = timed("load_charts", store, catalog, evaluations)
-    decided = timed("decide", evaluations, catalog, charts, earlier_decisions(store, evaluations))
+    decided = timed("decide", evaluations, catalog, charts, earlier_decisions(store, evaluations),
+                    lot_records(store, catalog, evaluations, ws.time_zone))
     outcomes = timed("publish", ws, store, catalog, decided, night_id, signer, _progress)
     summary = timed("close", ws, store, intake, outcomes, [*recovered.notes, *assembly.notes])
     from flows.desk.static_page import write_night_page

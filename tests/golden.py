@@ -7,7 +7,8 @@ behaviour on purpose and says so).
 What varies from run to run is masked, and nothing else: clock times (UTC and local), the hashes
 of files that contain a time (reports, certificates, LIMS files), the audit chain's hashes (its
 events carry times), the fingerprint of the demo signer's certificate (a new key per
-workspace) and each night's workspace identity (a random id). Unrounded numbers in the store
+workspace), each night's workspace identity (a random id), and a person's signature over a
+record with its SHA-256 (the record carries its time; ECDSA signatures differ on every signing). Unrounded numbers in the store
 are compared to 10 significant digits: the fitting engine may take another path to the same
 minimum, which moves the 12th digit; every number a person reads (documents, LIMS files,
 reported values) is compared character for character.
@@ -26,7 +27,7 @@ GOLDEN = Path(__file__).parent / "golden" / "demo"
 
 _TIME = re.compile(r"\d{4}-\d{2}-\d{2}[T ]\d{2}:\d{2}(:\d{2}(\.\d+)?)?(\+00:00|Z)?")
 _HEX = re.compile(r"[0-9a-f]{12,64}")
-_MASKED_COLUMNS = {"prev_hash", "hash", "workspace_id"}
+_MASKED_COLUMNS = {"prev_hash", "hash", "workspace_id", "signature", "record_sha256"}
 _DIGITS = 10
 
 

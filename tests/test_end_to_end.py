@@ -1,4 +1,4 @@
-"""The demo's four nights through the Prefect flow: dispositions, signatures, log, re-runs."""
+"""The demo's five nights through the Prefect flow: dispositions, signatures, log, re-runs."""
 
 import json
 import shutil
@@ -39,6 +39,13 @@ def demo_workspace(tmp_path_factory, prefect_harness):
     for night in nights:
         _write_night(root, night)
         summaries.append(nightly.nightly(str(root)))
+        if night.investigations:  # as `lotgate demo` does: recorded with the demo identity
+            import io
+
+            from rich.console import Console
+
+            from flows.investigate_cmd import demo_investigations
+            demo_investigations(root, night.investigations, Console(file=io.StringIO()))
     return root, nights, summaries
 
 
@@ -48,9 +55,17 @@ def test_every_lot_gets_the_intended_disposition(demo_workspace):
     for night, summary in zip(nights, summaries):
         got = {o.lot_id: o.label for o in summary.outcomes}
         assert got == {lot.lot_id: lot.intended for lot in night.lots}
-    last = {o.lot_id: o for o in summaries[-1].outcomes}
-    assert "Nelson rule 1" in last["LLC-2611-027"].reasons[0]
-    assert any("recovered 82.3 %" in r for r in last["LLC-2611-029"].reasons)
+    trouble = {o.lot_id: o for o in summaries[-2].outcomes}
+    assert "Nelson rule 1" in trouble["LLC-2611-027"].reasons[0]
+    assert any("recovered 81.8 %" in r for r in trouble["LLC-2611-029"].reasons)
+    # The lot record across nights (the scenario's design): pending → released, invalid → released
+    # on the re-assay, OOS retested without an investigation stays held, with one it is released.
+    labels = {(n, o.lot_id): o.label for n, summary in enumerate(summaries) for o in summary.outcomes}
+    assert [labels[(2, "LLC-2611-023")], labels[(3, "LLC-2611-023")]] == ["pending", "released"]
+    assert [labels[(3, "LLC-2611-030")], labels[(4, "LLC-2611-030")]] == ["held: invalid assay", "released"]
+    assert [labels[(3, "PGR-2611-017")], labels[(4, "PGR-2611-017")]] == ["held: out of specification"] * 2
+    assert [labels[(3, "PGR-2611-018")], labels[(4, "PGR-2611-018")]] == ["held: out of specification", "released"]
+    assert [labels[(0, "PGR-2611-001")], labels[(4, "PGR-2611-001")]] == ["pending", "held: overdue"]
 
 
 def test_files_are_accounted_for_and_the_malformed_export_is_quarantined(demo_workspace):
@@ -58,7 +73,7 @@ def test_files_are_accounted_for_and_the_malformed_export_is_quarantined(demo_wo
     for night, summary in zip(nights, summaries):
         assert summary.received == len(night.files) == summary.archived + summary.quarantined
     reason = (root / "quarantine" / "lims-PGR-2611-019.csv.reason.txt").read_text()
-    assert "line 2, column 'result': '94,4'" in reason
+    assert "line 2, column 'result': '95,2'" in reason
     store = Store(open_workspace(root).database_url)
     statuses = {f.file_name: f.status for f in store.files()}
     assert statuses["lims-PGR-2611-019.csv"] == "quarantined"
@@ -69,7 +84,7 @@ def test_every_certificate_verifies_and_a_flipped_byte_fails(demo_workspace, tmp
     root, nights, summaries = demo_workspace
     certificates = sorted((root / "certificates").glob("*.pdf"))
     released = sum(o.label == "released" for s in summaries for o in s.outcomes)
-    assert len(certificates) == released == 52 - 8
+    assert len(certificates) == released == sum(lot.intended == "released" for n in nights for lot in n.lots) == 47
     trust = [root / "keys" / "root-ca.pem"]
     for path in certificates[:5] + certificates[-3:]:
         result = verify_pdf(path, trust_roots=trust)
@@ -96,7 +111,7 @@ def test_log_verifies_and_an_edited_record_is_named(demo_workspace, tmp_path):
     assert ledger.verify_file(root / "decisions.jsonl").valid
     lines = (root / "decisions.jsonl").read_text().splitlines()
     decisions = [json.loads(line) for line in lines if '"kind":"decision"' in line]
-    assert len(decisions) == 52
+    assert len(decisions) == 61
     for record in decisions:
         assert {"lot_id", "product", "disposition", "reasons", "spec_version", "input_files"} <= set(record)
         assert all(len(sha) == 64 for sha in record["input_files"].values())
@@ -125,7 +140,7 @@ def test_running_the_demo_again_adds_no_decision(demo_workspace):
 
 
 def test_revision_chain_original_reassay_and_a_persons_release(demo_workspace, tmp_path):
-    """A plate failed its reference standard; the lot is re-assayed, then released by a person."""
+    """A lot held out of trend is re-assayed (held for a person's review), then released by a person."""
     import datetime as dt
 
     from flows import records_cmd
@@ -134,14 +149,14 @@ def test_revision_chain_original_reassay_and_a_persons_release(demo_workspace, t
     from pipeline.records.demo_identity import create_demo_identity
 
     root, nights, _ = demo_workspace
-    lot = "LLC-2611-030"
-    reassay = demo.build_reassay(nights[-1], (lot,), dt.date(2026, 11, 28))
+    lot = "LLC-2611-027"
+    reassay = demo.build_reassay(nights[-2], (lot,), dt.date(2026, 11, 29))
     _write_night(root, reassay)
     summary = nightly.nightly(str(root))
     outcome = next(o for o in summary.outcomes if o.lot_id == lot)
-    assert outcome.revision == 2 and outcome.label == "held: review required"
-    # The re-assay's numbers are valid: the only reason left is the earlier hold awaiting a person.
-    assert len(outcome.reasons) == 1 and outcome.reasons[0].startswith("the lot's earlier decision")
+    # An out-of-trend hold is not settled by new results: the earlier hold awaits a person.
+    assert outcome.revision == 2 and outcome.label.endswith("review required")
+    assert outcome.reasons[-1].startswith("the lot's earlier decision")
 
     person = create_demo_identity(tmp_path / "person", demo.PLANT_NAME, "Jonas Brandt")
     identity = signing.load_identity(person.p12_path, passphrase_file=person.passphrase_path)
@@ -152,8 +167,7 @@ def test_revision_chain_original_reassay_and_a_persons_release(demo_workspace, t
     assert result.revision == 3 and result.certificate
     rows = store.decisions(lot)
     assert [r.revision for r in rows] == [1, 2, 3]
-    assert [r.record.label for r in rows] == ["held: invalid assay", "held: review required",
-                                                 "released by Jonas Brandt (DEMO)"]
+    assert [r.record.label for r in rows] == ["held: out of trend", outcome.label, "released by Jonas Brandt (DEMO)"]
     assert rows[0].superseded_by == rows[1].id and rows[1].superseded_by == rows[2].id
     assert "new input files" in rows[1].change_note
     # The person's signature is linked to the record it signs (21 CFR 11.70).
@@ -178,7 +192,7 @@ def test_revision_chain_original_reassay_and_a_persons_release(demo_workspace, t
     with contextlib.redirect_stdout(buffer):
         records_cmd.cmd_history(argparse.Namespace(lot=lot, workspace=str(root)))
     shown = buffer.getvalue()
-    assert "held: invalid assay" in shown and "review required" in shown and "Jonas Brandt" in shown
+    assert "held: out of trend" in shown and "review required" in shown and "Jonas Brandt" in shown
     assert ledger.verify_file(root / "decisions.jsonl").valid
 
 

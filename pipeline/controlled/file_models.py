@@ -50,6 +50,8 @@ class AttributeFile(TrendSettings):
     trend: bool = False
     scientific: bool = False
     required: bool = True
+    turnaround_days: int | None = Field(
+        None, ge=0, le=366, description="whole days from manufacture within which the result is expected")
 
 
 class DocumentHeader(Strict):

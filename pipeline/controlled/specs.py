@@ -65,6 +65,7 @@ class Attribute:
     required: bool = True
     # --- verdicts: the specification's rounding of results to their digits (half-up or half-even, ASTM E29)
     rounding: Rounding = Rounding.HALF_UP
+    turnaround_days: int | None = None  # expected within these days of manufacture; None: with the lot's data
 
     @property
     def has_limit(self) -> bool:
@@ -256,7 +257,7 @@ def _attribute(raw: AttributeFile, defaults: TrendSettings, where: str,
         code=raw.code, title=raw.title or raw.code, source=raw.source, unit=raw.unit, digits=raw.digits,
         minimum=raw.min, maximum=raw.max, expect=raw.expect, test_code=raw.test_code, trend=raw.trend,
         trend_rules=rules, baseline_n=20 if baseline_n is None else baseline_n, scientific=raw.scientific,
-        required=raw.required, rounding=rounding,
+        required=raw.required, rounding=rounding, turnaround_days=raw.turnaround_days,
     )
 
 

@@ -6,10 +6,18 @@ Michaelis–Menten equation (Lambert W form) with read noise and spontaneous sub
 a reference standard and substrate blanks on each plate, a BSA standard curve on the protein
 plate, seven substrate levels per lot for the kinetic constants, and LIMS results.
 
-On purpose the last night holds: one lot out of specification (low specific activity), one
-plate whose reference standard fails (its lots: invalid assay), one lot missing a required test
-(incomplete), one malformed LIMS export (quarantined, so its lot is incomplete), one lot out of
-trend, and the rest released. Earlier nights give the trend stage its baseline.
+On purpose the fourth night holds: two lots out of specification (low specific activity), one
+plate whose reference standard fails (its lots: invalid assay), one lot still awaiting its lead
+result (pending), one malformed LIMS export (quarantined, so its lot is incomplete), one lot out
+of trend, and the rest released. Earlier nights give the trend stage its baseline. Across the
+nights the lot record shows itself: two lots of the third night await their microbiology
+(pending) until it arrives on the fourth night (released); a protease lot of the first night
+never gets its microbiology (pending, then held overdue on the fifth night, when its lead result
+arrives from the contract lab); after the fourth night an authorised person records an
+investigation of one OOS lot ("assignable laboratory cause: result invalidated",
+``Night.investigations``); on the fifth night the invalid plate's lots are re-assayed (released),
+and both OOS lots are retested within specification: the investigated one is released, the
+other stays held (no testing into compliance).
 
 ``build_scenario`` is pure: it returns file names and bytes; the command line writes them.
 """
@@ -99,10 +107,23 @@ class LotPlan:
 
 
 @dataclass(frozen=True)
+class DemoInvestigation:
+    """An investigation outcome the demo records, with the demo identity, after its night."""
+
+    lot_id: str
+    test: str
+    outcome: str  # "invalidated" or "confirmed"
+    reference: str
+    reason: str
+    retest_plan: str
+
+
+@dataclass(frozen=True)
 class Night:
     assay_date: dt.date
     files: dict[str, bytes]
     lots: tuple[LotPlan, ...]
+    investigations: tuple[DemoInvestigation, ...] = ()
 
 
 def _csv(header: list[str], rows: list[list[object]]) -> bytes:
@@ -223,10 +244,11 @@ def _protein_plate(plate_id: str, lots: list[LotPlan], rng: np.random.Generator)
     }
 
 
-def _lims_file(lot: LotPlan, assay_date: dt.date, rng: np.random.Generator) -> tuple[str, bytes]:
+def _lims_file(lot: LotPlan, assay_date: dt.date, rng: np.random.Generator,
+               only: tuple[str, ...] | None = None) -> tuple[str, bytes]:
     rows: list[list[object]] = []
     for test in lot.product.lims_tests:
-        if test in lot.missing_tests:
+        if test in lot.missing_tests if only is None else test not in only:
             continue
         if test == "PH":
             value, unit = f"{rng.normal(7.0, 0.08):.2f}", ""
@@ -266,26 +288,50 @@ def _registry(lots: list[LotPlan], assay_date: dt.date) -> bytes:
                                    assay_date.isoformat(), "J. Ferro"] for lot in lots])
 
 
+MICRO = ("COLI", "ECOLI", "SALM")
+
+
 def build_scenario(seed: int = DEMO_SEED, first_night: dt.date = dt.date(2026, 11, 24),
-                   nights: int = 4, lipase_per_night: int = 8, protease_per_night: int = 5) -> list[Night]:
-    """Every night's exports; the last night carries the deliberate problems."""
+                   nights: int = 5, lipase_per_night: int = 8, protease_per_night: int = 5) -> list[Night]:
+    """Every night's exports. With five nights or more (the full demo) the next-to-last night carries
+    the deliberate problems and the last one their follow-ups; with fewer, the last night carries them."""
     rng = np.random.default_rng(seed)
-    result = []
-    for n in range(nights):
+    full = nights >= 5 and lipase_per_night >= 8 and protease_per_night >= 4
+    trouble = nights - 2 if full else nights - 1
+    result: list[Night] = []
+    for n in range(nights - 1 if full else nights):
         date = first_night + dt.timedelta(days=n)
         lipase = _plan_lots(LIPASE, n, date, lipase_per_night, rng)
         protease = _plan_lots(PROTEASE, n, date, protease_per_night, rng)
         recoveries = {1: 1.0, 2: 1.0}
-        if n == nights - 1 and lipase_per_night >= 8 and protease_per_night >= 4:
-            lipase[1] = replace(lipase[1], missing_tests=("PB",), intended="held: incomplete")
+        followups: list[tuple[LotPlan, tuple[str, ...]]] = []
+        investigations: tuple[DemoInvestigation, ...] = ()
+        if full and n == 0:
+            protease[0] = replace(protease[0], missing_tests=("PB", *MICRO), intended="pending")
+        if full and n == 2:
+            for i in (6, 7):  # after the lots that complete the charts' baseline
+                lipase[i] = replace(lipase[i], missing_tests=MICRO, intended="pending")
+        if n == trouble and lipase_per_night >= 8 and protease_per_night >= 4:
+            lipase[1] = replace(lipase[1], missing_tests=("PB",), intended="pending" if full else "held: incomplete")
             lipase[2] = replace(lipase[2], vmax_u_per_mg=LIPASE.vmax_u_per_mg * 0.865, intended="held: out of trend")
             for i in range(4, 8):
                 lipase[i] = replace(lipase[i], intended="held: invalid assay")
             recoveries[2] = 0.82
             protease[1] = replace(protease[1], vmax_u_per_mg=PROTEASE.vmax_u_per_mg * 0.66,
-                                intended="held: out of specification")
+                                  intended="held: out of specification")
             protease[3] = replace(protease[3], malformed_lims=True, intended="held: incomplete")
-        files = {f"lots-{date:%Y%m%d}.csv": _registry([*lipase, *protease], date)}
+            if full:
+                protease[2] = replace(protease[2], vmax_u_per_mg=PROTEASE.vmax_u_per_mg * 0.64,
+                                      intended="held: out of specification")
+                followups = [(replace(lot, intended="released"), MICRO) for lot in result[2].lots
+                             if lot.intended == "pending"]
+                investigations = (DemoInvestigation(
+                    protease[2].lot_id, "specific_activity", "invalidated", "INV-2026-031",
+                    "substrate stock prepared at half strength on plate AK-" + f"{date:%y%m%d}" + "-P1 (preparation "
+                    "record); the other lots of the plate were within trend", "re-assay activity and protein on "
+                    "fresh plates with newly prepared substrate"),)
+        registry_lots = [*lipase, *protease, *(lot for lot, _ in followups)]
+        files = {f"lots-{date:%Y%m%d}.csv": _registry(registry_lots, date)}
         for product, lots, tag in ((LIPASE, lipase, "L"), (PROTEASE, protease, "P")):
             for plate_no, start in enumerate(range(0, len(lots), 4), start=1):
                 plate_id = f"AK-{date:%y%m%d}-{tag}{plate_no}"
@@ -297,8 +343,40 @@ def build_scenario(seed: int = DEMO_SEED, first_night: dt.date = dt.date(2026, 1
         for lot in (*lipase, *protease):
             name, data = _lims_file(lot, date, rng)
             files[name] = data
-        result.append(Night(assay_date=date, files=files, lots=(*lipase, *protease)))
+        for lot, tests in followups:
+            name, data = _lims_file(lot, date, rng, only=tests)
+            files[name.replace(".csv", f"-{date:%Y%m%d}.csv")] = data
+        result.append(Night(assay_date=date, files=files, lots=(*lipase, *protease, *(lot for lot, _ in followups)),
+                            investigations=investigations))
+    if full:
+        result.append(_follow_up_night(result, first_night + dt.timedelta(days=nights - 1), seed))
     return result
+
+
+def _follow_up_night(earlier: list[Night], date: dt.date, seed: int) -> Night:
+    """The last night of the full demo: the invalid plate's lots re-assayed, the OOS lots retested, and
+    the first night's pending protease lot getting its lead result only (its microbiology is overdue)."""
+    # A stream of its own, chosen so that the re-assayed lots' read noise keeps them in trend: with
+    # some other streams their Km continues a run below the chart's centre (a genuine Nelson rule 2
+    # signal of the simulation), which would hide what this night is meant to show.
+    rng = np.random.default_rng(seed + 8)
+    trouble = earlier[-1].lots
+    reassayed = [replace(lot, intended="released") for lot in trouble if lot.intended == "held: invalid assay"]
+    oos = [lot for lot in trouble if lot.intended == "held: out of specification"]
+    investigated = {i.lot_id for i in earlier[-1].investigations}
+    retested = [replace(lot, vmax_u_per_mg=PROTEASE.vmax_u_per_mg,
+                        intended="released" if lot.lot_id in investigated else "held: out of specification")
+                for lot in oos]
+    overdue = replace(earlier[0].lots[next(i for i, lot in enumerate(earlier[0].lots) if lot.intended == "pending")],
+                      intended="held: overdue")
+    files = {f"lots-{date:%Y%m%d}.csv": _registry([*reassayed, *retested, overdue], date)}
+    for product, mine, tag in ((LIPASE, reassayed, "L"), (PROTEASE, retested, "P")):
+        for plate_no, start in enumerate(range(0, len(mine), 4), start=1):
+            files.update(_activity_plate(f"AK-{date:%y%m%d}-R{tag}{plate_no}", product, mine[start:start + 4], rng, 1.0))
+    files.update(_protein_plate(f"PR-{date:%y%m%d}-R1", [*reassayed, *retested], rng))
+    name, data = _lims_file(overdue, date, rng, only=("PB",))
+    files[name.replace(".csv", f"-{date:%Y%m%d}.csv")] = data
+    return Night(assay_date=date, files=files, lots=(*reassayed, *retested, overdue))
 
 
 def build_reassay(night: Night, lot_ids: tuple[str, ...], assay_date: dt.date, seed: int = DEMO_SEED + 1) -> Night:

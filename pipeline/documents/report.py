@@ -28,6 +28,7 @@ from pipeline.documents.certificate import (
     method_label,
 )
 from pipeline.documents.kinetic_checks import kinetic_checks
+from pipeline.documents.record_section import record_section
 from pipeline.documents.text import (
     DASH,
     HOLD_FILL,
@@ -428,6 +429,7 @@ def render_batch_report(dossier: dict[str, Any]) -> bytes:
     story += _kinetics(dossier)
     story += _charts(dossier)
     story += _trend(dossier)
+    story += record_section(dossier)
     story += _traceability(dossier)
     buffer = io.BytesIO()
     doc = doc_template(buffer, dossier, "Batch report", FOOTER_H)

@@ -249,7 +249,9 @@ def assemble(parsed_exports: list[ParsedExport], quarantined: list[QuarantinedFi
                 conflicting.add((lot, test))
                 del lims[lot][test]
                 continue
-            lims[lot].setdefault(test, LimsEntry(row["result"], row.get("unit"), export.file_name))
+            lims[lot].setdefault(test, LimsEntry(row["result"], row.get("unit"), export.file_name,
+                                                 row.get("analyst") if isinstance(row.get("analyst"), str) else None,
+                                                 row["tested_on"]))
 
     plate_lots: dict[str, set[str]] = defaultdict(set)
     for plate_id, (frame, _files) in maps.items():

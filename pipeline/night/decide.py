@@ -2,7 +2,10 @@
 
 from __future__ import annotations
 
+import datetime as dt
+from dataclasses import dataclass
 from typing import Any
+from zoneinfo import ZoneInfo
 
 from pipeline import __version__
 from pipeline.controlled.catalog import Catalog
@@ -13,6 +16,7 @@ from pipeline.records.chart_queries import (
     released_count,
     released_points,
 )
+from pipeline.records.lot_record_store import charted_lots, load_histories, pending_lots
 from pipeline.records.store import Store
 from pipeline.release.chart_view import held_marks
 from pipeline.release.decision import (
@@ -25,7 +29,9 @@ from pipeline.release.decision import (
     lot_fingerprint,
 )
 from pipeline.release.lot_evaluation import LotEvaluation
-from pipeline.vocabulary import Disposition, NelsonRule
+from pipeline.release.lot_record import LotHistory
+from pipeline.release.pending import overdue_recheck
+from pipeline.vocabulary import Disposition, HoldCategory, NelsonRule
 
 BASELINE_REACHED = "lotgate (baseline reached)"  # who froze a chart's first limits: the nightly job
 
@@ -82,16 +88,70 @@ def load_charts(store: Store, catalog: Catalog, evaluations: list[LotEvaluation]
     return charts
 
 
+# Holds the lot record governs on its own: new results settle them (an invalid assay is superseded by
+# the next valid result, an awaited result arrives, an OOS result stands until an investigation).
+RECORD_GOVERNED = frozenset({HoldCategory.INVALID_ASSAY, HoldCategory.INCOMPLETE, HoldCategory.OVERDUE,
+                             HoldCategory.OUT_OF_SPECIFICATION})
+
+
 def earlier_decisions(store: Store, evaluations: list[LotEvaluation]) -> dict[str, str]:
-    """For each lot decided before, a note on its latest decision (one query for the night)."""
+    """For each lot whose latest decision a person must review first, a note on it (one query for the night).
+
+    A person's decision, and a nightly hold for a reason the lot record does not settle (out of
+    trend, review required), stand until an authorised person decides. A nightly hold for an
+    invalid assay, missing, overdue or out-of-specification results, and a pending lot, are
+    decided again from the lot's whole record.
+    """
     latest = store.previous_decisions([e.lot_id for e in evaluations])
-    return {lot: f"revision {stored.revision}: {stored.record.label} (decided by {stored.decided_by})"
-            for lot, stored in latest.items()
-            if stored.disposition != Disposition.RELEASED or not stored.decided_by.startswith("lotgate")}
+    out = {}
+    for lot, stored in latest.items():
+        nightly = stored.decided_by.startswith("lotgate")
+        settled = stored.disposition in (Disposition.RELEASED, Disposition.PENDING) or (
+            stored.disposition == Disposition.HELD and set(stored.record.hold_categories) <= RECORD_GOVERNED)
+        if not (nightly and settled):
+            out[lot] = f"revision {stored.revision}: {stored.record.label} (decided by {stored.decided_by})"
+    return out
+
+
+@dataclass(frozen=True)
+class NightRecords:
+    """The night's lots' records before tonight, which of them are on a control chart already, and
+    the pending lots without data tonight whose awaited results have turned overdue."""
+
+    histories: dict[str, LotHistory]
+    charted: frozenset[tuple[str, str, str]]
+    rechecks: tuple[LotEvaluation, ...] = ()
+
+
+def night_date(evaluations: list[LotEvaluation], time_zone: str) -> str:
+    """The night's date: its newest assay date, or today in the plant's time zone when no lot has data."""
+    if evaluations:
+        return max(e.assay_date for e in evaluations)
+    return dt.datetime.now(ZoneInfo(time_zone)).date().isoformat()
+
+
+def lot_records(store: Store, catalog: Catalog, evaluations: list[LotEvaluation],
+                time_zone: str = "UTC") -> NightRecords:
+    """Each lot's record as it stood before tonight (what a stopped attempt of this night stored left out,
+    as ``load_charts`` does), and the pending lots to decide again because a result turned overdue."""
+    fingerprints = [lot_fingerprint(e, catalog, __version__) for e in evaluations]
+    attempt = {stored.id for stored in store.known_fingerprints(fingerprints).values()}
+    lots = [e.lot_id for e in evaluations]
+    tonight = set(lots)
+    waiting = [(lot, product, made) for lot, product, made in pending_lots(store)
+               if lot not in tonight and product in catalog.specifications and made]
+    histories = load_histories(store, [*lots, *(lot for lot, _, _ in waiting)], attempt)
+    as_of = night_date(evaluations, time_zone)
+    rechecks = tuple(check for lot, product, made in waiting if (check := overdue_recheck(
+        catalog.specification_for_lot(product, made, as_of), lot, made, as_of,
+        histories.get(lot, LotHistory()))) is not None)
+    return NightRecords(histories, charted_lots(store, lots, attempt), rechecks)
 
 
 def decide(evaluations: list[LotEvaluation], catalog: Catalog, charts: dict[ChartKey, ChartState],
-           earlier: dict[str, str] | None = None) -> NightDecisions:
+           earlier: dict[str, str] | None = None, records: NightRecords | None = None) -> NightDecisions:
     """Trend and disposition of the night's lots, by product, date of manufacture and lot."""
-    ordered = sorted(evaluations, key=lambda e: (e.product_code, e.manufactured_on, e.lot_id))
-    return decide_night(ordered, catalog, charts, __version__, earlier or {})
+    everyone = [*evaluations, *(records.rechecks if records else ())]
+    ordered = sorted(everyone, key=lambda e: (e.product_code, e.manufactured_on, e.lot_id))
+    return decide_night(ordered, catalog, charts, __version__, earlier or {},
+                        records.histories if records else None, records.charted if records else frozenset())

@@ -123,7 +123,7 @@ class _Renderers:
 
 
 def _prepare(ws: Workspace, catalog: Catalog, item: LotDecision, previous: StoredDecision | None,
-             signer: CertificateSigner) -> _Job:
+             signer: CertificateSigner, revisions: tuple[dict[str, Any], ...] = ()) -> _Job:
     decision = item.decision
     revision = previous.revision + 1 if previous else 1
     spec, methods = lot_documents(item.evaluation, catalog)  # the versions the decision used
@@ -133,7 +133,7 @@ def _prepare(ws: Workspace, catalog: Catalog, item: LotDecision, previous: Store
     dossier = build_dossier(item, spec, activity_method if isinstance(activity_method, KineticMethod) else None,
                             protein_method if isinstance(protein_method, ProteinMethod) else None,
                             plant_name=ws.plant_name, time_zone=ws.time_zone, revision=revision,
-                            decided_at=decided_at)
+                            decided_at=decided_at, revisions=revisions, decided_by=NIGHTLY_JOB)
     signature = None
     if decision.disposition == Disposition.RELEASED:
         signature = signature_block(signer.signer_name, signer.fingerprint_sha256, decided_at.replace(microsecond=0),
@@ -158,11 +158,21 @@ def _write(ws: Workspace, job: _Job, night_id: int, report_bytes: bytes, certifi
     if written.certificate is not None:
         events.append(audit.event("certificate-signed", time_zone=ws.time_zone, lot_id=decision.lot_id,
                                   **vars(written.certificate)))
+    record_view = item.record
+    if record_view is not None and (record_view.new_results or record_view.status_changes):
+        events.append(audit.event(
+            "lot-record", time_zone=ws.time_zone, lot_id=decision.lot_id, night_id=night_id,
+            new_results=[{"attribute": r.attribute, "status": r.status, "verdict": r.verdict, "value": r.value,
+                          "source": r.source, "files": r.files} for r in record_view.new_results],
+            status_changes=[{"result_id": c.result_id, "attribute": c.attribute, "status": c.status,
+                             "reason": c.reason} for c in record_view.status_changes]))
     write = DecisionWrite(
         record, NIGHTLY_JOB, night_id=night_id, manufactured_on=item.evaluation.manufactured_on,
         standard_errors={v.code: v.se for v in item.evaluation.verdicts}, chart_values=dict(item.chart_values),
         change_note=None if job.previous is None else change_note(job.previous, record),
-        events=tuple(events), extra_points=tuple(item.extra_points))
+        events=tuple(events), extra_points=tuple(item.extra_points),
+        lot_results=() if record_view is None else record_view.new_results,
+        status_changes=() if record_view is None else record_view.status_changes)
     outcome = Outcome(decision.lot_id, decision.product, decision.label, decision.reasons, job.revision, True,
                       None if written.certificate is None else f"certificates/{written.certificate.file}",
                       f"reports/{written.report.file}")
@@ -178,6 +188,11 @@ def publish(ws: Workspace, store: Store, catalog: Catalog, decided: NightDecisio
     decisions = decided.lots
     known = store.known_fingerprints([d.decision.fingerprint for d in decisions])
     previous = store.previous_decisions([d.decision.lot_id for d in decisions])
+    revisions: dict[str, list[dict[str, Any]]] = {}
+    for stored in store.decisions_of_lots(sorted(previous)):
+        revisions.setdefault(stored.lot_id, []).append({
+            "revision": stored.revision, "decided_by": stored.decided_by, "label": stored.record.label,
+            "decided_at_utc": stored.decided_at_utc.isoformat(timespec="seconds")})
     limits = _limits_to_store(ws, store, decided.newly_frozen)
     outcomes: dict[int, Outcome] = {}
     pending: list[tuple[int, LotDecision]] = []
@@ -197,7 +212,8 @@ def publish(ws: Workspace, store: Store, catalog: Catalog, decided: NightDecisio
         store.add_decisions([], limits)
 
     def start(window: list[tuple[int, LotDecision]]) -> tuple[list[_Job], Any]:
-        jobs = [_prepare(ws, catalog, item, previous.get(item.decision.lot_id), signer) for _, item in window]
+        jobs = [_prepare(ws, catalog, item, previous.get(item.decision.lot_id), signer,
+                         tuple(revisions.get(item.decision.lot_id, ()))) for _, item in window]
         return jobs, renderers.submit(jobs)
 
     try:

@@ -51,6 +51,10 @@ def migrate(engine: Engine, revision: str = "head") -> None:
         lock.acquire(timeout=60)
     try:
         with engine.begin() as connection:
+            # The driver opens no transaction for DDL on its own, so a process killed in the middle of
+            # a migration would leave tables without their version; an explicit BEGIN makes the whole
+            # upgrade one transaction (SQLite's DDL is transactional).
+            connection.exec_driver_sql("BEGIN")
             config.attributes["connection"] = connection
             command.upgrade(config, revision)
     finally:

@@ -17,6 +17,7 @@ from sqlalchemy.orm import Session, sessionmaker
 
 from pipeline.errors import StoreError
 from pipeline.records.database import migrate, open_engine, safe_url
+from pipeline.records.lot_record_store import write_decision_rows
 from pipeline.records.stored import (
     DecisionWrite,
     LimitsWrite,
@@ -282,6 +283,8 @@ class Store:
             for model, values in ((ResultRow, results), (ChartPoint, points)):
                 if values:
                     s.execute(insert(model), values)  # one multi-row statement per table, not one per row
+            for w, (row, previous) in zip(writes, rows, strict=True):
+                write_decision_rows(s, w, row, previous)  # the lot record (lot_record_store)
             self.chain_events(s, events)
             return [decision_of(row) for row, _ in rows]
 

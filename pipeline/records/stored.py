@@ -8,6 +8,7 @@ from typing import Any
 
 from pipeline.records.tables import ControlLimitRow, DecisionRow, InputFile, NightRun
 from pipeline.release.chart_view import StoredLimits
+from pipeline.release.lot_record import LotResult, StatusChange
 from pipeline.release.records import DecisionRecord
 
 
@@ -71,6 +72,8 @@ class DecisionWrite:
     change_note: str | None = None
     events: tuple[dict[str, Any], ...] = ()
     extra_points: tuple[tuple[str, str, str, float], ...] = ()  # (chart, attribute, point id, value)
+    lot_results: tuple[LotResult, ...] = ()  # the lot record: tonight's new results
+    status_changes: tuple[StatusChange, ...] = ()  # and the new standing of earlier ones
 
 
 @dataclass(frozen=True)

@@ -162,3 +162,67 @@ class DeskAccountEvent(Base):
     kind: Mapped[str] = mapped_column(String(30))
     at_utc: Mapped[dt.datetime] = mapped_column(DateTime(timezone=True))
     detail: Mapped[str | None] = mapped_column(Text, nullable=True)
+# --- the lot record (migration 0005): results across nights, investigations, documents' status ---------------
+# Append-only: a result's new standing (superseded, invalidated) is a new row naming the row it
+# changes (``replaces``); an investigation outcome and a document's new status are rows of their own.
+
+
+class LotResultRow(Base):
+    """One result of a lot (``replaces`` empty), or a new standing of an earlier one (``replaces`` its id)."""
+
+    __tablename__ = "lot_results"
+    id: Mapped[int] = mapped_column(Integer, primary_key=True)
+    lot_id: Mapped[str] = mapped_column(String(40), index=True)
+    attribute: Mapped[str] = mapped_column(String(40))
+    status: Mapped[str] = mapped_column(String(20))
+    replaces: Mapped[int | None] = mapped_column(ForeignKey("lot_results.id"), nullable=True)
+    night_id: Mapped[int | None] = mapped_column(ForeignKey("night_runs.id"), nullable=True)
+    decision_id: Mapped[int | None] = mapped_column(ForeignKey("decisions.id"), nullable=True, index=True)
+    verdict: Mapped[str | None] = mapped_column(String(20), nullable=True)
+    value: Mapped[float | None] = mapped_column(Float, nullable=True)
+    value_text: Mapped[str | None] = mapped_column(String(80), nullable=True)
+    reported: Mapped[str | None] = mapped_column(String(40), nullable=True)
+    unit: Mapped[str | None] = mapped_column(String(20), nullable=True)
+    se: Mapped[float | None] = mapped_column(Float, nullable=True)
+    tested_on: Mapped[str | None] = mapped_column(String(10), nullable=True)
+    source: Mapped[str | None] = mapped_column(String(120), nullable=True)
+    method: Mapped[str | None] = mapped_column(String(80), nullable=True)
+    plate_id: Mapped[str | None] = mapped_column(String(40), nullable=True)
+    analyst: Mapped[str | None] = mapped_column(String(120), nullable=True)
+    files: Mapped[dict[str, str] | None] = mapped_column(JSON, nullable=True)
+    reasons: Mapped[list[str] | None] = mapped_column(JSON, nullable=True)
+    reference: Mapped[str | None] = mapped_column(String(40), nullable=True)
+    recorded_by: Mapped[str] = mapped_column(String(120))
+    recorded_at_utc: Mapped[dt.datetime] = mapped_column(DateTime(timezone=True))
+
+
+class InvestigationRow(Base):
+    """A signed outcome of an out-of-specification investigation on one recorded result."""
+
+    __tablename__ = "investigations"
+    id: Mapped[int] = mapped_column(Integer, primary_key=True)
+    lot_id: Mapped[str] = mapped_column(String(40), index=True)
+    attribute: Mapped[str] = mapped_column(String(40))
+    result_id: Mapped[int] = mapped_column(ForeignKey("lot_results.id"))
+    outcome: Mapped[str] = mapped_column(String(60))
+    reference: Mapped[str] = mapped_column(String(40))
+    reason: Mapped[str] = mapped_column(Text)
+    retest_plan: Mapped[str] = mapped_column(Text)
+    decided_by: Mapped[str] = mapped_column(String(120))
+    signature: Mapped[dict[str, Any]] = mapped_column(JSON)
+    recorded_at_utc: Mapped[dt.datetime] = mapped_column(DateTime(timezone=True))
+
+
+class DocumentStatusRow(Base):
+    """A new standing of a lot's document (today: a certificate superseded by a later revision)."""
+
+    __tablename__ = "document_status"
+    id: Mapped[int] = mapped_column(Integer, primary_key=True)
+    file: Mapped[str] = mapped_column(String(255), index=True)
+    sha256: Mapped[str] = mapped_column(String(64))
+    lot_id: Mapped[str] = mapped_column(String(40))
+    revision: Mapped[int] = mapped_column(Integer)
+    status: Mapped[str] = mapped_column(String(20))
+    superseded_by_revision: Mapped[int | None] = mapped_column(Integer, nullable=True)
+    reason: Mapped[str] = mapped_column(Text)
+    recorded_at_utc: Mapped[dt.datetime] = mapped_column(DateTime(timezone=True))

@@ -19,8 +19,10 @@ from typing import Any
 from pipeline.controlled.catalog import Catalog
 from pipeline.controlled.specs import Attribute, Specification
 from pipeline.release.lot_evaluation import LotEvaluation
+from pipeline.release.lot_record import LotHistory, LotRecordView
+from pipeline.release.pending import on_record, record_disposition
 from pipeline.release.records import Decision, TrendFinding
-from pipeline.release.verdicts import disposition, is_bound
+from pipeline.release.verdicts import is_bound
 from pipeline.science import control_charts as trend
 from pipeline.vocabulary import Disposition, HoldCategory, NelsonRule, TrendStatus, Verdict
 
@@ -75,6 +77,7 @@ class LotDecision:
     chart_values: dict[str, float]  # released: the values added to the charts
     charts: tuple[dict[str, Any], ...]  # chart pictures for the report of an out-of-trend lot
     extra_points: tuple[tuple[str, str, str, float], ...] = ()  # (chart, attribute, point id, value): a plate's reference
+    record: LotRecordView | None = None  # the lot's record after tonight (results to store, what is awaited)
 
 
 @dataclass(frozen=True)
@@ -222,14 +225,20 @@ def lot_fingerprint(evaluation: LotEvaluation, catalog: Catalog, code_version: s
 
 
 def decide_night(evaluations: list[LotEvaluation], catalog: Catalog, charts: Mapping[ChartKey, ChartState],
-                 code_version: str, earlier: dict[str, str] | None = None) -> NightDecisions:
+                 code_version: str, earlier: dict[str, str] | None = None,
+                 records: Mapping[str, LotHistory] | None = None,
+                 charted: frozenset[tuple[str, str, str]] = frozenset()) -> NightDecisions:
     """Trend and disposition for each lot, in the given order; the charts advance as lots release.
 
     ``charts`` is left as given: the charts' new states and the limits frozen tonight are returned.
     ``earlier`` names lots whose latest decision was a hold or a person's decision: the nightly
     job never releases such a lot on its own; it is held for an authorised person's review.
+    ``records`` holds each lot's record before tonight (``pipeline.release.lot_record``): the lot's
+    verdicts come from the whole record. ``charted`` names (chart, attribute, lot) already on a
+    chart: such a lot (re-assayed after its release) is not charted twice.
     """
     earlier = earlier or {}
+    records = records or {}
     out = []
     working = dict(charts)
     frozen: list[ChartKey] = []
@@ -237,10 +246,19 @@ def decide_night(evaluations: list[LotEvaluation], catalog: Catalog, charts: Map
     carried: set[str] = set()
     for evaluation in evaluations:
         spec, used_methods = lot_documents(evaluation, catalog)
+        evaluation, record = on_record(evaluation, spec, records.get(evaluation.lot_id, LotHistory()))
         findings: list[TrendFinding] = []
         pending: dict[str, float] = {}
         for attribute in spec.attributes:
             if not attribute.trend:
+                continue
+            if evaluation.record_only:
+                findings.append(TrendFinding(attribute.code, TrendStatus.NOT_EVALUATED, signals=()))
+                continue
+            if (spec.product_code, attribute.code, evaluation.lot_id) in charted:
+                findings.append(TrendFinding(attribute.code, TrendStatus.NOT_EVALUATED, signals=(
+                    f"{attribute.title}: lot {evaluation.lot_id} is on the chart already (from its release); "
+                    "a later result does not add a second point",)))
                 continue
             verdict = evaluation.verdict(attribute.code)
             value = verdict.value
@@ -267,7 +285,7 @@ def decide_night(evaluations: list[LotEvaluation], catalog: Catalog, charts: Map
                 if plate["plate_id"] not in carried:  # the first lot of a plate carries its chart point
                     carried.add(plate["plate_id"])
                     extra_points += [point] if point is not None else []
-        state, categories, reasons = disposition(evaluation.verdicts, findings, evaluation.incomplete)
+        state, categories, reasons = record_disposition(evaluation, findings, record)
         if evaluation.lot_id in earlier:
             categories = (*categories, HoldCategory.REVIEW_REQUIRED)
             reasons = (*reasons, f"the lot's earlier decision ({earlier[evaluation.lot_id]}) stands until an "
@@ -293,7 +311,7 @@ def decide_night(evaluations: list[LotEvaluation], catalog: Catalog, charts: Map
                 key = (spec.product_code, code)
                 working[key] = working[key].with_point(evaluation.lot_id, value)
         out.append(LotDecision(evaluation, decision, tuple(findings), pending if released else {},
-                               tuple(chart_pictures), tuple(extra_points)))
+                               tuple(chart_pictures), tuple(extra_points), record))
     newly_frozen = {key: limits for key, state in working.items()
                     if key in frozen and (limits := state.limits) is not None}
     return NightDecisions(tuple(out), working, newly_frozen)

@@ -28,8 +28,12 @@ def local_time_text(moment: dt.datetime, time_zone: str) -> str:
 
 def build_dossier(item: LotDecision, spec: Specification, activity_method: KineticMethod | None,
                   protein_method: ProteinMethod | None, *, plant_name: str, time_zone: str,
-                  revision: int, decided_at: dt.datetime) -> dict[str, Any]:
+                  revision: int, decided_at: dt.datetime,
+                  revisions: tuple[dict[str, Any], ...] = (), decided_by: str = "lotgate (nightly job)") -> dict[str, Any]:
+    """``revisions``: the lot's earlier revisions (revision, decided_at_utc, decided_by, label); this one is added."""
     evaluation, decision = item.evaluation, item.decision
+    this = {"revision": revision, "decided_at_utc": decided_at.astimezone(dt.UTC).isoformat(timespec="seconds"),
+            "decided_by": decided_by, "label": decision.label}
     return to_plain({
         "plant": {"name": plant_name, "time_zone": time_zone},
         "lot": {"lot_id": evaluation.lot_id, "product_code": spec.product_code, "product_name": spec.product_name,
@@ -59,5 +63,7 @@ def build_dossier(item: LotDecision, spec: Specification, activity_method: Kinet
                 "method_id": protein_method.method_id, "version": protein_method.document.version,
                 "title": protein_method.title},
         },
+        "record": None if item.record is None else item.record.to_dict(),
+        "revisions": [*revisions, this],
         "caution": CAUTION,
     })

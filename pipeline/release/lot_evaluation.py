@@ -42,6 +42,8 @@ class LimsEntry:
     result: str
     unit: str | None
     file_name: str
+    analyst: str | None = None
+    tested_on: str | None = None
 
 
 @dataclass(frozen=True)
@@ -72,6 +74,8 @@ class LotEvaluation:
     plates: tuple[dict[str, Any], ...]
     input_files: dict[str, str]
     report: dict[str, Any] = field(default_factory=dict)
+    provenance: dict[str, dict[str, Any]] = field(default_factory=dict)  # per attribute: where its result came from
+    record_only: bool = False  # no data tonight: decided again from its record alone (a result turned overdue)
 
     def verdict(self, code: str) -> AttributeVerdict:
         return next(v for v in self.verdicts if v.code == code)
@@ -300,6 +304,7 @@ def evaluate_lots(lots: list[LotInputs], catalog: Catalog) -> list[LotEvaluation
                                            None, attribute.limit_text, Verdict.REPORTED, measurement.reasons, method_label)
             verdicts.append(verdict)
         plates = tuple(p.summary() for p in (plate, lot.protein_plate) if p is not None)
+        provenance = _provenance(lot, spec)
         report = {
             "traces": plate.traces.get(lot.lot_id) if plate else None,
             "protein_curve": ({**lot.protein_plate.curve, "samples": lot.protein_plate.samples.get(lot.lot_id, [])}
@@ -311,5 +316,36 @@ def evaluate_lots(lots: list[LotInputs], catalog: Catalog) -> list[LotEvaluation
             lot_id=lot.lot_id, product_code=lot.product_code, manufactured_on=lot.manufactured_on,
             assay_date=lot.assay_date, measurements=measurements, verdicts=tuple(verdicts),
             incomplete=tuple(incomplete), kinetics=to_plain(kinetic_detail) if kinetic_detail else None,
-            plates=plates, input_files=dict(lot.input_files), report=report))  # shared, already JSON-clean
+            plates=plates, input_files=dict(lot.input_files), report=report,  # shared, already JSON-clean
+            provenance=provenance))
     return evaluations
+
+
+_ON_PROTEIN = ("protein",)
+_ON_BOTH = ("specific_activity", "vmax", "kcat", "kcat_over_km")
+
+
+def _provenance(lot: LotInputs, spec: Specification) -> dict[str, dict[str, Any]]:
+    """Where each attribute's result of tonight came from: source, files (with SHA-256), plate, analyst, date."""
+    def plate_files(*plate_ids: str) -> dict[str, str]:
+        named = {f: sha for f, sha in lot.input_files.items() if any(p in f for p in plate_ids)}
+        return named or dict(lot.input_files)
+
+    out: dict[str, dict[str, Any]] = {}
+    activity = lot.activity_plate.plate_id if lot.activity_plate else None
+    protein = lot.protein_plate.plate_id if lot.protein_plate else None
+    for attribute in spec.attributes:
+        if attribute.source == "lims":
+            entry = lot.lims.get(attribute.test_code or "")
+            if entry is not None:
+                out[attribute.code] = {
+                    "source": f"LIMS test {attribute.test_code}", "tested_on": entry.tested_on or lot.assay_date,
+                    "files": {entry.file_name: lot.input_files.get(entry.file_name, "")}, "analyst": entry.analyst}
+            continue
+        used = ([protein] if attribute.source in _ON_PROTEIN else
+                [activity, protein] if attribute.source in _ON_BOTH else [activity])
+        plates = [p for p in used if p]
+        out[attribute.code] = {"source": f"plate {' and '.join(plates)}" if plates else "no plate",
+                               "tested_on": lot.assay_date, "files": plate_files(*plates) if plates else {},
+                               "plate_id": plates[0] if plates else None, "analyst": None}
+    return out

@@ -8,7 +8,7 @@ import sqlalchemy as sa
 from alembic import op
 
 revision = "0006_desk_users"
-down_revision = "0003"
+down_revision = "0005_lot_record"
 branch_labels = None
 depends_on = None
 
