@@ -255,6 +255,10 @@ def build_parser() -> argparse.ArgumentParser:
 
     trend_cmd.add_commands(sub)
     bench.add_commands(sub)
+    from flows import schedule_cmd, status_cmd
+
+    schedule_cmd.add_commands(sub)
+    status_cmd.add_commands(sub)
     return parser
 
 
