@@ -23,6 +23,7 @@ from flows.cli import EXIT_OK, _console, quiet_prefect
 from pipeline.errors import InputError, LotgateError
 
 DEPLOYMENT_FLOW = "lotgate-night"
+SERVER_START_TIMEOUT_S = 180
 
 
 def deployment_name(root: Path, given: str | None = None) -> str:
@@ -75,23 +76,55 @@ def nightly_deployment(root: Path, name: str, cron: str | None, time_zone: str, 
 
 @contextmanager
 def _prefect_server() -> Iterator[str]:
-    """The configured Prefect server's API URL, or Prefect's local server started here (stopped on exit)."""
+    """The configured Prefect server's API URL, or a Prefect server started here on 127.0.0.1 (stopped on exit).
+
+    A full server (``prefect server start``), not the temporary in-process one: schedules need its
+    scheduler service. It is a child process of this one, stopped by its PID when serving ends.
+    """
     from prefect.settings import PREFECT_API_URL, temporary_settings
 
     configured = PREFECT_API_URL.value()
     if configured:
         yield str(configured)
         return
-    from prefect.server.api.server import SubprocessASGIServer
+    import shutil
+    import signal
+    import socket
+    import subprocess
+    import sys
+    import time
 
-    server = SubprocessASGIServer()
-    server.start()
+    import httpx
+
+    with socket.socket() as probe:
+        probe.bind(("127.0.0.1", 0))
+        port = probe.getsockname()[1]
+    prefect = shutil.which("prefect", path=str(Path(sys.executable).parent)) or "prefect"
+    server = subprocess.Popen([prefect, "server", "start", "--host", "127.0.0.1", "--port", str(port),  # noqa: S603 (fixed arguments)
+                               "--analytics-off"], stdin=subprocess.DEVNULL)
+    api = f"http://127.0.0.1:{port}/api"
     try:
-        os.environ["PREFECT_API_URL"] = server.api_url  # the served nights' processes inherit it
-        with temporary_settings(updates={PREFECT_API_URL: server.api_url}):
-            yield server.api_url
+        deadline = time.monotonic() + SERVER_START_TIMEOUT_S
+        while True:
+            try:
+                if httpx.get(f"{api}/health", timeout=2).status_code == 200:
+                    break
+            except httpx.HTTPError:
+                pass
+            if server.poll() is not None or time.monotonic() > deadline:
+                raise LotgateError(f"Prefect's server did not start on 127.0.0.1:{port}")
+            time.sleep(0.5)
+        os.environ["PREFECT_API_URL"] = api  # the served nights' processes inherit it
+        with temporary_settings(updates={PREFECT_API_URL: api}):
+            yield api
     finally:
-        server.stop()
+        if server.poll() is None:
+            server.send_signal(signal.SIGTERM)
+            try:
+                server.wait(timeout=20)
+            except subprocess.TimeoutExpired:
+                server.kill()
+                server.wait(timeout=10)
 
 
 def cmd_serve(args: argparse.Namespace) -> int:
@@ -102,14 +135,14 @@ def cmd_serve(args: argparse.Namespace) -> int:
         raise InputError(f"{root / 'workspace.yaml'}: no schedule is set; add for example "
                          "'schedule: {cron: \"30 1 * * *\"}' (five cron fields, in the plant's time zone)")
     name = deployment_name(root, args.name)
-    console = _console()
     with _prefect_server() as api:
         from prefect import serve
 
         deployment = nightly_deployment(root, name, ws.schedule_cron, ws.time_zone)
         upcoming = ", ".join(f"{t:%Y-%m-%d %H:%M %Z}" for t in next_runs(ws.schedule_cron, ws.time_zone))
-        console.print(f"Serving {DEPLOYMENT_FLOW}/{name} for {root}: cron '{ws.schedule_cron}' ({ws.time_zone}); "
-                      f"next nights {upcoming}; Prefect API {api}. Stop with Ctrl-C or SIGTERM.")
+        # plain lines, unwrapped: a service's journal reads them
+        print(f"Serving {DEPLOYMENT_FLOW}/{name} for {root}: cron '{ws.schedule_cron}' ({ws.time_zone}); "
+              f"next nights {upcoming}; Prefect API {api}. Stop with Ctrl-C or SIGTERM.", flush=True)
         serve(deployment, print_starting_message=False, limit=1)
     return EXIT_OK
 
