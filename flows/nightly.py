@@ -143,7 +143,12 @@ def _stages(ws: Workspace, store: Store, signer: CertificateSigner, step: dict,
     evaluations, _plates = timed("evaluate", assembly, catalog)
     charts = timed("load_charts", store, catalog, evaluations)
     decided = timed("decide", evaluations, catalog, charts, earlier_decisions(store, evaluations))
-    outcomes = timed("publish", ws, store, catalog, decided, night_id, signer, _progress)
+    fan_out = None
+    if orchestrated and ws.fan_out_deployment is not None:
+        from flows.fanout import renderers_for
+
+        fan_out = renderers_for(ws, night_id)
+    outcomes = timed("publish", ws, store, catalog, decided, night_id, signer, _progress, fan_out)
     return timed("close", ws, store, intake, outcomes, [*recovered.notes, *assembly.notes])
 
 

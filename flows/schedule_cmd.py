@@ -176,7 +176,25 @@ def cmd_deploy(args: argparse.Namespace) -> int:
     console.print(f"Start a worker on a machine that sees {root}:  PREFECT_API_URL={api} "
                   f"prefect worker start --pool {args.pool} --work-queue {queue}")
     console.print(f"Run a night now:  prefect deployment run '{DEPLOYMENT_FLOW}/{name}'")
+    if args.fan_out:
+        chunk_name = register_chunk_deployment(root, name, args.pool, queue)
+        console.print(f"Fan-out deployment {chunk_name} on the same pool and queue; to use it, set in "
+                      f"{root / 'workspace.yaml'}:  fan_out: {{deployment: \"{chunk_name}\", chunks: 2}}")
     return EXIT_OK
+
+
+def register_chunk_deployment(root: Path, name: str, pool: str, queue: str) -> str:
+    """The deployment that renders chunks of this workspace's large nights on workers (flows/fanout.py)."""
+    from prefect.deployments.runner import EntrypointType
+
+    from flows.fanout import CHUNK_FLOW, render_chunk_flow
+
+    chunk_name = f"render-{name.removeprefix('night-')}"
+    render_chunk_flow.to_deployment(
+        name=chunk_name, entrypoint_type=EntrypointType.MODULE_PATH, work_pool_name=pool, work_queue_name=queue,
+        tags=["lotgate", f"workspace:{root.name}"],
+        description=f"lotgate: renders chunks of large nights' documents for {root}").apply()
+    return f"{CHUNK_FLOW}/{chunk_name}"
 
 
 def ensure_process_pool(pool: str) -> None:
@@ -215,4 +233,6 @@ def add_commands(sub) -> None:
     deploy.add_argument("--queue", metavar="Q", help="the work queue (default: the deployment name)")
     deploy.add_argument("--name", metavar="NAME", help="deployment name (default night-<workspace folder>)")
     deploy.add_argument("--unscheduled", action="store_true", help="register without the workspace's schedule")
+    deploy.add_argument("--fan-out", action="store_true",
+                        help="also register the deployment that renders chunks of a large night on workers")
     deploy.set_defaults(func=cmd_deploy)

@@ -19,6 +19,7 @@ uninterrupted night would have, so each stage here is made safe to run again:
 from __future__ import annotations
 
 import dataclasses
+from typing import Any
 
 from pipeline.controlled.catalog import Catalog
 from pipeline.errors import LotgateError
@@ -55,9 +56,9 @@ def receive_unless_recorded(ws: Workspace, store: Store, layouts: dict, night_id
 
 
 def publish_settled(ws: Workspace, store: Store, catalog: Catalog, decided: NightDecisions, night_id: int,
-                    signer: CertificateSigner, progress: Progress = no_progress) -> list[Outcome]:
+                    signer: CertificateSigner, progress: Progress = no_progress, renderers: Any = None) -> list[Outcome]:
     recover_documents(ws, store, interrupted=False)  # nothing to do on a first attempt
-    outcomes = publish(ws, store, catalog, decided, night_id, signer, progress)
+    outcomes = publish(ws, store, catalog, decided, night_id, signer, progress, renderers=renderers)
     if all(o.new for o in outcomes):
         return outcomes
     stored = store.known_fingerprints([item.decision.fingerprint for item in decided.lots])

@@ -39,6 +39,9 @@ class Workspace:
     notify_urls: tuple[str, ...] = ()  # apprise URLs, possibly with {NAME} secret placeholders
     notify_secrets_file: Path | None = None  # a 0600 file of NAME=value lines
     desk_url: str | None = None  # the review desk's base URL, for links in messages
+    fan_out_deployment: str | None = None  # render a large night's documents on workers (flows/fanout.py)
+    fan_out_chunks: int = 2
+    fan_out_from_lots: int = 24
 
     @property
     def inbox(self) -> Path:
@@ -126,6 +129,12 @@ class NotifySettings(Strict):
         return url
 
 
+class FanOutSettings(Strict):
+    deployment: Text = Field(description="a deployment name, e.g. lotgate-render-chunk/render-site-a")
+    chunks: int = Field(2, ge=1, le=64, description="a whole number of chunks per window, 1 to 64")
+    from_lots: int = Field(24, ge=1, description="a whole number of lots from which a night fans out")
+
+
 class WorkspaceSettings(Strict):
     """The declared schema of ``workspace.yaml``: any other key is refused, naming the nearest known one."""
 
@@ -140,6 +149,7 @@ class WorkspaceSettings(Strict):
     # --- operations ---
     schedule: ScheduleSettings | None = Field(None, description="a mapping with cron")
     notify: NotifySettings | None = Field(None, description="a mapping with urls, secrets_file and desk_url")
+    fan_out: FanOutSettings | None = Field(None, description="a mapping with deployment, chunks and from_lots")
 
     @field_validator("time_zone")
     @classmethod
@@ -221,7 +231,10 @@ def _operations(root: Path, settings: WorkspaceSettings) -> dict:
     return {"schedule_cron": None if settings.schedule is None else settings.schedule.cron,
             "notify_urls": () if notify is None else tuple(notify.urls),
             "notify_secrets_file": secrets,
-            "desk_url": None if notify is None or notify.desk_url is None else notify.desk_url.rstrip("/")}
+            "desk_url": None if notify is None or notify.desk_url is None else notify.desk_url.rstrip("/"),
+            **({} if settings.fan_out is None else {"fan_out_deployment": settings.fan_out.deployment,
+                                                    "fan_out_chunks": settings.fan_out.chunks,
+                                                    "fan_out_from_lots": settings.fan_out.from_lots})}
 
 
 def write_settings(root: Path, settings: dict) -> None:
