@@ -58,6 +58,11 @@ def _checked_workspace(root: Path):
     finally:
         if secret is not None:
             os.environ[PASSPHRASE_ENV] = secret
+    if ws.notify_urls:  # a missing secret is found now, not at the end of the first night
+        from pipeline.records.notify import recipients
+        from pipeline.records.workspace import SETTINGS_FILE
+
+        recipients(ws.notify_urls, ws.notify_secrets_file, str(ws.root / SETTINGS_FILE))
     return ws, store
 
 

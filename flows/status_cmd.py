@@ -40,18 +40,23 @@ def _identity(ws):
 
 
 def _running(root: Path) -> str | None:
-    from pipeline.records.run_lock import INFO_FILE, LOCK_FILE
+    """Who holds the run lock, from the note a night writes while it holds it (the lock itself is not touched).
 
-    info = root / INFO_FILE
-    if not info.exists():
+    A note left by a killed run on this machine (its process gone) does not count.
+    """
+    import json
+    import socket
+
+    from pipeline.records.run_lock import INFO_FILE
+
+    try:
+        info = json.loads((root / INFO_FILE).read_text(encoding="utf-8"))
+        pid, host = int(info["pid"]), str(info["host"])
+    except (OSError, ValueError, KeyError, TypeError):
         return None
-    from filelock import FileLock, Timeout
-
-    try:  # a stale note from a killed run leaves the lock free
-        with FileLock(str(root / LOCK_FILE)).acquire(timeout=0):
-            return None
-    except Timeout:
-        return info.read_text(encoding="utf-8", errors="replace")[:200]
+    if host == socket.gethostname() and not Path(f"/proc/{pid}").exists():
+        return None
+    return f"a night started {info.get('started_utc', '?')} by process {pid} on {host}"
 
 
 def gather(root: Path):

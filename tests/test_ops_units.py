@@ -16,6 +16,7 @@ import re
 import pytest
 from sqlalchemy.exc import IntegrityError, OperationalError
 
+from pipeline.demo import plant as demo
 from pipeline.errors import SpecificationError, StoreError
 from pipeline.night.night_message import (
     CAUTION,
@@ -49,7 +50,7 @@ def _lot(lot_id, disposition, categories=(), reasons=(), new=True):
 
 
 def _facts(lots, quarantined=(), notes=()):
-    return NightFacts("Birchfield Enzymes (demo)", "/srv/lotgate/site-a", 12, 9, 9 - len(quarantined),
+    return NightFacts(demo.PLANT_NAME, "/srv/lotgate/site-a", 12, 9, 9 - len(quarantined),
                       tuple(quarantined), tuple(lots), tuple(notes), "review/night-0012.html",
                       review_url("https://qc-desk.example/", 12))
 
@@ -86,7 +87,7 @@ def test_a_quiet_night_and_long_lists():
 
 
 def test_the_failure_message_says_what_failed_and_what_happens_next():
-    message = failure_message("Birchfield Enzymes (demo)", "/srv/site-a", 7, "the results store did not answer",
+    message = failure_message(demo.PLANT_NAME, "/srv/site-a", 7, "the results store did not answer",
                               "https://qc-desk.example")
     assert message.failed and "FAILED" in message.title and "night 7" in message.title
     assert "the results store did not answer" in message.body
@@ -254,13 +255,42 @@ def test_no_concern_thirty_one_days_ahead_or_while_a_night_runs():
     assert concerns(_status(cron="30 1 * * *", last_fired=fired, nights=[_night(3)])) == ()
 
 
+@pytest.mark.slow  # runs the command line (imports Prefect): seconds
 def test_status_reads_a_workspace_without_changing_it(tmp_path):
     from tests.cli import run_cli
 
     (tmp_path / "inbox").mkdir()
-    write_settings(tmp_path, {"plant_name": "Birchfield Enzymes (demo)", "schedule": {"cron": "30 1 * * *"}})
+    write_settings(tmp_path, {"plant_name": demo.PLANT_NAME, "schedule": {"cron": "30 1 * * *"}})
     before = sorted(p.name for p in tmp_path.iterdir())
     result = run_cli(["status", "--workspace", tmp_path], timeout=120, env={**os.environ, "PYTHONPATH": os.getcwd()})
     assert sorted(p.name for p in tmp_path.iterdir()) == before  # no store created, nothing written
     assert "Schedule: cron '30 1 * * *' (Europe/Berlin); next" in result.stdout
     assert "no signing identity is set up" in result.stdout and result.returncode == 7
+
+
+@pytest.mark.slow  # runs the command line twice
+def test_serve_without_a_schedule_and_deploy_without_a_server_are_set_up_errors(tmp_path):
+    from tests.cli import run_cli
+
+    (tmp_path / "inbox").mkdir()
+    (tmp_path / "keys").mkdir()
+    (tmp_path / "keys" / "use-demo-identity").touch()
+    env = {k: v for k, v in os.environ.items() if not k.startswith("PREFECT_API")} | {"PYTHONPATH": os.getcwd()}
+    served = run_cli(["serve", "--workspace", tmp_path], timeout=180, env=env)
+    assert served.returncode == 2 and "no schedule is set" in served.stderr and "Traceback" not in served.stderr
+    deployed = run_cli(["deploy", "--workspace", tmp_path, "--pool", "lotgate"], timeout=180, env=env)
+    assert deployed.returncode == 2 and "set PREFECT_API_URL" in deployed.stderr
+
+
+def test_a_stale_run_note_is_not_a_running_night(tmp_path):
+    import json
+    import socket
+
+    from flows.status_cmd import _running
+    from pipeline.records.run_lock import INFO_FILE
+
+    note = tmp_path / INFO_FILE
+    note.write_text(json.dumps({"pid": os.getpid(), "host": socket.gethostname(), "started_utc": "2026-12-02T01:30"}))
+    assert f"process {os.getpid()}" in _running(tmp_path)
+    note.write_text(json.dumps({"pid": 2**22 + 12345, "host": socket.gethostname(), "started_utc": "x"}))
+    assert _running(tmp_path) is None  # the process that wrote it is gone: a killed run's note
