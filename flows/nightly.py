@@ -162,6 +162,7 @@ def nightly(workspace: str, lock_held_by_caller: bool = False) -> NightSummary:
     and the failure is raised again so that Prefect marks the run failed; the next run recovers it.
     """
     ws = store = None
+    CURRENT_NIGHT.clear()
     try:
         ws, store, signer = open_night(Path(workspace))
         with nullcontext() if lock_held_by_caller else run_lock(ws.root, store):
@@ -170,15 +171,23 @@ def nightly(workspace: str, lock_held_by_caller: bool = False) -> NightSummary:
             except Exception as exc:
                 record_failure(ws, store, exc)
                 raise
-            facts = night_facts(ws, store, summary)
-            message = night_message(facts)
-            publish_artifacts(facts, message)
-            told = tell(ws, store, message, summary.night_id)
-            _warn_untold(told)
+            _after_night(ws, store, summary)
             return summary
     except Exception as exc:
         tell_failure(Path(workspace), ws, store, exc)
         raise
+
+
+def _after_night(ws: Workspace, store: Store, summary: NightSummary) -> None:
+    """Artifacts and the end-of-night message; the night's records are complete, so nothing here fails it."""
+    try:
+        facts = night_facts(ws, store, summary)
+        message = night_message(facts)
+        publish_artifacts(facts, message)
+        _warn_untold(tell(ws, store, message, summary.night_id))
+    except Exception as exc:  # noqa: BLE001 (a summary that cannot be made or shown is reported, never a failed night)
+        get_run_logger().error("night %s is complete, but its summary could not be published or sent: %s",
+                               summary.night_id, _one_line(exc))
 
 
 def _one_line(exc: BaseException) -> str:
