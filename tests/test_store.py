@@ -236,7 +236,8 @@ def test_orm_rows_never_leave_the_store():
 
     root = Path(__file__).resolve().parents[1]
     own = {"pipeline/records/store.py", "pipeline/records/stored.py", "pipeline/records/tables.py",
-           "pipeline/records/database.py"}
+           "pipeline/records/database.py",
+           "pipeline/records/status_queries.py"}  # the store's read-only status view (no migration), frozen records out
     offenders = []
     for path in [*root.joinpath("pipeline").rglob("*.py"), *root.joinpath("flows").rglob("*.py")]:
         name = str(path.relative_to(root))

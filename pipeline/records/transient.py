@@ -10,10 +10,11 @@ from __future__ import annotations
 
 import errno
 
-from sqlalchemy.exc import DBAPIError, DisconnectionError, InterfaceError, OperationalError
-
 from pipeline.records.run_lock import RunLocked
 
+# SQLAlchemy's exceptions for a connection that failed or dropped, by name (only the store's own
+# modules import SQLAlchemy): OperationalError, InterfaceError, DisconnectionError.
+_CONNECTION_ERRORS = frozenset({"OperationalError", "InterfaceError", "DisconnectionError"})
 TRANSIENT_ERRNOS = frozenset({errno.EIO, errno.ETIMEDOUT, errno.ESTALE, errno.EAGAIN, errno.ECONNRESET,
                               errno.ECONNREFUSED, errno.EHOSTUNREACH, errno.ENETUNREACH, errno.EINTR})
 
@@ -24,12 +25,15 @@ def is_transient(exc: BaseException | None) -> bool:
     while exc is not None and seen < 10:
         if isinstance(exc, RunLocked):  # a lost or contested run lock must stop the night, never be retried
             return False
-        if isinstance(exc, OperationalError | InterfaceError | DisconnectionError):
-            return True
-        if isinstance(exc, DBAPIError) and exc.connection_invalidated:
+        if _from_sqlalchemy(exc) and ({k.__name__ for k in type(exc).__mro__} & _CONNECTION_ERRORS
+                                      or getattr(exc, "connection_invalidated", False)):
             return True
         if isinstance(exc, OSError) and exc.errno in TRANSIENT_ERRNOS:
             return True
         exc = exc.__cause__ or exc.__context__
         seen += 1
     return False
+
+
+def _from_sqlalchemy(exc: BaseException) -> bool:
+    return any(k.__module__ == "sqlalchemy.exc" for k in type(exc).__mro__)
