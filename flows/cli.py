@@ -25,7 +25,8 @@ EXIT_CODES = """exit codes:
      one line naming the file and the field, nothing written
   3  another night holds the workspace's run lock
   4  not found: an unknown lot, product or attribute, or a file to verify that does not exist
-  5  a defect in lotgate: one line here, the details for the engineer in a file it names"""
+  5  a defect in lotgate: one line here, the details for the engineer in a file it names
+  6, 7  lotgate status only: lots await a person (6), the operation needs a person (7)"""
 
 QUIET_PREFECT = {
     "PREFECT_SERVER_ANALYTICS_ENABLED": "false",
@@ -264,6 +265,10 @@ def build_parser() -> argparse.ArgumentParser:
     from flows import desk_cmd
 
     desk_cmd.add_commands(sub)
+    from flows import schedule_cmd, status_cmd
+
+    schedule_cmd.add_commands(sub)
+    status_cmd.add_commands(sub)
     return parser
 
 

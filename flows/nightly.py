@@ -9,29 +9,37 @@ from __future__ import annotations
 import resource
 import time
 from collections.abc import Callable
+from contextlib import nullcontext
 from pathlib import Path
 
-from prefect import flow, task
+from prefect import flow, get_run_logger, task
 from prefect.cache_policies import NONE
 from prefect.utilities.annotations import quote
 
 from pipeline import __version__
+from pipeline.errors import LotgateError
 from pipeline.night.close import NightSummary
-from pipeline.night.close import close as close_night
 from pipeline.night.decide import decide as decide_lots
 from pipeline.night.decide import earlier_decisions, lot_records
 from pipeline.night.decide import load_charts as read_charts
 from pipeline.night.evaluate import evaluate as evaluate_lots
+from pipeline.night.night_message import NightFacts, NightMessage, failure_message, night_message
+from pipeline.night.night_notice import Told, night_facts, tell
 from pipeline.night.open import CertificateSigner, open_night
-from pipeline.night.publish import publish as publish_lots
 from pipeline.night.read_formats import set_aside_undeclared_formats
 from pipeline.night.receive import assemble_intake, check_folders_writable
-from pipeline.night.receive import receive as receive_exports
-from pipeline.night.recovery import recover_interrupted
+from pipeline.night.retryable import (
+    close_unless_recorded,
+    open_night_records,
+    publish_settled,
+    receive_unless_recorded,
+)
+from pipeline.records import audit
 from pipeline.records.controlled_files import open_controlled_documents
-from pipeline.records.run_lock import run_lock
+from pipeline.records.run_lock import RunLocked, run_lock
 from pipeline.records.store import Store
-from pipeline.records.workspace import Workspace
+from pipeline.records.transient import is_transient
+from pipeline.records.workspace import Workspace, open_workspace
 from pipeline.records.workspace_id import workspace_id
 
 _PROGRESS: dict[str, Callable[[str, int, int], None]] = {}
@@ -50,13 +58,29 @@ def _progress(stage: str, done: int, total: int) -> None:
         callback(stage, done, total)
 
 
-receive = task(receive_exports, name="receive exports", cache_policy=NONE, persist_result=False)
-assemble = task(assemble_intake, name="assemble lots", cache_policy=NONE, persist_result=False)
-evaluate = task(evaluate_lots, name="compute results", cache_policy=NONE, persist_result=False)
-load_charts = task(read_charts, name="read control charts", cache_policy=NONE, persist_result=False)
-decide = task(decide_lots, name="trend and disposition", cache_policy=NONE, persist_result=False)
-publish = task(publish_lots, name="reports, certificates, store, log", cache_policy=NONE, persist_result=False)
-close = task(close_night, name="archive and LIMS results", cache_policy=NONE, persist_result=False)
+def _transient_only(_task, _task_run, state) -> bool:
+    """Retry an I/O task only for a failure that may pass (a dropped connection, a stalled share)."""
+    return is_transient(getattr(state, "data", None))
+
+
+# Retries with back-off on the I/O stages only (store, workspace folders, network share); the
+# computation (assemble, evaluate, decide) is never retried: it would fail the same way again.
+# Each retried stage is safe to run again (pipeline/night/retryable.py).
+RETRIES = 3
+RETRY_DELAYS_S = [5, 20, 60]
+_IO = dict(cache_policy=NONE, persist_result=False, retries=RETRIES, retry_delay_seconds=RETRY_DELAYS_S,
+           retry_jitter_factor=0.2, retry_condition_fn=_transient_only)
+_COMPUTE = dict(cache_policy=NONE, persist_result=False)
+
+open_records = task(open_night_records, name="recover earlier nights, open tonight's", **_IO)
+receive = task(receive_unless_recorded, name="receive exports", **_IO)
+assemble = task(assemble_intake, name="assemble lots", **_COMPUTE)
+evaluate = task(evaluate_lots, name="compute results", **_COMPUTE)
+load_charts = task(read_charts, name="read control charts", **_IO)
+decide = task(decide_lots, name="trend and disposition", **_COMPUTE)
+publish = task(publish_settled, name="reports, certificates, store, log", **_IO)
+close = task(close_unless_recorded, name="archive and LIMS results", **_IO)
+STAGES = ("open_records", "receive", "assemble", "evaluate", "load_charts", "decide", "publish", "close")
 
 
 def run_stages(ws: Workspace, store: Store, signer: CertificateSigner, *, orchestrated: bool = True,
@@ -65,8 +89,7 @@ def run_stages(ws: Workspace, store: Store, signer: CertificateSigner, *, orches
 
     Holds the night's run lock unless the caller already holds it (``lock=False``).
     """
-    step = {name: (globals()[name].fn if not orchestrated else globals()[name])
-            for name in ("receive", "assemble", "evaluate", "load_charts", "decide", "publish", "close")}
+    step = {name: (globals()[name].fn if not orchestrated else globals()[name]) for name in STAGES}
     if not lock:
         return _stages(ws, store, signer, step, orchestrated)
     with run_lock(ws.root, store):
@@ -89,12 +112,14 @@ def _release_free_memory() -> None:
 
 STAGE_SECONDS: dict[str, float] = {}  # wall time of each stage of the last night in this process
 STAGE_PEAK_MB: dict[str, float] = {}  # this process's peak resident memory at the end of each stage
+CURRENT_NIGHT: dict[str, int] = {}  # the id of the night this process is running ("id"), once started
 
 
 def _stages(ws: Workspace, store: Store, signer: CertificateSigner, step: dict,
             orchestrated: bool) -> NightSummary:
     STAGE_SECONDS.clear()
     STAGE_PEAK_MB.clear()
+    CURRENT_NIGHT.clear()
 
     def timed(name: str, *args):
         start = time.perf_counter()
@@ -112,8 +137,8 @@ def _stages(ws: Workspace, store: Store, signer: CertificateSigner, step: dict,
     identity = workspace_id(ws.root)
     store.check_workspace(identity, shared=ws.store_shared)  # another workspace's store: refused before any move
     check_folders_writable(ws)
-    recovered = recover_interrupted(ws, store, identity)
-    night_id = store.start_night(__version__, identity, shared=ws.store_shared)
+    recovered, night_id = timed("open_records", ws, store, identity, __version__)
+    CURRENT_NIGHT["id"] = night_id
     intake = timed("receive", ws, store, layouts, night_id, _progress, recovered.quarantined)
     set_aside_undeclared_formats(ws, store, intake, catalog)
     assembly = timed("assemble", intake, catalog)
@@ -121,7 +146,12 @@ def _stages(ws: Workspace, store: Store, signer: CertificateSigner, step: dict,
     charts = timed("load_charts", store, catalog, evaluations)
     decided = timed("decide", evaluations, catalog, charts, earlier_decisions(store, evaluations),
                     lot_records(store, catalog, evaluations, ws.time_zone))
-    outcomes = timed("publish", ws, store, catalog, decided, night_id, signer, _progress)
+    fan_out = None
+    if orchestrated and ws.fan_out_deployment is not None:
+        from flows.fanout import renderers_for
+
+        fan_out = renderers_for(ws, night_id)
+    outcomes = timed("publish", ws, store, catalog, decided, night_id, signer, _progress, fan_out)
     summary = timed("close", ws, store, intake, outcomes, [*recovered.notes, *assembly.notes])
     from flows.desk.static_page import write_night_page
 
@@ -131,7 +161,99 @@ def _stages(ws: Workspace, store: Store, signer: CertificateSigner, step: dict,
 
 @flow(name="lotgate-night", log_prints=False, persist_result=False)
 def nightly(workspace: str, lock_held_by_caller: bool = False) -> NightSummary:
-    """One night: every export in ``workspace/inbox`` to decisions, documents and records."""
-    ws, store, signer = open_night(Path(workspace))
-    return run_stages(ws, store, signer, orchestrated=True, lock=not lock_held_by_caller)
+    """One night: every export in ``workspace/inbox`` to decisions, documents and records.
 
+    At its end the workspace's recipients are told (``notify:`` in workspace.yaml) and the summary
+    is published as Prefect artifacts. A night that fails is recorded (a ``night-failed`` audit
+    event, when the store answers and the night still holds its lock), its recipients are told,
+    and the failure is raised again so that Prefect marks the run failed; the next run recovers it.
+    """
+    ws = store = None
+    CURRENT_NIGHT.clear()
+    try:
+        ws, store, signer = open_night(Path(workspace))
+        with nullcontext() if lock_held_by_caller else run_lock(ws.root, store):
+            try:
+                summary = run_stages(ws, store, signer, orchestrated=True, lock=False)
+            except Exception as exc:
+                record_failure(ws, store, exc)
+                raise
+            _after_night(ws, store, summary)
+            return summary
+    except Exception as exc:
+        tell_failure(Path(workspace), ws, store, exc)
+        raise
+
+
+def _after_night(ws: Workspace, store: Store, summary: NightSummary) -> None:
+    """Artifacts and the end-of-night message; the night's records are complete, so nothing here fails it."""
+    try:
+        facts = night_facts(ws, store, summary)
+        message = night_message(facts)
+        publish_artifacts(facts, message)
+        _warn_untold(tell(ws, store, message, summary.night_id))
+    except Exception as exc:  # noqa: BLE001 (a summary that cannot be made or shown is reported, never a failed night)
+        get_run_logger().error("night %s is complete, but its summary could not be published or sent: %s",
+                               summary.night_id, _one_line(exc))
+
+
+def _one_line(exc: BaseException) -> str:
+    text = " ".join(str(exc).split()) or exc.__class__.__name__
+    return text if isinstance(exc, LotgateError) else f"{exc.__class__.__name__}: {text}"
+
+
+def record_failure(ws: Workspace, store: Store, exc: BaseException) -> None:
+    """A ``night-failed`` audit event, under the night's lock, unless the lock was lost or the store is down."""
+    night_id = CURRENT_NIGHT.get("id")
+    if night_id is None or isinstance(exc, RunLocked):
+        return
+    try:
+        store.add_events([audit.event("night-failed", time_zone=ws.time_zone, night_id=night_id,
+                                      why=_one_line(exc)[:2000])])
+        audit.sync_log(store, ws.log)
+    except (LotgateError, OSError) as unrecorded:  # the store is what failed: the next run records the interruption
+        get_run_logger().warning("the failure of night %s could not be recorded now (%s); the next run records "
+                                 "it as interrupted", night_id, _one_line(unrecorded))
+
+
+def tell_failure(root: Path, ws: Workspace | None, store: Store | None, exc: BaseException) -> None:
+    """Send the failure message when the workspace's settings can be read (they name the recipients)."""
+    try:
+        ws = ws or open_workspace(root)
+    except LotgateError:
+        get_run_logger().error("night failed and nobody could be told: the settings of %s cannot be read", root)
+        return
+    night_id = CURRENT_NIGHT.get("id")
+    usable_store = None if isinstance(exc, RunLocked) else store
+    message = failure_message(ws.plant_name, str(ws.root), night_id, _one_line(exc), ws.desk_url)
+    _warn_untold(tell(ws, usable_store, message, night_id))
+
+
+def _warn_untold(told: Told) -> None:
+    logger = get_run_logger()
+    if told.problem:
+        logger.error("nobody was told about this night: %s", told.problem)
+    if told.report is not None:
+        for template, why in told.report.failed:
+            logger.warning("not told: %s (%s)", _host_of(template), why)
+
+
+def _host_of(template: str) -> str:
+    from urllib.parse import urlsplit
+
+    parts = urlsplit(template)
+    return f"{parts.scheme}://{parts.hostname or ''}"
+
+
+def publish_artifacts(facts: NightFacts, message: NightMessage) -> None:
+    """The night's lots as a table and its message as markdown, shown on the flow run in Prefect's UI."""
+    from prefect.artifacts import create_markdown_artifact, create_table_artifact
+
+    rows = [{"lot": lot.lot_id, "product": lot.product, "disposition": lot.disposition.value,
+             "hold categories": ", ".join(lot.hold_categories), "reasons": "; ".join(lot.reasons),
+             "decided tonight": "yes" if lot.decided_tonight else "no (unchanged)"} for lot in facts.lots]
+    create_table_artifact(rows, description=f"Night {facts.night_id} of {facts.plant_name}: lots and dispositions")
+    counts = "\n".join(f"| {member.value} | {n} |" for member, n in message.counts)
+    body = "\n".join(line if not line.endswith("):") else f"### {line}" for line in message.body.splitlines())
+    create_markdown_artifact(f"## {message.title}\n\n| disposition | lots |\n|---|---|\n{counts}\n\n{body}\n",
+                             description=f"Night {facts.night_id} summary")

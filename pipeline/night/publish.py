@@ -104,6 +104,7 @@ class _Renderers:
         self.pool = None
         if cores > 1 and lots >= PARALLEL_FROM_LOTS:
             self.pool = process_pool(cores, renderer_start, (ws.plant_name, signer))
+        self.window_lots = WINDOW_LOTS if self.pool is not None else 1
 
     def submit(self, jobs: list[_Job]) -> Any:
         """Start rendering ``jobs``; ``collect`` returns their documents in order."""
@@ -180,10 +181,15 @@ def _write(ws: Workspace, job: _Job, night_id: int, report_bytes: bytes, certifi
 
 
 def publish(ws: Workspace, store: Store, catalog: Catalog, decided: NightDecisions, night_id: int,
-            signer: CertificateSigner, progress: Progress = no_progress, workers: int | None = None) -> list[Outcome]:
+            signer: CertificateSigner, progress: Progress = no_progress, workers: int | None = None,
+            renderers: Any = None) -> list[Outcome]:
     """Per lot: batch report and (released) signed certificate staged; then the decisions, their
     results and their audit events in one store transaction (the first also stores the limits
     frozen tonight); then the documents moved into place; the log follows.
+
+    ``renderers`` (a factory ``(ws, signer, lots) -> renderers``, as ``_Renderers``: submit, collect,
+    close, window_lots) renders elsewhere, e.g. on other machines (flows/fanout.py); staging,
+    storing and placing stay here, window by window, in the lots' order.
     """
     decisions = decided.lots
     known = store.known_fingerprints([d.decision.fingerprint for d in decisions])
@@ -205,8 +211,9 @@ def publish(ws: Workspace, store: Store, catalog: Catalog, decided: NightDecisio
             pending.append((index, item))
     done = len(outcomes)
     progress("publish", done, len(decisions))
-    renderers = _Renderers(ws, signer, len(pending), workers)
-    size = WINDOW_LOTS if renderers.pool is not None else 1
+    renderers = (_Renderers(ws, signer, len(pending), workers) if renderers is None
+                 else renderers(ws, signer, len(pending)))
+    size = renderers.window_lots
     windows = [pending[start:start + size] for start in range(0, len(pending), size)]
     if not windows:
         store.add_decisions([], limits)

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import difflib
 import os
+import re
 import tempfile
 from dataclasses import dataclass
 from pathlib import Path
@@ -37,6 +38,14 @@ class Workspace:
     store_shared: bool = False
     # Which of a lot's dates chooses its specification version (pipeline.controlled.catalog)
     specification_date: SpecificationDate = SpecificationDate.ASSAY
+    # --- operations: schedule and notifications (pipeline/records/notify.py) ---
+    schedule_cron: str | None = None  # five-field cron in the plant's time zone; None: no schedule
+    notify_urls: tuple[str, ...] = ()  # apprise URLs, possibly with {NAME} secret placeholders
+    notify_secrets_file: Path | None = None  # a 0600 file of NAME=value lines
+    desk_url: str | None = None  # the review desk's base URL, for links in messages
+    fan_out_deployment: str | None = None  # render a large night's documents on workers (flows/fanout.py)
+    fan_out_chunks: int = 2
+    fan_out_from_lots: int = 24
 
     @property
     def inbox(self) -> Path:
@@ -95,6 +104,41 @@ class ControlledSettings(Strict):
     layouts: Text | None = Field(None, description="a folder name")
 
 
+_CRON_FIELD = re.compile(r"^[0-9A-Za-z*,/-]+$")
+
+
+class ScheduleSettings(Strict):
+    cron: Text = Field(description="five cron fields in the plant's time zone, e.g. '30 1 * * *'")
+
+    @field_validator("cron")
+    @classmethod
+    def _five_fields(cls, cron: str) -> str:
+        fields = cron.split()
+        if len(fields) != 5 or not all(_CRON_FIELD.match(f) for f in fields):
+            raise ValueError(f"must be five cron fields (minute hour day month weekday), e.g. '30 1 * * *', "
+                             f"found {cron!r}")
+        return cron
+
+
+class NotifySettings(Strict):
+    urls: list[Text] = Field(description="a list of notification URLs (mailto://, json://, ...)")
+    secrets_file: Text | None = Field(None, description="the path of a file (mode 0600) of NAME=value lines")
+    desk_url: Text | None = Field(None, description="the review desk's base URL, e.g. https://qc-desk.example")
+
+    @field_validator("desk_url")
+    @classmethod
+    def _http(cls, url: str | None) -> str | None:
+        if url is not None and not url.startswith(("http://", "https://")):
+            raise ValueError(f"must start with http:// or https://, found {url!r}")
+        return url
+
+
+class FanOutSettings(Strict):
+    deployment: Text = Field(description="a deployment name, e.g. lotgate-render-chunk/render-site-a")
+    chunks: int = Field(2, ge=1, le=64, description="a whole number of chunks per window, 1 to 64")
+    from_lots: int = Field(24, ge=1, description="a whole number of lots from which a night fans out")
+
+
 class WorkspaceSettings(Strict):
     """The declared schema of ``workspace.yaml``: any other key is refused, naming the nearest known one."""
 
@@ -108,6 +152,10 @@ class WorkspaceSettings(Strict):
     store_shared: bool = Field(False, description="true or false: whether other workspaces (sites) share the store")
     specification_date: Literal["assay", "manufacture"] = Field(
         "assay", description="assay or manufacture: the lot's date that chooses its specification")
+    # --- operations ---
+    schedule: ScheduleSettings | None = Field(None, description="a mapping with cron")
+    notify: NotifySettings | None = Field(None, description="a mapping with urls, secrets_file and desk_url")
+    fan_out: FanOutSettings | None = Field(None, description="a mapping with deployment, chunks and from_lots")
 
     @field_validator("time_zone")
     @classmethod
@@ -179,7 +227,21 @@ def open_workspace(root: Path, *, plant_name: str | None = None, signer_name: st
         controlled=_controlled_folders(root, settings.controlled, root / SETTINGS_FILE),
         store_shared=settings.store_shared,
         specification_date=SpecificationDate(settings.specification_date),
+        **_operations(root, settings),
     )
+
+
+def _operations(root: Path, settings: WorkspaceSettings) -> dict:
+    """The schedule and notification settings (secrets are never here: see pipeline/records/notify.py)."""
+    notify = settings.notify
+    secrets = None if notify is None or notify.secrets_file is None else (root / Path(notify.secrets_file).expanduser())
+    return {"schedule_cron": None if settings.schedule is None else settings.schedule.cron,
+            "notify_urls": () if notify is None else tuple(notify.urls),
+            "notify_secrets_file": secrets,
+            "desk_url": None if notify is None or notify.desk_url is None else notify.desk_url.rstrip("/"),
+            **({} if settings.fan_out is None else {"fan_out_deployment": settings.fan_out.deployment,
+                                                    "fan_out_chunks": settings.fan_out.chunks,
+                                                    "fan_out_from_lots": settings.fan_out.from_lots})}
 
 
 def write_settings(root: Path, settings: dict) -> None:
