@@ -27,6 +27,7 @@ from pipeline.night.publish import publish as publish_lots
 from pipeline.night.receive import assemble_intake, check_folders_writable
 from pipeline.night.receive import receive as receive_exports
 from pipeline.night.recovery import recover_interrupted
+from pipeline.night.release_modes import with_release_modes
 from pipeline.records.controlled_files import open_controlled_documents
 from pipeline.records.run_lock import run_lock
 from pipeline.records.store import Store
@@ -108,6 +109,7 @@ def _stages(ws: Workspace, store: Store, signer: CertificateSigner, step: dict,
             STAGE_PEAK_MB[name] = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0
 
     catalog, layouts = open_controlled_documents(ws)
+    catalog = with_release_modes(catalog, ws)
     identity = workspace_id(ws.root)
     store.check_workspace(identity, shared=ws.store_shared)  # another workspace's store: refused before any move
     check_folders_writable(ws)

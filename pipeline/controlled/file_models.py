@@ -70,6 +70,10 @@ class SpecificationFile(DocumentHeader):
     a280_extinction_ml_per_mg_per_cm: float | None = Field(None, gt=0)
     trend_defaults: TrendSettings | None = None
     attributes: list[AttributeFile] = Field(min_length=1)
+    release_mode: Literal["approval", "automatic"] | None = Field(
+        None, description="'approval' or 'automatic' (absent: the plant's default)")
+    release_procedure: Text | None = Field(
+        None, description="the name of the plant's procedure allowing release by exception")
 
 
 class MethodHeader(DocumentHeader):

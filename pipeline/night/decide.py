@@ -67,7 +67,8 @@ def earlier_decisions(store: Store, evaluations: list[LotEvaluation]) -> dict[st
     latest = store.previous_decisions([e.lot_id for e in evaluations])
     return {lot: f"revision {stored.revision}: {stored.record.label} (decided by {stored.decided_by})"
             for lot, stored in latest.items()
-            if stored.disposition != Disposition.RELEASED or not stored.decided_by.startswith("lotgate")}
+            if stored.disposition not in (Disposition.RELEASED, Disposition.READY_FOR_RELEASE)
+            or not stored.decided_by.startswith("lotgate")}
 
 
 def decide(evaluations: list[LotEvaluation], catalog: Catalog, charts: dict[ChartKey, ChartState],

@@ -4,9 +4,11 @@ from __future__ import annotations
 
 import difflib
 import os
+import re
 import tempfile
 from dataclasses import dataclass
 from pathlib import Path
+from typing import Literal
 from zoneinfo import ZoneInfo, ZoneInfoNotFoundError, available_timezones
 
 import yaml
@@ -15,6 +17,7 @@ from pydantic import Field, field_validator
 from pipeline.controlled.strict import Strict, Text, checked
 from pipeline.errors import SpecificationError
 from pipeline.records.database import check_url
+from pipeline.vocabulary import ReleaseMode
 
 DEFAULT_TIME_ZONE = "Europe/Berlin"
 
@@ -33,6 +36,12 @@ class Workspace:
     controlled: tuple[tuple[str, Path], ...] = ()
     # True when several workspaces (sites) share one results store on purpose (lot ids then unique across them)
     store_shared: bool = False
+    # Trust and release (see DEVELOPERS.md, "Identities, the register of signers and verification")
+    trust_root: Path | None = None  # the plant's configured root CA: the only anchor signatures chain to
+    signer_register: Path | None = None  # the controlled register of authorised signers (YAML)
+    release_mode: ReleaseMode = ReleaseMode.APPROVAL  # the plant's default; a specification may set its own
+    release_procedure: str | None = None  # the procedure allowing release by exception (automatic mode)
+    reason_pattern: str | None = None  # a reference every person's reason must contain, e.g. CC-[0-9]+
 
     @property
     def inbox(self) -> Path:
@@ -85,6 +94,27 @@ class SigningSettings(Strict):
     signer_name: Text | None = None
 
 
+class TrustSettings(Strict):
+    root_ca: Text = Field(description="the path of the plant's root CA certificate (PEM)")
+
+
+class ReleaseSettings(Strict):
+    default_mode: Literal["approval", "automatic"] = Field("approval", description="'approval' or 'automatic'")
+    procedure: Text | None = Field(None, description="the name of the procedure allowing release by exception")
+    reason_reference_pattern: Text | None = Field(
+        None, description="a regular expression every person's reason must contain, e.g. 'CC-[0-9]{4}'")
+
+    @field_validator("reason_reference_pattern")
+    @classmethod
+    def _a_pattern(cls, pattern: str | None) -> str | None:
+        if pattern is not None:
+            try:
+                re.compile(pattern)
+            except re.error as exc:
+                raise ValueError(f"is not a valid regular expression ({exc})") from exc
+        return pattern
+
+
 class ControlledSettings(Strict):
     specifications: Text | None = Field(None, description="a folder name")
     methods: Text | None = Field(None, description="a folder name")
@@ -102,6 +132,10 @@ class WorkspaceSettings(Strict):
     controlled: ControlledSettings | None = Field(
         None, description="a mapping of specifications, methods, layouts to folders")
     store_shared: bool = Field(False, description="true or false: whether other workspaces (sites) share the store")
+    trust: TrustSettings | None = Field(None, description="a mapping with root_ca: the plant's root CA file")
+    signer_register: Text | None = Field(None, description="the path of the register of authorised signers")
+    release: ReleaseSettings | None = Field(
+        None, description="a mapping with default_mode, procedure and reason_reference_pattern")
 
     @field_validator("time_zone")
     @classmethod
@@ -162,6 +196,11 @@ def open_workspace(root: Path, *, plant_name: str | None = None, signer_name: st
     url = os.environ.get("LOTGATE_DATABASE_URL") or settings.database_url or f"sqlite:///{root / 'lotgate.db'}"
     check_url(url)
     signing = settings.signing or SigningSettings()
+    release = settings.release or ReleaseSettings()
+    demo = (root / "keys" / "use-demo-identity").exists()  # the workspace's own choice, never a document's folder
+    trust_root = _setting_path(root, settings.trust.root_ca if settings.trust else None,
+                               root / "keys" / "root-ca.pem" if demo else None)
+    register = _setting_path(root, settings.signer_register, root / "keys" / "signers.yaml" if demo else None)
     return Workspace(
         root=root,
         plant_name=settings.plant_name or plant_name or "Unnamed plant",
@@ -172,7 +211,19 @@ def open_workspace(root: Path, *, plant_name: str | None = None, signer_name: st
         signer_name=signing.signer_name or signer_name or "QA reviewer",
         controlled=_controlled_folders(root, settings.controlled, root / SETTINGS_FILE),
         store_shared=settings.store_shared,
+        trust_root=trust_root,
+        signer_register=register,
+        release_mode=ReleaseMode(release.default_mode),
+        release_procedure=release.procedure,
+        reason_pattern=release.reason_reference_pattern,
     )
+
+
+def _setting_path(root: Path, value: str | None, demo_default: Path | None) -> Path | None:
+    """A file named in the settings (relative to the workspace), else the demo identity's file."""
+    if value is not None:
+        return (root / Path(value).expanduser()).resolve()
+    return demo_default
 
 
 def write_settings(root: Path, settings: dict) -> None:

@@ -21,7 +21,7 @@ from pipeline.release.lot_evaluation import LotEvaluation
 from pipeline.release.records import Decision, TrendFinding
 from pipeline.release.verdicts import disposition
 from pipeline.science import control_charts as trend
-from pipeline.vocabulary import Disposition, HoldCategory, TrendStatus, Verdict
+from pipeline.vocabulary import Disposition, HoldCategory, ReleaseMode, TrendStatus, Verdict
 
 CHART_TAIL = 30  # points kept for evaluation (≥ 15, the longest rule) and for the plotted chart
 
@@ -251,6 +251,8 @@ def decide_night(evaluations: list[LotEvaluation], specifications: dict[str, Spe
             reasons = (*reasons, f"the lot's earlier decision ({earlier[evaluation.lot_id]}) stands until an "
                                  "authorised person decides (lotgate decide); the nightly job does not release it")
             state = Disposition.HELD
+        if state == Disposition.RELEASED and spec.release_mode != ReleaseMode.AUTOMATIC:
+            state = Disposition.READY_FOR_RELEASE  # release mode 'approval': an authorised person releases
         method_sha = {m.method_id: m.document.sha256 for m in used_methods.values()}
         decision = Decision(
             lot_id=evaluation.lot_id, product=spec.product_code, disposition=state,
@@ -265,7 +267,7 @@ def decide_night(evaluations: list[LotEvaluation], specifications: dict[str, Spe
                 chart = working[(spec.product_code, finding.attribute)]
                 chart_pictures.append(_picture(chart, spec.attribute(finding.attribute), evaluation.lot_id,
                                                pending[finding.attribute], decision.label, finding))
-        released = state == Disposition.RELEASED
+        released = state in (Disposition.RELEASED, Disposition.READY_FOR_RELEASE)  # met every criterion
         if released:
             for code, value in pending.items():
                 key = (spec.product_code, code)

@@ -65,8 +65,8 @@ class Decision:
 
     @property
     def label(self) -> str:
-        if self.disposition == Disposition.RELEASED:
-            return Disposition.RELEASED
+        if self.disposition in (Disposition.RELEASED, Disposition.READY_FOR_RELEASE):
+            return self.disposition
         return f"held: {', '.join(self.hold_categories)}"
 
     def to_dict(self) -> dict[str, Any]:
