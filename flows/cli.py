@@ -181,14 +181,14 @@ def cmd_run(args: argparse.Namespace) -> int:
 def cmd_verify(args: argparse.Namespace) -> int:
     import logging
 
+    from flows.verify_cmd import open_for_verify, verify_certificate_text
     from pipeline.records import ledger
-    from pipeline.records.pdf_verification import verify_pdf
 
     for noisy in ("pyhanko", "pyhanko_certvalidator"):
         logging.getLogger(noisy).setLevel(logging.CRITICAL)
     console = _console()
     failures = missing = 0
-    trust = [Path(p) for p in args.trust] if args.trust else []
+    opened = None
     for name in args.files:
         path = Path(name)
         if not path.exists():
@@ -196,10 +196,8 @@ def cmd_verify(args: argparse.Namespace) -> int:
             missing += 1
             continue
         if path.suffix.lower() == ".pdf":
-            roots = trust or [p for p in (path.resolve().parent.parent / "keys" / "root-ca.pem",) if p.exists()]
-            result = verify_pdf(path, trust_roots=roots or None)
-            ok = result.valid
-            console.print(f"{'VALID' if ok else 'INVALID'} {name}: {result.summary}")
+            opened = opened or open_for_verify(args.workspace)
+            ok = verify_certificate_text(path, opened, console)
         elif path.suffix.lower() == ".jsonl":
             from flows.records_cmd import verify_trail_text
 
@@ -240,18 +238,25 @@ def build_parser() -> argparse.ArgumentParser:
     run.add_argument("--no-orchestration", action="store_true",
                      help="call the stages as plain functions instead of a Prefect flow (same results)")
     run.set_defaults(func=cmd_run)
-    verify = sub.add_parser("verify", help="check certificates' signatures or the decision log's chain",
-                            description="Check each FILE: a certificate PDF (signature intact and covering the whole "
-                                        "file) or a decision log .jsonl (hash chain). Exit 0 when all are valid, 1 when "
-                                        "one is not, 4 when a file does not exist.")
+    verify = sub.add_parser("verify", help="check certificates (signatures, signers, record) or the decision log's chain",
+                            description="Check each FILE: a certificate PDF against the workspace that issued it "
+                                        "(each signature intact, chained to the workspace's configured trust anchor, "
+                                        "key usage, validity at signing time, signer the system or a person authorised "
+                                        "in the register, nothing added after the last signature but signatures, and "
+                                        "the record: lot, revision, SHA-256 and the lot's current status), or a "
+                                        "decision log .jsonl (hash chain). Exit 0 when all hold, 1 when one does not, "
+                                        "4 when a file does not exist.")
     verify.add_argument("files", nargs="+", metavar="FILE")
-    verify.add_argument("--trust", action="append", metavar="PEM",
-                        help="a root CA certificate to trust (default: the workspace's keys/root-ca.pem when found)")
+    verify.add_argument("--workspace", metavar="DIR",
+                        help="the workspace that issued the certificates (required for a PDF): its configured trust "
+                             "anchor, register of signers and store are used, never files found beside a document")
     verify.set_defaults(func=cmd_verify)
     from flows import records_cmd
 
     records_cmd.add_commands(sub)
-    from flows import bench, trend_cmd
+    from flows import approve_cmd, bench, trend_cmd
+
+    approve_cmd.add_commands(sub)
 
     trend_cmd.add_commands(sub)
     bench.add_commands(sub)

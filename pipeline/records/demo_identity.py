@@ -56,7 +56,7 @@ def _name(common_name: str, organisation: str, unit: str | None = None) -> x509.
 
 def system_common_name(plant_name: str) -> str:
     """The system identity's printed name: the lotgate installation of the plant, never a person."""
-    return f"lotgate system \u2014 {plant_name} (DEMO)"
+    return f"lotgate system \u2014 {plant_name}" + ("" if "demo" in plant_name.lower() else " (DEMO)")
 
 
 def _key_usage(*, signer: bool) -> x509.KeyUsage:
