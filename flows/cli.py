@@ -124,7 +124,7 @@ def print_summary(summary, console=None) -> None:
     table.add_column("Disposition", no_wrap=True)
     table.add_column("Reasons")
     for outcome in summary.outcomes:
-        style = "green" if outcome.label == Disposition.RELEASED else "yellow"
+        style = "green" if outcome.label in (Disposition.RELEASED, Disposition.READY_FOR_RELEASE) else "yellow"
         reasons = "\n".join(outcome.reasons[:4]) + (f"\n… and {len(outcome.reasons) - 4} more" if len(outcome.reasons) > 4 else "")
         label = outcome.label if outcome.new else f"{outcome.label} (unchanged, decided earlier)"
         table.add_row(outcome.lot_id, outcome.product, str(outcome.revision), f"[{style}]{label}[/]", reasons)
@@ -133,9 +133,10 @@ def print_summary(summary, console=None) -> None:
     else:
         console.print("No lot to decide tonight.")
     released = sum(o.label == Disposition.RELEASED and o.new for o in summary.outcomes)
-    held = sum(o.label != Disposition.RELEASED and o.new for o in summary.outcomes)
+    ready = sum(o.label == Disposition.READY_FOR_RELEASE and o.new for o in summary.outcomes)
+    held = sum(o.label not in (Disposition.RELEASED, Disposition.READY_FOR_RELEASE) and o.new for o in summary.outcomes)
     console.print(f"Files received {summary.received} = archived {summary.archived} + quarantined {summary.quarantined}.  "
-                  f"Lots decided {released + held}: released {released}, held {held}; "
+                  f"Lots decided {released + ready + held}: released {released}, ready for release {ready}, held {held}; "
                   f"unchanged {sum(not o.new for o in summary.outcomes)}.")
     for name, reason in summary.quarantine_reasons:
         first = [line for line in reason.splitlines() if line.startswith("- ")][:2]
@@ -154,7 +155,9 @@ def cmd_demo(args: argparse.Namespace) -> int:
     console = _console()
     if not (root / "workspace.yaml").exists():
         write_settings(root, {"plant_name": demo.PLANT_NAME, "time_zone": demo.PLANT_TIME_ZONE,
-                              "signing": {"signer_name": demo.DEMO_SIGNER}})
+                              "signing": {"signer_name": demo.DEMO_SIGNER},
+                              "trust": {"root_ca": "keys/root-ca.pem"}, "signer_register": "keys/signers.yaml",
+                              "release": {"default_mode": "approval"}})
     (root / "keys").mkdir(parents=True, exist_ok=True)
     (root / "keys" / "use-demo-identity").touch()
     (root / "inbox").mkdir(parents=True, exist_ok=True)
@@ -166,9 +169,36 @@ def cmd_demo(args: argparse.Namespace) -> int:
         console.rule(f"Night of {night_data.assay_date:%Y-%m-%d}: {len(night_data.files)} exports")
         summary = _run_night(root)
         print_summary(summary, console)
+    _demo_approvals(root, console)
     console.print(f"\nOutputs in {root}: certificates/, reports/, lims/, decisions.jsonl, archive/, quarantine/.")
-    console.print("Check a certificate:  lotgate verify " + str(root / "certificates" / "<file>.pdf"))
+    console.print(f"Check a certificate:  lotgate verify --workspace {root} {root / 'certificates' / '<file>.pdf'}")
     return 0
+
+
+DEMO_APPROVER = "mira.castellan"
+DEMO_APPROVAL_REASON = "DEMO approval: results, assay validity and the prepared certificate reviewed"
+
+
+def _demo_approvals(root: Path, console) -> None:
+    """The demo reviewer (in the demo register) approves every lot left ready for release by the nights."""
+    from pipeline.night.approval import approve_lots, lots_ready
+    from pipeline.night.open import open_records
+    from pipeline.records import signing
+    from pipeline.records.demo_trust import create_demo_trust
+    from pipeline.records.run_lock import run_lock
+
+    ws, store = open_records(root)
+    p12, passphrase = create_demo_trust(ws.keys, ws.plant_name).identity_of(DEMO_APPROVER)
+    identity = signing.load_identity(p12, passphrase_env="", passphrase_file=passphrase)
+    with run_lock(ws.root, store):
+        lots = lots_ready(store)
+        done = approve_lots(ws, store, lots, identity=identity, reason=DEMO_APPROVAL_REASON) if lots else []
+    console.rule(f"Approval by {identity.signer_name} (demo reviewer, in the demo register of authorised signers)")
+    if not done:
+        console.print("No lot is waiting for approval.")
+    for approved in done:
+        console.print(f"Approved {approved.lot_id}: revision {approved.revision}, released; "
+                      f"{approved.certificate} carries the system's and {approved.approved_by}'s signatures")
 
 
 def cmd_run(args: argparse.Namespace) -> int:

@@ -42,11 +42,11 @@ class Approved:
 
 
 def lots_ready(store: Store, *, night_id: int | None = None, lots: tuple[str, ...] = ()) -> list[str]:
-    """The lots whose current revision is ready for release: the named ones, or those of one night."""
+    """The lots to approve: the named ones, else those ready for release of one night (of every night: None)."""
     if lots:
         return list(dict.fromkeys(lots))
     current = [d for d in store.decisions() if d.superseded_by is None
-               and d.disposition == Disposition.READY_FOR_RELEASE and d.record.night_id == night_id]
+               and d.disposition == Disposition.READY_FOR_RELEASE and night_id in (None, d.record.night_id)]
     return [d.lot_id for d in current]
 
 

@@ -38,7 +38,11 @@ from pipeline.release.change_note import change_note
 from pipeline.release.decision import ChartKey, FrozenLimits, LotDecision, NightDecisions
 from pipeline.release.dossier import build_dossier
 from pipeline.release.records import DecisionRecord
-from pipeline.release.signature import signature_block, system_automatic_meaning, system_ready_meaning
+from pipeline.release.signature import (
+    signature_block,
+    system_automatic_meaning,
+    system_ready_meaning,
+)
 from pipeline.vocabulary import Disposition
 
 WINDOW_LOTS = 64          # lots rendered per round: bounds memory whatever the night's size

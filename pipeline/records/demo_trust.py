@@ -135,3 +135,16 @@ def create_demo_trust(keys: Path, plant_name: str, reviewers: tuple[DemoReviewer
                                  sort_keys=False, allow_unicode=True))
         _write_private(register, text.encode("utf-8"), 0o644)
     return DemoTrust(keys, keys / ROOT_CA_NAME, keys / P12_NAME, keys / PASSPHRASE_NAME, register, tuple(people))
+
+
+def issue_person(keys: Path, folder: Path, plant_name: str, printed_name: str,
+                 *, now: dt.datetime | None = None) -> tuple[Path, Path]:
+    """One more demo person's identity in ``folder``, issued by the workspace's demo CA (created when missing)."""
+    if (Path(folder) / P12_NAME).exists():
+        raise SigningError(f"{folder} already holds an identity ({P12_NAME}); it is never overwritten")
+    trust = create_demo_trust(keys, plant_name, now=now)
+    ca = _load_ca(trust.keys, plant_name)
+    start = (now or dt.datetime.now(dt.UTC)).replace(microsecond=0)
+    p12, passphrase, _ = issue_demo_signer(ca, Path(folder), f"{printed_name} (DEMO)", start,
+                                           start + dt.timedelta(days=VALID_DAYS))
+    return p12, passphrase

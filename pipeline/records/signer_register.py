@@ -17,7 +17,7 @@ import yaml
 from sqlalchemy import select
 
 from pipeline.controlled.signer_register import SignerRegister, parse_register
-from pipeline.errors import SpecificationError, SigningError
+from pipeline.errors import SigningError, SpecificationError
 from pipeline.records import audit
 from pipeline.records.store import Store
 from pipeline.records.tables import AuditEvent
