@@ -44,6 +44,9 @@ def rebaseline(ws: Workspace, store: Store, product: str, attribute: Attribute, 
     The audit event carries the person's signature over the new limits and the reason.
     """
     reason = checked_reason(reason, ws.reason_pattern)
+    register, register_events = register_in_force(ws, store)
+    check = authorise_person(identity, SignerRole.REBASELINE, anchor_path=ws.trust_root, register=register)
+    by = identity.signer_name
     count = attribute.baseline_n if count is None else count
     if count < 2:
         raise InputError(f"--count must be at least 2 lots (one moving range), received {count}")
@@ -60,9 +63,6 @@ def rebaseline(ws: Workspace, store: Store, product: str, attribute: Attribute, 
         else:
             points = released_points(store, product, attribute.code, tail=count)
         proposal = propose_limits(select_baseline(points, from_lot, count))
-        register, register_events = register_in_force(ws, store)
-        check = authorise_person(identity, SignerRole.REBASELINE, anchor_path=ws.trust_root, register=register)
-        by = identity.signer_name
         before = active_limits(store, product, attribute.code)
         lim = proposal.limits
         act = {"product": product, "attribute": attribute.code, "center": lim.center, "sigma": lim.sigma,

@@ -74,6 +74,8 @@ def _trust_words(status: PdfSignatureStatus) -> str:
     problem = status.trust_problem_indic
     words = {"NO_CERTIFICATE_CHAIN_FOUND": "does not chain to the plant's configured trust anchor",
              "EXPIRED": "the signer's certificate had expired at the signing time",
+             "OUT_OF_BOUNDS_NO_POE": "the signer's certificate was outside its validity period at the signing time "
+                                     "(expired or not yet valid)",
              "NOT_YET_VALID": "the signer's certificate was not yet valid at the signing time",
              "CHAIN_CONSTRAINTS_FAILURE": "the certificate path breaks a constraint (key usage or CA limits)",
              "REVOKED_NO_POE": "the signer's certificate is revoked",
