@@ -63,7 +63,7 @@ def _check(dossier: dict[str, Any], signature: dict[str, Any]) -> None:
     disposition = get(decision, "disposition")
     lot = clean(get(get(dossier, "lot", {}), "lot_id", "?"), 60)
     if disposition not in (Disposition.RELEASED, Disposition.READY_FOR_RELEASE):
-        raise InputError(f"lot {lot}: a certificate of analysis is issued only for a lot released or ready for release; "
+        raise InputError(f"lot {lot}: a certificate of analysis is issued only for a released lot or one ready for release; "
                          f"this lot's disposition is {clean(disposition, 60)!r}")
     if not isinstance(signature, dict):
         raise InputError(f"lot {lot}: the signature data must be a mapping with {', '.join(SIGNATURE_KEYS)}")

@@ -14,13 +14,11 @@ import json
 from pathlib import Path
 
 import yaml
-from sqlalchemy import select
 
 from pipeline.controlled.signer_register import SignerRegister, parse_register
 from pipeline.errors import SigningError, SpecificationError
 from pipeline.records import audit
 from pipeline.records.store import Store
-from pipeline.records.tables import AuditEvent
 from pipeline.records.workspace import Workspace
 
 REGISTER_EVENT = "signer-register-in-force"
@@ -47,11 +45,7 @@ def read_register(path: Path | None, root: Path | None = None) -> SignerRegister
 
 
 def _recorded(store: Store, sha256: str) -> bool:
-    with store.session() as s:
-        for body in s.scalars(select(AuditEvent.body).where(AuditEvent.kind == REGISTER_EVENT)):
-            if json.loads(body).get("register_sha256") == sha256:
-                return True
-    return False
+    return any(json.loads(body).get("register_sha256") == sha256 for body in store.event_bodies(REGISTER_EVENT))
 
 
 def register_event(ws: Workspace, register: SignerRegister) -> dict:
