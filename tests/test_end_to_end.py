@@ -47,7 +47,9 @@ def test_every_lot_gets_the_intended_disposition(demo_workspace):
     root, nights, summaries = demo_workspace
     for night, summary in zip(nights, summaries):
         got = {o.lot_id: o.label for o in summary.outcomes}
-        assert got == {lot.lot_id: lot.intended for lot in night.lots}
+        # Release mode 'approval' (the default): a lot meeting every criterion waits for a person.
+        assert got == {lot.lot_id: "ready for release" if lot.intended == "released" else lot.intended
+                       for lot in night.lots}
     last = {o.lot_id: o for o in summaries[-1].outcomes}
     assert "Nelson rule 1" in last["LLC-2611-027"].reasons[0]
     assert any("recovered 81.7 %" in r for r in last["LLC-2611-029"].reasons)
@@ -68,13 +70,17 @@ def test_files_are_accounted_for_and_the_malformed_export_is_quarantined(demo_wo
 def test_every_certificate_verifies_and_a_flipped_byte_fails(demo_workspace, tmp_path):
     root, nights, summaries = demo_workspace
     certificates = sorted((root / "certificates").glob("*.pdf"))
-    released = sum(o.label == "released" for s in summaries for o in s.outcomes)
-    assert len(certificates) == released == 52 - 8
+    ready = sum(o.label == "ready for release" for s in summaries for o in s.outcomes)
+    assert len(certificates) == ready == 52 - 8
     trust = [root / "keys" / "root-ca.pem"]
+    from pypdf import PdfReader
     for path in certificates[:5] + certificates[-3:]:
         result = verify_pdf(path, trust_roots=trust)
         assert result.valid and result.trusted, result.summary
-        assert result.signer_name.startswith(demo.DEMO_SIGNER)
+        # The night's certificate is the system's, with a truthful meaning; no person's name signs it.
+        assert result.signer_name.startswith("lotgate system") and "NOT released until approved" in result.reason
+        text = " ".join(" ".join(page.extract_text() for page in PdfReader(path).pages).split())
+        assert demo.DEMO_SIGNER not in text
     damaged = tmp_path / "damaged.pdf"
     data = bytearray(certificates[0].read_bytes())
     data[len(data) // 3] ^= 0x01
@@ -131,7 +137,7 @@ def test_revision_chain_original_reassay_and_a_persons_release(demo_workspace, t
     from flows import records_cmd
     from pipeline.night.person_decision import decide_lot
     from pipeline.records import signing
-    from pipeline.records.demo_identity import create_demo_identity
+    from pipeline.records.demo_trust import create_demo_trust
 
     root, nights, _ = demo_workspace
     lot = "LLC-2611-030"
@@ -143,8 +149,9 @@ def test_revision_chain_original_reassay_and_a_persons_release(demo_workspace, t
     # The re-assay's numbers are valid: the only reason left is the earlier hold awaiting a person.
     assert len(outcome.reasons) == 1 and outcome.reasons[0].startswith("the lot's earlier decision")
 
-    person = create_demo_identity(tmp_path / "person", demo.PLANT_NAME, "Jonas Brandt")
-    identity = signing.load_identity(person.p12_path, passphrase_file=person.passphrase_path)
+    trust = create_demo_trust(root / "keys", demo.PLANT_NAME)  # Jonas Brandt: in the demo register
+    p12, passphrase = trust.identity_of("jonas.brandt")
+    identity = signing.load_identity(p12, passphrase_file=passphrase)
     ws = open_workspace(root)
     store = Store(ws.database_url)
     result = decide_lot(ws, store, lot, release=True, reason="re-assay valid; plate failure investigated",
@@ -163,7 +170,7 @@ def test_revision_chain_original_reassay_and_a_persons_release(demo_workspace, t
     record["reasons"] = ["edited"]
     assert not signing.verify_record(signature, ledger.canonical_json(record).encode())
     # The re-issued certificate carries the person's signature, name and meaning.
-    verification = verify_pdf(root / result.certificate, trust_roots=[person.root_ca_path])
+    verification = verify_pdf(root / result.certificate, trust_roots=[trust.root_ca])
     assert verification.valid and verification.trusted
     assert verification.signer_name == "Jonas Brandt (DEMO)"
     from pypdf import PdfReader
@@ -204,3 +211,27 @@ def test_lims_results_files_agree_with_each_other_and_their_manifest(demo_worksp
             assert hashlib.sha256((root / "lims" / name).read_bytes()).hexdigest() == digest
     store = Store(open_workspace(root).database_url)
     assert decided == len(store.decisions()) - len(store.unexported_decision_ids())  # each exported once
+
+
+def test_approve_a_night_then_verify_both_signatures(demo_workspace, capsys):
+    """Night → ready for release → lotgate approve --night N → two signatures valid in verify (and pdfsig)."""
+    from flows import cli
+    from pipeline.records.demo_trust import create_demo_trust
+
+    root, _, summaries = demo_workspace
+    p12, passphrase = create_demo_trust(root / "keys", demo.PLANT_NAME).identity_of("mira.castellan")
+    night = summaries[0].night_id
+    ready = [o.lot_id for o in summaries[0].outcomes if o.label == "ready for release"]
+    assert cli.main(["approve", "--night", str(night), "--workspace", str(root), "--identity", str(p12),
+                     "--passphrase-file", str(passphrase), "--reason", "night reviewed: results and assays valid"]) == 0
+    approved = sorted((root / "certificates").glob("*_r2_certificate.pdf"))
+    assert {p.name.split("_r2_")[0] for p in approved} >= set(ready) and ready
+    capsys.readouterr()
+    assert cli.main(["verify", "--workspace", str(root), *map(str, approved[:3])]) == 0
+    out = capsys.readouterr().out
+    assert out.count("VALID") == 3 and "Mira Castellan (DEMO) holds 'release approval'" in out
+    prepared = root / "certificates" / f"{ready[0]}_r1_certificate.pdf"
+    assert cli.main(["verify", "--workspace", str(root), str(prepared)]) == 1  # superseded by the approval
+    if shutil.which("pdfsig"):
+        ok, text = pdfsig_report(approved[0])
+        assert ok and text.count("Signature is Valid.") == 2, text

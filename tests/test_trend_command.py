@@ -234,7 +234,9 @@ def test_rebaseline_is_stored_and_logged_with_who_and_why(tmp_path, capsys):
     assert last["kind"] == "limits-rebaselined"
     assert (last["by"], last["reason"], last["version"], last["previous_version"]) == (MIRA, reason, 2, 1)
     assert last["person"] == "mira.castellan" and last["role"] == "re-baseline"
-    from pipeline.records.signing import verify_record  # the person's signature over the act (21 CFR 11.70)
+    from pipeline.records.signing import (
+        verify_record,  # the person's signature over the act (21 CFR 11.70)
+    )
     act = {k: last[k] for k in ("product", "attribute", "center", "sigma", "mr_bar", "baseline_lots", "by", "reason")}
     assert verify_record(last["person_signature"], ledger.canonical_json(act).encode())
     assert not verify_record(last["person_signature"], ledger.canonical_json({**act, "sigma": 1.85}).encode())
