@@ -96,8 +96,7 @@ def approve_lot(ws: Workspace, store: Store, lot_id: str, *, identity: SigningId
         earlier_decision=EarlierDecision(latest.revision, base.label, base.reasons), revision=revision,
         decided_at_utc=signed_at.isoformat(), decided_by=identity.signer_name, meaning=PERSON_APPROVAL_MEANING,
         certificate=certificate, person_signature=None,
-        fingerprint=hashlib.sha256(f"{base.fingerprint}|approved|{identity.fingerprint_sha256}|"
-                                   f"{signed_at.isoformat()}".encode()).hexdigest())
+        fingerprint=hashlib.sha256(f"{base.fingerprint}|approved as revision {revision}".encode()).hexdigest())
     signed = ledger.canonical_json(record.to_json()).encode("utf-8")
     record = dataclasses.replace(record, person_signature=sign_record(identity, signed).to_dict())
     events = [*register_events,

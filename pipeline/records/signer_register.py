@@ -50,7 +50,9 @@ def _recorded(store: Store, sha256: str) -> bool:
 
 def register_event(ws: Workspace, register: SignerRegister) -> dict:
     """The audit event saying this register is in force (to be chained with the act that first uses it)."""
-    return audit.event(REGISTER_EVENT, time_zone=ws.time_zone, register_file=register.source,
+    source = Path(register.source)
+    shown = str(source.relative_to(ws.root)) if source.is_relative_to(ws.root) else str(source)
+    return audit.event(REGISTER_EVENT, time_zone=ws.time_zone, register_file=shown,
                        register_version=register.version, register_sha256=register.sha256,
                        approved_by=register.approved_by,
                        signers=[{"person": e.person, "printed_name": e.printed_name,
