@@ -18,7 +18,11 @@ from pipeline.errors import InputError, SpecificationError
 from pipeline.night.release_modes import with_release_modes
 from pipeline.records.workspace import open_workspace, write_settings
 from pipeline.release.decision import decide_night
-from pipeline.release.signature import checked_reason, system_automatic_meaning, system_ready_meaning
+from pipeline.release.signature import (
+    checked_reason,
+    system_automatic_meaning,
+    system_ready_meaning,
+)
 from pipeline.vocabulary import Disposition, ReleaseMode, SignerRole
 from tests import test_drift as drift
 
