@@ -136,13 +136,16 @@ def add_commands(sub: argparse._SubParsersAction) -> None:
 
     decide = sub.add_parser("decide", help="record an authorised person's release or rejection of a lot",
                             description="Record an authorised person's disposition of a lot as a new revision, signed "
-                                        "with that person's own identity (PKCS#12 and its passphrase). A release "
-                                        "re-issues the certificate under that signature.")
+                                        "with that person's own identity (PKCS#12 and its passphrase), who must hold "
+                                        "the role 'release approval' (or 'rejection') in the register of authorised "
+                                        "signers at that moment. A release re-issues the certificate under that "
+                                        "signature. Nothing is written when a check fails.")
     decide.add_argument("lot", metavar="LOT")
     choice = decide.add_mutually_exclusive_group(required=True)
     choice.add_argument("--release", action="store_true", help="release the lot")
     choice.add_argument("--reject", action="store_true", help="reject the lot")
-    decide.add_argument("--reason", required=True, metavar="TEXT", help="what was reviewed and why")
+    decide.add_argument("--reason", required=True, metavar="TEXT",
+                        help="what was reviewed and why (at least two words; the plant's reference when it sets a pattern)")
     decide.add_argument("--identity", required=True, metavar="P12", help="your PKCS#12 signing identity")
     decide.add_argument("--passphrase-file", metavar="FILE",
                         help="file (mode 0600) holding the passphrase; else LOTGATE_SIGNING_PASSPHRASE or a prompt")
