@@ -125,7 +125,7 @@ def print_summary(summary, console=None) -> None:
     table.add_column("Disposition", no_wrap=True)
     table.add_column("Reasons")
     for outcome in summary.outcomes:
-        style = "green" if outcome.label == Disposition.RELEASED else "yellow"
+        style = "green" if outcome.label in (Disposition.RELEASED, Disposition.READY_FOR_RELEASE) else "yellow"
         reasons = "\n".join(outcome.reasons[:4]) + (f"\n… and {len(outcome.reasons) - 4} more" if len(outcome.reasons) > 4 else "")
         label = outcome.label if outcome.new else f"{outcome.label} (unchanged, decided earlier)"
         table.add_row(outcome.lot_id, outcome.product, str(outcome.revision), f"[{style}]{label}[/]", reasons)
@@ -134,10 +134,13 @@ def print_summary(summary, console=None) -> None:
     else:
         console.print("No lot to decide tonight.")
     released = sum(o.label == Disposition.RELEASED and o.new for o in summary.outcomes)
+    ready = sum(o.label == Disposition.READY_FOR_RELEASE and o.new for o in summary.outcomes)
     pending = sum(o.label == Disposition.PENDING and o.new for o in summary.outcomes)
-    held = sum(o.label not in (Disposition.RELEASED, Disposition.PENDING) and o.new for o in summary.outcomes)
+    held = sum(o.label not in (Disposition.RELEASED, Disposition.READY_FOR_RELEASE, Disposition.PENDING) and o.new
+               for o in summary.outcomes)
     console.print(f"Files received {summary.received} = archived {summary.archived} + quarantined {summary.quarantined}.  "
-                  f"Lots decided {released + pending + held}: released {released}, pending {pending}, held {held}; "
+                  f"Lots decided {released + ready + pending + held}: released {released}, ready for release {ready}, "
+                  f"pending {pending}, held {held}; "
                   f"unchanged {sum(not o.new for o in summary.outcomes)}.")
     for name, reason in summary.quarantine_reasons:
         first = [line for line in reason.splitlines() if line.startswith("- ")][:2]
@@ -156,7 +159,9 @@ def cmd_demo(args: argparse.Namespace) -> int:
     console = _console()
     if not (root / "workspace.yaml").exists():
         write_settings(root, {"plant_name": demo.PLANT_NAME, "time_zone": demo.PLANT_TIME_ZONE,
-                              "signing": {"signer_name": demo.DEMO_SIGNER}})
+                              "signing": {"signer_name": demo.DEMO_SIGNER},
+                              "trust": {"root_ca": "keys/root-ca.pem"}, "signer_register": "keys/signers.yaml",
+                              "release": {"default_mode": "approval"}})
     (root / "keys").mkdir(parents=True, exist_ok=True)
     (root / "keys" / "use-demo-identity").touch()
     (root / "inbox").mkdir(parents=True, exist_ok=True)
@@ -172,9 +177,36 @@ def cmd_demo(args: argparse.Namespace) -> int:
             from flows.investigate_cmd import demo_investigations
 
             demo_investigations(root, night_data.investigations, console)
+    _demo_approvals(root, console)
     console.print(f"\nOutputs in {root}: certificates/, reports/, lims/, decisions.jsonl, archive/, quarantine/.")
-    console.print("Check a certificate:  lotgate verify " + str(root / "certificates" / "<file>.pdf"))
+    console.print(f"Check a certificate:  lotgate verify --workspace {root} {root / 'certificates' / '<file>.pdf'}")
     return 0
+
+
+DEMO_APPROVER = "mira.castellan"
+DEMO_APPROVAL_REASON = "DEMO approval: results, assay validity and the prepared certificate reviewed"
+
+
+def _demo_approvals(root: Path, console) -> None:
+    """The demo reviewer (in the demo register) approves every lot left ready for release by the nights."""
+    from pipeline.night.approval import approve_lots, lots_ready
+    from pipeline.night.open import open_records
+    from pipeline.records import signing
+    from pipeline.records.demo_trust import create_demo_trust
+    from pipeline.records.run_lock import run_lock
+
+    ws, store = open_records(root)
+    p12, passphrase = create_demo_trust(ws.keys, ws.plant_name).identity_of(DEMO_APPROVER)
+    identity = signing.load_identity(p12, passphrase_env="", passphrase_file=passphrase)
+    with run_lock(ws.root, store):
+        lots = lots_ready(store)
+        done = approve_lots(ws, store, lots, identity=identity, reason=DEMO_APPROVAL_REASON) if lots else []
+    console.rule(f"Approval by {identity.signer_name} (demo reviewer, in the demo register of authorised signers)")
+    if not done:
+        console.print("No lot is waiting for approval.")
+    for approved in done:
+        console.print(f"Approved {approved.lot_id}: revision {approved.revision}, released; "
+                      f"{approved.certificate} carries the system's and {approved.approved_by}'s signatures")
 
 
 def cmd_run(args: argparse.Namespace) -> int:
@@ -187,14 +219,14 @@ def cmd_run(args: argparse.Namespace) -> int:
 def cmd_verify(args: argparse.Namespace) -> int:
     import logging
 
+    from flows.verify_cmd import open_for_verify, verify_certificate_text
     from pipeline.records import ledger
-    from pipeline.records.pdf_verification import verify_pdf
 
     for noisy in ("pyhanko", "pyhanko_certvalidator"):
         logging.getLogger(noisy).setLevel(logging.CRITICAL)
     console = _console()
     failures = missing = 0
-    trust = [Path(p) for p in args.trust] if args.trust else []
+    opened = None
     for name in args.files:
         path = Path(name)
         if not path.exists():
@@ -202,10 +234,8 @@ def cmd_verify(args: argparse.Namespace) -> int:
             missing += 1
             continue
         if path.suffix.lower() == ".pdf":
-            roots = trust or [p for p in (path.resolve().parent.parent / "keys" / "root-ca.pem",) if p.exists()]
-            result = verify_pdf(path, trust_roots=roots or None)
-            ok = result.valid
-            console.print(f"{'VALID' if ok else 'INVALID'} {name}: {result.summary}")
+            opened = opened or open_for_verify(args.workspace)
+            ok = verify_certificate_text(path, opened, console)
         elif path.suffix.lower() == ".jsonl":
             from flows.records_cmd import verify_trail_text
 
@@ -246,18 +276,25 @@ def build_parser() -> argparse.ArgumentParser:
     run.add_argument("--no-orchestration", action="store_true",
                      help="call the stages as plain functions instead of a Prefect flow (same results)")
     run.set_defaults(func=cmd_run)
-    verify = sub.add_parser("verify", help="check certificates' signatures or the decision log's chain",
-                            description="Check each FILE: a certificate PDF (signature intact and covering the whole "
-                                        "file) or a decision log .jsonl (hash chain). Exit 0 when all are valid, 1 when "
-                                        "one is not, 4 when a file does not exist.")
+    verify = sub.add_parser("verify", help="check certificates (signatures, signers, record) or the decision log's chain",
+                            description="Check each FILE: a certificate PDF against the workspace that issued it "
+                                        "(each signature intact, chained to the workspace's configured trust anchor, "
+                                        "key usage, validity at signing time, signer the system or a person authorised "
+                                        "in the register, nothing added after the last signature but signatures, and "
+                                        "the record: lot, revision, SHA-256 and the lot's current status), or a "
+                                        "decision log .jsonl (hash chain). Exit 0 when all hold, 1 when one does not, "
+                                        "4 when a file does not exist.")
     verify.add_argument("files", nargs="+", metavar="FILE")
-    verify.add_argument("--trust", action="append", metavar="PEM",
-                        help="a root CA certificate to trust (default: the workspace's keys/root-ca.pem when found)")
+    verify.add_argument("--workspace", metavar="DIR",
+                        help="the workspace that issued the certificates (required for a PDF): its configured trust "
+                             "anchor, register of signers and store are used, never files found beside a document")
     verify.set_defaults(func=cmd_verify)
     from flows import records_cmd
 
     records_cmd.add_commands(sub)
-    from flows import bench, investigate_cmd, trend_cmd
+    from flows import approve_cmd, bench, investigate_cmd, trend_cmd
+
+    approve_cmd.add_commands(sub)
 
     trend_cmd.add_commands(sub)
     investigate_cmd.add_commands(sub)

@@ -53,14 +53,17 @@ def add_commands(sub: argparse._SubParsersAction) -> None:
 
 
 def demo_investigations(root: Path, investigations: tuple, console) -> None:
-    """The demo's investigation outcomes, recorded with the workspace's DEMO identity (never for real use)."""
+    """The demo's investigation outcomes, recorded by the DEMO reviewer of the demo register (never for real use)."""
     from pipeline.errors import InputError
     from pipeline.night.investigation import record_investigation
-    from pipeline.night.open import open_records, signer_for
+    from pipeline.night.open import open_records
+    from pipeline.records import signing
+    from pipeline.records.demo_trust import DEMO_REVIEWERS, create_demo_trust
     from pipeline.records.run_lock import run_lock
 
     ws, store = open_records(root)
-    identity = signer_for(ws).identity
+    p12, passphrase = create_demo_trust(ws.keys, ws.plant_name).identity_of(DEMO_REVIEWERS[0].person)
+    identity = signing.load_identity(p12, passphrase_env="", passphrase_file=passphrase)
     for inv in investigations:
         try:
             with run_lock(ws.root, store):

@@ -28,6 +28,7 @@ from pipeline.night.night_notice import Told, night_facts, tell
 from pipeline.night.open import CertificateSigner, open_night
 from pipeline.night.read_formats import set_aside_undeclared_formats
 from pipeline.night.receive import assemble_intake, check_folders_writable
+from pipeline.night.release_modes import with_release_modes
 from pipeline.night.retryable import (
     close_unless_recorded,
     open_night_records,
@@ -134,6 +135,7 @@ def _stages(ws: Workspace, store: Store, signer: CertificateSigner, step: dict,
             STAGE_PEAK_MB[name] = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0
 
     catalog, layouts = open_controlled_documents(ws)
+    catalog = with_release_modes(catalog, ws)
     identity = workspace_id(ws.root)
     store.check_workspace(identity, shared=ws.store_shared)  # another workspace's store: refused before any move
     check_folders_writable(ws)

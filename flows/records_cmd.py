@@ -21,23 +21,32 @@ def _console() -> Console:
 
 def cmd_keys_demo(args: argparse.Namespace) -> int:
     from pipeline.records import signing
-    from pipeline.records.demo_identity import create_demo_identity
+    from pipeline.records.demo_trust import create_demo_trust, issue_person
     from pipeline.records.workspace import open_workspace
 
     ws = open_workspace(Path(args.workspace).expanduser())
-    folder = Path(args.out).expanduser() if args.out else ws.keys
-    name = args.name or ws.signer_name
-    identity = create_demo_identity(folder, ws.plant_name, name)
-    if not args.out:
-        (ws.keys / "use-demo-identity").touch()
-    loaded = signing.load_identity(identity.p12_path, passphrase=identity.passphrase_path.read_bytes().strip())
     console = _console()
-    console.print(f"Demo signing identity of {loaded.signer_name} (marked DEMO, for trying the tool only):")
-    console.print(f"  PKCS#12      {identity.p12_path} (mode 0600)")
-    console.print(f"  passphrase   {identity.passphrase_path} (mode 0600)")
-    console.print(f"  root CA      {identity.root_ca_path}")
-    console.print(f"  valid        {loaded.not_before:%Y-%m-%d} to {loaded.not_after:%Y-%m-%d}")
-    console.print(f"  fingerprint  {loaded.fingerprint_sha256}")
+    if args.out:
+        folder = Path(args.out).expanduser()
+        p12, passphrase = issue_person(ws.keys, folder, ws.plant_name, args.name or ws.signer_name)
+        loaded = signing.load_identity(p12, passphrase_env="", passphrase_file=passphrase)
+        console.print(f"Demo identity of {loaded.signer_name} (marked DEMO, for trying the tool only), issued by the "
+                      f"workspace's demo CA: {p12} (mode 0600), passphrase {passphrase} (mode 0600)")
+        console.print(f"  fingerprint  {loaded.fingerprint_sha256}")
+        console.print("  Not yet authorised: add this fingerprint and the person's roles to the register of "
+                      "authorised signers (a new version of that controlled file).")
+        return 0
+    trust = create_demo_trust(ws.keys, ws.plant_name)
+    (ws.keys / "use-demo-identity").touch()
+    system = signing.load_identity(trust.system_p12, passphrase_env="", passphrase_file=trust.system_passphrase)
+    console.print("Demo identities (marked DEMO, for trying the tool only; a plant brings its own from its own CA):")
+    console.print(f"  trust anchor     {trust.root_ca}")
+    console.print(f"  system identity  {system.signer_name}: {trust.system_p12} (mode 0600), signs what the system "
+                  "attests, never a person's act")
+    for person, p12, _ in trust.people:
+        console.print(f"  reviewer         {person}: {p12} (mode 0600)")
+    console.print(f"  register         {trust.register} (who may sign what)")
+    console.print(f"  valid            {system.not_before:%Y-%m-%d} to {system.not_after:%Y-%m-%d}")
     return 0
 
 
@@ -109,12 +118,14 @@ def verify_trail_text(log_path: Path) -> tuple[bool, str] | None:
 def add_commands(sub: argparse._SubParsersAction) -> None:
     keys = sub.add_parser("keys", help="signing identities", description="Create or inspect signing identities.")
     keys_sub = keys.add_subparsers(dest="keys_command", required=True, metavar="ACTION")
-    demo = keys_sub.add_parser("demo", help="create a DEMO signing identity (never for real use)",
-                               description="Create a demo plant root CA and a signer certificate issued by it, in a "
-                                           "PKCS#12 file of mode 0600 with its passphrase in a file of mode 0600.")
+    demo = keys_sub.add_parser("demo", help="create DEMO signing identities (never for real use)",
+                               description="Create a demo plant root CA, the installation's system identity, two demo "
+                                           "reviewers and a register of authorised signers naming them (PKCS#12 "
+                                           "files and passphrase files of mode 0600); with --out, one more person's "
+                                           "identity issued by that CA (not in the register until added).")
     demo.add_argument("--workspace", default="./lotgate-demo", metavar="DIR")
-    demo.add_argument("--name", help="the signer's printed name (default: the workspace's signer)")
-    demo.add_argument("--out", metavar="DIR", help="folder for a person's own identity (default DIR/keys, the nightly signer)")
+    demo.add_argument("--name", help="the person's printed name (with --out)")
+    demo.add_argument("--out", metavar="DIR", help="folder for one more person's own identity")
     demo.set_defaults(func=cmd_keys_demo)
 
     history = sub.add_parser("history", help="every revision of a lot's decision, with what changed and why",
@@ -125,13 +136,16 @@ def add_commands(sub: argparse._SubParsersAction) -> None:
 
     decide = sub.add_parser("decide", help="record an authorised person's release or rejection of a lot",
                             description="Record an authorised person's disposition of a lot as a new revision, signed "
-                                        "with that person's own identity (PKCS#12 and its passphrase). A release "
-                                        "re-issues the certificate under that signature.")
+                                        "with that person's own identity (PKCS#12 and its passphrase), who must hold "
+                                        "the role 'release approval' (or 'rejection') in the register of authorised "
+                                        "signers at that moment. A release re-issues the certificate under that "
+                                        "signature. Nothing is written when a check fails.")
     decide.add_argument("lot", metavar="LOT")
     choice = decide.add_mutually_exclusive_group(required=True)
     choice.add_argument("--release", action="store_true", help="release the lot")
     choice.add_argument("--reject", action="store_true", help="reject the lot")
-    decide.add_argument("--reason", required=True, metavar="TEXT", help="what was reviewed and why")
+    decide.add_argument("--reason", required=True, metavar="TEXT",
+                        help="what was reviewed and why (at least two words; the plant's reference when it sets a pattern)")
     decide.add_argument("--identity", required=True, metavar="P12", help="your PKCS#12 signing identity")
     decide.add_argument("--passphrase-file", metavar="FILE",
                         help="file (mode 0600) holding the passphrase; else LOTGATE_SIGNING_PASSPHRASE or a prompt")

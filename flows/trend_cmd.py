@@ -206,13 +206,20 @@ def _side_by_side(old: Any, new: Any, d: int, unit: str) -> str:
 
 def cmd_rebaseline(args: argparse.Namespace) -> int:
     """Compute new limits from chosen released lots, store them as a new version, log it, print both."""
+    from flows.records_cmd import _passphrase
     from pipeline.night.open import open_records
     from pipeline.night.rebaseline import rebaseline
+    from pipeline.records import signing
 
     try:
         _, attribute = _attribute(args.product, args.attribute, args.workspace)
         ws, store = open_records(Path(args.workspace))
-        done = rebaseline(ws, store, args.product, attribute, by=args.by, reason=args.reason,
+        if not args.identity:
+            raise InputError("a re-baseline is signed by the person who decides it: give your PKCS#12 (--identity "
+                             "P12) and its passphrase; a typed name is not accepted")
+        identity = signing.load_identity(Path(args.identity), passphrase=_passphrase(args),
+                                         passphrase_file=Path(args.passphrase_file) if args.passphrase_file else None)
+        done = rebaseline(ws, store, args.product, attribute, identity=identity, reason=args.reason,
                           from_lot=args.from_lot, count=args.count)
     except (LotgateError, OSError) as exc:
         return _refuse("rebaseline", exc)
@@ -253,14 +260,18 @@ def add_commands(subparsers: Any) -> None:
         "rebaseline", help="re-compute a chart's control limits from chosen lots (audited)",
         description="Compute new I-MR limits from N consecutive released lots starting at LOT (default: "
                     "the last N, N = the specification's baseline size), store them as a new version "
-                    "(the old one is kept, inactive) and record who did it and why in the decision log. "
-                    "Refused without a reason and a name.")
+                    "(the old one is kept, inactive) and record who did it and why in the decision log, signed "
+                    "with the person's own identity. Refused without a reason that says something, or when the "
+                    "identity does not hold the role 're-baseline' in the register of authorised signers.")
     rebase.add_argument("product", metavar="PRODUCT", help="product code, e.g. LLC-200")
     rebase.add_argument("attribute", metavar="ATTRIBUTE", help="charted attribute code, e.g. specific_activity")
     rebase.add_argument("--workspace", required=True, metavar="DIR", help="workspace folder holding the store")
     rebase.add_argument("--reason", metavar="TEXT",
                         help="why the limits change, e.g. the change control that moved the process (required)")
-    rebase.add_argument("--by", metavar="NAME", help="the person who decides the re-baseline (required)")
+    rebase.add_argument("--identity", metavar="P12",
+                        help="your PKCS#12 signing identity (required; you must hold the role 're-baseline')")
+    rebase.add_argument("--passphrase-file", metavar="FILE",
+                        help="file (mode 0600) holding the passphrase; else LOTGATE_SIGNING_PASSPHRASE or a prompt")
     rebase.add_argument("--from-lot", dest="from_lot", metavar="LOT",
                         help="first released lot of the new baseline (default: the last N released lots)")
     rebase.add_argument("--count", type=int, metavar="N",

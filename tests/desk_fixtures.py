@@ -13,11 +13,12 @@ from pathlib import Path
 from flows.desk.accounts import Desk, create_account
 from flows.desk.roles import DeskRole
 from flows.desk.settings import DeskSettings
-from pipeline.records.demo_identity import create_demo_identity
+from pipeline.records.demo_trust import DemoReviewer, create_demo_trust
 from pipeline.records.store import Store
 from pipeline.records.stored import DecisionWrite
 from pipeline.records.workspace import open_workspace, write_settings
 from pipeline.release.records import DecisionRecord, RecordedResult
+from pipeline.vocabulary import SignerRole
 
 HOSTILE_LOT = "<script>alert(1)</script>"
 HOSTILE_REASON = '"><img src=x onerror=alert(2)> & <b>bold</b>'
@@ -25,6 +26,11 @@ HOSTILE_FILE = "lims-<i>x</i>.csv"
 PASSWORDS = {role: f"{role.value} password 2026" for role in DeskRole}
 SIGNER_NAMES = {DeskRole.REVIEWER: "Ines Varga", DeskRole.INVESTIGATOR: "Tomas Orlik",
                 DeskRole.CHART_OWNER: "Lena Marsh"}
+# Each signing person in the workspace's register of authorised signers, with the roles of their desk role.
+REGISTERED = {DeskRole.REVIEWER: DemoReviewer("ines.varga", "Ines Varga", (SignerRole.RELEASE_APPROVAL,
+                                                                            SignerRole.REJECTION)),
+              DeskRole.INVESTIGATOR: DemoReviewer("tomas.orlik", "Tomas Orlik", (SignerRole.RESULT_INVALIDATION,)),
+              DeskRole.CHART_OWNER: DemoReviewer("lena.marsh", "Lena Marsh", (SignerRole.REBASELINE,))}
 
 
 @dataclass
@@ -42,7 +48,9 @@ def _record(lot: str, disposition: str, label: str, categories=(), reasons=(), v
 
 
 def make_workspace(root: Path) -> DeskWorkspace:
-    write_settings(root, {"plant_name": "Brackwater Enzymes (test)", "time_zone": "Europe/Berlin"})
+    trust = create_demo_trust(root / "keys", "Brackwater Enzymes (test)", tuple(REGISTERED.values()))
+    write_settings(root, {"plant_name": "Brackwater Enzymes (test)", "time_zone": "Europe/Berlin",
+                          "trust": {"root_ca": "keys/root-ca.pem"}, "signer_register": "keys/signers.yaml"})
     ws = open_workspace(root)
     ws.make_folders()
     store = Store(ws.database_url)
@@ -70,9 +78,8 @@ def make_workspace(root: Path) -> DeskWorkspace:
     for role in DeskRole:
         p12 = None
         passphrase_file = None
-        if role in SIGNER_NAMES:
-            person = create_demo_identity(root.parent / f"person-{role.value}", ws.plant_name, SIGNER_NAMES[role])
-            p12, passphrase_file = person.p12_path, person.passphrase_path
+        if role in REGISTERED:
+            p12, passphrase_file = trust.identity_of(REGISTERED[role].person)
         create_account(ws, store, re.sub("[^a-z]", "", role.value), role, PASSWORDS[role], p12=p12,
                        p12_passphrase_file=passphrase_file, by="test administrator")
     return DeskWorkspace(root, Desk(ws, store, DeskSettings()))

@@ -27,7 +27,10 @@ GOLDEN = Path(__file__).parent / "golden" / "demo"
 
 _TIME = re.compile(r"\d{4}-\d{2}-\d{2}[T ]\d{2}:\d{2}(:\d{2}(\.\d+)?)?(\+00:00|Z)?")
 _HEX = re.compile(r"[0-9a-f]{12,64}")
-_MASKED_COLUMNS = {"prev_hash", "hash", "workspace_id", "signature", "record_sha256"}
+# A person's record signature (ECDSA: new each time), an investigation's signature, the hash of a
+# record holding times, and the demo register's dates (the day the demo ran) are masked too.
+_MASKED_COLUMNS = {"prev_hash", "hash", "workspace_id", "signature", "person_signature", "record_sha256",
+                   "valid_from", "valid_to"}
 _DIGITS = 10
 
 
@@ -46,6 +49,14 @@ def _volatile_hashes(root: Path, db: sqlite3.Connection) -> set[str]:
                 hashes.add(certificate[key])
     for prev, own in db.execute("select prev_hash, hash from audit_events"):
         hashes.update((prev, own))
+    register = root / "keys" / "signers.yaml"  # the demo register names each run's new certificates
+    if register.exists():
+        import yaml
+
+        data = register.read_bytes()
+        hashes.add(hashlib.sha256(data).hexdigest())
+        hashes.update(e["certificate_sha256"] for e in (yaml.safe_load(data) or {}).get("signers", [])
+                      if e.get("certificate_sha256"))
     return hashes
 
 

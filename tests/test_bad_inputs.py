@@ -135,7 +135,7 @@ def test_each_case_gets_its_stated_outcome(night, case, expected):
         assert outcome.label.startswith("held: ") and expected.category in outcome.label, outcome.label
         assert any(expected.phrase in reason for reason in outcome.reasons), outcome.reasons
     elif isinstance(expected, Released):
-        assert outcomes[expected.lot].label == Disposition.RELEASED, outcomes[expected.lot].reasons
+        assert outcomes[expected.lot].label == Disposition.READY_FOR_RELEASE, outcomes[expected.lot].reasons
     elif isinstance(expected, Noted):
         assert any(expected.subject in note and expected.phrase in note for note in summary.notes), summary.notes
     else:  # pragma: no cover - a new kind of expectation must be handled above
@@ -147,7 +147,7 @@ def test_the_good_lots_are_still_released(night):
     _root, _files, summary, _records = night
     outcomes = _held_or_released(summary)
     for lot in CATALOGUE.good_lots:
-        assert outcomes[lot].label == Disposition.RELEASED, outcomes[lot].reasons
+        assert outcomes[lot].label == Disposition.READY_FOR_RELEASE, outcomes[lot].reasons
 
 
 @pytest.mark.slow
@@ -172,7 +172,7 @@ def test_every_lot_mentioned_has_a_decision_or_a_stated_reason(night):
         word = re.compile(rf"(?<![A-Za-z0-9-]){re.escape(lot)}(?![A-Za-z0-9-])")
         assert lot in decided or any(word.search(note) for note in summary.notes), f"lot {lot}: no decision, no note"
     for outcome in summary.outcomes:
-        if outcome.label != Disposition.RELEASED:
+        if outcome.label != Disposition.READY_FOR_RELEASE:
             assert outcome.reasons, f"lot {outcome.lot_id} is held without a reason"
 
 

@@ -283,9 +283,9 @@ def test_a_desk_signature_writes_what_the_command_line_writes(space, tmp_path):
     from pipeline.records import signing
 
     store, ws = space.desk.store, space.desk.ws
-    person = space.root.parent / "person-reviewer"
-    identity = signing.load_identity(person / "signer.p12", passphrase_file=person / "signer.passphrase",
-                                     passphrase_env="")
+    p12, passphrase = space.root.joinpath("keys", "people", "ines.varga", "signer.p12"), \
+        space.root.joinpath("keys", "people", "ines.varga", "signer.passphrase")
+    identity = signing.load_identity(p12, passphrase_file=passphrase, passphrase_env="")
     decide_lot(ws, store, "LLC-9000-104", release=False, reason="checked on the command line", identity=identity)
     c = signed_in(space, DeskRole.REVIEWER)
     reason = "checked at the desk <script>alert(3)</script>"

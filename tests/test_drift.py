@@ -70,7 +70,7 @@ def test_drift_is_held_out_of_trend_before_the_first_oos_lot(direction, limit):
     first_oot = next(i for i, c in enumerate(categories) if HoldCategory.OUT_OF_TREND in c)
     first_oos = next(i for i, c in enumerate(categories) if HoldCategory.OUT_OF_SPECIFICATION in c)
     # the baseline lots are released while the chart is "not yet established"
-    assert all(d.decision.disposition == Disposition.RELEASED for d in decisions[:BASELINE_LOTS])
+    assert all(d.decision.disposition == Disposition.READY_FOR_RELEASE for d in decisions[:BASELINE_LOTS])  # release mode approval
     assert all(d.trend[0].status == TrendStatus.NOT_YET_ESTABLISHED for d in decisions[:BASELINE_LOTS])
     frozen = night.charts[("SIM-1", "specific_activity")].limits
     assert night.newly_frozen == {("SIM-1", "specific_activity"): frozen} and charts == {}  # the given charts stay as given

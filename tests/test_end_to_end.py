@@ -54,17 +54,20 @@ def test_every_lot_gets_the_intended_disposition(demo_workspace):
     root, nights, summaries = demo_workspace
     for night, summary in zip(nights, summaries):
         got = {o.lot_id: o.label for o in summary.outcomes}
-        assert got == {lot.lot_id: lot.intended for lot in night.lots}
+        # Release mode 'approval' (the default): a lot meeting every criterion waits for a person.
+        assert got == {lot.lot_id: "ready for release" if lot.intended == "released" else lot.intended
+                       for lot in night.lots}
     trouble = {o.lot_id: o for o in summaries[-2].outcomes}
     assert "Nelson rule 1" in trouble["LLC-2611-027"].reasons[0]
     assert any("recovered 82.5 %" in r for r in trouble["LLC-2611-029"].reasons)
-    # The lot record across nights (the scenario's design): pending → released, invalid → released
-    # on the re-assay, OOS retested without an investigation stays held, with one it is released.
+    # The lot record across nights (the scenario's design): pending → ready, invalid → ready on the
+    # re-assay, OOS retested without an investigation stays held, with one it is ready for release.
     labels = {(n, o.lot_id): o.label for n, summary in enumerate(summaries) for o in summary.outcomes}
-    assert [labels[(2, "LLC-2611-023")], labels[(3, "LLC-2611-023")]] == ["pending", "released"]
-    assert [labels[(3, "LLC-2611-030")], labels[(4, "LLC-2611-030")]] == ["held: invalid assay", "released"]
+    ready = "ready for release"
+    assert [labels[(2, "LLC-2611-023")], labels[(3, "LLC-2611-023")]] == ["pending", ready]
+    assert [labels[(3, "LLC-2611-030")], labels[(4, "LLC-2611-030")]] == ["held: invalid assay", ready]
     assert [labels[(3, "PGR-2611-017")], labels[(4, "PGR-2611-017")]] == ["held: out of specification"] * 2
-    assert [labels[(3, "PGR-2611-018")], labels[(4, "PGR-2611-018")]] == ["held: out of specification", "released"]
+    assert [labels[(3, "PGR-2611-018")], labels[(4, "PGR-2611-018")]] == ["held: out of specification", ready]
     assert [labels[(0, "PGR-2611-001")], labels[(4, "PGR-2611-001")]] == ["pending", "held: overdue"]
 
 
@@ -83,13 +86,17 @@ def test_files_are_accounted_for_and_the_malformed_export_is_quarantined(demo_wo
 def test_every_certificate_verifies_and_a_flipped_byte_fails(demo_workspace, tmp_path):
     root, nights, summaries = demo_workspace
     certificates = sorted((root / "certificates").glob("*.pdf"))
-    released = sum(o.label == "released" for s in summaries for o in s.outcomes)
-    assert len(certificates) == released == sum(lot.intended == "released" for n in nights for lot in n.lots) == 47
+    ready = sum(o.label == "ready for release" for s in summaries for o in s.outcomes)
+    assert len(certificates) == ready == sum(lot.intended == "released" for n in nights for lot in n.lots) == 47
     trust = [root / "keys" / "root-ca.pem"]
+    from pypdf import PdfReader
     for path in certificates[:5] + certificates[-3:]:
         result = verify_pdf(path, trust_roots=trust)
         assert result.valid and result.trusted, result.summary
-        assert result.signer_name.startswith(demo.DEMO_SIGNER)
+        # The night's certificate is the system's, with a truthful meaning; no person's name signs it.
+        assert result.signer_name.startswith("lotgate system") and "NOT released until approved" in result.reason
+        text = " ".join(" ".join(page.extract_text() for page in PdfReader(path).pages).split())
+        assert demo.DEMO_SIGNER not in text
     damaged = tmp_path / "damaged.pdf"
     data = bytearray(certificates[0].read_bytes())
     data[len(data) // 3] ^= 0x01
@@ -146,7 +153,7 @@ def test_revision_chain_original_reassay_and_a_persons_release(demo_workspace, t
     from flows import records_cmd
     from pipeline.night.person_decision import decide_lot
     from pipeline.records import signing
-    from pipeline.records.demo_identity import create_demo_identity
+    from pipeline.records.demo_trust import create_demo_trust
 
     root, nights, _ = demo_workspace
     lot = "LLC-2611-027"
@@ -158,8 +165,9 @@ def test_revision_chain_original_reassay_and_a_persons_release(demo_workspace, t
     assert outcome.revision == 2 and outcome.label.endswith("review required")
     assert outcome.reasons[-1].startswith("the lot's earlier decision")
 
-    person = create_demo_identity(tmp_path / "person", demo.PLANT_NAME, "Jonas Brandt")
-    identity = signing.load_identity(person.p12_path, passphrase_file=person.passphrase_path)
+    trust = create_demo_trust(root / "keys", demo.PLANT_NAME)  # Jonas Brandt: in the demo register
+    p12, passphrase = trust.identity_of("jonas.brandt")
+    identity = signing.load_identity(p12, passphrase_file=passphrase)
     ws = open_workspace(root)
     store = Store(ws.database_url)
     result = decide_lot(ws, store, lot, release=True, reason="re-assay valid; plate failure investigated",
@@ -177,7 +185,7 @@ def test_revision_chain_original_reassay_and_a_persons_release(demo_workspace, t
     record["reasons"] = ["edited"]
     assert not signing.verify_record(signature, ledger.canonical_json(record).encode())
     # The re-issued certificate carries the person's signature, name and meaning.
-    verification = verify_pdf(root / result.certificate, trust_roots=[person.root_ca_path])
+    verification = verify_pdf(root / result.certificate, trust_roots=[trust.root_ca])
     assert verification.valid and verification.trusted
     assert verification.signer_name == "Jonas Brandt (DEMO)"
     from pypdf import PdfReader
@@ -218,3 +226,27 @@ def test_lims_results_files_agree_with_each_other_and_their_manifest(demo_worksp
             assert hashlib.sha256((root / "lims" / name).read_bytes()).hexdigest() == digest
     store = Store(open_workspace(root).database_url)
     assert decided == len(store.decisions()) - len(store.unexported_decision_ids())  # each exported once
+
+
+def test_approve_a_night_then_verify_both_signatures(demo_workspace, capsys):
+    """Night → ready for release → lotgate approve --night N → two signatures valid in verify (and pdfsig)."""
+    from flows import cli
+    from pipeline.records.demo_trust import create_demo_trust
+
+    root, _, summaries = demo_workspace
+    p12, passphrase = create_demo_trust(root / "keys", demo.PLANT_NAME).identity_of("mira.castellan")
+    night = summaries[0].night_id
+    ready = [o.lot_id for o in summaries[0].outcomes if o.label == "ready for release"]
+    assert cli.main(["approve", "--night", str(night), "--workspace", str(root), "--identity", str(p12),
+                     "--passphrase-file", str(passphrase), "--reason", "night reviewed: results and assays valid"]) == 0
+    approved = sorted((root / "certificates").glob("*_r2_certificate.pdf"))
+    assert {p.name.split("_r2_")[0] for p in approved} >= set(ready) and ready
+    capsys.readouterr()
+    assert cli.main(["verify", "--workspace", str(root), *map(str, approved[:3])]) == 0
+    out = capsys.readouterr().out
+    assert out.count("VALID") == 3 and "Mira Castellan (DEMO) holds 'release approval'" in out
+    prepared = root / "certificates" / f"{ready[0]}_r1_certificate.pdf"
+    assert cli.main(["verify", "--workspace", str(root), str(prepared)]) == 1  # superseded by the approval
+    if shutil.which("pdfsig"):
+        ok, text = pdfsig_report(approved[0])
+        assert ok and text.count("Signature is Valid.") == 2, text

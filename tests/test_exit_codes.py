@@ -96,12 +96,17 @@ def test_deciding_an_unknown_lot_is_not_found(workspace, capsys):
     assert "lot NOPE-1 has no decision" in capsys.readouterr().err
 
 
-def test_verify_tells_a_missing_file_from_a_failed_verification(tmp_path, capsys):
-    bad = tmp_path / "certificate.pdf"
+def test_verify_tells_a_missing_file_from_a_failed_verification(workspace, capsys):
+    from pipeline.records.demo_trust import create_demo_trust
+
+    create_demo_trust(workspace / "keys", "Riverside")
+    bad = workspace / "certificate.pdf"
     bad.write_bytes(b"%PDF-1.7 not signed")
-    assert cli.main(["verify", str(tmp_path / "absent.pdf")]) == 4
-    assert cli.main(["verify", str(bad)]) == 1
-    assert cli.main(["verify", str(bad), str(tmp_path / "absent.pdf")]) == 1  # a failed check wins
+    named = ["--workspace", str(workspace)]
+    assert cli.main(["verify", str(workspace / "absent.pdf"), *named]) == 4
+    assert cli.main(["verify", str(bad), *named]) == 1
+    assert cli.main(["verify", str(bad), str(workspace / "absent.pdf"), *named]) == 1  # a failed check wins
+    assert cli.main(["verify", str(bad)]) == 2  # no issuing workspace named: a set-up error, one line
     out = capsys.readouterr().out
     assert "NOT FOUND" in out and "INVALID" in out
 

@@ -161,7 +161,7 @@ def test_the_batch_report_shows_hostile_units_literally(night):
 def test_hostile_file_names_appear_literally_in_the_documents(night):
     _outer, root, _before, _outside, _files, summary = night
     outcome = next(o for o in summary.outcomes if o.lot_id == PROTEASE)
-    assert outcome.label == Disposition.RELEASED, outcome.reasons
+    assert outcome.label == Disposition.READY_FOR_RELEASE, outcome.reasons
     report = _pdf_text(root / outcome.report)
     assert HOSTILE_NAME in report
     assert "Hostile <b>plant</b> & co (test)" in report

@@ -163,6 +163,7 @@ def test_a_result_entered_as_a_bound_is_not_charted():
     lot = evaluation(99, 205.0)
     lot = lot.__class__(**{**vars(lot), "verdicts": (verdict,)})
     night = decide_night([lot], Catalog({"SIM-2": spec}, {}), {}, "test")
-    assert night.lots[0].decision.disposition == Disposition.RELEASED
+    # meets every criterion: ready for release (release mode 'approval', the default)
+    assert night.lots[0].decision.disposition == Disposition.READY_FOR_RELEASE
     assert night.lots[0].trend[0].status == TrendStatus.NOT_EVALUATED
     assert night.lots[0].chart_values == {}

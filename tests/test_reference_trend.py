@@ -40,13 +40,13 @@ def test_a_reference_out_of_trend_holds_the_plates_lots():
     charts: dict[tuple[str, str], ChartState] = {}
     night = decide_night(lots, Catalog({"LLC-200": SPEC}, METHODS), charts, "test")
     decisions = night.lots
-    assert all(d.decision.disposition == Disposition.RELEASED for d in decisions[:8])
+    assert all(d.decision.disposition == Disposition.READY_FOR_RELEASE for d in decisions[:8])  # release mode approval
     for held in decisions[8:10]:
         assert held.decision.hold_categories == (HoldCategory.OUT_OF_TREND,)
         assert "Reference standard recovery (LIP-PNPB): Nelson rule 1" in held.decision.reasons[0]
         assert "at plate AK-T-08" in held.decision.reasons[0]
         assert held.charts and held.charts[0]["attribute"] == "reference_recovery"
-    assert decisions[10].decision.disposition == Disposition.RELEASED
+    assert decisions[10].decision.disposition == Disposition.READY_FOR_RELEASE
     chart = night.charts[("LIP-PNPB", "reference_recovery")]
     assert ("LIP-PNPB", "reference_recovery") in night.newly_frozen and charts == {}
     assert chart.limits is not None and chart.limits.baseline_lots == tuple(f"AK-T-{i:02d}" for i in range(8))

@@ -25,7 +25,7 @@ VARIABLE = signing.DEFAULT_PASSPHRASE_ENV
 def plant(tmp_path, monkeypatch):
     """A workspace whose own identity's passphrase comes only from the environment."""
     monkeypatch.setattr(signing, "_TAKEN", {})
-    identity = create_demo_identity(tmp_path / "qa", "Riverside", "Dana Whitlock")
+    identity = create_demo_identity(tmp_path / "qa", "Riverside", "Dana Whitlock", system=True)  # the system's
     secret = identity.passphrase_path.read_text(encoding="utf-8").strip()
     identity.passphrase_path.unlink()  # only the environment knows it
     (tmp_path / "workspace.yaml").write_text(f"signing: {{p12: {identity.p12_path}}}\n", encoding="utf-8")
@@ -46,7 +46,7 @@ def test_opening_the_night_takes_the_passphrase_out_of_the_environment(plant):
     root, secret = plant
     assert _child_sees(VARIABLE) == secret  # before: every child process inherits it
     ws, store, signer = open_night(root)
-    assert signer.signer_name == "Dana Whitlock (DEMO)"
+    assert signer.signer_name == "lotgate system — Riverside (DEMO)"
     assert VARIABLE not in os.environ
     assert _child_sees(VARIABLE) == "absent"
     # Read once: the flow opens the night again in the same process and still unlocks the key.

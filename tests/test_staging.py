@@ -66,9 +66,9 @@ def test_a_store_outage_during_publish_leaves_no_certificate_without_its_decisio
     assert {row.lot_id for row in rows} == {o.lot_id for o in summary.outcomes}
     assert documents_have_decisions(night_root, store.url) == []
     assert not [p for p in (night_root / ".staging").rglob("*") if p.is_file()]
-    held = {row.lot_id for row in rows if row.disposition != Disposition.RELEASED}
+    held = {row.lot_id for row in rows if row.disposition != Disposition.READY_FOR_RELEASE}
     assert held and not [p for p in (night_root / "certificates").glob("*.pdf") if p.name.split("_r")[0] in held]
-    released = [row for row in rows if row.disposition == Disposition.RELEASED]
+    released = [row for row in rows if row.disposition == Disposition.READY_FOR_RELEASE]
     assert {f"{row.lot_id}_r{row.revision}_certificate.pdf" for row in released} == {
         p.name for p in (night_root / "certificates").glob("*.pdf")}
     removed = _events(store, "document-removed")

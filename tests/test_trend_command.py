@@ -52,6 +52,11 @@ def add_lot(store: Store, lot: str, value: float | None, *, held: tuple[str, ...
 
 
 def workspace(root: Path, values=VALUES, freeze: bool = True) -> Path:
+    from pipeline.records.demo_trust import create_demo_trust
+
+    (root / "keys").mkdir(parents=True, exist_ok=True)
+    (root / "keys" / "use-demo-identity").touch()  # the demo trust set: anchor, register, reviewers
+    create_demo_trust(root / "keys", "Trend test plant")
     store = Store(f"sqlite:///{root / 'lotgate.db'}")
     lots = [f"T-{i + 1:03d}" for i in range(len(values))]
     for lot, value in zip(lots, values):
@@ -65,12 +70,22 @@ def workspace(root: Path, values=VALUES, freeze: bool = True) -> Path:
     return root
 
 
+def signed_by(ws: Path, person: str = "mira.castellan") -> list[str]:
+    """The arguments naming a demo reviewer's own identity (Mira holds 're-baseline', Jonas does not)."""
+    folder = ws / "keys" / "people" / person
+    return ["--identity", str(folder / "signer.p12"), "--passphrase-file", str(folder / "signer.passphrase")]
+
+
+REASON = "resin change at the supplier"
+MIRA = "Mira Castellan (DEMO)"
+
+
 # --------------------------------------------------------------------------- parser
 def test_commands_register_with_help():
     p = parser()
     args = p.parse_args(["trend", PRODUCT, ATTR, "--workspace", "W"])
     assert args.func is cmd_trend and args.window == 30 and args.out is None
-    args = p.parse_args(["rebaseline", PRODUCT, ATTR, "--workspace", "W", "--reason", "r", "--by", "b",
+    args = p.parse_args(["rebaseline", PRODUCT, ATTR, "--workspace", "W", "--reason", "r", "--identity", "b",
                          "--from-lot", "L", "--count", "7"])
     assert args.func is cmd_rebaseline and (args.from_lot, args.count) == ("L", 7)
     for command, words in (("trend", "Cpk/Ppk"), ("rebaseline", "who did it and why")):
@@ -164,19 +179,24 @@ def _log(ws: Path) -> list[dict]:
 @pytest.mark.parametrize(
     ("extra", "message"),
     [
-        (["--by", "Dana Whitlock"], "needs a reason"),
-        (["--reason", "   ", "--by", "Dana Whitlock"], "needs a reason"),
-        (["--reason", "resin change"], "needs the name of the person"),
-        (["--reason", "resin change", "--by", " "], "needs the name of the person"),
-        (["--reason", "r", "--by", "b", "--count", "1"], "at least 2 lots"),
-        (["--reason", "r", "--by", "b", "--from-lot", "T-005"], "20 baseline lots requested from T-005, but only 1"),
-        (["--reason", "r", "--by", "b", "--from-lot", "T-404", "--count", "2"], "T-404 is not among the released lots"),
-        (["--reason", "r", "--by", "b"], "20 baseline lots requested, but the chart has only 5"),
+        (["SIGNED"], "says too little"),
+        (["--reason", "   ", "SIGNED"], "says too little"),
+        (["--reason", "ok", "SIGNED"], "says too little"),  # the issue's two-letter reason
+        (["--reason", REASON], "signed by the person who decides it"),  # no identity: a typed name is gone
+        (["--reason", REASON, "SIGNED-JONAS"], "does not hold the role 're-baseline'"),
+        (["--reason", REASON, "SIGNED-SYSTEM"], "system's identity, not a person's"),
+        (["--reason", REASON, "SIGNED", "--count", "1"], "at least 2 lots"),
+        (["--reason", REASON, "SIGNED", "--from-lot", "T-005"], "20 baseline lots requested from T-005, but only 1"),
+        (["--reason", REASON, "SIGNED", "--from-lot", "T-404", "--count", "2"], "T-404 is not among the released lots"),
+        (["--reason", REASON, "SIGNED"], "20 baseline lots requested, but the chart has only 5"),
     ],
 )
 def test_rebaseline_refusals_change_nothing(tmp_path, capsys, extra, message):
     ws = workspace(tmp_path)
     before = (ws / "decisions.jsonl").read_bytes()
+    system = ["--identity", str(ws / "keys" / "signer.p12"), "--passphrase-file", str(ws / "keys" / "signer.passphrase")]
+    words = {"SIGNED": signed_by(ws), "SIGNED-JONAS": signed_by(ws, "jonas.brandt"), "SIGNED-SYSTEM": system}
+    extra = [part for word in extra for part in words.get(word, [word])]
     assert run(["rebaseline", PRODUCT, ATTR, "--workspace", str(ws), *extra]) == 2
     err = capsys.readouterr().err
     assert message in err and err.count("\n") == 1
@@ -188,7 +208,7 @@ def test_rebaseline_refusals_change_nothing(tmp_path, capsys, extra, message):
                          [("NOPE-1", ATTR, "unknown product", 4), (PRODUCT, "lead", "not on a control chart", 2)])
 def test_rebaseline_refuses_unknown_charts(tmp_path, capsys, product, attr, message, code):
     ws = workspace(tmp_path)
-    assert run(["rebaseline", product, attr, "--workspace", str(ws), "--reason", "r", "--by", "b"]) == code
+    assert run(["rebaseline", product, attr, "--workspace", str(ws), "--reason", REASON, *signed_by(ws)]) == code
     assert message in capsys.readouterr().err
 
 
@@ -198,7 +218,7 @@ def test_rebaseline_is_stored_and_logged_with_who_and_why(tmp_path, capsys):
     ws = workspace(tmp_path)
     reason = "Change control CC-0042: new purification resin from lot T-002 on"
     code = run(["rebaseline", PRODUCT, ATTR, "--workspace", str(ws), "--reason", reason,
-                "--by", "Dana Whitlock (QA)", "--from-lot", "T-002", "--count", "3"])
+                *signed_by(ws), "--from-lot", "T-002", "--count", "3"])
     assert code == 0
     out = capsys.readouterr().out
     assert "version 2" in out and "before" in out and "after" in out
@@ -206,25 +226,31 @@ def test_rebaseline_is_stored_and_logged_with_who_and_why(tmp_path, capsys):
     assert "203.20" in centre and "204.00" in centre  # old and new side by side
     store = Store(f"sqlite:///{ws / 'lotgate.db'}")
     active = active_limits(store, PRODUCT, ATTR)
-    assert (active.version, active.frozen_by, active.reason) == (2, "Dana Whitlock (QA)", reason)
+    assert (active.version, active.frozen_by, active.reason) == (2, MIRA, reason)
     assert active.center == pytest.approx(204.0)
     assert active.sigma == pytest.approx(2.659574, rel=1e-6)
     assert active.baseline_lots == ("T-002", "T-003", "T-004")
     records = _log(ws)
     last = records[-1]
     assert last["kind"] == "limits-rebaselined"
-    assert (last["by"], last["reason"], last["version"], last["previous_version"]) == (
-        "Dana Whitlock (QA)", reason, 2, 1)
+    assert (last["by"], last["reason"], last["version"], last["previous_version"]) == (MIRA, reason, 2, 1)
+    assert last["person"] == "mira.castellan" and last["role"] == "re-baseline"
+    from pipeline.records.signing import (
+        verify_record,  # the person's signature over the act (21 CFR 11.70)
+    )
+    act = {k: last[k] for k in ("product", "attribute", "center", "sigma", "mr_bar", "baseline_lots", "by", "reason")}
+    assert verify_record(last["person_signature"], ledger.canonical_json(act).encode())
+    assert not verify_record(last["person_signature"], ledger.canonical_json({**act, "sigma": 1.85}).encode())
     assert last["baseline_lots"] == ["T-002", "T-003", "T-004"]
     assert last["center"] == pytest.approx(204.0) and last["sigma"] == pytest.approx(2.659574, rel=1e-6)
     assert {"time_utc", "product", "attribute"} <= set(last) and last["product"] == PRODUCT
     check = ledger.verify_file(ws / "decisions.jsonl")
-    assert check.valid and check.records == 2
+    assert check.valid and check.records == 3  # limits frozen, the register in force, the re-baseline
     assert audit.verify_trail(store, ws / "decisions.jsonl").valid  # the store's chain agrees
     # the chart now reads against version 2
     assert run(["trend", PRODUCT, ATTR, "--workspace", str(ws)]) == 0
     out = capsys.readouterr().out
-    assert "version 2 (active)" in out and "by Dana Whitlock (QA)" in out and reason in out
+    assert "version 2 (active)" in out and f"by {MIRA}" in out and reason in out
     assert "replaces        version 1" in out
 
 
@@ -232,7 +258,7 @@ def test_rebaseline_refuses_a_broken_log(tmp_path, capsys):
     ws = workspace(tmp_path)
     log = ws / "decisions.jsonl"
     log.write_text(log.read_text().replace('"version":1', '"version":9'))
-    assert run(["rebaseline", PRODUCT, ATTR, "--workspace", str(ws), "--reason", "r", "--by", "b",
+    assert run(["rebaseline", PRODUCT, ATTR, "--workspace", str(ws), "--reason", REASON, *signed_by(ws),
                 "--count", "3"]) == 2
     assert "audit trail is broken" in capsys.readouterr().err
     assert active_limits(Store(f"sqlite:///{ws / 'lotgate.db'}"), PRODUCT, ATTR).version == 1
@@ -285,12 +311,12 @@ def test_demo_rebaseline_then_chart(demo_workspace, tmp_path, capsys):
     ws = tmp_path / "copy"
     shutil.copytree(demo_workspace, ws)
     assert run(["rebaseline", PRODUCT, ATTR, "--workspace", str(ws), "--from-lot", "LLC-2611-005",
-                "--reason", "Change control CC-0107: new resin", "--by", "Dana Whitlock (QA)"]) == 0
+                "--reason", "Change control CC-0107: new resin", *signed_by(ws)]) == 0
     capsys.readouterr()
     check = ledger.verify_file(ws / "decisions.jsonl")
     assert check.valid
     assert audit.verify_trail(Store(f"sqlite:///{ws / 'lotgate.db'}"), ws / "decisions.jsonl").valid
-    assert _log(ws)[-1]["by"] == "Dana Whitlock (QA)" and _log(ws)[-1]["previous_version"] == 1
+    assert _log(ws)[-1]["by"] == MIRA and _log(ws)[-1]["previous_version"] == 1
     assert _log(ws)[-1]["baseline_lots"][0] == "LLC-2611-005" and len(_log(ws)[-1]["baseline_lots"]) == 20
     assert run(["trend", PRODUCT, ATTR, "--workspace", str(ws), "--out", str(tmp_path)]) == 0
     out = capsys.readouterr().out

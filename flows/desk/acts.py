@@ -119,7 +119,7 @@ def rebaseline_chart(desk: Desk, session: Session, product: str, attribute: Attr
     what = f"control limits of {product} {attribute.code}"
     with _signing(desk, session, DeskAct.REBASELINE, password, what, reason or "") as identity:
         pass  # password and key checked; the use case takes the run lock itself
-    done = rebaseline(desk.ws, desk.store, product, attribute, by=identity.signer_name, reason=reason,
+    done = rebaseline(desk.ws, desk.store, product, attribute, identity=identity, reason=reason,
                       from_lot=from_lot, count=count)
     signed_at = dt.datetime.fromisoformat(done.after.frozen_at_utc)
     with desk_write(desk):

@@ -74,6 +74,10 @@ class SpecificationFile(DocumentHeader):
     attributes: list[AttributeFile] = Field(min_length=1)
     # --- verdicts: how results are rounded to their digits before they are compared (half-even: ASTM E29)
     rounding: Literal["half-up", "half-even"] = "half-up"
+    release_mode: Literal["approval", "automatic"] | None = Field(
+        None, description="'approval' or 'automatic' (absent: the plant's default)")
+    release_procedure: Text | None = Field(
+        None, description="the name of the plant's procedure allowing release by exception")
 
 
 class MethodHeader(DocumentHeader):

@@ -29,7 +29,7 @@ from pipeline.controlled.file_models import (
 from pipeline.controlled.limit_precision import check_limit_precision, written_limit
 from pipeline.controlled.strict import checked
 from pipeline.errors import SpecificationError
-from pipeline.vocabulary import NelsonRule, Rounding
+from pipeline.vocabulary import NelsonRule, ReleaseMode, Rounding
 
 COMPUTED_SOURCES = ("activity", "protein", "specific_activity", "km", "vmax", "kcat", "kcat_over_km")
 
@@ -97,6 +97,8 @@ class Specification:
     protein_method: str
     attributes: tuple[Attribute, ...]
     a280_extinction_ml_per_mg_per_cm: float | None = None  # for protein by A280
+    release_mode: ReleaseMode | None = None  # None: the plant's default (workspace settings)
+    release_procedure: str | None = None  # the procedure allowing release by exception (automatic)
 
     def attribute(self, code: str) -> Attribute:
         for attribute in self.attributes:
@@ -282,6 +284,8 @@ def parse_specification(raw: dict[str, Any], where: str, sha256: str) -> Specifi
         product_name=spec.product_name, molecular_weight_g_per_mol=spec.molecular_weight_g_per_mol,
         activity_method=spec.activity_method, protein_method=spec.protein_method, attributes=attributes,
         a280_extinction_ml_per_mg_per_cm=spec.a280_extinction_ml_per_mg_per_cm,
+        release_mode=None if spec.release_mode is None else ReleaseMode(spec.release_mode),
+        release_procedure=spec.release_procedure,
     )
 
 

@@ -62,8 +62,8 @@ def _check(dossier: dict[str, Any], signature: dict[str, Any]) -> None:
     decision = get(dossier, "decision", {})
     disposition = get(decision, "disposition")
     lot = clean(get(get(dossier, "lot", {}), "lot_id", "?"), 60)
-    if disposition != Disposition.RELEASED:
-        raise InputError(f"lot {lot}: a certificate of analysis is issued only for a released lot; "
+    if disposition not in (Disposition.RELEASED, Disposition.READY_FOR_RELEASE):
+        raise InputError(f"lot {lot}: a certificate of analysis is issued only for a released lot or one ready for release; "
                          f"this lot's disposition is {clean(disposition, 60)!r}")
     if not isinstance(signature, dict):
         raise InputError(f"lot {lot}: the signature data must be a mapping with {', '.join(SIGNATURE_KEYS)}")
@@ -180,19 +180,27 @@ def key_value_table(rows: list[tuple[str, Any]], key_w: float, val_w: float, val
     return t
 
 
-def _signature_block(signature: dict[str, Any]) -> Table:
+def _signature_block(signature: dict[str, Any], awaiting_approval: bool) -> Table:
     st = styles()
+    system = signature.get("signer_kind") == "system"
+    title = "Electronic signature of the lotgate system (not a person)" if system else \
+        "Electronic signature (21 CFR 11.50)"
+    approval = ("Approval by an authorised person: NOT YET GIVEN. This lot is not released until an authorised "
+                "person adds their own digital signature to this file (lotgate approve); check it with lotgate "
+                "verify, which names every signature, its signer and its meaning.") if awaiting_approval else None
     inner = key_value_table([
-        ("Signed by (printed name)", para(signature["signer_name"], "cellb", 120)),
+        ("Signed by" if system else "Signed by (printed name)", para(signature["signer_name"], "cellb", 120)),
         ("Date and time", mpara("{local}<br/>{utc}", "cell", local=signature["signed_at_local"],
                                 utc=signature["signed_at_utc"])),
         ("Meaning of the signature", para(signature["meaning"], "cell", 600)),
         ("Certificate fingerprint", para(signature["certificate_fingerprint"], "mono", 200)),
     ], 44 * mm, CONTENT_W - 44 * mm - 16)
-    rows = [[Paragraph("Electronic signature (21 CFR 11.50)", st["h3"])], [inner],
+    rows = [[Paragraph(escape(title), st["h3"])], [inner],
             [Paragraph("The digital signature embedded in this file (PAdES) carries the signer's certificate; "
                        "verify it with any PDF signature validator. A printed copy is not a signed record.",
                        st["note"])]]
+    if approval is not None:
+        rows.append([Paragraph(f"<b>{escape(approval)}</b>", st["cell"])])
     box = Table(rows, colWidths=[CONTENT_W])
     box.setStyle(TableStyle([("BOX", (0, 0), (-1, -1), 1.0, INK), ("LEFTPADDING", (0, 0), (-1, -1), 8),
                              ("RIGHTPADDING", (0, 0), (-1, -1), 8), ("TOPPADDING", (0, 0), (-1, -1), 3),
@@ -258,9 +266,10 @@ def header_flowables(dossier: dict[str, Any], title: str) -> list[Any]:
 
 
 def render_certificate(dossier: dict[str, Any], signature: dict[str, Any]) -> bytes:
-    """The certificate of analysis of a released lot, with its visible signature block.
+    """The certificate of analysis of a lot released or ready for release, with its visible signature block.
 
-    Raises InputError when the lot is not released or the signature data are incomplete.
+    A lot ready for release says, beside the system's signature, that it is not released until an
+    authorised person signs. Raises InputError for another disposition or incomplete signature data.
     """
     _check(dossier, signature)
     st = styles()
@@ -300,7 +309,8 @@ def render_certificate(dossier: dict[str, Any], signature: dict[str, Any]) -> by
         ("Protein method", mpara("{t} ({m})", "cell", t=get(prot, "title"),
                                  m=method_label(dossier, get(prot, "method_id")))),
     ], 34 * mm, CONTENT_W - 34 * mm)]
-    story += [Spacer(1, 6), _caution_box(dossier), Spacer(1, 6), KeepTogether([_signature_block(signature)])]
+    story += [Spacer(1, 6), _caution_box(dossier), Spacer(1, 6), KeepTogether([_signature_block(
+        signature, get(decision, "disposition") == Disposition.READY_FOR_RELEASE)])]
     buffer = io.BytesIO()
     doc = doc_template(buffer, dossier, "Certificate of analysis", 22 * mm)
     build_pdf(doc, story, _footer(dossier, "Certificate of analysis"))

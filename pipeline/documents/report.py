@@ -83,7 +83,7 @@ def _reasons_cell(reasons: list[Any]) -> Any:
 def _disposition_box(dossier: dict[str, Any]) -> Table:
     st = styles()
     decision = get(dossier, "decision", {})
-    released = get(decision, "disposition") == Disposition.RELEASED
+    released = get(decision, "disposition") in (Disposition.RELEASED, Disposition.READY_FOR_RELEASE)
     ink, fill = (PASS_INK, PASS_FILL) if released else (HOLD_INK, HOLD_FILL)
     label = get(decision, "label", get(decision, "disposition", "undecided"))
     rows: list[list[Any]] = [[mpara("<font color='#{c}'>Disposition: {label}</font>", st["boxtitle"],
@@ -96,7 +96,9 @@ def _disposition_box(dossier: dict[str, Any]) -> Table:
         rows.append([Paragraph(f"<b>Reasons ({len(reasons)}):</b>", st["body"])])
         rows += [[p] for p in _bullets(reasons, "body")]
     elif released:
-        rows.append([Paragraph("Every required test is valid, within specification and in trend.", st["body"])])
+        rows.append([Paragraph("Every required test is valid, within specification and in trend."
+                               + (" Not released until an authorised person approves it."
+                                  if get(decision, "disposition") == Disposition.READY_FOR_RELEASE else ""), st["body"])])
     else:
         rows.append([Paragraph("No reason was recorded for this hold: review the decision log.", st["body"])])
     rows.append([mpara("Decided {local} ({utc}) · revision {rev}", "note", local=get(decision, "decided_at_local"),

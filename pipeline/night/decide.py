@@ -106,7 +106,7 @@ def earlier_decisions(store: Store, evaluations: list[LotEvaluation]) -> dict[st
     out = {}
     for lot, stored in latest.items():
         nightly = stored.decided_by.startswith("lotgate")
-        settled = stored.disposition in (Disposition.RELEASED, Disposition.PENDING) or (
+        settled = stored.disposition in (Disposition.RELEASED, Disposition.READY_FOR_RELEASE, Disposition.PENDING) or (
             stored.disposition == Disposition.HELD and set(stored.record.hold_categories) <= RECORD_GOVERNED)
         if not (nightly and settled):
             out[lot] = f"revision {stored.revision}: {stored.record.label} (decided by {stored.decided_by})"

@@ -20,11 +20,14 @@ from dataclasses import dataclass
 from pipeline.errors import InputError, NotFound
 from pipeline.records import audit, ledger
 from pipeline.records.lot_record_store import InvestigationWrite, add_investigation, load_histories
+from pipeline.records.signer_check import authorise_person
+from pipeline.records.signer_register import register_in_force
 from pipeline.records.signing import SigningIdentity, sign_record
 from pipeline.records.store import Store
 from pipeline.records.workspace import Workspace
 from pipeline.release.lot_record import LotResult
-from pipeline.vocabulary import InvestigationOutcome, ResultStatus, Verdict
+from pipeline.release.signature import checked_reason
+from pipeline.vocabulary import InvestigationOutcome, ResultStatus, SignerRole, Verdict
 
 REFERENCE = re.compile(r"[A-Za-z0-9][A-Za-z0-9._/-]{1,39}")
 OUTCOMES = {"invalidated": InvestigationOutcome.RESULT_INVALIDATED, "confirmed": InvestigationOutcome.CONFIRMED_OOS}
@@ -39,10 +42,13 @@ class RecordedInvestigation:
     result: LotResult
 
 
-def acting_person(identity: SigningIdentity) -> str:
-    """Who performs this act: the one identity check of the use case (a register of authorised signers
-    can replace it here)."""
-    return identity.signer_name
+def acting_person(ws: Workspace, store: Store, identity: SigningIdentity, at: dt.datetime):
+    """Who performs this act, checked against the register of authorised signers at signing time (the
+    role 'result invalidation'); refused in one line, before anything is written, otherwise."""
+    register, register_events = register_in_force(ws, store)
+    check = authorise_person(identity, SignerRole.RESULT_INVALIDATION, anchor_path=ws.trust_root,
+                             register=register, at=at)
+    return check, register_events
 
 
 def _clean(text: str | None, what: str, limit: int = 2000) -> str:
@@ -71,7 +77,7 @@ def record_investigation(ws: Workspace, store: Store, lot_id: str, *, test: str,
     if not REFERENCE.fullmatch(reference or ""):
         raise InputError(f"the investigation reference '{reference}' is not a reference: 2 to 40 letters, digits, "
                          "'.', '_', '/' or '-', e.g. INV-2026-014")
-    reason = _clean(reason, "a reason (--reason TEXT)")
+    reason = checked_reason(_clean(reason, "a reason (--reason TEXT)"), ws.reason_pattern)
     plan = _clean(retest_plan, "a retest plan (--retest-plan TEXT)") if chosen == InvestigationOutcome.RESULT_INVALIDATED \
         else _clean(retest_plan or "no retest: the result is confirmed", "a retest plan")
     if store.latest_decision(lot_id) is None:
@@ -85,17 +91,21 @@ def record_investigation(ws: Workspace, store: Store, lot_id: str, *, test: str,
     if earlier:
         raise InputError(f"the out-of-specification result of {test} of lot {lot_id} already has an investigation "
                          f"outcome ({earlier[0].outcome}, {earlier[0].reference}, by {earlier[0].decided_by})")
-    person = acting_person(identity)
-    recorded_at = dt.datetime.now(dt.UTC).replace(microsecond=0).isoformat()
+    now = dt.datetime.now(dt.UTC).replace(microsecond=0)
+    check, register_events = acting_person(ws, store, identity, now)
+    person = identity.signer_name
+    recorded_at = now.isoformat()
     body = {"lot_id": lot_id, "attribute": result.attribute, "result_id": result.result_id,
             "result": result.reported, "tested_on": result.tested_on, "outcome": str(chosen), "reference": reference,
             "reason": reason, "retest_plan": plan, "decided_by": person, "recorded_at_utc": recorded_at}
     signed = ledger.canonical_json(body).encode("utf-8")
     signature = sign_record(identity, signed).to_dict()
     event = audit.event("investigation-outcome", time_zone=ws.time_zone, **body,
-                        signer_certificate_sha256=identity.fingerprint_sha256,
-                        record_sha256=hashlib.sha256(signed).hexdigest())
+                        signer_certificate_sha256=identity.fingerprint_sha256, person=check.person,
+                        role=check.role.value, register_version=check.register_version,
+                        register_sha256=check.register_sha256, record_sha256=hashlib.sha256(signed).hexdigest())
     add_investigation(store, InvestigationWrite(lot_id, result.attribute, result.result_id, chosen, reference, reason,
-                                                plan, person, {**signature, "signed": body}), [event])
+                                                plan, person, {**signature, "signed": body}),
+                      [*register_events, event])
     audit.sync_log(store, ws.log)
     return RecordedInvestigation(lot_id, result.attribute, chosen, reference, result)

@@ -62,24 +62,32 @@ def opened_signer(p12: Path, passphrase_file: Path | None, passphrase: bytes | N
 
 
 def signer_for(ws: Workspace) -> IdentitySigner:
-    """The workspace's signing identity: its own PKCS#12, or the demo identity when asked for.
+    """The workspace's SYSTEM identity: its own PKCS#12, or the demo one when asked for.
 
-    The passphrase in LOTGATE_SIGNING_PASSPHRASE is taken out of the environment here (see
-    ``signing.take_passphrase``), whichever identity is used, so no child process inherits it.
+    The identity must say it is the lotgate system (never a person's certificate) and, with a
+    trust anchor configured, chain to it. The passphrase in LOTGATE_SIGNING_PASSPHRASE is taken out
+    of the environment here (see ``signing.take_passphrase``), whichever identity is used, so no
+    child process inherits it.
     """
     from pipeline.records import signing
-    from pipeline.records.demo_identity import create_demo_identity
+    from pipeline.records.demo_trust import create_demo_trust
+    from pipeline.records.signer_check import system_identity_problem
 
     secret = signing.take_passphrase()
     if ws.signing_p12 is not None:
-        return opened_signer(ws.signing_p12, ws.signing_passphrase_file, secret)
-    if (ws.keys / "use-demo-identity").exists():
-        demo = create_demo_identity(ws.keys, ws.plant_name, ws.signer_name)
-        return opened_signer(demo.p12_path, demo.passphrase_path, None)
-    raise SigningError(
-        f"no signing identity is set up for the workspace {ws.root}: put 'signing: {{p12: FILE, passphrase_file: FILE}}' "
-        f"in {ws.root / 'workspace.yaml'} (or set LOTGATE_SIGNING_PASSPHRASE), or run 'lotgate keys demo --workspace {ws.root}' "
-        "for a demo identity")
+        signer = opened_signer(ws.signing_p12, ws.signing_passphrase_file, secret)
+    elif (ws.keys / "use-demo-identity").exists():
+        demo = create_demo_trust(ws.keys, ws.plant_name)
+        signer = opened_signer(demo.system_p12, demo.system_passphrase, None)
+    else:
+        raise SigningError(
+            f"no signing identity is set up for the workspace {ws.root}: put 'signing: {{p12: FILE, passphrase_file: "
+            f"FILE}}' in {ws.root / 'workspace.yaml'} (or set LOTGATE_SIGNING_PASSPHRASE), or run 'lotgate keys demo "
+            f"--workspace {ws.root}' for a demo identity")
+    problem = system_identity_problem(signer.identity, ws.trust_root)
+    if problem is not None:
+        raise SigningError(f"the system identity of {ws.root} cannot be used: {problem}")
+    return signer
 
 
 def open_night(root: Path) -> tuple[Workspace, Store, IdentitySigner]:
@@ -93,7 +101,9 @@ def open_night(root: Path) -> tuple[Workspace, Store, IdentitySigner]:
     if not ws.inbox.is_dir():
         raise InputError(f"{ws.inbox} does not exist: the workspace needs an inbox/ folder with tonight's exports")
     signer = signer_for(ws)
-    open_controlled_documents(ws)
+    from pipeline.night.release_modes import with_release_modes
+
+    with_release_modes(open_controlled_documents(ws)[0], ws)
     ws.make_folders()
     store = Store(ws.database_url)
     return ws, store, signer

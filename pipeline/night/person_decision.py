@@ -22,6 +22,8 @@ from pipeline.night.lot_documents import (
 )
 from pipeline.night.open import IdentitySigner
 from pipeline.records import audit, ledger
+from pipeline.records.signer_check import authorise_person
+from pipeline.records.signer_register import register_in_force
 from pipeline.records.signing import SigningIdentity, sign_record
 from pipeline.records.store import Store
 from pipeline.records.stored import DecisionWrite
@@ -31,9 +33,10 @@ from pipeline.release.records import DecisionRecord, EarlierDecision
 from pipeline.release.signature import (
     PERSON_REJECT_MEANING,
     PERSON_RELEASE_MEANING,
+    checked_reason,
     signature_block,
 )
-from pipeline.vocabulary import Disposition, Verdict
+from pipeline.vocabulary import Disposition, SignerRole, Verdict
 
 
 @dataclass(frozen=True)
@@ -74,10 +77,12 @@ def _reissue(ws: Workspace, record: DecisionRecord, earlier_revision: int, decid
 
 def decide_lot(ws: Workspace, store: Store, lot_id: str, *, release: bool, reason: str,
                identity: SigningIdentity) -> PersonOutcome:
-    """Record a person's release or rejection of a lot as its next revision, signed with their identity."""
-    reason = (reason or "").strip()
-    if not reason:
-        raise InputError("a person's decision needs a reason (--reason TEXT): say what was reviewed and why")
+    """Record a person's release or rejection of a lot as its next revision, signed with their identity.
+
+    Refused before anything is written: a reason that says nothing, or an identity that the
+    register of authorised signers does not allow to release (or reject) at this moment.
+    """
+    reason = checked_reason(reason, ws.reason_pattern)
     latest = store.latest_decision(lot_id)
     if latest is None:
         raise InputError(f"lot {lot_id} has no decision in the store at {ws.root}; nothing to review")
@@ -87,6 +92,9 @@ def decide_lot(ws: Workspace, store: Store, lot_id: str, *, release: bool, reaso
         raise InputError(f"lot {lot_id} cannot be released: no valid result for {missing}; a certificate needs every "
                          "result. Re-assay first, or reject the lot.")
     decided_at = dt.datetime.now(dt.UTC).replace(microsecond=0)
+    register, register_events = register_in_force(ws, store)
+    check = authorise_person(identity, SignerRole.RELEASE_APPROVAL if release else SignerRole.REJECTION,
+                             anchor_path=ws.trust_root, register=register, at=decided_at)
     disposition = Disposition.RELEASED if release else Disposition.REJECTED
     signer = IdentitySigner(identity)
     record = dataclasses.replace(
@@ -103,9 +111,12 @@ def decide_lot(ws: Workspace, store: Store, lot_id: str, *, release: bool, reaso
         record = dataclasses.replace(record, certificate=written.certificate, report=written.report)
     signed = ledger.canonical_json(record.to_json()).encode("utf-8")
     record = dataclasses.replace(record, person_signature=sign_record(identity, signed).to_dict())
-    events = [audit.event("person-disposition", time_zone=ws.time_zone, lot_id=lot_id, disposition=disposition,
+    events = [*register_events,
+              audit.event("person-disposition", time_zone=ws.time_zone, lot_id=lot_id, disposition=disposition,
                           by=identity.signer_name, reason=reason, meaning=record.meaning,
-                          signer_certificate_sha256=identity.fingerprint_sha256,
+                          signer_certificate_sha256=identity.fingerprint_sha256, person=check.person,
+                          role=check.role.value, register_version=check.register_version,
+                          register_sha256=check.register_sha256,
                           record_sha256=hashlib.sha256(ledger.canonical_json(record.to_json()).encode()).hexdigest())]
     if record.certificate is not None:
         events.append(audit.event("certificate-signed", time_zone=ws.time_zone, lot_id=lot_id,

@@ -18,7 +18,7 @@ from typing import Any
 
 from pipeline import __version__
 from pipeline.controlled.catalog import Catalog
-from pipeline.controlled.specs import KineticMethod, ProteinMethod
+from pipeline.controlled.specs import KineticMethod, ProteinMethod, Specification
 from pipeline.night.decide import BASELINE_REACHED
 from pipeline.night.lot_documents import (
     WrittenDocuments,
@@ -44,7 +44,11 @@ from pipeline.release.decision import (
 )
 from pipeline.release.dossier import build_dossier
 from pipeline.release.records import DecisionRecord
-from pipeline.release.signature import NIGHTLY_RELEASE_MEANING, signature_block
+from pipeline.release.signature import (
+    signature_block,
+    system_automatic_meaning,
+    system_ready_meaning,
+)
 from pipeline.vocabulary import Disposition
 
 WINDOW_LOTS = 64          # lots rendered per round: bounds memory whatever the night's size
@@ -123,6 +127,14 @@ class _Renderers:
             self.pool.shutdown()
 
 
+def system_meaning(ws: Workspace, spec: Specification, disposition: Disposition) -> str:
+    """What the system's signature on a nightly certificate means: prepared for approval, or released by exception."""
+    version = spec.document.version
+    if disposition == Disposition.RELEASED:
+        return system_automatic_meaning(ws.plant_name, spec.product_code, version, spec.release_procedure or "?")
+    return system_ready_meaning(ws.plant_name, spec.product_code, version)
+
+
 def _prepare(ws: Workspace, catalog: Catalog, item: LotDecision, previous: StoredDecision | None,
              signer: CertificateSigner, revisions: tuple[dict[str, Any], ...] = ()) -> _Job:
     decision = item.decision
@@ -136,9 +148,9 @@ def _prepare(ws: Workspace, catalog: Catalog, item: LotDecision, previous: Store
                             plant_name=ws.plant_name, time_zone=ws.time_zone, revision=revision,
                             decided_at=decided_at, revisions=revisions, decided_by=NIGHTLY_JOB)
     signature = None
-    if decision.disposition == Disposition.RELEASED:
+    if decision.disposition in (Disposition.RELEASED, Disposition.READY_FOR_RELEASE):
         signature = signature_block(signer.signer_name, signer.fingerprint_sha256, decided_at.replace(microsecond=0),
-                                    ws.time_zone, NIGHTLY_RELEASE_MEANING)
+                                    ws.time_zone, system_meaning(ws, spec, decision.disposition), system=True)
     return _Job(item, revision, None if previous is None else previous.record, f"{decision.lot_id}_r{revision}",
                 decided_at, dossier, signature)
 

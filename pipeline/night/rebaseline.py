@@ -12,12 +12,17 @@ from dataclasses import dataclass
 
 from pipeline.controlled.specs import Attribute
 from pipeline.errors import InputError
-from pipeline.records import audit
+from pipeline.records import audit, ledger
 from pipeline.records.chart_queries import active_limits, released_count, released_points
 from pipeline.records.run_lock import run_lock
+from pipeline.records.signer_check import authorise_person
+from pipeline.records.signer_register import register_in_force
+from pipeline.records.signing import SigningIdentity, sign_record
 from pipeline.records.store import Store
 from pipeline.records.workspace import Workspace
 from pipeline.release.chart_view import StoredLimits, propose_limits, select_baseline
+from pipeline.release.signature import checked_reason
+from pipeline.vocabulary import SignerRole
 
 
 @dataclass(frozen=True)
@@ -30,14 +35,18 @@ class Rebaselined:
     released_total: int
 
 
-def rebaseline(ws: Workspace, store: Store, product: str, attribute: Attribute, *, by: str, reason: str,
-               from_lot: str | None = None, count: int | None = None) -> Rebaselined:
-    """New limits from ``count`` released lots from ``from_lot`` on (default: the last ones), recorded by ``by``."""
-    reason, by = (reason or "").strip(), (by or "").strip()
-    if not reason:
-        raise InputError("a re-baseline needs a reason (--reason TEXT): why the old limits no longer apply")
-    if not by:
-        raise InputError("a re-baseline needs the name of the person who decides it (--by NAME)")
+def rebaseline(ws: Workspace, store: Store, product: str, attribute: Attribute, *, identity: SigningIdentity,
+               reason: str, from_lot: str | None = None, count: int | None = None) -> Rebaselined:
+    """New limits from ``count`` released lots from ``from_lot`` on (default: the last ones), signed by ``identity``.
+
+    The person is identified by their own PKCS#12 (never a typed name) and must hold the role
+    're-baseline' in the register of authorised signers now; the reason must say something.
+    The audit event carries the person's signature over the new limits and the reason.
+    """
+    reason = checked_reason(reason, ws.reason_pattern)
+    register, register_events = register_in_force(ws, store)
+    check = authorise_person(identity, SignerRole.REBASELINE, anchor_path=ws.trust_root, register=register)
+    by = identity.signer_name
     count = attribute.baseline_n if count is None else count
     if count < 2:
         raise InputError(f"--count must be at least 2 lots (one moving range), received {count}")
@@ -56,10 +65,13 @@ def rebaseline(ws: Workspace, store: Store, product: str, attribute: Attribute, 
         proposal = propose_limits(select_baseline(points, from_lot, count))
         before = active_limits(store, product, attribute.code)
         lim = proposal.limits
-        event = audit.event("limits-rebaselined", time_zone=ws.time_zone, product=product, attribute=attribute.code,
-                            center=lim.center, sigma=lim.sigma, mr_bar=lim.mr_bar, baseline_lots=list(proposal.lots),
-                            by=by, reason=reason)
+        act = {"product": product, "attribute": attribute.code, "center": lim.center, "sigma": lim.sigma,
+               "mr_bar": lim.mr_bar, "baseline_lots": list(proposal.lots), "by": by, "reason": reason}
+        signature = sign_record(identity, ledger.canonical_json(act).encode("utf-8")).to_dict()
+        event = audit.event("limits-rebaselined", time_zone=ws.time_zone, **act, person=check.person,
+                            role=check.role.value, register_version=check.register_version,
+                            register_sha256=check.register_sha256, person_signature=signature)
         after = store.freeze_limits(product, attribute.code, lim.center, lim.sigma, lim.mr_bar, list(proposal.lots),
-                                    frozen_by=by, reason=reason, events=[event])
+                                    frozen_by=by, reason=reason, events=[*register_events, event])
         audit.sync_log(store, ws.log)
         return Rebaselined(before, after, tuple(proposal.lots), released_count(store, product, attribute.code))

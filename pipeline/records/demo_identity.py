@@ -1,8 +1,10 @@
-"""A DEMO signing identity: a plant root CA and a QA signer issued by it, for trying lotgate only.
+"""DEMO signing identities: a plant root CA, the system identity and people, for trying lotgate only.
 
 ``create_demo_identity`` writes ``signer.p12`` and ``signer.passphrase`` (both mode 0600) and the
-public ``root-ca.pem``. Everything it makes is labelled DEMO; a real plant brings its own PKCS#12
-from its own CA.
+public ``root-ca.pem`` of a new root CA: a person's identity, or with ``system=True`` the
+installation's system identity (its subject says so in an organizationalUnit). ``create_demo_trust``
+(in ``pipeline.records.demo_trust``) builds a whole demo workspace's set from one CA. Everything
+made here is labelled DEMO; a real plant brings its own PKCS#12 files from its own CA.
 """
 
 from __future__ import annotations
@@ -44,13 +46,17 @@ class DemoIdentity:
         }
 
 
-def _name(common_name: str, organisation: str) -> x509.Name:
-    return x509.Name(
-        [
-            x509.NameAttribute(NameOID.COMMON_NAME, common_name),
-            x509.NameAttribute(NameOID.ORGANIZATION_NAME, organisation),
-        ]
-    )
+def _name(common_name: str, organisation: str, unit: str | None = None) -> x509.Name:
+    attributes = [x509.NameAttribute(NameOID.COMMON_NAME, common_name),
+                  x509.NameAttribute(NameOID.ORGANIZATION_NAME, organisation)]
+    if unit is not None:
+        attributes.append(x509.NameAttribute(NameOID.ORGANIZATIONAL_UNIT_NAME, unit))
+    return x509.Name(attributes)
+
+
+def system_common_name(plant_name: str) -> str:
+    """The system identity's printed name: the lotgate installation of the plant, never a person."""
+    return f"lotgate system \u2014 {plant_name}" + ("" if "demo" in plant_name.lower() else " (DEMO)")
 
 
 def _key_usage(*, signer: bool) -> x509.KeyUsage:
@@ -84,12 +90,15 @@ def create_demo_identity(
     *,
     valid_days: int = 3650,
     now: datetime | None = None,
+    system: bool = False,
 ) -> DemoIdentity:
     """Write a demo plant root CA and a QA signer certificate issued by it into ``directory``.
 
     Root CA: CN "<plant_name> DEMO Root CA", CA:true (path length 0), keyCertSign + cRLSign.
     Signer: CN "<signer_name> (DEMO)", ECDSA P-256, digitalSignature + nonRepudiation, with
     subject and authority key identifiers. Both are valid from ``now`` for ``valid_days`` days.
+    With ``system``, the signer is the installation's system identity: CN "lotgate system — <plant>
+    (DEMO)" and organizationalUnit SYSTEM_UNIT (``signer_name`` is then not used).
 
     If the three files already exist they are left untouched and their paths returned (the
     signer name is then read from the existing certificate). A partial set is refused rather
@@ -121,12 +130,28 @@ def create_demo_identity(
         )
 
     start = (now or datetime.now(UTC)).replace(microsecond=0)
-    end = start + timedelta(days=valid_days)
+    ca = new_demo_ca(plant_name, start, start + timedelta(days=valid_days))
+    printed = system_common_name(plant_name) if system else f"{signer_name} (DEMO)"
+    directory.mkdir(parents=True, exist_ok=True)
+    _write_private(ca_path, ca.cert.public_bytes(serialization.Encoding.PEM), 0o644)
+    issue_demo_signer(ca, directory, printed, start, start + timedelta(days=valid_days), system=system)
+    return DemoIdentity(p12_path, pass_path, ca_path, printed)
+
+
+@dataclass(frozen=True)
+class DemoCa:
+    """A demo root CA held in memory: its key, certificate and organisation."""
+
+    key: ec.EllipticCurvePrivateKey
+    cert: x509.Certificate
+    organisation: str
+
+
+def new_demo_ca(plant_name: str, start: datetime, end: datetime) -> DemoCa:
+    """A new demo root CA: CN "<plant> DEMO Root CA", CA:true (path length 0), keyCertSign + cRLSign."""
     ca_key = ec.generate_private_key(ec.SECP256R1())
-    signer_key = ec.generate_private_key(ec.SECP256R1())
     org = f"{plant_name} (DEMO)"
     ca_name = _name(f"{plant_name} DEMO Root CA", org)
-    ca_ski = x509.SubjectKeyIdentifier.from_public_key(ca_key.public_key())
     ca_cert = (
         x509.CertificateBuilder()
         .subject_name(ca_name)
@@ -137,37 +162,43 @@ def create_demo_identity(
         .not_valid_after(end)
         .add_extension(x509.BasicConstraints(ca=True, path_length=0), critical=True)
         .add_extension(_key_usage(signer=False), critical=True)
-        .add_extension(ca_ski, critical=False)
+        .add_extension(x509.SubjectKeyIdentifier.from_public_key(ca_key.public_key()), critical=False)
         .sign(ca_key, hashes.SHA256())
     )
+    return DemoCa(ca_key, ca_cert, org)
+
+
+def issue_demo_signer(ca: DemoCa, directory: Path, printed_name: str, start: datetime, end: datetime, *,
+                      system: bool = False) -> tuple[Path, Path, x509.Certificate]:
+    """Issue a signer certificate from ``ca`` into DIR/signer.p12 + DIR/signer.passphrase (mode 0600).
+
+    ECDSA P-256, digitalSignature + nonRepudiation, subject and authority key identifiers; the
+    system identity also carries the organizationalUnit that says it is the system.
+    """
+    from pipeline.records.signer_check import SYSTEM_UNIT
+
+    signer_key = ec.generate_private_key(ec.SECP256R1())
+    ca_ski = x509.SubjectKeyIdentifier.from_public_key(ca.key.public_key())
     signer_cert = (
         x509.CertificateBuilder()
-        .subject_name(_name(f"{signer_name} (DEMO)", org))
-        .issuer_name(ca_name)
+        .subject_name(_name(printed_name, ca.organisation, SYSTEM_UNIT if system else None))
+        .issuer_name(ca.cert.subject)
         .public_key(signer_key.public_key())
         .serial_number(x509.random_serial_number())
         .not_valid_before(start)
         .not_valid_after(end)
         .add_extension(x509.BasicConstraints(ca=False, path_length=None), critical=True)
         .add_extension(_key_usage(signer=True), critical=True)
-        .add_extension(
-            x509.SubjectKeyIdentifier.from_public_key(signer_key.public_key()), critical=False
-        )
-        .add_extension(
-            x509.AuthorityKeyIdentifier.from_issuer_subject_key_identifier(ca_ski), critical=False
-        )
-        .sign(ca_key, hashes.SHA256())
+        .add_extension(x509.SubjectKeyIdentifier.from_public_key(signer_key.public_key()), critical=False)
+        .add_extension(x509.AuthorityKeyIdentifier.from_issuer_subject_key_identifier(ca_ski), critical=False)
+        .sign(ca.key, hashes.SHA256())
     )
     passphrase = secrets.token_urlsafe(32).encode("ascii")
     p12 = pkcs12.serialize_key_and_certificates(
-        name=f"{signer_name} (DEMO)".encode(),
-        key=signer_key,
-        cert=signer_cert,
-        cas=[ca_cert],
+        name=printed_name.encode(), key=signer_key, cert=signer_cert, cas=[ca.cert],
         encryption_algorithm=serialization.BestAvailableEncryption(passphrase),
     )
     directory.mkdir(parents=True, exist_ok=True)
-    _write_private(pass_path, passphrase, 0o600)
-    _write_private(p12_path, p12, 0o600)
-    _write_private(ca_path, ca_cert.public_bytes(serialization.Encoding.PEM), 0o644)
-    return DemoIdentity(p12_path, pass_path, ca_path, f"{signer_name} (DEMO)")
+    _write_private(directory / PASSPHRASE_NAME, passphrase, 0o600)
+    _write_private(directory / P12_NAME, p12, 0o600)
+    return directory / P12_NAME, directory / PASSPHRASE_NAME, signer_cert

@@ -1,4 +1,9 @@
-"""Checking the signatures of a PDF: pyHanko's validator offline, and poppler's ``pdfsig`` as a second opinion."""
+"""Checking the signatures of a PDF: pyHanko's validator offline, and poppler's ``pdfsig`` as a second opinion.
+
+``verify_pdf`` checks integrity and chaining to the roots it is given, nothing more; ``lotgate
+verify`` uses ``pipeline.records.certificate_check`` (configured anchor only, key usage, signers
+by the register, modifications between signatures, the record and the lot's current status).
+"""
 
 from __future__ import annotations
 

@@ -416,6 +416,11 @@ class Store:
         with self.session() as s:
             return self.chain_events(s, events)
 
+    def event_bodies(self, kind: str) -> list[str]:
+        """The bodies of every chained event of one kind, in chain order (the kind column is indexed)."""
+        with self.session() as s:
+            return list(s.scalars(select(AuditEvent.body).where(AuditEvent.kind == kind).order_by(AuditEvent.seq)))
+
     def audit_events(self, after_seq: int = 0, limit: int | None = None) -> list[StoredEvent]:
         """Chained events after ``after_seq``, in chain order; at most ``limit`` when given."""
         with self.session() as s:

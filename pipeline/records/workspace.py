@@ -17,7 +17,7 @@ from pydantic import Field, field_validator
 from pipeline.controlled.strict import Strict, Text, checked
 from pipeline.errors import SpecificationError
 from pipeline.records.database import check_url
-from pipeline.vocabulary import SpecificationDate
+from pipeline.vocabulary import ReleaseMode, SpecificationDate
 
 DEFAULT_TIME_ZONE = "Europe/Berlin"
 
@@ -46,6 +46,12 @@ class Workspace:
     fan_out_deployment: str | None = None  # render a large night's documents on workers (flows/fanout.py)
     fan_out_chunks: int = 2
     fan_out_from_lots: int = 24
+    # Trust and release (see DEVELOPERS.md, "Identities, the register of signers and verification")
+    trust_root: Path | None = None  # the plant's configured root CA: the only anchor signatures chain to
+    signer_register: Path | None = None  # the controlled register of authorised signers (YAML)
+    release_mode: ReleaseMode = ReleaseMode.APPROVAL  # the plant's default; a specification may set its own
+    release_procedure: str | None = None  # the procedure allowing release by exception (automatic mode)
+    reason_pattern: str | None = None  # a reference every person's reason must contain, e.g. CC-[0-9]+
 
     @property
     def inbox(self) -> Path:
@@ -96,6 +102,27 @@ class SigningSettings(Strict):
     p12: Text | None = Field(None, description="the path of a PKCS#12 file")
     passphrase_file: Text | None = Field(None, description="the path of a file holding the passphrase")
     signer_name: Text | None = None
+
+
+class TrustSettings(Strict):
+    root_ca: Text = Field(description="the path of the plant's root CA certificate (PEM)")
+
+
+class ReleaseSettings(Strict):
+    default_mode: Literal["approval", "automatic"] = Field("approval", description="'approval' or 'automatic'")
+    procedure: Text | None = Field(None, description="the name of the procedure allowing release by exception")
+    reason_reference_pattern: Text | None = Field(
+        None, description="a regular expression every person's reason must contain, e.g. 'CC-[0-9]{4}'")
+
+    @field_validator("reason_reference_pattern")
+    @classmethod
+    def _a_pattern(cls, pattern: str | None) -> str | None:
+        if pattern is not None:
+            try:
+                re.compile(pattern)
+            except re.error as exc:
+                raise ValueError(f"is not a valid regular expression ({exc})") from exc
+        return pattern
 
 
 class ControlledSettings(Strict):
@@ -156,6 +183,10 @@ class WorkspaceSettings(Strict):
     schedule: ScheduleSettings | None = Field(None, description="a mapping with cron")
     notify: NotifySettings | None = Field(None, description="a mapping with urls, secrets_file and desk_url")
     fan_out: FanOutSettings | None = Field(None, description="a mapping with deployment, chunks and from_lots")
+    trust: TrustSettings | None = Field(None, description="a mapping with root_ca: the plant's root CA file")
+    signer_register: Text | None = Field(None, description="the path of the register of authorised signers")
+    release: ReleaseSettings | None = Field(
+        None, description="a mapping with default_mode, procedure and reason_reference_pattern")
 
     @field_validator("time_zone")
     @classmethod
@@ -216,6 +247,11 @@ def open_workspace(root: Path, *, plant_name: str | None = None, signer_name: st
     url = os.environ.get("LOTGATE_DATABASE_URL") or settings.database_url or f"sqlite:///{root / 'lotgate.db'}"
     check_url(url)
     signing = settings.signing or SigningSettings()
+    release = settings.release or ReleaseSettings()
+    demo = (root / "keys" / "use-demo-identity").exists()  # the workspace's own choice, never a document's folder
+    trust_root = _setting_path(root, settings.trust.root_ca if settings.trust else None,
+                               root / "keys" / "root-ca.pem" if demo else None)
+    register = _setting_path(root, settings.signer_register, root / "keys" / "signers.yaml" if demo else None)
     return Workspace(
         root=root,
         plant_name=settings.plant_name or plant_name or "Unnamed plant",
@@ -227,6 +263,11 @@ def open_workspace(root: Path, *, plant_name: str | None = None, signer_name: st
         controlled=_controlled_folders(root, settings.controlled, root / SETTINGS_FILE),
         store_shared=settings.store_shared,
         specification_date=SpecificationDate(settings.specification_date),
+        trust_root=trust_root,
+        signer_register=register,
+        release_mode=ReleaseMode(release.default_mode),
+        release_procedure=release.procedure,
+        reason_pattern=release.reason_reference_pattern,
         **_operations(root, settings),
     )
 
@@ -242,6 +283,13 @@ def _operations(root: Path, settings: WorkspaceSettings) -> dict:
             **({} if settings.fan_out is None else {"fan_out_deployment": settings.fan_out.deployment,
                                                     "fan_out_chunks": settings.fan_out.chunks,
                                                     "fan_out_from_lots": settings.fan_out.from_lots})}
+
+
+def _setting_path(root: Path, value: str | None, demo_default: Path | None) -> Path | None:
+    """A file named in the settings (relative to the workspace), else the demo identity's file."""
+    if value is not None:
+        return (root / Path(value).expanduser()).resolve()
+    return demo_default
 
 
 def write_settings(root: Path, settings: dict) -> None:

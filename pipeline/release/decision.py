@@ -24,7 +24,14 @@ from pipeline.release.pending import on_record, record_disposition
 from pipeline.release.records import Decision, TrendFinding
 from pipeline.release.verdicts import is_bound
 from pipeline.science import control_charts as trend
-from pipeline.vocabulary import Disposition, HoldCategory, NelsonRule, TrendStatus, Verdict
+from pipeline.vocabulary import (
+    Disposition,
+    HoldCategory,
+    NelsonRule,
+    ReleaseMode,
+    TrendStatus,
+    Verdict,
+)
 
 CHART_TAIL = 30  # points kept for evaluation (≥ 15, the longest rule) and for the plotted chart
 
@@ -291,6 +298,8 @@ def decide_night(evaluations: list[LotEvaluation], catalog: Catalog, charts: Map
             reasons = (*reasons, f"the lot's earlier decision ({earlier[evaluation.lot_id]}) stands until an "
                                  "authorised person decides (lotgate decide); the nightly job does not release it")
             state = Disposition.HELD
+        if state == Disposition.RELEASED and spec.release_mode != ReleaseMode.AUTOMATIC:
+            state = Disposition.READY_FOR_RELEASE  # release mode 'approval': an authorised person releases
         method_sha = {m.method_id: m.document.sha256 for m in used_methods.values()}
         decision = Decision(
             lot_id=evaluation.lot_id, product=spec.product_code, disposition=state,
@@ -305,7 +314,7 @@ def decide_night(evaluations: list[LotEvaluation], catalog: Catalog, charts: Map
                 chart = working[(spec.product_code, finding.attribute)]
                 chart_pictures.append(_picture(chart, spec.attribute(finding.attribute), evaluation.lot_id,
                                                pending[finding.attribute], decision.label, finding))
-        released = state == Disposition.RELEASED
+        released = state in (Disposition.RELEASED, Disposition.READY_FOR_RELEASE)  # met every criterion
         if released:
             for code, value in pending.items():
                 key = (spec.product_code, code)
