@@ -44,7 +44,7 @@ def recover_interrupted(ws: Workspace, store: Store, identity: str | None = None
     night_files = store.files_of_nights(night_ids)
     notes = [note for row in night_files if (note := _finish_move(ws, row))]
     for night_run in unfinished:
-        store.finish_night(night_run.id)
+        store.finish_night(night_run.id, "interrupted")
         store.add_events([audit.event("night-interrupted", time_zone=ws.time_zone, night_id=night_run.id,
                                       started_utc=night_run.started_at_utc.isoformat())])
         notes.append(f"night {night_run.id} had been interrupted; its decisions stand and this run completes it")
