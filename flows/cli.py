@@ -189,6 +189,14 @@ def cmd_verify(args: argparse.Namespace) -> int:
     console = _console()
     failures = missing = 0
     trust = [Path(p) for p in args.trust] if args.trust else []
+    if args.workspace or args.archive:  # the store branch: records, checkpoints, archive
+        from flows.verify_records import verify_workspace
+
+        root = Path(args.workspace or Path(args.archive).resolve().parent)
+        failures += not verify_workspace(root, Path(args.archive) if args.archive else None, console)
+    elif not args.files:
+        console.print("nothing to verify: name certificate PDFs or a decision log, or --workspace DIR / --archive DIR")
+        return EXIT_NOT_FOUND
     for name in args.files:
         path = Path(name)
         if not path.exists():
@@ -209,7 +217,12 @@ def cmd_verify(args: argparse.Namespace) -> int:
                 both = verify_trail_text(path)
                 if both is not None:
                     ok, reason = both
-            console.print(f"{'VALID' if ok else 'INVALID'} {name}: {reason}")
+                    from flows.verify_records import workspace_findings
+
+                    findings = workspace_findings(path.resolve().parent, with_archive=False)[1:]
+                    ok = ok and all(good for good, _ in findings)
+                    reason += "".join(f"\n  {'' if good else 'INVALID '}{line.strip()}" for good, line in findings)
+            console.print(f"{'VALID' if ok else 'INVALID'} {name}: {reason}", markup=False, soft_wrap=True)
         else:
             ok = False
             console.print(f"INVALID {name}: not a certificate (.pdf) or a decision log (.jsonl)")
@@ -244,7 +257,11 @@ def build_parser() -> argparse.ArgumentParser:
                             description="Check each FILE: a certificate PDF (signature intact and covering the whole "
                                         "file) or a decision log .jsonl (hash chain). Exit 0 when all are valid, 1 when "
                                         "one is not, 4 when a file does not exist.")
-    verify.add_argument("files", nargs="+", metavar="FILE")
+    verify.add_argument("files", nargs="*", metavar="FILE")
+    verify.add_argument("--workspace", metavar="DIR", help="check the workspace's records: audit trail, every record "
+                        "row against its hash and audit event, append-only triggers, sealed checkpoints, archive")
+    verify.add_argument("--archive", metavar="DIR", help="re-check every archived input in DIR (default "
+                        "WORKSPACE/archive) against its recorded SHA-256")
     verify.add_argument("--trust", action="append", metavar="PEM",
                         help="a root CA certificate to trust (default: the workspace's keys/root-ca.pem when found)")
     verify.set_defaults(func=cmd_verify)

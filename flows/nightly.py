@@ -119,7 +119,7 @@ def _stages(ws: Workspace, store: Store, signer: CertificateSigner, step: dict,
     charts = timed("load_charts", store, catalog, evaluations)
     decided = timed("decide", evaluations, catalog, charts, earlier_decisions(store, evaluations))
     outcomes = timed("publish", ws, store, catalog, decided, night_id, signer, _progress)
-    return timed("close", ws, store, intake, outcomes, [*recovered.notes, *assembly.notes])
+    return timed("close", ws, store, intake, outcomes, [*recovered.notes, *assembly.notes], signer)
 
 
 @flow(name="lotgate-night", log_prints=False, persist_result=False)

@@ -149,6 +149,8 @@ class ProblemCode(StrEnum):
     PLATE_INCONSISTENT = "plate-inconsistent"
     TIME_ORDER = "time-order"
     DATE_ORDER = "date-order"
+    FUTURE_DATE = "future-date"  # a manufacturing, assay or test date after today
+    CHANGED_WHILE_READ = "changed-while-read"  # the file's bytes changed between its reading and its archiving
     # the report itself, and lotgate's own defects
     MORE = "more"  # further problems of the kinds listed are not listed
     INTERNAL_ERROR = "internal-error"  # a defect of lotgate, never of the file

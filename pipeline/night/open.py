@@ -95,7 +95,7 @@ def open_night(root: Path) -> tuple[Workspace, Store, IdentitySigner]:
     signer = signer_for(ws)
     open_controlled_documents(ws)
     ws.make_folders()
-    store = Store(ws.database_url)
+    store = Store(ws.database_url, clock_tolerance_minutes=ws.clock_tolerance_minutes)
     return ws, store, signer
 
 
@@ -113,4 +113,4 @@ def open_records(root: Path) -> tuple[Workspace, Store]:
         db = Path(ws.database_url.removeprefix("sqlite:///"))
         if not db.exists():
             raise InputError(f"no results store in {ws.root} (expected {db}); run a night there first")
-    return ws, Store(ws.database_url)
+    return ws, Store(ws.database_url, clock_tolerance_minutes=ws.clock_tolerance_minutes)

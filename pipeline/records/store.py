@@ -16,7 +16,7 @@ from sqlalchemy.exc import SQLAlchemyError
 from sqlalchemy.orm import Session, sessionmaker
 
 from pipeline.errors import StoreError
-from pipeline.records import row_hashes
+from pipeline.records import clock, row_hashes
 from pipeline.records.database import migrate, open_engine, safe_url
 from pipeline.records.stored import (
     DecisionWrite,
@@ -289,7 +289,7 @@ class Store:
             results: list[dict[str, Any]] = []
             points: list[dict[str, Any]] = []
             events: list[dict[str, Any]] = []
-            for w, (row, previous) in zip(writes, rows, strict=True):
+            for w, (row, _previous) in zip(writes, rows, strict=True):
                 results += [{"decision_id": row.id, "attribute": r.code,
                              "value": r.value if isinstance(r.value, int | float) else None,
                              "value_text": r.value if isinstance(r.value, str) else None,
@@ -421,8 +421,8 @@ class Store:
         if self.is_postgresql:
             session.connection().exec_driver_sql(f"SELECT pg_advisory_xact_lock({AUDIT_LOCK_KEY})")
         last = session.scalars(select(AuditEvent).order_by(AuditEvent.seq.desc()).limit(1)).first()
-        if last is not None:
-            self._refuse_clock_set_back(last, events)
+        if last is not None and (why := clock.set_back(last.seq, last.time_utc, events, self.clock_tolerance)):
+            raise StoreError(why)
         chained = ledger.chain(events, prev_hash=last.hash if last else ledger.GENESIS,
                                start_seq=(last.seq + 1) if last else 1)
         session.flush()
@@ -432,27 +432,15 @@ class Store:
              "hash": record["hash"]} for record in chained])
         return chained
 
-    def _refuse_clock_set_back(self, head: AuditEvent, events: list[dict[str, Any]]) -> None:
-        """An event dated before the chain's head by more than the tolerance: the clock was set back."""
-        try:
-            head_time = dt.datetime.fromisoformat(head.time_utc)
-        except ValueError:
-            return  # an event of before times were checked carries none
-        for record in events:
-            try:
-                moment = dt.datetime.fromisoformat(str(record.get("time_utc", "")))
-            except ValueError:
-                continue
-            if head_time - moment > self.clock_tolerance:
-                raise StoreError(
-                    f"this computer's clock says {moment:%Y-%m-%d %H:%M:%S} UTC, but the last record (audit event "
-                    f"{head.seq}) was written at {head_time:%Y-%m-%d %H:%M:%S} UTC: the clock was set back; nothing "
-                    f"was recorded. Correct the clock (allowed drift {self.clock_tolerance.total_seconds() / 60:g} "
-                    "minutes), then run again")
-
     def add_events(self, events: list[dict[str, Any]]) -> list[dict[str, Any]]:
         with self.session() as s:
             return self.chain_events(s, events)
+
+    def last_event(self) -> StoredEvent | None:
+        """The head of the audit chain (None when empty)."""
+        with self.session() as s:
+            r = s.scalars(select(AuditEvent).order_by(AuditEvent.seq.desc()).limit(1)).first()
+            return None if r is None else StoredEvent(r.seq, r.body, r.prev_hash, r.hash)
 
     def audit_events(self, after_seq: int = 0, limit: int | None = None) -> list[StoredEvent]:
         """Chained events after ``after_seq``, in chain order; at most ``limit`` when given."""

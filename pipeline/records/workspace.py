@@ -33,6 +33,14 @@ class Workspace:
     controlled: tuple[tuple[str, Path], ...] = ()
     # True when several workspaces (sites) share one results store on purpose (lot ids then unique across them)
     store_shared: bool = False
+    # Records nobody rewrites unseen (see pipeline/records/checkpoints.py and clock.py)
+    checkpoint_copy: Path | None = None      # a second folder for sealed checkpoints (on another host)
+    timestamp_url: str | None = None         # an RFC 3161 time-stamping authority for checkpoints
+    clock_tolerance_minutes: float = 5.0     # how far an event may be dated before the chain's head
+
+    @property
+    def checkpoints(self) -> Path:
+        return self.root / "records" / "checkpoints"
 
     @property
     def inbox(self) -> Path:
@@ -91,6 +99,12 @@ class ControlledSettings(Strict):
     layouts: Text | None = Field(None, description="a folder name")
 
 
+class RecordsSettings(Strict):
+    checkpoint_copy: Text | None = Field(None, description="a folder (best on another host) for a copy of each checkpoint")
+    timestamp_url: Text | None = Field(None, description="the http(s) URL of an RFC 3161 time-stamping authority")
+    clock_tolerance_minutes: float = Field(5.0, ge=0, le=1440, description="minutes, from 0 to 1440")
+
+
 class WorkspaceSettings(Strict):
     """The declared schema of ``workspace.yaml``: any other key is refused, naming the nearest known one."""
 
@@ -102,6 +116,8 @@ class WorkspaceSettings(Strict):
     controlled: ControlledSettings | None = Field(
         None, description="a mapping of specifications, methods, layouts to folders")
     store_shared: bool = Field(False, description="true or false: whether other workspaces (sites) share the store")
+    records: RecordsSettings | None = Field(
+        None, description="a mapping with checkpoint_copy, timestamp_url and clock_tolerance_minutes")
 
     @field_validator("time_zone")
     @classmethod
@@ -162,6 +178,7 @@ def open_workspace(root: Path, *, plant_name: str | None = None, signer_name: st
     url = os.environ.get("LOTGATE_DATABASE_URL") or settings.database_url or f"sqlite:///{root / 'lotgate.db'}"
     check_url(url)
     signing = settings.signing or SigningSettings()
+    records = settings.records or RecordsSettings()
     return Workspace(
         root=root,
         plant_name=settings.plant_name or plant_name or "Unnamed plant",
@@ -172,6 +189,9 @@ def open_workspace(root: Path, *, plant_name: str | None = None, signer_name: st
         signer_name=signing.signer_name or signer_name or "QA reviewer",
         controlled=_controlled_folders(root, settings.controlled, root / SETTINGS_FILE),
         store_shared=settings.store_shared,
+        checkpoint_copy=(root / Path(records.checkpoint_copy).expanduser()) if records.checkpoint_copy else None,
+        timestamp_url=records.timestamp_url,
+        clock_tolerance_minutes=records.clock_tolerance_minutes,
     )
 
 
