@@ -1,0 +1,163 @@
+"""Records nobody rewrites unseen: a row inserted, edited or deleted in any record table is found.
+
+An insider who owns the database (drops the triggers on SQLite; on PostgreSQL turns triggers and
+foreign keys off for the session with ``session_replication_role = replica``, as a superuser may)
+changes one record table; ``lotgate verify --workspace`` must exit 1 and name the table, the key
+and what happened. The forged rows carry a correctly computed row_sha256: knowing the algorithm
+does not help, because the chained audit event of the transaction that wrote each row names it
+with its hash. Also: the triggers refuse UPDATE and DELETE on every record table.
+"""
+
+from __future__ import annotations
+
+import hashlib
+
+import pytest
+from sqlalchemy import delete, func, insert, select, text, update
+from sqlalchemy.exc import DBAPIError
+
+from flows.cli import build_parser
+from pipeline.records import append_only, audit, row_hashes
+from pipeline.records.store import Store
+from pipeline.records.stored import DecisionWrite, LimitsWrite
+from pipeline.records.tables import APPEND_ONLY_TABLES, RECORD_TABLES
+from pipeline.records.workspace import open_workspace, write_settings
+from pipeline.records.workspace_id import workspace_id
+from pipeline.release.records import DecisionRecord, RecordedResult
+from tests.pg import fresh_database
+
+TABLES = {model.__tablename__: model for model in RECORD_TABLES}
+EDITS = {  # one column per table an insider would want to change, and the forged value
+    "night_runs": ("code_version", "forged"), "input_files": ("file_name", "other.csv"),
+    "lots": ("product_code", "PGR-040"), "decisions": ("decided_by", "Head of Quality"),
+    "results": ("value", 1.0), "control_limits": ("sigma", 1.85), "chart_points": ("value", 999.0),
+    "night_closings": ("lots_decided", 99), "lims_exports": ("export_name", "forged"),
+}
+UNIQUE = {  # what an inserted copy must change to satisfy the table's unique constraints
+    "lots": {"lot_id": "LLC-9999"}, "decisions": {"fingerprint": "forged", "revision": 99},
+    "control_limits": {"version": 99}, "chart_points": {"lot_id": "LLC-9999"},
+}
+
+
+@pytest.fixture(params=["sqlite", pytest.param("postgresql", marks=pytest.mark.slow)])  # ~3 s each: a database made
+def url(request, tmp_path):
+    if request.param == "sqlite":
+        yield f"sqlite:///{tmp_path / 'ws' / 'lotgate.db'}"
+        return
+    database, drop = fresh_database()
+    yield database
+    drop()
+
+
+def _record(lot: str, fingerprint: str, disposition: str = "released") -> DecisionRecord:
+    return DecisionRecord(lot, "LLC-200", disposition, (), (), "1.0", "a" * 64, fingerprint, disposition,
+                          input_files={"lots-1.csv": "b" * 64},
+                          results=(RecordedResult("activity", 1200.0, "1200", "U/mL", "pass"),))
+
+
+def filled_workspace(root, url):
+    """A workspace whose store holds rows in every record table, written by lotgate's own store."""
+    root.mkdir(parents=True, exist_ok=True)
+    write_settings(root, {"database_url": url, "time_zone": "UTC"})
+    ws = open_workspace(root)
+    ws.make_folders()
+    store = Store(url)
+    first = store.start_night("test", workspace_id(root))
+    store.start_night("test", workspace_id(root))  # a second night, never closed
+    archived = ws.archive / "night-0001" / "lots-1.csv"
+    archived.parent.mkdir(parents=True)
+    archived.write_bytes(b"lot_id\nLLC-0001\n")
+    archived.chmod(0o444)
+    sha = hashlib.sha256(archived.read_bytes()).hexdigest()
+    store.record_files(first, [dict(file_name="lots-1.csv", sha256=sha, kind="lot-registry", layout_version="1",
+                                    status="archived", reason=None, stored_as="archive/night-0001/lots-1.csv")],
+                       [audit.event("file-archived", time_zone="UTC", file="lots-1.csv", sha256=sha)])
+    limits = LimitsWrite("LLC-200", "activity", 1200.0, 6.3, 7.1, ("LLC-0001", "LLC-0002"), "lotgate", "baseline",
+                         (audit.event("limits-frozen", time_zone="UTC"),))
+    writes = [DecisionWrite(_record(lot, f"f{lot}"), "lotgate", night_id=first, manufactured_on="2026-11-20",
+                            chart_values={"activity": 1200.0 + n},
+                            events=(audit.event("decision", time_zone="UTC", lot_id=lot),))
+              for n, lot in enumerate(("LLC-0001", "LLC-0002"))]
+    stored = store.add_decisions(writes, (limits,))
+    store.mark_exported([stored[0].id], "results-000001-000001", [audit.event("lims-results-written", time_zone="UTC")])
+    store.finish_night(first, files_received=1, files_archived=1, files_quarantined=0, lots_decided=2)
+    audit.sync_log(store, ws.log)
+    return ws, store
+
+
+def verify(root, capsys, *extra) -> tuple[int, str]:
+    args = build_parser().parse_args(["verify", "--workspace", str(root), *extra])
+    code = args.func(args)
+    return code, capsys.readouterr().out
+
+
+def insider(store):
+    """A connection of someone who owns the database and silences its guards."""
+    connection = store.engine.connect()
+    if store.is_postgresql:
+        connection.execute(text("SET session_replication_role = replica"))  # no triggers, no foreign keys
+    else:
+        append_only.drop_triggers(connection, APPEND_ONLY_TABLES)  # not put back: verify must say so too
+    return connection
+
+
+def test_an_untouched_workspace_verifies(url, tmp_path, capsys):
+    ws, store = filled_workspace(tmp_path / "ws", url)
+    code, out = verify(ws.root, capsys)
+    assert code == 0, out
+    # 2 nights, 1 file, 2 lots, 2 decisions, 2 results, 1 limits, 2 chart points, 1 closing, 1 LIMS export
+    assert "VALID record rows: 14 rows in 9 tables" in out and "INVALID" not in out
+    with store.engine.connect() as c:
+        for model in RECORD_TABLES:  # every table holds rows, so every table's tampering can be tried
+            assert c.execute(select(func.count()).select_from(model.__table__)).scalar() >= 1, model.__tablename__
+
+
+@pytest.mark.parametrize("table", sorted(TABLES))
+@pytest.mark.parametrize("attack", ["insert", "edit", "delete"])
+def test_a_row_changed_outside_lotgate_is_named(url, tmp_path, capsys, table, attack):
+    ws, store = filled_workspace(tmp_path / "ws", url)
+    model = TABLES[table]
+    t = model.__table__
+    key = row_hashes.primary_key(t)
+    with insider(store) as c:
+        row = dict(c.execute(select(t).order_by(t.c[key]).limit(1)).mappings().one())
+        if attack == "edit":
+            column, value = EDITS[table]
+            assert row[column] != value
+            c.execute(update(t).where(t.c[key] == row[key]).values({column: value}))
+        elif attack == "delete":
+            c.execute(delete(t).where(t.c[key] == row[key]))
+        else:
+            forged = {k: v for k, v in row.items() if k != key or table == "lots"}
+            forged.update(UNIQUE.get(table, {}))
+            if table == "night_closings":
+                forged["night_id"] = 2  # the night that never closed "closes"
+            if table == "lims_exports":
+                forged["decision_id"] = c.execute(select(func.max(TABLES["decisions"].id))).scalar()
+            forged["row_sha256"] = row_hashes.row_sha256(t, forged)  # the insider knows the algorithm
+            c.execute(insert(t).values(forged))
+        c.commit()
+    code, out = verify(ws.root, capsys)
+    assert code == 1, out
+    assert "INVALID record rows:" in out and f"{table} row " in out
+    phrase = {"insert": "no audit event recorded this row", "edit": "edited after it was written",
+              "delete": "it was deleted"}[attack]
+    assert phrase in out, out
+    if not store.is_postgresql:
+        assert "missing on" in out  # the dropped triggers are reported as well
+
+
+@pytest.mark.parametrize("table", APPEND_ONLY_TABLES)
+def test_the_database_refuses_update_and_delete_on_every_record_table(url, tmp_path, table):
+    ws, store = filled_workspace(tmp_path / "ws", url)
+    t = TABLES[table].__table__ if table in TABLES else None
+    with store.engine.connect() as c:
+        if t is None:  # the audit chain itself
+            statements = [text("UPDATE audit_events SET kind = 'x'"), text("DELETE FROM audit_events")]
+        else:
+            column = EDITS[table][0]
+            statements = [update(t).values({column: EDITS[table][1]}), delete(t)]
+        for statement in statements:
+            with pytest.raises(DBAPIError, match=f"{table} is append-only"):
+                c.execute(statement)
+            c.rollback()
