@@ -134,7 +134,8 @@ def load(path: Path) -> dict[str, Any] | None:
 
 def check_store(store: Store, folders: list[Path], trust_roots: list[Any] | None = None) -> CheckpointsCheck:
     """Every checkpoint in ``folders`` against the store: signed, and its record there with the same hash."""
-    files = sorted({p.name: p for folder in folders if folder.is_dir() for p in folder.glob("[0-9]*.json")}.items())
+    files = sorted(((p.name, p) for folder in folders if folder.is_dir() for p in folder.glob("[0-9]*.json")),
+                   key=lambda item: (item[0], str(item[1])))  # every copy in every folder, oldest record first
     if not files:
         return CheckpointsCheck(True, 0, "no checkpoint written yet", ())
     by_seq = {e.seq: e.hash for e in store.audit_events()}
@@ -149,7 +150,7 @@ def check_store(store: Store, folders: list[Path], trust_roots: list[Any] | None
         point = sealed["checkpoint"]
         seal = check_signature(sealed, trust_roots)
         if not seal.ok:
-            problems.append(f"checkpoint {name}: {seal.reason}")
+            problems.append(f"checkpoint {path}: {seal.reason}")
             continue
         seq, sha = point.get("seq"), point.get("hash")
         if seq not in by_seq:
