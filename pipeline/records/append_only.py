@@ -2,9 +2,9 @@
 
 SQLite and PostgreSQL both get a BEFORE UPDATE and a BEFORE DELETE trigger per table (PostgreSQL
 also BEFORE TRUNCATE) that aborts the statement, naming the table. On PostgreSQL the plant may
-also split roles (``ROLE_SPLIT_SQL``): the owner runs the migrations; the application role the
-nights connect as may SELECT and INSERT only, so an UPDATE or DELETE is refused by the grants
-before any trigger runs.
+also split roles (``role_split_statements``): the owner runs the migrations; the application role
+the nights connect as may SELECT and INSERT only, so an UPDATE, DELETE or TRUNCATE is refused by
+the grants before any trigger runs.
 
 A later migration that rebuilds one of these tables on SQLite (Alembic's batch mode copies the
 table) drops its triggers: it must call ``create_triggers`` again. ``missing_triggers`` lets
@@ -79,18 +79,13 @@ def missing_triggers(connection: Any, tables: tuple[str, ...]) -> list[str]:
 
 
 # The owner/application split on PostgreSQL (run by the plant's database administrator; see DEVELOPERS.md).
-ROLE_SPLIT_SQL = """\
-CREATE ROLE {owner} LOGIN;                       -- owns the schema, runs the migrations (lotgate's first open)
-CREATE ROLE {app} LOGIN;                         -- the role nights and commands connect as afterwards
-GRANT CONNECT ON DATABASE {database} TO {app};
-GRANT USAGE ON SCHEMA public TO {app};
-ALTER DEFAULT PRIVILEGES FOR ROLE {owner} IN SCHEMA public GRANT SELECT, INSERT ON TABLES TO {app};
-ALTER DEFAULT PRIVILEGES FOR ROLE {owner} IN SCHEMA public GRANT USAGE, SELECT ON SEQUENCES TO {app};
-"""
-
-
-def app_role_grants(app: str, tables: tuple[str, ...]) -> list[str]:
-    """Grants of the application role on existing tables: read and add, never change or delete (pure)."""
-    return [f"GRANT SELECT, INSERT ON {', '.join(tables)} TO {app}",
-            f"GRANT SELECT ON alembic_version TO {app}",
-            f"GRANT USAGE, SELECT ON ALL SEQUENCES IN SCHEMA public TO {app}"]
+def role_split_statements(owner: str, app: str, database: str) -> list[str]:
+    """Two roles (pure): ``owner`` owns the schema and runs the migrations (lotgate's first open, and each
+    upgrade); ``app``, the role nights and commands connect as, may read and add rows, never change or
+    delete them, now and in tables later migrations add (default privileges)."""
+    return [f"CREATE ROLE {owner} LOGIN", f"CREATE ROLE {app} LOGIN",
+            f"GRANT CONNECT ON DATABASE {database} TO {owner}, {app}",
+            f"ALTER SCHEMA public OWNER TO {owner}",
+            f"GRANT USAGE ON SCHEMA public TO {app}",
+            f"ALTER DEFAULT PRIVILEGES FOR ROLE {owner} IN SCHEMA public GRANT SELECT, INSERT ON TABLES TO {app}",
+            f"ALTER DEFAULT PRIVILEGES FOR ROLE {owner} IN SCHEMA public GRANT USAGE, SELECT ON SEQUENCES TO {app}"]
