@@ -12,6 +12,7 @@ from typing import Any
 
 from pipeline import __version__
 from pipeline.documents.lims_results import lims_files, result_rows
+from pipeline.errors import LotgateError
 from pipeline.night.publish import Outcome
 from pipeline.night.receive import Intake, changed_report, quarantine_record, stored_name
 from pipeline.night.seal import seal
@@ -75,7 +76,13 @@ def close(ws: Workspace, store: Store, intake: Intake, outcomes: list[Outcome], 
                                   files_quarantined=quarantined, lots_decided=decided, not_decided=notes)])
     audit.sync_log(store, ws.log)
     if signer is not None:  # a night without a signing identity (tests only) writes no checkpoint
-        seal(ws, store, f"night {intake.night_id} closed", signer)
+        try:
+            seal(ws, store, f"night {intake.night_id} closed", signer)
+        except (LotgateError, OSError) as exc:  # the night's records stand; the failure is recorded and said
+            notes = [*notes, f"no checkpoint was sealed after this night: {exc}"]
+            store.add_events([audit.event("checkpoint-not-sealed", time_zone=ws.time_zone, night_id=intake.night_id,
+                                          reason=str(exc))])
+            audit.sync_log(store, ws.log)
     return NightSummary(intake.night_id, intake.received, archived, quarantined, outcomes, notes,
                         [(q.file_name, q.reason) for q in intake.quarantined] + changed,
                         [str(p.relative_to(ws.root)) for p in lims])
