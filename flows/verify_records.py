@@ -34,6 +34,9 @@ def workspace_findings(root: Path, *, archive: Path | None = None, with_archive:
                   + ("each matching its hash and named by the audit event that wrote it" if rows.valid
                      else f"{len(rows.problems)} found changed, inserted or deleted outside lotgate:"),
                   [str(p) for p in rows.problems])
+    signed, wrong = store_check.check_person_signatures(store)
+    out += _lines(not wrong, f"person's signatures: {signed} decisions signed by a person, "
+                  + ("each signature valid for its record" if not wrong else f"{len(wrong)} not valid:"), wrong)
     bare = store_check.unprotected_tables(store)
     out.append((not bare, "append-only triggers: " + ("in place on every record table" if not bare else
                                                       f"missing on {', '.join(bare)} (someone removed them)")))

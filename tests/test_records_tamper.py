@@ -119,3 +119,30 @@ def test_the_database_refuses_update_and_delete_on_every_record_table(url, tmp_p
             with pytest.raises(DBAPIError, match=f"{table} is append-only"):
                 c.execute(statement)
             c.rollback()
+
+
+def test_a_persons_signature_that_does_not_match_its_record_is_named(tmp_path, capsys):
+    import dataclasses
+
+    from pipeline.records import audit, ledger
+    from pipeline.records.demo_identity import create_demo_identity
+    from pipeline.records.signing import load_identity, sign_record
+    from pipeline.records.stored import DecisionWrite
+
+    ws, store = filled_workspace(tmp_path / "ws", f"sqlite:///{tmp_path / 'ws' / 'lotgate.db'}")
+    keys = create_demo_identity(tmp_path / "keys", "Tarnwick Bioprocess test plant", "Ines Haldor")
+    person = load_identity(keys.p12_path, passphrase_env="", passphrase_file=keys.passphrase_path)
+    latest = store.latest_decision("LLC-0002").record
+    signed = dataclasses.replace(latest, revision=2, fingerprint="person-1", disposition="rejected")
+    good = sign_record(person, ledger.canonical_json(signed.to_json()).encode()).to_dict()
+    # A second record carrying the first one's signature: a signature copied onto another decision.
+    copied = dataclasses.replace(signed, revision=3, fingerprint="person-2", disposition="released")
+    store.add_decisions([DecisionWrite(dataclasses.replace(signed, person_signature=good), "Ines Haldor (DEMO)",
+                                       events=(audit.event("person-disposition", time_zone="UTC"),)),
+                         DecisionWrite(dataclasses.replace(copied, person_signature=good), "Ines Haldor (DEMO)",
+                                       events=(audit.event("person-disposition", time_zone="UTC"),))])
+    audit.sync_log(store, ws.log)
+    code, out = verify(ws.root, capsys)
+    assert code == 1
+    assert "INVALID person's signatures: 2 decisions signed by a person, 1 not valid:" in out
+    assert "lot LLC-0002 revision 3: the signature of Ines Haldor (DEMO) does not match the record" in out
