@@ -196,7 +196,7 @@ def cmd_verify(args: argparse.Namespace) -> int:
         failures += not verify_workspace(root, Path(args.archive) if args.archive else None, console)
     elif not args.files:
         console.print("nothing to verify: name certificate PDFs or a decision log, or --workspace DIR / --archive DIR")
-        return EXIT_NOT_FOUND
+        return EXIT_SETUP
     for name in args.files:
         path = Path(name)
         if not path.exists():
@@ -255,8 +255,9 @@ def build_parser() -> argparse.ArgumentParser:
     run.set_defaults(func=cmd_run)
     verify = sub.add_parser("verify", help="check certificates' signatures or the decision log's chain",
                             description="Check each FILE: a certificate PDF (signature intact and covering the whole "
-                                        "file) or a decision log .jsonl (hash chain). Exit 0 when all are valid, 1 when "
-                                        "one is not, 4 when a file does not exist.")
+                                        "file) or a decision log .jsonl (hash chain, and the store's records beside it); "
+                                        "or a workspace's records (--workspace) and archive (--archive). Exit 0 when all "
+                                        "are valid, 1 when one is not, 4 when a file does not exist.")
     verify.add_argument("files", nargs="*", metavar="FILE")
     verify.add_argument("--workspace", metavar="DIR", help="check the workspace's records: audit trail, every record "
                         "row against its hash and audit event, append-only triggers, sealed checkpoints, archive")

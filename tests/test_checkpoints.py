@@ -135,22 +135,23 @@ def test_a_re_chained_history_is_found(url, tmp_path, signer, capsys):
     assert "the history before it was rewritten and re-chained" in out  # ... but not with the seal
 
 
-def test_an_event_dated_before_the_chain_head_is_refused(tmp_path):
+def test_recording_with_the_clock_set_back_is_refused(tmp_path):
     url = f"sqlite:///{tmp_path / 'ws' / 'lotgate.db'}"
     ws, store = filled_workspace(tmp_path / "ws", url)
-    head = store.last_event().seq
     now = dt.datetime.now(dt.UTC)
+    nearly = {"kind": "test", "time_utc": (now + dt.timedelta(minutes=4)).isoformat(timespec="milliseconds")}
+    store.add_events([nearly])  # the last record 4 minutes "ahead": clocks drift, within the default 5
+    store.add_events([audit.event("decision", time_zone="UTC", lot_id="LLC-0003")])
     ahead = {"kind": "test", "time_utc": (now + dt.timedelta(hours=1)).isoformat(timespec="milliseconds")}
-    store.add_events([ahead])  # written while the clock was an hour ahead
-    back = audit.event("decision", time_zone="UTC", lot_id="LLC-0003")  # the clock now "goes back" an hour
-    with pytest.raises(StoreError, match="the clock was set back; nothing was recorded"):
-        store.add_events([back])
-    assert store.last_event().seq == head + 1
-    drift = {"kind": "test", "time_utc": (now + dt.timedelta(minutes=56)).isoformat(timespec="milliseconds")}
-    store.add_events([drift])  # 4 minutes before the head: within the default tolerance of 5
+    store.add_events([ahead])  # written while the clock was an hour ahead; now it is "set back" an hour
+    head = store.last_event().seq
+    with pytest.raises(StoreError, match="the clock was set back; nothing was recorded") as refused:
+        store.add_events([audit.event("decision", time_zone="UTC", lot_id="LLC-0003")])
+    assert "\n" not in str(refused.value) and f"(audit event {head})" in str(refused.value)
+    assert store.last_event().seq == head
     write_settings(ws.root, {"database_url": url, "records": {"clock_tolerance_minutes": 90}})
     from pipeline.night.open import open_records
 
     _, tolerant = open_records(ws.root)
-    tolerant.add_events([back])  # a plant that allows 90 minutes
-    assert tolerant.last_event().seq == head + 3
+    tolerant.add_events([audit.event("decision", time_zone="UTC", lot_id="LLC-0003")])  # a plant allowing 90 minutes
+    assert tolerant.last_event().seq == head + 1

@@ -421,7 +421,7 @@ class Store:
         if self.is_postgresql:
             session.connection().exec_driver_sql(f"SELECT pg_advisory_xact_lock({AUDIT_LOCK_KEY})")
         last = session.scalars(select(AuditEvent).order_by(AuditEvent.seq.desc()).limit(1)).first()
-        if last is not None and (why := clock.set_back(last.seq, last.time_utc, events, self.clock_tolerance)):
+        if last is not None and (why := clock.set_back(last.seq, last.time_utc, utcnow(), self.clock_tolerance)):
             raise StoreError(why)
         chained = ledger.chain(events, prev_hash=last.hash if last else ledger.GENESIS,
                                start_seq=(last.seq + 1) if last else 1)
