@@ -227,6 +227,14 @@ def cmd_verify(args: argparse.Namespace) -> int:
     console = _console()
     failures = missing = 0
     opened = None
+    if (args.workspace and not args.files) or args.archive:  # the workspace's records, checkpoints, archive
+        from flows.verify_records import verify_workspace
+
+        root = Path(args.workspace or Path(args.archive).resolve().parent)
+        failures += not verify_workspace(root, Path(args.archive) if args.archive else None, console)
+    elif not args.files:
+        console.print("nothing to verify: name certificate PDFs or a decision log, or --workspace DIR / --archive DIR")
+        return EXIT_SETUP
     for name in args.files:
         path = Path(name)
         if not path.exists():
@@ -245,7 +253,12 @@ def cmd_verify(args: argparse.Namespace) -> int:
                 both = verify_trail_text(path)
                 if both is not None:
                     ok, reason = both
-            console.print(f"{'VALID' if ok else 'INVALID'} {name}: {reason}")
+                    from flows.verify_records import workspace_findings
+
+                    findings = workspace_findings(path.resolve().parent, with_archive=False)[1:]
+                    ok = ok and all(good for good, _ in findings)
+                    reason += "".join(f"\n  {'' if good else 'INVALID '}{line.strip()}" for good, line in findings)
+            console.print(f"{'VALID' if ok else 'INVALID'} {name}: {reason}", markup=False, soft_wrap=True)
         else:
             ok = False
             console.print(f"INVALID {name}: not a certificate (.pdf) or a decision log (.jsonl)")
@@ -276,18 +289,24 @@ def build_parser() -> argparse.ArgumentParser:
     run.add_argument("--no-orchestration", action="store_true",
                      help="call the stages as plain functions instead of a Prefect flow (same results)")
     run.set_defaults(func=cmd_run)
-    verify = sub.add_parser("verify", help="check certificates (signatures, signers, record) or the decision log's chain",
+    verify = sub.add_parser("verify", help="check certificates (signatures, signers, record), the decision log's "
+                                           "chain, or a workspace's records and archive",
                             description="Check each FILE: a certificate PDF against the workspace that issued it "
                                         "(each signature intact, chained to the workspace's configured trust anchor, "
                                         "key usage, validity at signing time, signer the system or a person authorised "
                                         "in the register, nothing added after the last signature but signatures, and "
                                         "the record: lot, revision, SHA-256 and the lot's current status), or a "
-                                        "decision log .jsonl (hash chain). Exit 0 when all hold, 1 when one does not, "
-                                        "4 when a file does not exist.")
-    verify.add_argument("files", nargs="+", metavar="FILE")
+                                        "decision log .jsonl (hash chain). With --workspace and no FILE: the "
+                                        "workspace's records (audit trail, every record row against its hash and "
+                                        "audit event, append-only triggers, sealed checkpoints, archive). Exit 0 when "
+                                        "all hold, 1 when one does not, 4 when a file does not exist.")
+    verify.add_argument("files", nargs="*", metavar="FILE")
     verify.add_argument("--workspace", metavar="DIR",
                         help="the workspace that issued the certificates (required for a PDF): its configured trust "
-                             "anchor, register of signers and store are used, never files found beside a document")
+                             "anchor, register of signers and store are used, never files found beside a document; "
+                             "without FILE, its records are checked")
+    verify.add_argument("--archive", metavar="DIR", help="re-check every archived input in DIR (default "
+                        "WORKSPACE/archive) against its recorded SHA-256")
     verify.set_defaults(func=cmd_verify)
     from flows import records_cmd
 

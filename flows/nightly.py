@@ -154,7 +154,7 @@ def _stages(ws: Workspace, store: Store, signer: CertificateSigner, step: dict,
 
         fan_out = renderers_for(ws, night_id)
     outcomes = timed("publish", ws, store, catalog, decided, night_id, signer, _progress, fan_out)
-    summary = timed("close", ws, store, intake, outcomes, [*recovered.notes, *assembly.notes])
+    summary = timed("close", ws, store, intake, outcomes, [*recovered.notes, *assembly.notes], signer)
     from flows.desk.static_page import write_night_page
 
     write_night_page(ws, store, summary.night_id)  # the night's review page, after its records

@@ -153,6 +153,8 @@ class ProblemCode(StrEnum):
     DATE_ORDER = "date-order"
     # a file against the controlled documents
     PLATE_FORMAT = "plate-format"  # a read of a plate format its method does not declare
+    FUTURE_DATE = "future-date"  # a manufacturing, assay or test date after today
+    CHANGED_WHILE_READ = "changed-while-read"  # the file's bytes changed between its reading and its archiving
     # the report itself, and lotgate's own defects
     MORE = "more"  # further problems of the kinds listed are not listed
     INTERNAL_ERROR = "internal-error"  # a defect of lotgate, never of the file

@@ -263,6 +263,13 @@ def _single_file_cases() -> list[Case]:
         to_csv(REGISTRY_HEADER, registry_rows(a, made="2026-11-24", assayed="2026-11-20")), ProblemCode.DATE_ORDER,
         "before the manufacturing date", (a,))
     a = lot()
+    add("manufacturing and assay dates in the future", q, f"lots-{a}.csv",
+        to_csv(REGISTRY_HEADER, registry_rows(a, made="2099-01-04", assayed="2099-01-05")), ProblemCode.FUTURE_DATE,
+        "the manufacturing date 2099-01-04 is in the future", (a,))
+    a = lot()
+    add("LIMS test date in the future", q, f"lims-{a}.csv", to_csv(LIMS_HEADER, lims_rows(a, tested_on="2099-01-05")),
+        ProblemCode.FUTURE_DATE, "the test date 2099-01-05 is in the future", (a,))
+    a = lot()
     add("lot registered twice in one registry", q, f"lots-{a}.csv", to_csv(REGISTRY_HEADER, registry_rows(a) * 2),
         ProblemCode.DUPLICATE_VALUE, "appears more than once", (a,))
     a = lot()
@@ -340,13 +347,14 @@ class _Scenario:
     def tag(self) -> str:
         return f"{self.date:%y%m%d}"
 
+    # Past dates (a date after today is refused), several scenarios a month: the day is the lot's number.
     @property
     def lipase(self) -> str:
-        return f"LLC-{self.date:%y%m}-001"
+        return f"LLC-{self.date:%y%m}-{self.date.day:03d}"
 
     @property
     def protease(self) -> str:
-        return f"PGR-{self.date:%y%m}-001"
+        return f"PGR-{self.date:%y%m}-{self.date.day:03d}"
 
     def name(self, kind: str) -> str:
         names = {"registry": f"lots-{self.date:%Y%m%d}.csv",
@@ -361,8 +369,13 @@ class _Scenario:
 
 
 def _scenario(date: dt.date) -> _Scenario:
+    """The demo plant's night of ``date``, its lots renumbered by the day (several scenarios share a month)."""
     night = demo.build_scenario(first_night=date, nights=1, lipase_per_night=1, protease_per_night=1)[0]
-    return _Scenario(date, dict(night.files))
+    files = dict(night.files)
+    for prefix in ("LLC", "PGR"):
+        old, new = f"{prefix}-{date:%y%m}-001", f"{prefix}-{date:%y%m}-{date.day:03d}"
+        files = {name.replace(old, new): data.replace(old.encode(), new.encode()) for name, data in files.items()}
+    return _Scenario(date, files)
 
 
 def _sample_wells(plate_map: bytes, role: str = "sample") -> list[str]:
@@ -377,7 +390,7 @@ def _cross_file_cases() -> tuple[list[Case], dict[str, bytes], list[str]]:
     incomplete, invalid = HoldCategory.INCOMPLETE, HoldCategory.INVALID_ASSAY
 
     # C1: files read with an explicit, recorded conversion; both lots are released.
-    s = _scenario(dt.date(2027, 1, 6))
+    s = _scenario(dt.date(2026, 7, 6))
     registry = s.take("registry")
     cases.append(Case("UTF-8 byte-order mark", "read; conversion recorded", {s.name("registry"): b"\xef\xbb\xbf" + registry},
                       (Read(s.name("registry"), "byte-order mark"), Released(s.lipase), Released(s.protease)),
@@ -402,7 +415,7 @@ def _cross_file_cases() -> tuple[list[Case], dict[str, bytes], list[str]]:
     lots += [s.lipase, s.protease]
 
     # C2: a read from another run; a LIMS test reported twice with different results.
-    s = _scenario(dt.date(2027, 2, 6))
+    s = _scenario(dt.date(2026, 7, 13))
     other = f"AK-{s.tag}-L7"
     cases.append(Case("plate map from another run (read's plate not in any map)",
                       "read not used (noted); the map's lots held: incomplete",
@@ -418,7 +431,7 @@ def _cross_file_cases() -> tuple[list[Case], dict[str, bytes], list[str]]:
     lots += [s.lipase, s.protease]
 
     # C3: a mapped well without a read; a read well outside the mapped plate.
-    s = _scenario(dt.date(2027, 3, 6))
+    s = _scenario(dt.date(2026, 7, 20))
     well = _sample_wells(s.files[s.name("lmap")])[0]
     header, rows = from_csv(s.take("lread"))
     cases.append(Case("mapped well with no read", "lot held: incomplete",
@@ -433,7 +446,7 @@ def _cross_file_cases() -> tuple[list[Case], dict[str, bytes], list[str]]:
     lots += [s.lipase, s.protease]
 
     # C4: saturated wells (inside the reader's range, above the method's linear limit); a lot on two plates.
-    s = _scenario(dt.date(2027, 4, 6))
+    s = _scenario(dt.date(2026, 7, 27))
     wells = set(_sample_wells(s.files[s.name("lmap")]))
     header, rows = from_csv(s.take("lread"))
     lifted = [[*r[:3], f"{float(r[3]) + 2.1:.4f}", *r[4:]] if r[1] in wells else r for r in rows]
@@ -448,7 +461,7 @@ def _cross_file_cases() -> tuple[list[Case], dict[str, bytes], list[str]]:
     lots += [s.lipase, s.protease]
 
     # C5: two plate maps for one plate; a plate map naming an unknown method.
-    s = _scenario(dt.date(2027, 5, 6))
+    s = _scenario(dt.date(2026, 8, 3))
     header, rows = from_csv(s.take("lmap"))
     half = len(rows) // 2
     cases.append(Case("two plate maps for one plate", "lot held: incomplete",
@@ -469,10 +482,10 @@ def _cross_file_cases() -> tuple[list[Case], dict[str, bytes], list[str]]:
     lots += [s.lipase, s.protease]
 
     # C7: a LIMS test dated before manufacture; a second kinetic read of a plate (a re-read added).
-    s = _scenario(dt.date(2027, 7, 6))
+    s = _scenario(dt.date(2026, 8, 10))
     header, rows = from_csv(s.take("llims"))
     cases.append(Case("LIMS test dated before the lot was manufactured", "lot held: incomplete",
-                      {s.name("llims"): to_csv(header, [[*r[:4], "2027-06-01", *r[5:]] for r in rows])},
+                      {s.name("llims"): to_csv(header, [[*r[:4], "2026-06-01", *r[5:]] for r in rows])},
                       (Held(s.lipase, incomplete, "before the lot was manufactured"),), (s.lipase,)))
     header, rows = from_csv(s.files[s.name("pread")])
     rows[0][3] = f"{float(rows[0][3]) + 0.0001:.4f}"
@@ -483,7 +496,7 @@ def _cross_file_cases() -> tuple[list[Case], dict[str, bytes], list[str]]:
     lots += [s.lipase, s.protease]
 
     # C8: a quarantined plate map and a quarantined read hold the lots they concern.
-    s = _scenario(dt.date(2027, 8, 6))
+    s = _scenario(dt.date(2026, 8, 17))
     header, rows = from_csv(s.take("lmap"))
     cases.append(Case("plate map quarantined (duplicated well)", "map quarantined; its read noted; lot held: incomplete",
                       {s.name("lmap"): to_csv(header, [*rows, rows[-1]])},

@@ -28,9 +28,10 @@ GOLDEN = Path(__file__).parent / "golden" / "demo"
 _TIME = re.compile(r"\d{4}-\d{2}-\d{2}[T ]\d{2}:\d{2}(:\d{2}(\.\d+)?)?(\+00:00|Z)?")
 _HEX = re.compile(r"[0-9a-f]{12,64}")
 # A person's record signature (ECDSA: new each time), an investigation's signature, the hash of a
-# record holding times, and the demo register's dates (the day the demo ran) are masked too.
+# record holding times, a row hash (it covers its times), and the demo register's dates (the day
+# the demo ran) are masked too.
 _MASKED_COLUMNS = {"prev_hash", "hash", "workspace_id", "signature", "person_signature", "record_sha256",
-                   "valid_from", "valid_to"}
+                   "valid_from", "valid_to", "row_sha256"}
 _DIGITS = 10
 
 

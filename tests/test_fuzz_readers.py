@@ -155,7 +155,7 @@ def test_random_unicode_inserted(name, data):
 # ------------------------------------------------------------------------------ valid files parse
 LOT = st.from_regex(r"[A-Z0-9][A-Z0-9-]{2,31}", fullmatch=True)
 WELL = st.builds(lambda r, c: f"{r}{c:02d}", st.sampled_from("ABCDEFGH"), st.integers(1, 12))
-DATE = st.dates(min_value=dt.date(2000, 1, 1), max_value=dt.date(2099, 12, 31))
+DATE = st.dates(min_value=dt.date(2000, 1, 1), max_value=dt.date(2026, 11, 30))  # a later date is refused
 RESULT = st.one_of(st.sampled_from(["absent", "present"]),
                    st.builds(lambda q, v: f"{q}{v}", st.sampled_from(["", "<", "< "]),
                              st.decimals(-1000, 1000, places=2, allow_nan=False).map(str)))

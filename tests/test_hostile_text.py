@@ -38,7 +38,7 @@ from pipeline.records.workspace import write_settings
 from pipeline.vocabulary import Disposition, ProblemCode
 
 LAYOUTS = load_layouts(Path(__file__).resolve().parents[1] / "schemas")
-DATE = dt.date(2027, 9, 6)
+DATE = dt.date(2026, 9, 7)  # in the past: a date after today is refused
 LIPASE, PROTEASE = f"LLC-{DATE:%y%m}-001", f"PGR-{DATE:%y%m}-001"
 PATH_LOTS = ["../../escape", "..\\..\\escape", "LLC/2611/901", "LLC-..-902", "/etc/passwd", "LLC-2611-903/..", "C:\\temp\\x"]
 UNITS = {  # LIMS test -> a unit with markup or a formula; each differs from the specification's unit
@@ -49,7 +49,7 @@ UNITS = {  # LIMS test -> a unit with markup or a formula; each differs from the
 }
 ANALYSTS = ["=1+2", "+SUM(A1:A9)", "-2+3", "@cmd", "<b>K. L.</b> &amp; <font size=40>big</font>"]
 LONG_ANALYST = ("<font size=40>" * 6)[:80]  # exactly the layout's 80-character limit
-HOSTILE_NAME = "lims-PGR-2709-001 <b>&amp; <font size=40> =cmd <para>.csv"  # a file name cannot hold "/"
+HOSTILE_NAME = "lims-PGR-2609-001 <b>&amp; <font size=40> =cmd <para>.csv"  # a file name cannot hold "/"
 LONG_NAME = "lots-" + "<i>very-long-name<br>-" * 9 + "end.csv"
 PLAIN_NUMBER = re.compile(r"[+-]?(\d+(\.\d*)?|\.\d+)([eE][+-]?\d+)?")
 FORMULA_START = ("=", "+", "-", "@")
@@ -65,11 +65,11 @@ def _hostile_files() -> dict[str, bytes]:
     files[HOSTILE_NAME] = to_csv(header, [[*r[:2], "-0.1" if r[1] == "PB" else r[2], *r[3:5], LONG_ANALYST] for r in rows])
     header, rows = from_csv(files.pop(f"lots-{DATE:%Y%m%d}.csv"))
     files[LONG_NAME] = to_csv(header, [[*r[:4], a] for r, a in zip(rows, ["=HYPERLINK(\"x\")", "@evil"], strict=True)])
-    files[f"lims-{LIPASE}-extra.csv"] = to_csv(LIMS_HEADER, [[LIPASE, "XTRA", "1.0", "u" * 440, "2027-09-06", "K"]])
-    files[f"lims-{LIPASE}-ansi.csv"] = to_csv(LIMS_HEADER, [[LIPASE, "XTRB", "1.0", "", "2027-09-06", "K.\x1b[31mRed"]])
+    files[f"lims-{LIPASE}-extra.csv"] = to_csv(LIMS_HEADER, [[LIPASE, "XTRA", "1.0", "u" * 440, "2026-09-07", "K"]])
+    files[f"lims-{LIPASE}-ansi.csv"] = to_csv(LIMS_HEADER, [[LIPASE, "XTRB", "1.0", "", "2026-09-07", "K.\x1b[31mRed"]])
     files["lots-paths.csv"] = to_csv(REGISTRY_HEADER, [row for lot in PATH_LOTS for row in registry_rows(lot)])
     files["platemap-paths.csv"] = to_csv(MAP_HEADER, map_rows("../../plate", "LLC-2611-904"))
-    files["lims-paths.csv"] = to_csv(LIMS_HEADER, [["../../../tmp/x", "PH", "7.0", "", "2027-09-06", "K"]])
+    files["lims-paths.csv"] = to_csv(LIMS_HEADER, [["../../../tmp/x", "PH", "7.0", "", "2026-09-07", "K"]])
     return files
 
 
@@ -82,7 +82,7 @@ def test_a_lot_number_with_path_parts_is_refused_by_the_layout(lot):
 
 
 def test_free_text_with_markup_and_formulas_is_read_as_it_is():
-    data = to_csv(LIMS_HEADER, [[LIPASE, test, "1", unit, "2027-09-06", analyst]
+    data = to_csv(LIMS_HEADER, [[LIPASE, test, "1", unit, "2026-09-07", analyst]
                                 for (test, unit), analyst in zip(UNITS.items(), ANALYSTS, strict=False)])
     parsed = parse_export("lims-x.csv", data, LAYOUTS)
     assert list(parsed.frame["unit"]) == list(UNITS.values())
@@ -104,7 +104,7 @@ def night(tmp_path_factory):
     outer = tmp_path_factory.mktemp("hostile")
     root = outer / "workspace"
     outside = outer / "outside.csv"
-    outside.write_bytes(to_csv(LIMS_HEADER, [["LLC-2611-905", "PH", "7.0", "", "2027-09-06", "K"]]))
+    outside.write_bytes(to_csv(LIMS_HEADER, [["LLC-2611-905", "PH", "7.0", "", "2026-09-07", "K"]]))
     before = {p.name for p in outer.iterdir()}
     write_settings(root, {"plant_name": "Hostile <b>plant</b> & co (test)", "signing": {"signer_name": "Q. A. Tester"}})
     (root / "keys").mkdir()

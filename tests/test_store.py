@@ -6,9 +6,10 @@ import pytest
 from sqlalchemy import create_engine, text
 
 from pipeline.errors import StoreError
-from pipeline.records import audit, ledger
+from pipeline.records import append_only, audit, ledger
 from pipeline.records.store import Store
 from pipeline.records.stored import DecisionWrite
+from pipeline.records.tables import APPEND_ONLY_TABLES
 from pipeline.release.records import DecisionRecord, RecordedResult
 from tests.pg import fresh_database
 
@@ -34,7 +35,7 @@ def test_migrations_bring_a_new_database_to_the_current_version(url):
     with store.engine.connect() as connection:
         version = connection.execute(text("select version_num from alembic_version")).scalar()
         tables = set(store.engine.dialect.get_table_names(connection))
-    assert version == "0006_desk_users"
+    assert version == "0007_more_record_tables"
     assert {"input_files", "lots", "decisions", "results", "control_limits", "audit_events", "night_runs",
             "lot_results", "investigations", "document_status", "desk_users", "desk_account_events"} <= tables
 
@@ -63,7 +64,8 @@ def test_a_0002_database_upgrades_with_its_nights_and_the_first_workspace_adopts
     engine.dispose()
     store = Store(url)
     with store.engine.connect() as connection:
-        assert connection.execute(text("select files_received, workspace_id from night_runs")).all() == [(3, None)]
+        assert connection.execute(text("select workspace_id from night_runs")).all() == [(None,)]
+        assert connection.execute(text("select count(*) from night_closings")).scalar() == 0  # it never finished
     # The night stored before identities is this workspace's to recover; then the store is the workspace's.
     assert [n.id for n in store.unfinished_nights("a" * 32)] == [1]
     store.start_night("test", "a" * 32)
@@ -86,8 +88,12 @@ def test_a_database_of_the_previous_version_upgrades_with_its_data(url):
     store = Store(url)
     with store.engine.connect() as connection:
         assert connection.execute(text("select count(*) from lots")).scalar() == 1
-        assert connection.execute(text("select count(*) from audit_events")).scalar() == 0
-        assert connection.execute(text("select lims_export from decisions")).all() == []
+        assert connection.execute(text("select count(*) from lims_exports")).scalar() == 0
+        # the row stored before row hashes is hashed and named by one chained event (migration 0004)
+        [body] = connection.execute(text("select body from audit_events")).scalars().all()
+    assert json.loads(body)["rows"] == [{"table": "lots", "key": "LLC-0001",
+                                         "row_sha256": json.loads(body)["rows"][0]["row_sha256"]}]
+    assert audit.verify_store(store).valid
 
 
 def test_revisions_supersede_and_stay_readable(url):
@@ -123,6 +129,7 @@ def test_store_and_log_agree(url, tmp_path):
 def test_tampering_in_the_store_is_found_and_the_record_named(url, tmp_path, tamper):
     store, log = _trail(url, tmp_path)
     with store.engine.begin() as connection:
+        append_only.drop_triggers(connection, APPEND_ONLY_TABLES)  # an insider who owns the database
         if tamper == "edit":
             body = json.loads(connection.execute(text("select body from audit_events where seq = 3")).scalar())
             body["n"] = 99
@@ -194,6 +201,7 @@ def test_a_batch_of_decisions_is_stored_in_order_with_revisions_and_one_chain(ur
         results = connection.execute(text("select count(*) from results")).scalar()
         bodies = [json.loads(b) for b in connection.execute(text("select body from audit_events order by seq"))
                   .scalars()]
+    bodies = [b for b in bodies if b["kind"] == "decision"]  # each transaction also names its rows (records-written)
     assert results == 5
     assert [(b["lot_id"], b["fingerprint"], b["revision"]) for b in bodies] == [
         ("LLC-0001", "f1", 1), ("LLC-0002", "f2", 1), ("LLC-0001", "f3", 2), ("LLC-0003", "f4", 1),
@@ -213,7 +221,7 @@ def test_a_batch_that_fails_in_the_database_stores_nothing(url):
         store.add_decisions([_write("LLC-0002", "f2"), _write("LLC-0001", "f3", chart_value=1210.0)])
     assert [(r.lot_id, r.revision) for r in store.decisions()] == [("LLC-0001", 1)]
     with store.engine.connect() as connection:
-        assert connection.execute(text("select count(*) from audit_events")).scalar() == 1
+        assert connection.execute(text("select count(*) from audit_events")).scalar() == 2  # its decision event and its records-written event
         assert connection.execute(text("select count(*) from lots")).scalar() == 1
 
 
@@ -240,7 +248,9 @@ def test_orm_rows_never_leave_the_store():
            "pipeline/records/database.py", "pipeline/records/lot_record_store.py",
            # the desk's store queries: frozen records out, like store.py (kept apart to keep store.py small)
            "pipeline/records/desk_accounts.py", "pipeline/records/desk_queries.py",
-           "pipeline/records/status_queries.py"}  # the store's read-only status view (no migration), frozen records out
+           "pipeline/records/status_queries.py",  # the store's read-only status view (no migration), frozen records out
+           "pipeline/records/row_hashes.py", "pipeline/records/append_only.py", "pipeline/records/store_check.py",
+           "pipeline/records/current.py"}
     offenders = []
     for path in [*root.joinpath("pipeline").rglob("*.py"), *root.joinpath("flows").rglob("*.py")]:
         name = str(path.relative_to(root))

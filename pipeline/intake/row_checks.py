@@ -1,7 +1,9 @@
 """Stage 3 of reading an export: rows against each other, once every cell is valid (pure).
 
 Wells inside the plate format, one format and method per plate, the fields a well's role
-needs, read times that increase within a well, an assay date not before the manufacturing date.
+needs, read times that increase within a well, an assay date not before the manufacturing date,
+and no manufacturing, assay or test date in the future (a wrong clock on the instrument or a typing
+error; one day is allowed for time zones ahead of UTC).
 """
 
 from __future__ import annotations
@@ -73,8 +75,26 @@ def _registry_problems(frame: pd.DataFrame, lines: list[int]) -> list[Problem]:
     return problems
 
 
-def row_problems(frame: pd.DataFrame, columns: set[str], lines: list[int]) -> list[Problem]:
-    problems: list[Problem] = []
+FUTURE_DATE_COLUMNS = {"manufactured_on": "manufacturing date", "assay_date": "assay date", "tested_on": "test date"}
+FUTURE_ALLOWED_DAYS = 1  # the plant's date may be one day ahead of the UTC date
+
+
+def _future_problems(frame: pd.DataFrame, columns: set[str], lines: list[int], today_utc: dt.date) -> list[Problem]:
+    """No date after today (UTC) plus one day: a result cannot be dated after the night that reads it."""
+    latest = today_utc + dt.timedelta(days=FUTURE_ALLOWED_DAYS)
+    problems = []
+    for column in sorted(columns & FUTURE_DATE_COLUMNS.keys()):
+        for index, value in enumerate(frame[column]):
+            if isinstance(value, str) and value and dt.date.fromisoformat(value) > latest:
+                problems.append(Problem(ProblemCode.FUTURE_DATE, f"the {FUTURE_DATE_COLUMNS[column]} {value} is in the "
+                                        f"future (today is {today_utc.isoformat()} UTC); a date cannot be later than "
+                                        "the night that reads it", line=lines[index], column=column))
+    return problems
+
+
+def row_problems(frame: pd.DataFrame, columns: set[str], lines: list[int], today_utc: dt.date | None = None) -> list[Problem]:
+    """Every row problem; ``today_utc``: the date the future-date check compares with (default: the clock's)."""
+    problems: list[Problem] = _future_problems(frame, columns, lines, today_utc or dt.datetime.now(dt.UTC).date())
     if {"plate_id", "plate_format", "well", "role"} <= columns:
         problems += _plate_problems(frame, lines)
     if {"plate_id", "well", "time_s"} <= columns:

@@ -105,7 +105,7 @@ def open_night(root: Path) -> tuple[Workspace, Store, IdentitySigner]:
 
     with_release_modes(open_controlled_documents(ws)[0], ws)
     ws.make_folders()
-    store = Store(ws.database_url)
+    store = Store(ws.database_url, clock_tolerance_minutes=ws.clock_tolerance_minutes)
     return ws, store, signer
 
 
@@ -123,4 +123,4 @@ def open_records(root: Path) -> tuple[Workspace, Store]:
         db = Path(ws.database_url.removeprefix("sqlite:///"))
         if not db.exists():
             raise InputError(f"no results store in {ws.root} (expected {db}); run a night there first")
-    return ws, Store(ws.database_url)
+    return ws, Store(ws.database_url, clock_tolerance_minutes=ws.clock_tolerance_minutes)

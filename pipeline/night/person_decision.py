@@ -21,6 +21,7 @@ from pipeline.night.lot_documents import (
     write_documents,
 )
 from pipeline.night.open import IdentitySigner
+from pipeline.night.seal import seal_after_act
 from pipeline.records import audit, ledger
 from pipeline.records.signer_check import authorise_person
 from pipeline.records.signer_register import register_in_force
@@ -125,6 +126,7 @@ def decide_lot(ws: Workspace, store: Store, lot_id: str, *, release: bool, reaso
                                        events=tuple(events))])
     place_documents(ws, [] if written is None else [written])
     audit.sync_log(store, ws.log)
+    seal_after_act(ws, store, f"person-disposition {lot_id}")
     return PersonOutcome(lot_id, record.revision, disposition,
                          None if record.certificate is None else f"certificates/{record.certificate.file}",
                          None if record.report is None else f"reports/{record.report.file}")

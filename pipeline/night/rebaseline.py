@@ -12,6 +12,7 @@ from dataclasses import dataclass
 
 from pipeline.controlled.specs import Attribute
 from pipeline.errors import InputError
+from pipeline.night.seal import seal_after_act
 from pipeline.records import audit, ledger
 from pipeline.records.chart_queries import active_limits, released_count, released_points
 from pipeline.records.run_lock import run_lock
@@ -74,4 +75,5 @@ def rebaseline(ws: Workspace, store: Store, product: str, attribute: Attribute, 
         after = store.freeze_limits(product, attribute.code, lim.center, lim.sigma, lim.mr_bar, list(proposal.lots),
                                     frozen_by=by, reason=reason, events=[*register_events, event])
         audit.sync_log(store, ws.log)
+        seal_after_act(ws, store, f"limits-rebaselined {product} {attribute.code}")
         return Rebaselined(before, after, tuple(proposal.lots), released_count(store, product, attribute.code))

@@ -31,6 +31,7 @@ from pipeline.records import audit
 from pipeline.records.controlled_files import sha256_file
 from pipeline.records.store import Store
 from pipeline.records.workspace import Workspace, atomic_write, unique_target
+from pipeline.vocabulary import ProblemCode
 
 PARSE_CHUNK_FILES = 50        # files read and validated per call of parse_exports
 PARALLEL_FROM_FILES = 100     # below this, worker processes cost more than they save
@@ -149,6 +150,8 @@ def receive(ws: Workspace, store: Store, layouts: dict[str, ExportLayout], night
             if isinstance(result, ExportRejected):
                 _quarantine(ws, store, intake, path, sha, "quarantined", result.report(),
                             path.read_bytes().decode("utf-8", errors="replace"))
+            elif result.sha256 != sha:  # the bytes read are not the bytes hashed a moment before
+                _quarantine(ws, store, intake, path, sha, "quarantined", changed_report(path.name, sha, result.sha256), "")
             else:
                 intake.parsed.append(result)
                 intake.paths[path.name] = path
@@ -160,6 +163,13 @@ def receive(ws: Workspace, store: Store, layouts: dict[str, ExportLayout], night
     store.add_events(received)
     audit.sync_log(store, ws.log)
     return intake
+
+
+def changed_report(name: str, before: str, after: str, when: str = "while lotgate read it") -> str:
+    """The reason of a file whose bytes changed between two readings (still being written, or edited)."""
+    return (f"File {name} was set aside (quarantined) and not used.\n\n- [{ProblemCode.CHANGED_WHILE_READ}] it changed "
+            f"{when}: SHA-256 {before[:16]}… first, {after[:16]}… then; it was probably still being written. Export "
+            "it again once the instrument or LIMS has finished writing it\n")
 
 
 def _special_kind(path: Path) -> str | None:

@@ -9,7 +9,7 @@ from pathlib import Path
 from pipeline.intake.assembly import QuarantinedFile
 from pipeline.night.receive import place_aside
 from pipeline.night.staging import recover_documents
-from pipeline.records import audit
+from pipeline.records import archive_files, audit
 from pipeline.records.controlled_files import sha256_file
 from pipeline.records.store import Store
 from pipeline.records.stored import StoredFile
@@ -35,6 +35,8 @@ def recover_interrupted(ws: Workspace, store: Store, identity: str | None = None
     for folder in (ws.root, ws.inbox, ws.certificates, ws.reports, ws.lims, ws.archive, ws.quarantine):
         for stale in folder.glob(".*.tmp"):
             stale.unlink(missing_ok=True)
+    for stale in ws.archive.glob("night-*/.*.tmp"):  # archive copies staged by a stopped close
+        stale.unlink(missing_ok=True)
     unfinished = store.unfinished_nights(identity)
     # Documents a stopped run left staged, or in place without a decision (staging.py).
     recover_documents(ws, store, interrupted=bool(unfinished))
@@ -44,7 +46,7 @@ def recover_interrupted(ws: Workspace, store: Store, identity: str | None = None
     night_files = store.files_of_nights(night_ids)
     notes = [note for row in night_files if (note := _finish_move(ws, row))]
     for night_run in unfinished:
-        store.finish_night(night_run.id)
+        store.finish_night(night_run.id, "interrupted")
         store.add_events([audit.event("night-interrupted", time_zone=ws.time_zone, night_id=night_run.id,
                                       started_utc=night_run.started_at_utc.isoformat())])
         notes.append(f"night {night_run.id} had been interrupted; its decisions stand and this run completes it")
@@ -61,8 +63,13 @@ def _finish_move(ws: Workspace, row: StoredFile) -> str | None:
         target.parent.mkdir(parents=True, exist_ok=True)
         if aside:
             place_aside(source, target, (row.reason or "") + "\n")
-        else:
-            os.replace(source, target)
+        else:  # archived as close does: a read-only copy with the recorded SHA-256, then the inbox file removed
+            tmp, copy_sha = archive_files.stage_copy(source, target.parent)
+            if copy_sha != row.sha256:
+                tmp.unlink()
+                return f"{row.file_name} changed in the inbox since an interrupted run recorded it; it was left there"
+            archive_files.place(tmp, target)
+            source.unlink()
         return f"finished {'setting aside' if aside else 'archiving'} {row.file_name}, left in the inbox by an interrupted run"
     reason_file = target.with_name(target.name + ".reason.txt")
     if aside and os.path.lexists(target) and not reason_file.exists():

@@ -76,8 +76,8 @@ def publish_settled(ws: Workspace, store: Store, catalog: Catalog, decided: Nigh
 
 
 def close_unless_recorded(ws: Workspace, store: Store, intake: Intake, outcomes: list[Outcome],
-                          notes: list[str]) -> NightSummary:
+                          notes: list[str], signer: Any = None) -> NightSummary:
     if any(f.status == "archived" for f in store.files(intake.night_id)):
         raise PartlyRecorded(f"night {intake.night_id} failed while archiving its files after recording them; "
                              "the next run completes it")
-    return close(ws, store, intake, outcomes, notes)
+    return close(ws, store, intake, outcomes, notes, signer)

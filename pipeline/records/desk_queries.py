@@ -12,6 +12,7 @@ from typing import Any
 
 from sqlalchemy import func, select
 
+from pipeline.records.current import closings, counts_of, is_latest_revision
 from pipeline.records.store import Store
 from pipeline.records.stored import StoredDecision, StoredFile, decision_of, file_of, utc
 from pipeline.records.tables import AuditEvent, DecisionRow, InputFile, NightRun
@@ -44,15 +45,19 @@ class TrailEvent:
 def latest_nights(store: Store, limit: int = 5) -> list[NightCounts]:
     """The last ``limit`` nights, newest first."""
     with store.session() as s:
-        rows = s.scalars(select(NightRun).order_by(NightRun.id.desc()).limit(limit))
-        return [NightCounts(r.id, utc(r.started_at_utc), None if r.finished_at_utc is None else utc(r.finished_at_utc),
-                            r.files_received or 0, r.files_archived or 0, r.files_quarantined or 0,
-                            r.lots_decided or 0) for r in rows]
+        rows = list(s.scalars(select(NightRun).order_by(NightRun.id.desc()).limit(limit)))
+        ended = closings(s, [r.id for r in rows])
+        out = []
+        for r in rows:
+            finished, received, archived, quarantined, lots = counts_of(ended.get(r.id))
+            out.append(NightCounts(r.id, utc(r.started_at_utc), None if finished is None else utc(finished),
+                                   received, archived, quarantined, lots))
+        return out
 
 
 def current_decisions(store: Store, *, except_dispositions: tuple[str, ...] = ()) -> list[StoredDecision]:
     """The latest revision of every lot (but those of ``except_dispositions``), in the order decided."""
-    query = select(DecisionRow).where(DecisionRow.superseded_by.is_(None)).order_by(DecisionRow.id)
+    query = select(DecisionRow).where(is_latest_revision()).order_by(DecisionRow.id)
     if except_dispositions:
         query = query.where(DecisionRow.disposition.not_in(except_dispositions))
     with store.session() as s:
@@ -63,7 +68,7 @@ def current_disposition_counts(store: Store) -> dict[str, int]:
     """How many lots stand at each disposition (their latest revision), counted in the database."""
     with store.session() as s:
         return {str(d): int(n) for d, n in s.execute(
-            select(DecisionRow.disposition, func.count(DecisionRow.id)).where(DecisionRow.superseded_by.is_(None))
+            select(DecisionRow.disposition, func.count(DecisionRow.id)).where(is_latest_revision())
             .group_by(DecisionRow.disposition))}
 
 

@@ -13,9 +13,11 @@ from collections import defaultdict
 from dataclasses import dataclass
 from typing import Any
 
-from sqlalchemy import insert, select
+from sqlalchemy import select
 from sqlalchemy.orm import Session
 
+from pipeline.records import row_hashes
+from pipeline.records.current import is_latest_revision
 from pipeline.records.stored import DecisionWrite, utc
 from pipeline.records.tables import (
     ChartPoint,
@@ -54,7 +56,7 @@ def write_decision_rows(s: Session, w: DecisionWrite, row: DecisionRow, previous
                 "night_id": w.night_id, "decision_id": row.id, "reasons": [c.reason], "recorded_by": w.decided_by,
                 "recorded_at_utc": now} for c in w.status_changes]
     if values:
-        s.execute(insert(LotResultRow), values)
+        row_hashes.insert_rows(s, LotResultRow, values)  # hashed and named like every record row
     earlier = (previous.record or {}).get("certificate") if previous is not None else None
     if earlier:
         s.add(DocumentStatusRow(file=earlier["file"], sha256=earlier["sha256"], lot_id=lot, revision=previous.revision,
@@ -117,7 +119,7 @@ def pending_lots(store: Any) -> list[tuple[str, str, str]]:
     with store.session() as s:
         rows = s.execute(select(DecisionRow.lot_id, Lot.product_code, Lot.manufactured_on)
                          .join(Lot, Lot.lot_id == DecisionRow.lot_id)
-                         .where(DecisionRow.superseded_by.is_(None), DecisionRow.disposition == "pending",
+                         .where(is_latest_revision(), DecisionRow.disposition == "pending",
                                 DecisionRow.decided_by.startswith("lotgate"))
                          .order_by(DecisionRow.lot_id)).all()
     return [(lot, product, made or "") for lot, product, made in rows]

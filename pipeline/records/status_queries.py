@@ -14,6 +14,7 @@ from sqlalchemy import Engine, select, text
 from sqlalchemy.exc import SQLAlchemyError
 from sqlalchemy.orm import Session
 
+from pipeline.records.current import closings, counts_of, is_latest_revision
 from pipeline.records.database import MIGRATIONS, open_engine, safe_url
 from pipeline.records.stored import utc
 from pipeline.records.tables import AuditEvent, DecisionRow, NightRun
@@ -97,15 +98,19 @@ def _nights(s: Session, workspace_id: str, count: int) -> tuple[NightRow, ...]:
             interrupted.add(night)
         else:
             closed.add(night)
-    return tuple(NightRow(r.id, utc(r.started_at_utc), None if r.finished_at_utc is None else utc(r.finished_at_utc),
-                          r.files_received or 0, r.files_archived or 0, r.files_quarantined or 0, r.lots_decided or 0,
-                          failed.get(r.id), r.id in interrupted, r.id in closed) for r in runs)
+    ended = closings(s, [r.id for r in runs])
+    out = []
+    for r in runs:
+        finished, received, archived, quarantined, lots = counts_of(ended.get(r.id))
+        out.append(NightRow(r.id, utc(r.started_at_utc), None if finished is None else utc(finished), received,
+                            archived, quarantined, lots, failed.get(r.id), r.id in interrupted, r.id in closed))
+    return tuple(out)
 
 
 def _open_lots(s: Session) -> tuple[OpenLot, ...]:
     """Each lot's latest decision that still needs a person: anything but released or rejected."""
     final = (Disposition.RELEASED.value, Disposition.REJECTED.value)
-    rows = s.scalars(select(DecisionRow).where(DecisionRow.superseded_by.is_(None),
+    rows = s.scalars(select(DecisionRow).where(is_latest_revision(),
                                                DecisionRow.disposition.not_in(final)).order_by(DecisionRow.id))
     return tuple(OpenLot(r.lot_id, str((r.record or {}).get("product", "")), r.disposition,
                          tuple(r.hold_categories or ()), tuple(r.reasons or ()), utc(r.decided_at_utc)) for r in rows)

@@ -11,11 +11,12 @@ from collections.abc import Callable, Iterator
 from contextlib import contextmanager
 from typing import Any, ClassVar
 
-from sqlalchemy import func, insert, select, update
+from sqlalchemy import exists, func, insert, select
 from sqlalchemy.exc import SQLAlchemyError
 from sqlalchemy.orm import Session, sessionmaker
 
 from pipeline.errors import StoreError
+from pipeline.records import clock, row_hashes
 from pipeline.records.database import migrate, open_engine, safe_url
 from pipeline.records.lot_record_store import write_decision_rows
 from pipeline.records.stored import (
@@ -36,7 +37,9 @@ from pipeline.records.tables import (
     ControlLimitRow,
     DecisionRow,
     InputFile,
+    LimsExport,
     Lot,
+    NightClosing,
     NightRun,
     ResultRow,
 )
@@ -45,6 +48,7 @@ from pipeline.vocabulary import Disposition
 
 NIGHTS_LOCK_KEY = 472_901_002  # held while a night is started: one workspace claims the store at a time
 AUDIT_LOCK_KEY = 472_901_003
+CLOCK_TOLERANCE_MINUTES = 5.0  # an event may be this much earlier than the chain's head (clocks drift)
 CHUNK = 500  # values per IN (...) query
 
 
@@ -60,14 +64,16 @@ def _chunks(values: list[Any]) -> Iterator[list[Any]]:
 class Store:
     """Opens the database named by a SQLAlchemy URL and creates its tables when new."""
 
-    def __init__(self, url: str):
+    def __init__(self, url: str, *, clock_tolerance_minutes: float = CLOCK_TOLERANCE_MINUTES):
         self.url = url
+        self.clock_tolerance = dt.timedelta(minutes=clock_tolerance_minutes)
         try:
             self.engine = open_engine(url)
             migrate(self.engine)
         except SQLAlchemyError as exc:
             raise StoreError(f"cannot open the results store at {safe_url(url)}: {exc.__class__.__name__}: {exc}") from exc
         self._sessions = sessionmaker(self.engine, expire_on_commit=False)
+        row_hashes.watch(self._sessions)
 
     _commit_checks: ClassVar[dict[str, Callable[[], None]]] = {}  # per URL: the flow opens its own Store
 
@@ -87,6 +93,10 @@ class Store:
         session = self._sessions()
         try:
             yield session
+            session.flush()
+            if rows := row_hashes.take_pending(session):  # the rows written, named with their hashes
+                self.chain_events(session, [{"kind": row_hashes.ROWS_EVENT,
+                                             "time_utc": utcnow().isoformat(timespec="milliseconds"), "rows": rows}])
             if (check := Store._commit_checks.get(self.url)) is not None:
                 check()  # raises when the night lost its lock: nothing of this session is committed
             session.commit()
@@ -131,29 +141,27 @@ class Store:
                 "set 'store_shared: true' in every sharing workspace's workspace.yaml (lot ids must then be "
                 "unique across the sites)")
 
-    def finish_night(self, night_id: int, **counts: int) -> None:
+    def finish_night(self, night_id: int, how: str = "closed", **counts: int) -> None:
+        """The night's end as a new row (closed with its counts, or found interrupted); never an UPDATE."""
         with self.session() as s:
-            night = s.get(NightRun, night_id)
-            if night is None:
+            if s.get(NightRun, night_id) is None:
                 raise StoreError(f"night {night_id} is not in the results store")
-            for key, value in counts.items():
-                setattr(night, key, value)
-            night.finished_at_utc = utcnow()
+            s.add(NightClosing(night_id=night_id, closed_at_utc=utcnow(), how=how, **counts))
 
     def unfinished_nights(self, workspace_id: str) -> list[StoredNight]:
         """This workspace's nights that never finished (and those of before workspace identities)."""
         with self.session() as s:
             mine = (NightRun.workspace_id == workspace_id) | NightRun.workspace_id.is_(None)
-            return [night_of(n) for n in s.scalars(select(NightRun).where(NightRun.finished_at_utc.is_(None), mine)
-                                                   .order_by(NightRun.id))]
+            closed = exists().where(NightClosing.night_id == NightRun.id)
+            return [night_of(n) for n in s.scalars(select(NightRun).where(~closed, mine).order_by(NightRun.id))]
 
     def record_files(self, night_id: int, files: list[dict[str, Any]], events: list[dict[str, Any]]) -> None:
         """Input files (name, SHA-256, status, reason, where stored) and their audit events, in one transaction."""
         with self.session() as s:
             if files:
                 now = utcnow()
-                s.execute(insert(InputFile), [{"night_id": night_id, "received_at_utc": now, **fields}
-                                              for fields in files])
+                row_hashes.insert_rows(s, InputFile, [{"night_id": night_id, "received_at_utc": now, **fields}
+                                                      for fields in files])
             self.chain_events(s, events)
 
     def files(self, night_id: int | None = None) -> list[StoredFile]:
@@ -186,7 +194,23 @@ class Store:
             query = select(DecisionRow).order_by(DecisionRow.id)
             if lot_id is not None:
                 query = query.where(DecisionRow.lot_id == lot_id)
-            return [decision_of(row) for row in s.scalars(query)]
+            return self._with_successors(s, list(s.scalars(query)))
+
+    @staticmethod
+    def _with_successors(s: Session, rows: list[DecisionRow]) -> list[StoredDecision]:
+        """Each row as a StoredDecision naming the revision that superseded it (the lot's next), if any."""
+        following: dict[tuple[str, int], int] = {}
+        for chunk in _chunks(list({row.lot_id for row in rows})):
+            for lot_id, revision, decision_id in s.execute(select(DecisionRow.lot_id, DecisionRow.revision,
+                                                                  DecisionRow.id).where(DecisionRow.lot_id.in_(chunk))):
+                following[(lot_id, revision - 1)] = decision_id
+        return [decision_of(row, following.get((row.lot_id, row.revision))) for row in rows]
+
+    @staticmethod
+    def _is_latest() -> Any:
+        """Where-clause: the decision is its lot's latest revision (no later revision exists)."""
+        later = DecisionRow.__table__.alias("later")
+        return ~exists().where(later.c.lot_id == DecisionRow.lot_id, later.c.revision > DecisionRow.revision)
 
     def latest_decision(self, lot_id: str) -> StoredDecision | None:
         return self.previous_decisions([lot_id]).get(lot_id)
@@ -196,8 +220,7 @@ class Store:
         out: dict[str, StoredDecision] = {}
         with self.session() as s:
             for chunk in _chunks(lot_ids):
-                rows = s.scalars(select(DecisionRow).where(DecisionRow.lot_id.in_(chunk),
-                                                           DecisionRow.superseded_by.is_(None)))
+                rows = s.scalars(select(DecisionRow).where(DecisionRow.lot_id.in_(chunk), self._is_latest()))
                 out.update({row.lot_id: decision_of(row) for row in rows})
         return out
 
@@ -213,8 +236,8 @@ class Store:
     def decisions_of_lots(self, lot_ids: list[str]) -> list[StoredDecision]:
         """Every revision of these lots, in the order stored (one query per 500 lots)."""
         with self.session() as s:
-            return [decision_of(row) for chunk in _chunks(lot_ids) for row in s.scalars(
-                select(DecisionRow).where(DecisionRow.lot_id.in_(chunk)).order_by(DecisionRow.id))]
+            return self._with_successors(s, [row for chunk in _chunks(lot_ids) for row in s.scalars(
+                select(DecisionRow).where(DecisionRow.lot_id.in_(chunk)).order_by(DecisionRow.id))])
 
     def decisions_by_id(self, decision_ids: list[int]) -> list[StoredDecision]:
         """These decisions, in the order of ``decision_ids`` (read in chunks by the caller to bound memory)."""
@@ -224,14 +247,15 @@ class Store:
 
     def unexported_decision_ids(self) -> list[int]:
         with self.session() as s:
-            return list(s.scalars(select(DecisionRow.id).where(DecisionRow.lims_export.is_(None))
-                                  .order_by(DecisionRow.id)))
+            exported = exists().where(LimsExport.decision_id == DecisionRow.id)
+            return list(s.scalars(select(DecisionRow.id).where(~exported).order_by(DecisionRow.id)))
 
     def mark_exported(self, decision_ids: list[int], export_name: str, events: list[dict[str, Any]]) -> None:
+        """One new lims_exports row per decision written into the LIMS file ``export_name``."""
         with self.session() as s:
-            for chunk in _chunks(decision_ids):  # an UPDATE, not the rows loaded and written back
-                s.execute(update(DecisionRow).where(DecisionRow.id.in_(chunk))
-                          .values(lims_export=export_name).execution_options(synchronize_session=False))
+            now = utcnow()
+            row_hashes.insert_rows(s, LimsExport, [{"decision_id": i, "export_name": export_name,
+                                                    "exported_at_utc": now} for i in decision_ids])
             self.chain_events(s, events)
 
     def add_decisions(self, writes: list[DecisionWrite], limits: tuple[LimitsWrite, ...] = ()) -> list[StoredDecision]:
@@ -266,9 +290,7 @@ class Store:
             results: list[dict[str, Any]] = []
             points: list[dict[str, Any]] = []
             events: list[dict[str, Any]] = []
-            for w, (row, previous) in zip(writes, rows, strict=True):
-                if previous is not None:
-                    previous.superseded_by = row.id
+            for w, (row, _previous) in zip(writes, rows, strict=True):
                 results += [{"decision_id": row.id, "attribute": r.code,
                              "value": r.value if isinstance(r.value, int | float) else None,
                              "value_text": r.value if isinstance(r.value, str) else None,
@@ -281,12 +303,11 @@ class Store:
                 events.extend({**e, "revision": row.revision} for e in w.events)
             s.flush()
             for model, values in ((ResultRow, results), (ChartPoint, points)):
-                if values:
-                    s.execute(insert(model), values)  # one multi-row statement per table, not one per row
+                row_hashes.insert_rows(s, model, values)  # one multi-row statement per table, not one per row
             for w, (row, previous) in zip(writes, rows, strict=True):
                 write_decision_rows(s, w, row, previous)  # the lot record (lot_record_store)
             self.chain_events(s, events)
-            return [decision_of(row) for row, _ in rows]
+            return [decision_of(row, None) for row, _ in rows]
 
     @staticmethod
     def _new_lots_and_latest(s: Session, writes: list[DecisionWrite]) -> dict[str, DecisionRow]:
@@ -311,7 +332,7 @@ class Store:
     def freeze_limits(self, product_code: str, attribute: str, center: float, sigma: float, mr_bar: float,
                       baseline_lots: list[str], frozen_by: str, reason: str,
                       events: list[dict[str, Any]] | None = None) -> StoredLimits:
-        """A new version of a chart's limits (earlier ones deactivated), with its audit events."""
+        """A new version of a chart's limits (the highest version is the active one), with its audit events."""
         with self.session() as s:
             return self._freeze(s, LimitsWrite(product_code, attribute, center, sigma, mr_bar, tuple(baseline_lots),
                                                frozen_by, reason, tuple(events or ())))
@@ -319,15 +340,14 @@ class Store:
     def _freeze(self, s: Session, w: LimitsWrite) -> StoredLimits:
         where = (ControlLimitRow.product_code == w.product_code, ControlLimitRow.attribute == w.attribute)
         current = s.scalar(select(func.max(ControlLimitRow.version)).where(*where)) or 0
-        s.execute(update(ControlLimitRow).where(*where).values(active=0))
         row = ControlLimitRow(product_code=w.product_code, attribute=w.attribute, version=current + 1,
                               center=w.center, sigma=w.sigma, mr_bar=w.mr_bar, baseline_n=len(w.baseline_lots),
                               baseline_lots=list(w.baseline_lots), frozen_at_utc=utcnow(), frozen_by=w.frozen_by,
-                              reason=w.reason, active=1)
+                              reason=w.reason)
         s.add(row)
         s.flush()
         self.chain_events(s, [{**e, "version": row.version, "previous_version": current or None} for e in w.events])
-        return limits_of(row)
+        return limits_of(row, active=True)
 
     def chart_point_counts(self, decision_ids: list[int]) -> dict[tuple[str, str], int]:
         """How many chart points these decisions put on each chart (chart, attribute)."""
@@ -343,9 +363,10 @@ class Store:
     def limit_versions(self, product_code: str, attribute: str) -> tuple[StoredLimits, ...]:
         """Every stored version of a chart's limits, oldest first."""
         with self.session() as s:
-            return tuple(limits_of(r) for r in s.scalars(select(ControlLimitRow).where(
+            rows = list(s.scalars(select(ControlLimitRow).where(
                 ControlLimitRow.product_code == product_code, ControlLimitRow.attribute == attribute)
                 .order_by(ControlLimitRow.version)))
+            return tuple(limits_of(r, active=r is rows[-1]) for r in rows)
 
     def released_count(self, product_code: str, attribute: str) -> int:
         with self.session() as s:
@@ -381,7 +402,7 @@ class Store:
                                                   ChartPoint.attribute == attribute)
         with self.session() as s:
             query = (select(DecisionRow).join(Lot, Lot.lot_id == DecisionRow.lot_id)
-                     .where(Lot.product_code == product_code, DecisionRow.superseded_by.is_(None),
+                     .where(Lot.product_code == product_code, self._is_latest(),
                             DecisionRow.disposition != Disposition.RELEASED, DecisionRow.lot_id.not_in(charted)))
             if after_order is not None:
                 query = query.where(DecisionRow.id > after_order)
@@ -391,7 +412,7 @@ class Store:
                 for r in s.scalars(select(ResultRow).where(ResultRow.decision_id.in_([d.id for d in rows]),
                                                            ResultRow.attribute == attribute)):
                     values[r.decision_id] = None if r.value is None else float(r.value)
-            return [(decision_of(d), values.get(d.id)) for d in rows]
+            return [(decision_of(d, None), values.get(d.id)) for d in rows]
 
     # --- audit events ------------------------------------------------------------------------
     def chain_events(self, session: Session, events: list[dict[str, Any]]) -> list[dict[str, Any]]:
@@ -403,6 +424,8 @@ class Store:
         if self.is_postgresql:
             session.connection().exec_driver_sql(f"SELECT pg_advisory_xact_lock({AUDIT_LOCK_KEY})")
         last = session.scalars(select(AuditEvent).order_by(AuditEvent.seq.desc()).limit(1)).first()
+        if last is not None and (why := clock.set_back(last.seq, last.time_utc, utcnow(), self.clock_tolerance)):
+            raise StoreError(why)
         chained = ledger.chain(events, prev_hash=last.hash if last else ledger.GENESIS,
                                start_seq=(last.seq + 1) if last else 1)
         session.flush()
@@ -420,6 +443,12 @@ class Store:
         """The bodies of every chained event of one kind, in chain order (the kind column is indexed)."""
         with self.session() as s:
             return list(s.scalars(select(AuditEvent.body).where(AuditEvent.kind == kind).order_by(AuditEvent.seq)))
+
+    def last_event(self) -> StoredEvent | None:
+        """The head of the audit chain (None when empty)."""
+        with self.session() as s:
+            r = s.scalars(select(AuditEvent).order_by(AuditEvent.seq.desc()).limit(1)).first()
+            return None if r is None else StoredEvent(r.seq, r.body, r.prev_hash, r.hash)
 
     def audit_events(self, after_seq: int = 0, limit: int | None = None) -> list[StoredEvent]:
         """Chained events after ``after_seq``, in chain order; at most ``limit`` when given."""

@@ -105,14 +105,16 @@ def file_of(row: InputFile) -> StoredFile:
                       utc(row.received_at_utc), row.reason, row.kind, row.layout_version)
 
 
-def decision_of(row: DecisionRow) -> StoredDecision:
+def decision_of(row: DecisionRow, superseded_by: int | None = None) -> StoredDecision:
+    """The stored decision; ``superseded_by``: the id of the lot's next revision (found by query, never stored)."""
     return StoredDecision(row.id, row.lot_id, row.revision, row.disposition, row.fingerprint, row.decided_by,
                           utc(row.decided_at_utc), DecisionRecord.from_json(row.record or {}),
-                          row.change_note, row.superseded_by)
+                          row.change_note, superseded_by)
 
 
-def limits_of(row: ControlLimitRow) -> StoredLimits:
+def limits_of(row: ControlLimitRow, active: bool) -> StoredLimits:
+    """The stored limits; ``active``: the chart's highest version (found by query, never stored)."""
     return StoredLimits(version=row.version, center=row.center, sigma=row.sigma, mr_bar=row.mr_bar,
                         baseline_lots=tuple(row.baseline_lots or ()),
                         frozen_at_utc=utc(row.frozen_at_utc).isoformat(timespec="seconds"),
-                        frozen_by=row.frozen_by, reason=row.reason, active=bool(row.active))
+                        frozen_by=row.frozen_by, reason=row.reason, active=active)

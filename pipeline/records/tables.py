@@ -1,7 +1,10 @@
 """The results store's tables (SQLAlchemy models); only the store and its converters (``stored.py``) use them.
 
-Decisions are never overwritten: a changed input set for a lot makes a new revision that
-supersedes the earlier one, which stays readable. The schema itself is made by the Alembic
+Records are never overwritten: a changed input set for a lot makes a new revision that
+supersedes the earlier one, which stays readable ("superseded by" is the next revision, found by
+query); a night's end, a chart's newer limits and a LIMS export are new rows too. The record
+tables (``RECORD_TABLES``, at the end) carry ``row_sha256`` (``row_hashes.py``) and refuse UPDATE
+and DELETE in the database (migration 0004). The schema itself is made by the Alembic
 migrations under ``migrations/``; these models must match them.
 """
 
@@ -22,13 +25,9 @@ class NightRun(Base):
     __tablename__ = "night_runs"
     id: Mapped[int] = mapped_column(Integer, primary_key=True)
     started_at_utc: Mapped[dt.datetime] = mapped_column(DateTime(timezone=True))
-    finished_at_utc: Mapped[dt.datetime | None] = mapped_column(DateTime(timezone=True), nullable=True)
     code_version: Mapped[str] = mapped_column(String(40))
     workspace_id: Mapped[str | None] = mapped_column(String(32), nullable=True, index=True)
-    files_received: Mapped[int] = mapped_column(Integer, default=0)
-    files_archived: Mapped[int] = mapped_column(Integer, default=0)
-    files_quarantined: Mapped[int] = mapped_column(Integer, default=0)
-    lots_decided: Mapped[int] = mapped_column(Integer, default=0)
+    row_sha256: Mapped[str | None] = mapped_column(String(64), nullable=True)
 
 
 class InputFile(Base):
@@ -43,6 +42,7 @@ class InputFile(Base):
     reason: Mapped[str | None] = mapped_column(Text, nullable=True)
     stored_as: Mapped[str] = mapped_column(String(400))
     received_at_utc: Mapped[dt.datetime] = mapped_column(DateTime(timezone=True))
+    row_sha256: Mapped[str | None] = mapped_column(String(64), nullable=True)
 
 
 class Lot(Base):
@@ -51,6 +51,7 @@ class Lot(Base):
     product_code: Mapped[str] = mapped_column(String(20), index=True)
     manufactured_on: Mapped[str | None] = mapped_column(String(10), nullable=True)
     first_seen_utc: Mapped[dt.datetime] = mapped_column(DateTime(timezone=True))
+    row_sha256: Mapped[str | None] = mapped_column(String(64), nullable=True)
 
 
 class DecisionRow(Base):
@@ -70,8 +71,7 @@ class DecisionRow(Base):
     change_note: Mapped[str | None] = mapped_column(Text, nullable=True)
     decided_at_utc: Mapped[dt.datetime] = mapped_column(DateTime(timezone=True))
     record: Mapped[dict[str, Any]] = mapped_column(JSON)
-    superseded_by: Mapped[int | None] = mapped_column(ForeignKey("decisions.id"), nullable=True)
-    lims_export: Mapped[str | None] = mapped_column(String(120), nullable=True)
+    row_sha256: Mapped[str | None] = mapped_column(String(64), nullable=True)
 
 
 class ResultRow(Base):
@@ -85,6 +85,7 @@ class ResultRow(Base):
     unit: Mapped[str] = mapped_column(String(20))
     reported: Mapped[str | None] = mapped_column(String(40), nullable=True)
     verdict: Mapped[str] = mapped_column(String(20))
+    row_sha256: Mapped[str | None] = mapped_column(String(64), nullable=True)
 
 
 class ControlLimitRow(Base):
@@ -102,7 +103,7 @@ class ControlLimitRow(Base):
     frozen_at_utc: Mapped[dt.datetime] = mapped_column(DateTime(timezone=True))
     frozen_by: Mapped[str] = mapped_column(String(120))
     reason: Mapped[str] = mapped_column(Text)
-    active: Mapped[int] = mapped_column(Integer, default=1)
+    row_sha256: Mapped[str | None] = mapped_column(String(64), nullable=True)
 
 
 class AuditEvent(Base):
@@ -129,6 +130,7 @@ class ChartPoint(Base):
     lot_id: Mapped[str] = mapped_column(String(40))
     value: Mapped[float] = mapped_column(Float)
     decision_id: Mapped[int] = mapped_column(ForeignKey("decisions.id"))
+    row_sha256: Mapped[str | None] = mapped_column(String(64), nullable=True)
 
 
 # --- the reviewer's desk: accounts and what happens to them (migration 0006) -------------------
@@ -151,6 +153,7 @@ class DeskUser(Base):
     signer_certificate_sha256: Mapped[str | None] = mapped_column(String(64), nullable=True)
     created_at_utc: Mapped[dt.datetime] = mapped_column(DateTime(timezone=True))
     created_by: Mapped[str] = mapped_column(String(120))
+    row_sha256: Mapped[str | None] = mapped_column(String(64), nullable=True)
 
 
 class DeskAccountEvent(Base):
@@ -162,6 +165,9 @@ class DeskAccountEvent(Base):
     kind: Mapped[str] = mapped_column(String(30))
     at_utc: Mapped[dt.datetime] = mapped_column(DateTime(timezone=True))
     detail: Mapped[str | None] = mapped_column(Text, nullable=True)
+    row_sha256: Mapped[str | None] = mapped_column(String(64), nullable=True)
+
+
 # --- the lot record (migration 0005): results across nights, investigations, documents' status ---------------
 # Append-only: a result's new standing (superseded, invalidated) is a new row naming the row it
 # changes (``replaces``); an investigation outcome and a document's new status are rows of their own.
@@ -194,6 +200,7 @@ class LotResultRow(Base):
     reference: Mapped[str | None] = mapped_column(String(40), nullable=True)
     recorded_by: Mapped[str] = mapped_column(String(120))
     recorded_at_utc: Mapped[dt.datetime] = mapped_column(DateTime(timezone=True))
+    row_sha256: Mapped[str | None] = mapped_column(String(64), nullable=True)
 
 
 class InvestigationRow(Base):
@@ -211,6 +218,7 @@ class InvestigationRow(Base):
     decided_by: Mapped[str] = mapped_column(String(120))
     signature: Mapped[dict[str, Any]] = mapped_column(JSON)
     recorded_at_utc: Mapped[dt.datetime] = mapped_column(DateTime(timezone=True))
+    row_sha256: Mapped[str | None] = mapped_column(String(64), nullable=True)
 
 
 class DocumentStatusRow(Base):
@@ -226,3 +234,43 @@ class DocumentStatusRow(Base):
     superseded_by_revision: Mapped[int | None] = mapped_column(Integer, nullable=True)
     reason: Mapped[str] = mapped_column(Text)
     recorded_at_utc: Mapped[dt.datetime] = mapped_column(DateTime(timezone=True))
+    row_sha256: Mapped[str | None] = mapped_column(String(64), nullable=True)
+
+
+# --- append-only records (migration 0004) ----------------------------------------------------------
+class NightClosing(Base):
+    """A night's end, as a new row: closed with its counts, or found interrupted by a later run."""
+
+    __tablename__ = "night_closings"
+    id: Mapped[int] = mapped_column(Integer, primary_key=True)
+    night_id: Mapped[int] = mapped_column(ForeignKey("night_runs.id"), unique=True)
+    closed_at_utc: Mapped[dt.datetime] = mapped_column(DateTime(timezone=True))
+    how: Mapped[str] = mapped_column(String(20))  # closed, interrupted
+    files_received: Mapped[int | None] = mapped_column(Integer, nullable=True)
+    files_archived: Mapped[int | None] = mapped_column(Integer, nullable=True)
+    files_quarantined: Mapped[int | None] = mapped_column(Integer, nullable=True)
+    lots_decided: Mapped[int | None] = mapped_column(Integer, nullable=True)
+    row_sha256: Mapped[str | None] = mapped_column(String(64), nullable=True)
+
+
+class LimsExport(Base):
+    """A decision written into a LIMS results file (one row per decision exported)."""
+
+    __tablename__ = "lims_exports"
+    id: Mapped[int] = mapped_column(Integer, primary_key=True)
+    decision_id: Mapped[int] = mapped_column(ForeignKey("decisions.id"), unique=True)
+    export_name: Mapped[str] = mapped_column(String(120))
+    exported_at_utc: Mapped[dt.datetime] = mapped_column(DateTime(timezone=True))
+    row_sha256: Mapped[str | None] = mapped_column(String(64), nullable=True)
+
+
+# The GMP record tables: each row carries row_sha256, is named with that hash by the audit event of
+# its transaction, and may never be changed or deleted. A new record table joins with one line here
+# (and its own row_sha256 column and triggers in its migration: see migrations/versions/0004).
+RECORD_TABLES: tuple[type[Base], ...] = (
+    NightRun, InputFile, Lot, DecisionRow, ResultRow, ControlLimitRow, ChartPoint, NightClosing, LimsExport,
+    LotResultRow, InvestigationRow, DocumentStatusRow,  # the lot record (migrations 0005, 0007)
+    DeskUser, DeskAccountEvent,  # the desk's accounts and what happens to them (migrations 0006, 0007)
+)
+# The audit chain itself is append-only too (refused UPDATE/DELETE), but it is the chain, not a chained row.
+APPEND_ONLY_TABLES: tuple[str, ...] = (*(t.__tablename__ for t in RECORD_TABLES), AuditEvent.__tablename__)

@@ -52,6 +52,14 @@ class Workspace:
     release_mode: ReleaseMode = ReleaseMode.APPROVAL  # the plant's default; a specification may set its own
     release_procedure: str | None = None  # the procedure allowing release by exception (automatic mode)
     reason_pattern: str | None = None  # a reference every person's reason must contain, e.g. CC-[0-9]+
+    # Records nobody rewrites unseen (see pipeline/records/checkpoints.py and clock.py)
+    checkpoint_copy: Path | None = None      # a second folder for sealed checkpoints (on another host)
+    timestamp_url: str | None = None         # an RFC 3161 time-stamping authority for checkpoints
+    clock_tolerance_minutes: float = 5.0     # how far an event may be dated before the chain's head
+
+    @property
+    def checkpoints(self) -> Path:
+        return self.root / "records" / "checkpoints"
 
     @property
     def inbox(self) -> Path:
@@ -164,6 +172,10 @@ class FanOutSettings(Strict):
     deployment: Text = Field(description="a deployment name, e.g. lotgate-render-chunk/render-site-a")
     chunks: int = Field(2, ge=1, le=64, description="a whole number of chunks per window, 1 to 64")
     from_lots: int = Field(24, ge=1, description="a whole number of lots from which a night fans out")
+class RecordsSettings(Strict):
+    checkpoint_copy: Text | None = Field(None, description="a folder (best on another host) for a copy of each checkpoint")
+    timestamp_url: Text | None = Field(None, description="the http(s) URL of an RFC 3161 time-stamping authority")
+    clock_tolerance_minutes: float = Field(5.0, ge=0, le=1440, description="minutes, from 0 to 1440")
 
 
 class WorkspaceSettings(Strict):
@@ -187,6 +199,8 @@ class WorkspaceSettings(Strict):
     signer_register: Text | None = Field(None, description="the path of the register of authorised signers")
     release: ReleaseSettings | None = Field(
         None, description="a mapping with default_mode, procedure and reason_reference_pattern")
+    records: RecordsSettings | None = Field(
+        None, description="a mapping with checkpoint_copy, timestamp_url and clock_tolerance_minutes")
 
     @field_validator("time_zone")
     @classmethod
@@ -252,6 +266,7 @@ def open_workspace(root: Path, *, plant_name: str | None = None, signer_name: st
     trust_root = _setting_path(root, settings.trust.root_ca if settings.trust else None,
                                root / "keys" / "root-ca.pem" if demo else None)
     register = _setting_path(root, settings.signer_register, root / "keys" / "signers.yaml" if demo else None)
+    records = settings.records or RecordsSettings()
     return Workspace(
         root=root,
         plant_name=settings.plant_name or plant_name or "Unnamed plant",
@@ -269,6 +284,9 @@ def open_workspace(root: Path, *, plant_name: str | None = None, signer_name: st
         release_procedure=release.procedure,
         reason_pattern=release.reason_reference_pattern,
         **_operations(root, settings),
+        checkpoint_copy=(root / Path(records.checkpoint_copy).expanduser()) if records.checkpoint_copy else None,
+        timestamp_url=records.timestamp_url,
+        clock_tolerance_minutes=records.clock_tolerance_minutes,
     )
 
 
