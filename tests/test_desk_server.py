@@ -153,6 +153,11 @@ def test_each_role_does_exactly_its_acts(space, role):
                                   accounts.UNLOCKED, "test reset", [])
 
 
+def _acts(events):
+    """The events of acts, without the records-written events that name each transaction's rows."""
+    return [e for e in events if e.kind != "records-written"]
+
+
 def test_a_wrong_password_at_signing_refuses_and_writes_only_the_failed_attempt(space):
     c = signed_in(space, DeskRole.REVIEWER)
     store = space.desk.store
@@ -162,7 +167,7 @@ def test_a_wrong_password_at_signing_refuses_and_writes_only_the_failed_attempt(
                                          "reason": "looked at it", "password": "reviewer password 2025"})
     assert response.status_code == 403 and "nothing was signed" in response.text
     assert len(store.decisions()) == decisions
-    new = trail_events(store)[: trail_length(store) - events]
+    new = _acts(trail_events(store)[: trail_length(store) - events])
     assert [e.kind for e in new] == ["desk-signature-refused"]
     assert new[0].body["account"] == "reviewer" and new[0].body["why"] == "wrong password"
     assert sorted(p.name for p in space.root.rglob("*") if p.is_file() and "keys" not in p.parts) == files
@@ -203,7 +208,7 @@ def test_five_failed_sign_ins_lock_the_account_until_the_administrator_unlocks_i
     for _ in range(5):
         assert login(c, DeskRole.INVESTIGATOR, "a wrong password!").status_code == 401
     assert login(c, DeskRole.INVESTIGATOR).status_code == 401  # the right password, on a locked account
-    kinds = [e.kind for e in trail_events(space.desk.store, limit=3)]
+    kinds = [e.kind for e in _acts(trail_events(space.desk.store, limit=6))]
     assert "desk-account-locked" in kinds
     admin = signed_in(space, DeskRole.ADMINISTRATOR)
     page = admin.get("/users").text
@@ -224,7 +229,7 @@ def test_sessions_end_after_inactivity_and_at_logout(space):
     token = csrf_of(c.get("/").text)
     assert c.post("/logout", data={"csrf": token}, follow_redirects=False).status_code == 303
     assert c.get("/", follow_redirects=False).status_code == 303
-    assert trail_events(space.desk.store, limit=1)[0].kind == "desk-logout"
+    assert _acts(trail_events(space.desk.store, limit=2))[0].kind == "desk-logout"
 
 
 def test_hostile_lot_numbers_reasons_and_file_names_come_out_escaped(space):
