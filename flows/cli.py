@@ -177,7 +177,8 @@ def cmd_demo(args: argparse.Namespace) -> int:
             from flows.investigate_cmd import demo_investigations
 
             demo_investigations(root, night_data.investigations, console)
-    _demo_approvals(root, console)
+    if not args.leave_ready:
+        _demo_approvals(root, console)
     console.print(f"\nOutputs in {root}: certificates/, reports/, lims/, decisions.jsonl, archive/, quarantine/.")
     console.print(f"Check a certificate:  lotgate verify --workspace {root} {root / 'certificates' / '<file>.pdf'}")
     return 0
@@ -277,10 +278,13 @@ def build_parser() -> argparse.ArgumentParser:
         epilog=EXIT_CODES, formatter_class=argparse.RawDescriptionHelpFormatter)
     sub = parser.add_subparsers(dest="command", required=True, metavar="COMMAND")
     demo = sub.add_parser("demo", help="write an invented plant's exports into DIR/inbox and run its nights",
-                          description="Write the invented demo plant's exports (four nights, deterministic) into "
+                          description="Write the invented demo plant's exports (five nights, deterministic) into "
                                       "DIR/inbox and run each night on them. Running it again adds no duplicate decisions.")
     demo.add_argument("--workspace", default="./lotgate-demo", metavar="DIR", help="workspace folder (default ./lotgate-demo)")
     demo.add_argument("--seed", type=int, default=20261124, help="simulation seed (default 20261124)")
+    demo.add_argument("--leave-ready", action="store_true",
+                      help="leave the lots ready for release unapproved (to approve them at the desk or with "
+                           "lotgate approve); by default the demo reviewer approves them")
     demo.set_defaults(func=cmd_demo)
     run = sub.add_parser("run", help="run the night on whatever is in DIR/inbox",
                          description="Run one night on every export in DIR/inbox: validate, compute, decide, "

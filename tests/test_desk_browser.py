@@ -1,10 +1,11 @@
 """The reviewer's desk in a real browser: Debian's chromium and chromedriver driven by Selenium.
 
-The demo's four nights run through the command line; a reviewer account is made with
-``lotgate users add``; ``lotgate desk`` is started on a free port of 127.0.0.1 and stopped by its
-process id. The browser signs in, reads the morning view and a held lot, releases the
-out-of-trend lot with the password and reads the manifestation; poppler's ``pdfsig`` (an outside
-verifier) then checks the re-issued certificate. A night's static page is opened from the file
+The demo's nights run through the command line with the lots ready for release left unapproved;
+the demo reviewer of the demo register gets an account with ``lotgate users add``; ``lotgate desk``
+is started on a free port of 127.0.0.1 and stopped by its process id. The browser signs in, reads
+the morning view and a held lot, approves a lot ready for release with the password and reads the
+manifestation; another lot is approved with ``lotgate approve``, and the two acts' records are
+compared; poppler's ``pdfsig`` (an outside verifier) then checks both certificates' two signatures. A night's static page is opened from the file
 with the browser's resource timing checked: nothing is requested. Screenshots are kept in
 tests/artifacts/desk/ (ignored by git).
 """
@@ -40,10 +41,10 @@ def free_port() -> int:
 @pytest.fixture(scope="module")
 def demo_desk(tmp_path_factory):
     root = tmp_path_factory.mktemp("desk-demo") / "ws"
-    assert run_cli(["demo", "--workspace", root]).returncode == 0
-    person = root.parent / "reviewer"
-    assert run_cli(["keys", "demo", "--workspace", root, "--name", "Mara Feldkamp", "--out", person]).returncode == 0
-    added = run_cli(["users", "add", "mara", "--role", "reviewer", "--signer-p12", person / "signer.p12",
+    # The demo's nights with the lots ready for release left for a person to approve.
+    assert run_cli(["demo", "--workspace", root, "--leave-ready"]).returncode == 0
+    person = root / "keys" / "people" / "mira.castellan"  # the demo reviewer, in the demo register of signers
+    added = run_cli(["users", "add", "mira", "--role", "reviewer", "--signer-p12", person / "signer.p12",
                      "--p12-passphrase-file", person / "signer.passphrase", "--workspace", root],
                     env={**os.environ, "LOTGATE_DESK_PASSWORD": PASSWORD})
     assert added.returncode == 0, added.stderr
@@ -93,7 +94,7 @@ def shot(driver, name):
     print(f"screenshot: {path}")
 
 
-def test_sign_in_review_and_release_with_the_password(demo_desk, browser):
+def test_sign_in_review_and_approve_with_the_password(demo_desk, browser):
     from selenium.webdriver.common.by import By
 
     root, url = demo_desk
@@ -105,32 +106,52 @@ def test_sign_in_review_and_release_with_the_password(demo_desk, browser):
     browser.find_element(By.ID, "sign-in").click()
     headings = [h.text for h in browser.find_elements(By.CSS_SELECTOR, "section.group h2")]
     shot(browser, "2-morning-view")
-    # The demo's holds (README: what the demo produces), held first in reading order.
-    assert headings[0].startswith("Held: out of specification")
-    assert [h.split(" ")[1] for h in headings[:4]] == ["out", "invalid", "incomplete", "out"]
+    # The demo's holds at the end of its nights (README: what the demo produces), held first in
+    # reading order, then the lots pending and ready for release.
+    assert [h.split(" (")[0].split(":")[0] for h in headings[:4]] == ["Held"] * 4, headings
+    assert [h.split(": ")[1].split(" (")[0] for h in headings[:4]] == [
+        "out of specification", "incomplete", "out of trend", "overdue"], headings
     assert "The counts reconcile." in browser.page_source
 
-    browser.find_element(By.LINK_TEXT, "LLC-2611-029").click()
-    assert "recovered 81.7 %" in browser.page_source and "<svg" in browser.page_source
-    shot(browser, "3-held-lot-invalid-assay")
+    browser.find_element(By.LINK_TEXT, "PGR-2611-017").click()
+    assert "out of specification" in browser.page_source and "<svg" in browser.page_source
+    shot(browser, "3-held-lot-out-of-specification")
 
-    browser.get(url + "/lot?id=LLC-2611-027")
-    browser.find_element(By.ID, "release").click()
-    assert "I approve its release" in browser.page_source  # the meaning, before signing
-    browser.find_element(By.NAME, "reason").send_keys("out-of-trend result investigated: no assignable cause")
+    browser.get(url + "/lot?id=LLC-2611-030")
+    browser.find_element(By.ID, "approve").click()
+    assert "I have reviewed this certificate" in browser.page_source  # the meaning, before signing
+    browser.find_element(By.NAME, "reason").send_keys("results, assay validity and the prepared certificate reviewed")
     browser.find_element(By.NAME, "password").send_keys(PASSWORD)
     shot(browser, "4-signing")
     browser.find_element(By.ID, "sign").click()
     shown = browser.find_element(By.ID, "manifestation").text
     shot(browser, "5-manifestation")
-    assert "Mara Feldkamp (DEMO)" in shown and "CET (UTC+01:00)" in shown and "I approve its release" in shown
+    assert "Mira Castellan (DEMO)" in shown and "CET (UTC+01:00)" in shown
+    assert "I have reviewed this certificate" in shown
 
-    certificate = root / "certificates" / "LLC-2611-027_r2_certificate.pdf"
-    assert certificate.exists()
-    if shutil.which("pdfsig"):
-        ok, text = pdfsig_report(certificate)
-        assert ok and "Mara Feldkamp (DEMO)" in text, text
-    assert run_cli(["verify", root / "decisions.jsonl"]).returncode == 0
+    # The same act on another lot with the command line: the same records and the same two signatures.
+    person = root / "keys" / "people" / "mira.castellan"
+    by_cli = run_cli(["approve", "LLC-2611-031", "--reason", "results, assay validity and the certificate reviewed",
+                      "--identity", person / "signer.p12", "--passphrase-file", person / "signer.passphrase",
+                      "--workspace", root])
+    assert by_cli.returncode == 0, by_cli.stdout + by_cli.stderr
+    from pipeline.night.open import open_records
+
+    _, store = open_records(root)
+    desk, cli = store.latest_decision("LLC-2611-030"), store.latest_decision("LLC-2611-031")
+    assert (desk.disposition, desk.decided_by, desk.record.meaning) == (cli.disposition, cli.decided_by,
+                                                                       cli.record.meaning)
+    assert set(desk.record.to_json()) == set(cli.record.to_json()) and desk.record.person_signature
+    for lot, decision in (("LLC-2611-030", desk), ("LLC-2611-031", cli)):
+        certificate = root / "certificates" / f"{lot}_r{decision.revision}_certificate.pdf"
+        assert certificate.exists()
+        if shutil.which("pdfsig"):
+            ok, text = pdfsig_report(certificate)
+            assert ok and text.count("Signature is Valid.") == 2 and "Mira Castellan (DEMO)" in text, text
+            assert "lotgate system" in text
+        checked = run_cli(["verify", "--workspace", root, certificate])
+        assert checked.returncode == 0, checked.stdout
+    assert run_cli(["verify", "--workspace", root]).returncode == 0  # records, chain, checkpoints, archive
 
 
 def test_the_static_page_of_a_demo_night_loads_nothing(demo_desk, browser):

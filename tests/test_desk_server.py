@@ -124,6 +124,8 @@ def test_forms_without_the_right_csrf_token_are_refused_and_write_nothing(space)
 
 
 ACTS = {
+    "approve": lambda c: c.post("/lot/sign", data={"csrf": csrf_of(c.get("/").text), "lot": "LLC-9000-103",
+                                                   "act": "approve", "reason": "r", "password": "not it, wrong"}),
     "release": lambda c: c.post("/lot/sign", data={"csrf": csrf_of(c.get("/").text), "lot": "LLC-9000-103",
                                                    "act": "release", "reason": "r", "password": "not it, wrong"}),
     "reject": lambda c: c.post("/lot/sign", data={"csrf": csrf_of(c.get("/").text), "lot": "LLC-9000-101",
@@ -133,7 +135,7 @@ ACTS = {
         "password": "not it, wrong"}),
     "users": lambda c: c.get("/users"),
 }
-ALLOWED = {DeskRole.VIEWER: set(), DeskRole.REVIEWER: {"release", "reject"}, DeskRole.INVESTIGATOR: set(),
+ALLOWED = {DeskRole.VIEWER: set(), DeskRole.REVIEWER: {"approve", "release", "reject"}, DeskRole.INVESTIGATOR: set(),
            DeskRole.CHART_OWNER: {"re-baseline"}, DeskRole.ADMINISTRATOR: {"users"}}
 
 

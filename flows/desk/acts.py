@@ -35,7 +35,7 @@ from pipeline.records import audit
 from pipeline.records import desk_accounts as accounts
 from pipeline.records.signing import SigningIdentity
 from pipeline.release.dossier import local_time_text
-from pipeline.release.signature import PERSON_REJECT_MEANING, PERSON_RELEASE_MEANING
+from pipeline.release.signature import PERSON_APPROVAL_MEANING, PERSON_REJECT_MEANING, PERSON_RELEASE_MEANING
 
 MAX_REASON = 2000
 REBASELINE_MEANING = ("Re-baseline of a control chart by its owner: I have reviewed the chosen released lots and "
@@ -60,8 +60,8 @@ class Manifestation:
 
 
 def meaning_of(act: DeskAct) -> str:
-    return {DeskAct.RELEASE: PERSON_RELEASE_MEANING, DeskAct.REJECT: PERSON_REJECT_MEANING,
-            DeskAct.REBASELINE: REBASELINE_MEANING}.get(act, "")
+    return {DeskAct.APPROVE: PERSON_APPROVAL_MEANING, DeskAct.RELEASE: PERSON_RELEASE_MEANING,
+            DeskAct.REJECT: PERSON_REJECT_MEANING, DeskAct.REBASELINE: REBASELINE_MEANING}.get(act, "")
 
 
 @contextmanager
@@ -111,6 +111,20 @@ def decide(desk: Desk, session: Session, lot_id: str, *, release: bool, reason: 
         return _record_signature(desk, session, act, f"{what} (revision {outcome.revision})", identity, signed_at,
                                  lot_id=lot_id, revision=outcome.revision, reason=reason,
                                  document=outcome.certificate or outcome.report)
+
+
+def approve(desk: Desk, session: Session, lot_id: str, *, reason: str, password: str) -> Manifestation:
+    """Approve a lot ready for release, signed: ``lotgate approve`` through the desk (the person's
+    signature is added to the certificate the system prepared, in an incremental update)."""
+    from pipeline.night.approval import approve_lots
+
+    what = f"lot {lot_id}: release approved"
+    with _signing(desk, session, DeskAct.APPROVE, password, what, reason or "") as identity:
+        (done,) = approve_lots(desk.ws, desk.store, [lot_id], identity=identity, reason=reason)
+        signed_at = dt.datetime.fromisoformat(done.signed_at_utc)
+        return _record_signature(desk, session, DeskAct.APPROVE, f"{what} (revision {done.revision})", identity,
+                                 signed_at, lot_id=lot_id, revision=done.revision, reason=reason,
+                                 document=done.certificate)
 
 
 def rebaseline_chart(desk: Desk, session: Session, product: str, attribute: Attribute, *, reason: str,

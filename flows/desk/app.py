@@ -154,7 +154,12 @@ def create_app(desk: Desk, *, clock: Callable[[], float] | None = None) -> Starl
         charts = [chart_page_data(desk.ws, desk.store, product, code, highlight=lot_id)
                   for code in trended.get(product, ())]
         return page("lot.html", session=session, view=view, charts=charts,
-                    may_release=may(session.role, DeskAct.RELEASE), may_reject=may(session.role, DeskAct.REJECT))
+                    may_approve=may(session.role, DeskAct.APPROVE), may_release=may(session.role, DeskAct.RELEASE),
+                    may_reject=may(session.role, DeskAct.REJECT))
+
+    def _act_of(word: object) -> DeskAct:
+        """The lot act a form names; anything else is a rejection's form (the least a click can do)."""
+        return {"approve": DeskAct.APPROVE, "release": DeskAct.RELEASE}.get(str(word), DeskAct.REJECT)
 
     def _sign_context(session: Session, lot_id: str, act: DeskAct) -> dict[str, Any]:
         latest = desk.store.latest_decision(lot_id)
@@ -163,19 +168,22 @@ def create_app(desk: Desk, *, clock: Callable[[], float] | None = None) -> Starl
         return dict(session=session, lot=latest, act=str(act), meaning=acts.meaning_of(act), error=None)
 
     def sign_form(request: Request, session: Session, form: FormData) -> Response:
-        act = DeskAct.RELEASE if request.query_params.get("act") == "release" else DeskAct.REJECT
+        act = _act_of(request.query_params.get("act"))
         if not may(session.role, act):
             return refused(request, f"Your role ({session.role}) does not allow this ({act}).", 403, session)
         return page("sign.html", **_sign_context(session, request.query_params.get("id", ""), act))
 
     def sign(request: Request, session: Session, form: FormData) -> Response:
-        release = form.get("act") == "release"
+        act = _act_of(form.get("act"))
         lot_id = str(form.get("lot", ""))
+        reason, password = str(form.get("reason", "")), str(form.get("password", ""))
         try:
-            shown = acts.decide(desk, session, lot_id, release=release, reason=str(form.get("reason", "")),
-                                password=str(form.get("password", "")))
+            if act == DeskAct.APPROVE:
+                shown = acts.approve(desk, session, lot_id, reason=reason, password=password)
+            else:
+                shown = acts.decide(desk, session, lot_id, release=act == DeskAct.RELEASE, reason=reason,
+                                    password=password)
         except acts.ActRefused as exc:
-            act = DeskAct.RELEASE if release else DeskAct.REJECT
             return page("sign.html", 403, **{**_sign_context(session, lot_id, act), "error": str(exc)})
         return page("signed.html", session=session, shown=shown)
 

@@ -18,16 +18,17 @@ class DeskRole(StrEnum):
 class DeskAct(StrEnum):
     """Acts a person does at the desk; every signing act needs the password again."""
 
-    RELEASE = "release"
+    APPROVE = "approve"  # a lot ready for release: the person's signature beside the system's
+    RELEASE = "release"  # a held lot released by a person's decision (the certificate re-issued)
     REJECT = "reject"
     REBASELINE = "re-baseline"
-    INVALIDATE = "invalidate"  # wired when investigations land (a use case of their own)
+    INVALIDATE = "invalidate"  # an investigation outcome (lotgate investigate); not offered at the desk yet
     MANAGE_USERS = "manage users"
 
 
 ROLE_ACTS: dict[DeskRole, frozenset[DeskAct]] = {
     DeskRole.VIEWER: frozenset(),
-    DeskRole.REVIEWER: frozenset({DeskAct.RELEASE, DeskAct.REJECT}),
+    DeskRole.REVIEWER: frozenset({DeskAct.APPROVE, DeskAct.RELEASE, DeskAct.REJECT}),
     DeskRole.INVESTIGATOR: frozenset({DeskAct.INVALIDATE}),
     DeskRole.CHART_OWNER: frozenset({DeskAct.REBASELINE}),
     DeskRole.ADMINISTRATOR: frozenset({DeskAct.MANAGE_USERS}),  # accounts only: an administrator never signs

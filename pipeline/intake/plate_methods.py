@@ -45,6 +45,8 @@ def plate_method(plate_id: str, frame: pd.DataFrame, registry: Mapping[str, Mapp
     decided anyway: the assembly names them).
     """
     method_id = str(frame["method_id"].iloc[0])
+    if not catalog.all_methods(method_id):
+        return None, None, f"plate {plate_id}: method {method_id} is not a known method under specs/methods"
     day, problem = plate_assay_date(plate_id, frame, registry)
     if problem is not None:
         return None, None, problem
