@@ -35,7 +35,11 @@ from pipeline.records import audit
 from pipeline.records import desk_accounts as accounts
 from pipeline.records.signing import SigningIdentity
 from pipeline.release.dossier import local_time_text
-from pipeline.release.signature import PERSON_APPROVAL_MEANING, PERSON_REJECT_MEANING, PERSON_RELEASE_MEANING
+from pipeline.release.signature import (
+    PERSON_APPROVAL_MEANING,
+    PERSON_REJECT_MEANING,
+    PERSON_RELEASE_MEANING,
+)
 
 MAX_REASON = 2000
 REBASELINE_MEANING = ("Re-baseline of a control chart by its owner: I have reviewed the chosen released lots and "

@@ -18,6 +18,7 @@ from dataclasses import dataclass
 
 from pipeline.errors import InputError, NotFound, SigningError
 from pipeline.night.lot_documents import place_document, staging_folder
+from pipeline.night.seal import seal_after_act
 from pipeline.records import audit, ledger
 from pipeline.records.signer_check import PersonCheck, authorise_person
 from pipeline.records.signer_register import register_in_force
@@ -124,4 +125,7 @@ def approve_lots(ws: Workspace, store: Store, lot_ids: list[str], *, identity: S
     authorise_person(identity, SignerRole.RELEASE_APPROVAL, anchor_path=ws.trust_root, register=register)
     for lot_id in lot_ids:
         _current(store, lot_id)
-    return [approve_lot(ws, store, lot_id, identity=identity, reason=reason) for lot_id in lot_ids]
+    done = [approve_lot(ws, store, lot_id, identity=identity, reason=reason) for lot_id in lot_ids]
+    if done:
+        seal_after_act(ws, store, f"release-approved {', '.join(a.lot_id for a in done)}")  # one checkpoint
+    return done

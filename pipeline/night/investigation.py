@@ -18,6 +18,7 @@ import re
 from dataclasses import dataclass
 
 from pipeline.errors import InputError, NotFound
+from pipeline.night.seal import seal_after_act
 from pipeline.records import audit, ledger
 from pipeline.records.lot_record_store import InvestigationWrite, add_investigation, load_histories
 from pipeline.records.signer_check import authorise_person
@@ -108,4 +109,5 @@ def record_investigation(ws: Workspace, store: Store, lot_id: str, *, test: str,
                                                 plan, person, {**signature, "signed": body}),
                       [*register_events, event])
     audit.sync_log(store, ws.log)
+    seal_after_act(ws, store, f"investigation-outcome {lot_id}")
     return RecordedInvestigation(lot_id, result.attribute, chosen, reference, result)
