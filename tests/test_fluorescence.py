@@ -129,7 +129,8 @@ def test_a_night_reads_protein_by_fluorescence_where_the_product_names_the_metho
     def night(root: Path, files: dict[str, bytes], fluorescence: bool) -> dict[str, tuple[str, float | None]]:
         write_settings(root, {"plant_name": demo.PLANT_NAME, "time_zone": demo.PLANT_TIME_ZONE,
                               "signing": {"signer_name": demo.DEMO_SIGNER},
-                              **({"controlled": {"specifications": "plant-specs"}} if fluorescence else {})})
+                              **({"controlled": {"specifications": "plant-specs", "methods": "plant-methods"}}
+                                 if fluorescence else {})})
         (root / "keys").mkdir(parents=True, exist_ok=True)
         (root / "keys" / "use-demo-identity").touch()
         for name, data in files.items():
@@ -160,6 +161,13 @@ def test_a_night_reads_protein_by_fluorescence_where_the_product_names_the_metho
     for spec in plant.glob("*.yaml"):
         spec.write_text(spec.read_text(encoding="utf-8").replace("protein_method: PROT-DYE595",
                                                                  "protein_method: PROT-FL485"), encoding="utf-8")
+    # The shipped fluorescence method takes effect after the demo's first night: the plant's own copy
+    # (a version in force on the night's assay date) is used here.
+    methods = tmp_path / "fluorescence" / "plant-methods"
+    shutil.copytree(REPO / "specs" / "methods", methods)
+    text = (methods / "PROT-FL485.yaml").read_text(encoding="utf-8")
+    (methods / "PROT-FL485.yaml").write_text(text.replace("effective_from: 2026-12-01", "effective_from: 2026-01-15"),
+                                             encoding="utf-8")
     fluorescence = night(tmp_path / "fluorescence", files, fluorescence=True)
 
     assert sorted(fluorescence) == sorted(absorbance) and len(absorbance) == 13
