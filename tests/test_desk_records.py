@@ -96,9 +96,9 @@ def test_accounts_sign_in_and_lock_on_postgresql(tmp_path):
     from flows.desk.accounts import Desk, SignInRefused, create_account, sign_in
     from flows.desk.roles import DeskRole
     from pipeline.records import audit
+    from pipeline.records.desk_queries import trail_events
     from pipeline.records.store import Store
     from pipeline.records.workspace import open_workspace, write_settings
-    from pipeline.records.desk_queries import trail_events
     from tests.pg import fresh_database
 
     url, drop = fresh_database()
