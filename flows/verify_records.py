@@ -40,9 +40,10 @@ def workspace_findings(root: Path, *, archive: Path | None = None, with_archive:
     bare = store_check.unprotected_tables(store)
     out.append((not bare, "append-only triggers: " + ("in place on every record table" if not bare else
                                                       f"missing on {', '.join(bare)} (someone removed them)")))
-    trust = [p for p in (ws.keys / "root-ca.pem",) if p.exists()]
-    roots = [_load_root(p) for p in trust]
-    seals = checkpoints.check_store(store, checkpoint_folders(ws), roots or None)
+    # The plant's configured anchor only (never a file found beside the records); none configured:
+    # a checkpoint cannot be tied to the system identity, and says so.
+    roots = [_load_root(ws.trust_root)] if ws.trust_root is not None and ws.trust_root.exists() else []
+    seals = checkpoints.check_store(store, checkpoint_folders(ws), roots)
     out += _lines(seals.valid, f"checkpoints: {seals.checkpoints} found; {seals.latest}" if seals.valid
                   else f"checkpoints: {len(seals.problems)} of {seals.checkpoints} disagree with the store:",
                   list(seals.problems))

@@ -6,6 +6,7 @@ import dataclasses
 import hashlib
 
 from pipeline.records import audit
+from pipeline.records.demo_trust import create_demo_trust
 from pipeline.records.desk_accounts import NewUser, add_user, record_account_event
 from pipeline.records.lot_record_store import InvestigationWrite, add_investigation, load_histories
 from pipeline.records.store import Store
@@ -23,10 +24,20 @@ def _record(lot: str, fingerprint: str, disposition: str = "released") -> Decisi
                           results=(RecordedResult("activity", 1200.0, "1200", "U/mL", "pass"),))
 
 
+PLANT = "Tarnwick Bioprocess test plant"
+
+
+def settings_of(url: str, **more) -> dict:
+    """The fixture workspace's settings: its store, UTC, and its configured trust anchor."""
+    return {"database_url": url, "time_zone": "UTC", "trust": {"root_ca": "keys/root-ca.pem"},
+            "signer_register": "keys/signers.yaml", **more}
+
+
 def filled_workspace(root, url):
     """A workspace whose store holds rows in every record table, written by lotgate's own store."""
     root.mkdir(parents=True, exist_ok=True)
-    write_settings(root, {"database_url": url, "time_zone": "UTC"})
+    create_demo_trust(root / "keys", PLANT)  # the plant's anchor and system identity (checkpoints are signed by it)
+    write_settings(root, settings_of(url))
     ws = open_workspace(root)
     ws.make_folders()
     store = Store(url)

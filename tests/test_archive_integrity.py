@@ -11,24 +11,15 @@ import datetime as dt
 import os
 import stat
 
-import pytest
-
 from flows import nightly
 from flows.cli import build_parser
 from pipeline.demo import plant as demo
 from pipeline.night import close, receive
-from pipeline.night.open import opened_signer
-from pipeline.records.demo_identity import create_demo_identity
+from pipeline.night.open import signer_for
+from pipeline.records.demo_trust import create_demo_trust
 from pipeline.records.store import Store
 from pipeline.records.workspace import open_workspace, write_settings
 from pipeline.vocabulary import ProblemCode
-
-
-@pytest.fixture(scope="module")
-def signer(tmp_path_factory):
-    keys = tmp_path_factory.mktemp("keys")
-    demo_id = create_demo_identity(keys, "Tarnwick Bioprocess test plant", "Archive tester")
-    return opened_signer(demo_id.p12_path, demo_id.passphrase_path, None)
 
 
 def _workspace(root):
@@ -37,7 +28,10 @@ def _workspace(root):
     (root / "inbox").mkdir(parents=True)
     for name, data in night.files.items():
         (root / "inbox" / name).write_bytes(data)
-    write_settings(root, {"time_zone": "UTC"})
+    create_demo_trust(root / "keys", "Tarnwick Bioprocess test plant")  # its anchor, system identity, register
+    (root / "keys" / "use-demo-identity").touch()
+    write_settings(root, {"time_zone": "UTC", "trust": {"root_ca": "keys/root-ca.pem"},
+                          "signer_register": "keys/signers.yaml"})
     ws = open_workspace(root)
     ws.make_folders()
     return ws, Store(ws.database_url)
@@ -49,13 +43,13 @@ def verify(capsys, *args) -> tuple[int, str]:
     return code, capsys.readouterr().out
 
 
-def test_archived_copies_share_no_inode_and_edits_are_found(tmp_path, signer, capsys):
+def test_archived_copies_share_no_inode_and_edits_are_found(tmp_path, capsys):
     ws, store = _workspace(tmp_path / "ws")
     registry = next(p for p in (ws.inbox).iterdir() if p.name.startswith("lots-"))
     link = tmp_path / "instrument-share" / registry.name
     link.parent.mkdir()
     os.link(registry, link)  # the exporting instrument keeps a hard link to the file it wrote
-    summary = nightly.run_stages(ws, store, signer, orchestrated=False)
+    summary = nightly.run_stages(ws, store, signer_for(ws), orchestrated=False)
     assert summary.received == summary.archived + summary.quarantined and summary.quarantined == 0
     archived = {f.file_name: ws.root / f.stored_as for f in store.files() if f.status == "archived"}
     assert list(ws.inbox.iterdir()) == []
@@ -76,7 +70,7 @@ def test_archived_copies_share_no_inode_and_edits_are_found(tmp_path, signer, ca
     assert "the archived file was changed" in out
 
 
-def test_a_file_changed_after_it_was_read_is_quarantined_not_archived(tmp_path, signer, monkeypatch, capsys):
+def test_a_file_changed_after_it_was_read_is_quarantined_not_archived(tmp_path, monkeypatch, capsys):
     ws, store = _workspace(tmp_path / "ws")
     target = sorted(p.name for p in ws.inbox.iterdir() if p.name.startswith("lims-"))[0]
     real_copy = close.archive_files.stage_copy
@@ -88,7 +82,7 @@ def test_a_file_changed_after_it_was_read_is_quarantined_not_archived(tmp_path, 
         return real_copy(source, folder)
 
     monkeypatch.setattr(close.archive_files, "stage_copy", copy_after_an_edit)
-    summary = nightly.run_stages(ws, store, signer, orchestrated=False)
+    summary = nightly.run_stages(ws, store, signer_for(ws), orchestrated=False)
     assert summary.received == summary.archived + summary.quarantined and summary.quarantined == 1
     [row] = [f for f in store.files() if f.file_name == target]
     assert row.status == "quarantined" and f"[{ProblemCode.CHANGED_WHILE_READ}]" in row.reason
@@ -100,7 +94,7 @@ def test_a_file_changed_after_it_was_read_is_quarantined_not_archived(tmp_path, 
     assert code == 0, out
 
 
-def test_a_file_changed_while_it_was_read_is_set_aside(tmp_path, signer, monkeypatch):
+def test_a_file_changed_while_it_was_read_is_set_aside(tmp_path, monkeypatch):
     ws, store = _workspace(tmp_path / "ws")
     target = sorted(p.name for p in ws.inbox.iterdir() if p.name.startswith("lims-"))[0]
     real_hash = receive.sha256_file
@@ -113,7 +107,7 @@ def test_a_file_changed_while_it_was_read_is_set_aside(tmp_path, signer, monkeyp
         return digest
 
     monkeypatch.setattr(receive, "sha256_file", hash_then_append)
-    summary = nightly.run_stages(ws, store, signer, orchestrated=False)
+    summary = nightly.run_stages(ws, store, signer_for(ws), orchestrated=False)
     assert [name for name, _ in summary.quarantine_reasons] == [target]
     assert "it changed while lotgate read it" in summary.quarantine_reasons[0][1]
     [row] = [f for f in store.files() if f.file_name == target]

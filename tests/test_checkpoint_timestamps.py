@@ -30,7 +30,7 @@ from pipeline.night.seal import seal
 from pipeline.records import checkpoints
 from pipeline.records.demo_identity import create_demo_identity
 from pipeline.records.workspace import open_workspace, write_settings
-from tests.records_fixture import filled_workspace
+from tests.records_fixture import filled_workspace, settings_of
 
 
 def _tsa_identity():
@@ -90,10 +90,9 @@ def test_a_checkpoint_carries_a_verified_rfc3161_time_stamp(tmp_path, tsa_url, c
     url, served = tsa_url
     db = f"sqlite:///{tmp_path / 'ws' / 'lotgate.db'}"
     ws, store = filled_workspace(tmp_path / "ws", db)
-    write_settings(ws.root, {"database_url": db, "time_zone": "UTC", "records": {"timestamp_url": url}})
+    write_settings(ws.root, settings_of(db, records={"timestamp_url": url}))
     ws = open_workspace(ws.root)
-    keys = create_demo_identity(tmp_path / "keys", "Tarnwick Bioprocess test plant", "Stamp tester")
-    [written] = seal(ws, store, "test", opened_signer(keys.p12_path, keys.passphrase_path, None))
+    [written] = seal(ws, store, "test", opened_signer(ws.keys / "signer.p12", ws.keys / "signer.passphrase", None))
     assert len(served) == 1  # the authority was asked once, for this signature
     sealed = json.loads(written.read_text())
     assert sealed["timestamped"] is True

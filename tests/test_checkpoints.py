@@ -24,7 +24,7 @@ from pipeline.records.demo_identity import create_demo_identity
 from pipeline.records.tables import APPEND_ONLY_TABLES, AuditEvent, DecisionRow
 from pipeline.records.workspace import open_workspace, write_settings
 from tests.pg import fresh_database
-from tests.records_fixture import filled_workspace
+from tests.records_fixture import filled_workspace, settings_of
 
 
 @pytest.fixture(params=["sqlite", pytest.param("postgresql", marks=pytest.mark.slow)])
@@ -45,12 +45,14 @@ def signer(tmp_path_factory):
     return opened_signer(demo.p12_path, demo.passphrase_path, None)
 
 
-def sealed_workspace(tmp_path, url, signer, **records):
+def sealed_workspace(tmp_path, url, signer=None, **records):
+    """A filled workspace sealed by its own system identity (or by ``signer``, for a forgery)."""
     ws, store = filled_workspace(tmp_path / "ws", url)
     if records:
-        write_settings(ws.root, {"database_url": url, "time_zone": "UTC", "records": records})
+        write_settings(ws.root, settings_of(url, records=records))
         ws = open_workspace(ws.root)
-    written = seal(ws, store, "test", signer)
+    system = opened_signer(ws.keys / "signer.p12", ws.keys / "signer.passphrase", None)
+    written = seal(ws, store, "test", signer or system)
     return ws, store, written
 
 
@@ -71,7 +73,7 @@ def _insider(store):
 
 def test_a_checkpoint_is_signed_written_twice_and_verified(tmp_path, signer, capsys):
     url = f"sqlite:///{tmp_path / 'ws' / 'lotgate.db'}"
-    ws, store, written = sealed_workspace(tmp_path, url, signer, checkpoint_copy=str(tmp_path / "other-host"))
+    ws, store, written = sealed_workspace(tmp_path, url, checkpoint_copy=str(tmp_path / "other-host"))
     head = store.last_event()
     name = f"{head.seq:06d}.json"
     assert written == [ws.root / "records" / "checkpoints" / name, tmp_path / "other-host" / name]
@@ -79,7 +81,7 @@ def test_a_checkpoint_is_signed_written_twice_and_verified(tmp_path, signer, cap
     assert written[1].read_text() == written[0].read_text()
     assert (sealed["checkpoint"]["seq"], sealed["checkpoint"]["hash"]) == (head.seq, head.hash)
     check = checkpoints.check_signature(sealed)
-    assert check.ok and "Checkpoint tester" in check.signer and check.timestamp_utc is None
+    assert check.ok and "lotgate system" in check.signer and check.timestamp_utc is None
     code, out = verify(ws.root, capsys)
     assert code == 0, out
     assert f"VALID checkpoints: 2 found; latest {name}: record {head.seq}" in out  # the file in each folder
@@ -91,8 +93,25 @@ def test_a_checkpoint_is_signed_written_twice_and_verified(tmp_path, signer, cap
     assert code == 1 and "does not match its content" in out
 
 
-def test_the_tail_cut_from_store_and_log_is_found(url, tmp_path, signer, capsys):
+def test_a_checkpoint_signed_by_anyone_but_the_system_identity_is_refused(tmp_path, signer, capsys):
+    # The insider who rewrote the history writes a checkpoint of their own, signed with a self-made
+    # certificate (its own CA): it does not chain to the plant's configured anchor.
+    url = f"sqlite:///{tmp_path / 'ws' / 'lotgate.db'}"
     ws, store, _ = sealed_workspace(tmp_path, url, signer)
+    code, out = verify(ws.root, capsys)
+    assert code == 1 and "does not chain to the plant's configured trust anchor" in out, out
+    # A person of the plant's own CA is not the system identity either.
+    from pipeline.records.demo_trust import create_demo_trust
+
+    p12, passphrase = create_demo_trust(ws.keys, "Tarnwick Bioprocess test plant").identity_of("mira.castellan")
+    (ws.root / "records" / "checkpoints").joinpath(f"{store.last_event().seq:06d}.json").unlink()
+    seal(ws, store, "test", opened_signer(p12, passphrase, None))
+    code, out = verify(ws.root, capsys)
+    assert code == 1 and "not signed by the installation's system identity" in out, out
+
+
+def test_the_tail_cut_from_store_and_log_is_found(url, tmp_path, signer, capsys):
+    ws, store, _ = sealed_workspace(tmp_path, url)
     last = store.last_event().seq
     with _insider(store) as c:
         c.execute(delete(AuditEvent.__table__).where(AuditEvent.seq > last - 3))
@@ -108,7 +127,7 @@ def test_the_tail_cut_from_store_and_log_is_found(url, tmp_path, signer, capsys)
 
 
 def test_a_re_chained_history_is_found(url, tmp_path, signer, capsys):
-    ws, store, _ = sealed_workspace(tmp_path, url, signer)
+    ws, store, _ = sealed_workspace(tmp_path, url)
     decisions = DecisionRow.__table__
     with _insider(store) as c:
         row = dict(c.execute(select(decisions).order_by(decisions.c.id).limit(1)).mappings().one())

@@ -26,6 +26,7 @@ from typing import Any
 
 from pipeline.errors import SigningError
 from pipeline.records import ledger
+from pipeline.records.signer_check import is_system_certificate
 from pipeline.records.store import Store
 from pipeline.records.workspace import atomic_write
 
@@ -92,7 +93,11 @@ class SealCheck:
 
 
 def check_signature(sealed: dict[str, Any], trust_roots: list[Any] | None = None) -> SealCheck:
-    """Verify the detached CMS signature over the checkpoint body with pyHanko (integrity, signer, timestamp)."""
+    """Verify the detached CMS signature over the checkpoint body with pyHanko (integrity, signer, timestamp).
+
+    With ``trust_roots`` (the plant's configured anchor) the signer must chain to it and be the
+    installation's system identity: a checkpoint anyone else signed attests nothing.
+    """
     from asn1crypto import cms
     from pyhanko.sign.validation.generic_cms import async_validate_detached_cms
     from pyhanko_certvalidator import ValidationContext
@@ -113,7 +118,11 @@ def check_signature(sealed: dict[str, Any], trust_roots: list[Any] | None = None
         return SealCheck(False, signer, when, "its signature does not match its content (the file was edited)")
     if stamp is not None and not (stamp.intact and stamp.valid):
         return SealCheck(False, signer, when, "its time stamp does not match its signature")
-    return SealCheck(True, signer, when, "signature intact")
+    if trust_roots is not None and not status.trusted:
+        return SealCheck(False, signer, when, "its signer does not chain to the plant's configured trust anchor")
+    if trust_roots is not None and not is_system_certificate(status.signing_cert):
+        return SealCheck(False, signer, when, "it is not signed by the installation's system identity")
+    return SealCheck(True, signer, when, "signature intact, by the system identity")
 
 
 @dataclass(frozen=True)
