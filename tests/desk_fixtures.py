@@ -17,8 +17,9 @@ from pipeline.records.demo_trust import DemoReviewer, create_demo_trust
 from pipeline.records.store import Store
 from pipeline.records.stored import DecisionWrite
 from pipeline.records.workspace import open_workspace, write_settings
+from pipeline.release.lot_record import LotResult
 from pipeline.release.records import DecisionRecord, RecordedResult
-from pipeline.vocabulary import SignerRole
+from pipeline.vocabulary import ResultStatus, SignerRole, Verdict
 
 HOSTILE_LOT = "<script>alert(1)</script>"
 HOSTILE_REASON = '"><img src=x onerror=alert(2)> & <b>bold</b>'
@@ -71,6 +72,11 @@ def make_workspace(root: Path) -> DeskWorkspace:
         DecisionWrite(_record("LLC-9000-103", "ready for release", "ready for release"), "nightly", night_id=night),
         DecisionWrite(_record("LLC-9000-104", "pending", "pending", reasons=["protein due"]), "nightly",
                       night_id=night),
+        # an out-of-specification lead result standing in the lot's record (for an investigation)
+        DecisionWrite(_record("LLC-9000-105", "held", "held: out of specification", ["out of specification"],
+                              ["Lead 7.0 mg/kg is above the limit ≤ 5.0 mg/kg"]), "nightly", night_id=night,
+                      lot_results=(LotResult("lead", ResultStatus.VALID, Verdict.FAIL, 7.0, "7.0", "mg/kg", None,
+                                             "2026-11-26", "LIMS test PB", "LIMS test PB", {"lims-9.csv": "9" * 64}),)),
     ]
     store.add_decisions(writes)
     store.finish_night(night, files_received=1, files_archived=0, files_quarantined=1, lots_decided=len(writes))

@@ -65,7 +65,8 @@ class Manifestation:
 
 def meaning_of(act: DeskAct) -> str:
     return {DeskAct.APPROVE: PERSON_APPROVAL_MEANING, DeskAct.RELEASE: PERSON_RELEASE_MEANING,
-            DeskAct.REJECT: PERSON_REJECT_MEANING, DeskAct.REBASELINE: REBASELINE_MEANING}.get(act, "")
+            DeskAct.REJECT: PERSON_REJECT_MEANING, DeskAct.REBASELINE: REBASELINE_MEANING,
+            DeskAct.INVALIDATE: INVESTIGATION_MEANING}.get(act, "")
 
 
 @contextmanager
@@ -129,6 +130,25 @@ def approve(desk: Desk, session: Session, lot_id: str, *, reason: str, password:
         return _record_signature(desk, session, DeskAct.APPROVE, f"{what} (revision {done.revision})", identity,
                                  signed_at, lot_id=lot_id, revision=done.revision, reason=reason,
                                  document=done.certificate)
+
+
+INVESTIGATION_MEANING = ("Outcome of an out-of-specification investigation, recorded by an authorised person: I "
+                         "have reviewed the investigation under the plant's procedure and its outcome is as stated; "
+                         "an invalidated result no longer counts, a confirmed one stands")
+
+
+def investigate(desk: Desk, session: Session, lot_id: str, *, test: str, outcome: str, reference: str, reason: str,
+                retest_plan: str, password: str) -> Manifestation:
+    """Record an OOS investigation's signed outcome: ``lotgate investigate`` through the desk."""
+    from pipeline.night.investigation import record_investigation
+
+    what = f"lot {lot_id}: investigation {reference} of {test}, outcome '{outcome}'"
+    with _signing(desk, session, DeskAct.INVALIDATE, password, what, reason or "") as identity:
+        done = record_investigation(desk.ws, desk.store, lot_id, test=test, outcome=outcome, reference=reference,
+                                    reason=reason, retest_plan=retest_plan or None, identity=identity)
+        return _record_signature(desk, session, DeskAct.INVALIDATE, f"{what} ({done.outcome})", identity,
+                                 dt.datetime.now(dt.UTC).replace(microsecond=0), lot_id=lot_id, test=test,
+                                 outcome=str(done.outcome), reference=reference, reason=reason)
 
 
 def rebaseline_chart(desk: Desk, session: Session, product: str, attribute: Attribute, *, reason: str,

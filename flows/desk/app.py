@@ -155,7 +155,15 @@ def create_app(desk: Desk, *, clock: Callable[[], float] | None = None) -> Starl
                   for code in trended.get(product, ())]
         return page("lot.html", session=session, view=view, charts=charts,
                     may_approve=may(session.role, DeskAct.APPROVE), may_release=may(session.role, DeskAct.RELEASE),
-                    may_reject=may(session.role, DeskAct.REJECT))
+                    may_reject=may(session.role, DeskAct.REJECT), may_investigate=may(session.role, DeskAct.INVALIDATE),
+                    investigation_meaning=acts.INVESTIGATION_MEANING)
+
+    def investigate(request: Request, session: Session, form: FormData) -> Response:
+        shown = acts.investigate(desk, session, str(form.get("lot", "")), test=str(form.get("test", "")).strip(),
+                                 outcome=str(form.get("outcome", "")), reference=str(form.get("reference", "")).strip(),
+                                 reason=str(form.get("reason", "")), retest_plan=str(form.get("retest_plan", "")),
+                                 password=str(form.get("password", "")))
+        return page("signed.html", session=session, shown=shown)
 
     def _act_of(word: object) -> DeskAct:
         """The lot act a form names; anything else is a rejection's form (the least a click can do)."""
@@ -248,6 +256,7 @@ def create_app(desk: Desk, *, clock: Callable[[], float] | None = None) -> Starl
         Route("/lot", guarded(lot), methods=["GET"]),
         Route("/lot/sign", guarded(sign_form), methods=["GET"]),
         Route("/lot/sign", guarded(sign), methods=["POST"]),
+        Route("/lot/investigate", guarded(investigate, DeskAct.INVALIDATE), methods=["POST"]),
         Route("/chart", guarded(chart), methods=["GET"]),
         Route("/chart/rebaseline", guarded(rebaseline, DeskAct.REBASELINE), methods=["POST"]),
         Route("/audit", guarded(trail), methods=["GET"]),

@@ -22,7 +22,7 @@ class DeskAct(StrEnum):
     RELEASE = "release"  # a held lot released by a person's decision (the certificate re-issued)
     REJECT = "reject"
     REBASELINE = "re-baseline"
-    INVALIDATE = "invalidate"  # an investigation outcome (lotgate investigate); not offered at the desk yet
+    INVALIDATE = "invalidate"  # an OOS investigation's signed outcome (lotgate investigate)
     MANAGE_USERS = "manage users"
 
 
