@@ -3,7 +3,8 @@
 Simulation with known truth (the demo plant's simulator, pipeline/demo/plant.py): every lot's
 true activity, protein and Km are chosen here, so the expected disposition of each night follows
 from the rules under test (the lot record: FDA OOS guidance of 2006, from memory; invalid runs
-repeated, common practice):
+repeated, common practice). "Released" below is the night's "ready for release" (release mode
+'approval': an authorised person approves):
 
 night 1  lipase L1–L4 on a plate whose reference standard recovers 82 % (window 90–110 %): held,
          invalid assay; protease P1 released; P2 specific activity 64 % of target: held, OOS;
@@ -29,7 +30,7 @@ from pipeline.night.investigation import record_investigation
 from pipeline.night.open import open_night
 from pipeline.night.person_decision import decide_lot
 from pipeline.records import signing
-from pipeline.records.demo_identity import create_demo_identity
+from pipeline.records.demo_trust import create_demo_trust
 from pipeline.records.lot_record_store import certificate_status, load_histories
 from pipeline.records.workspace import atomic_write, write_settings
 from pipeline.vocabulary import ResultStatus
@@ -98,7 +99,9 @@ def _scenario(root, person, database_url=None):
     got, ws, store = _night(root, _files(DAY + dt.timedelta(1), lipase, [p1, retest], rng, lims=False,
                                          only_lims=[p3]))
     nights.append(got)
-    identity = signing.load_identity(person.p12_path, passphrase_file=person.passphrase_path)
+    # the demo reviewer of the workspace's demo register (roles: release, rejection, result invalidation)
+    p12, passphrase = create_demo_trust(ws.keys, demo.PLANT_NAME).identity_of(person)
+    identity = signing.load_identity(p12, passphrase_file=passphrase)
     record_investigation(ws, store, p2.lot_id, test="specific_activity", outcome="invalidated", reference="INV-T-1",
                          reason="substrate stock at half strength (preparation record)",
                          retest_plan="re-assay on a fresh plate", identity=identity)
@@ -111,8 +114,8 @@ def _scenario(root, person, database_url=None):
 
 
 @pytest.fixture(scope="module")
-def person(tmp_path_factory):
-    return create_demo_identity(tmp_path_factory.mktemp("person"), demo.PLANT_NAME, "Ines Varga")
+def person():
+    return "mira.castellan"  # in the demo register each workspace's demo trust set writes
 
 
 @pytest.fixture(params=["sqlite", "postgresql"])
@@ -127,11 +130,11 @@ def database(request):
 
 def test_each_night_of_the_lot_record(database, person, tmp_path):
     nights, store, lipase, (p1, p2, p3, p4), first_certificate = _scenario(tmp_path / "w", person, database)
-    assert nights[0] == {**{lot: (1, "held: invalid assay") for lot in lipase}, p1: (1, "released"),
+    assert nights[0] == {**{lot: (1, "held: invalid assay") for lot in lipase}, p1: (1, "ready for release"),
                          p2: (1, "held: out of specification"), p3: (1, "pending"), p4: (1, "pending")}
-    assert nights[1] == {**{lot: (2, "released") for lot in lipase}, p1: (2, "released"),
-                         p2: (2, "held: out of specification"), p3: (2, "released"), p4: (2, "held: overdue")}
-    assert nights[2] == {p1: (4, "held: review required"), p2: (3, "released")}
+    assert nights[1] == {**{lot: (2, "ready for release") for lot in lipase}, p1: (2, "ready for release"),
+                         p2: (2, "held: out of specification"), p3: (2, "ready for release"), p4: (2, "held: overdue")}
+    assert nights[2] == {p1: (4, "held: review required"), p2: (3, "ready for release")}
 
     # P3: pending listed what was awaited, then its microbiology completed the record.
     first = store.decisions(p3)[0].record
