@@ -1,8 +1,8 @@
 """Telling people: the end-of-night mail and JSON post, and the failure message, sent by `lotgate run`.
 
 The reference for what the message must say is the golden copy of the demo's records
-(tests/golden/demo/store/decisions.jsonl, night 4: 5 lots released, 8 held — 2 incomplete,
-4 invalid assay, 1 out of specification, 1 out of trend — and one quarantined LIMS file). The
+(tests/golden/demo/store/decisions.jsonl, night 4: 6 lots ready for release, 1 pending, 8 held
+— invalid assay, out of specification, out of trend, incomplete — and one quarantined LIMS file). The
 receivers are a local SMTP server (aiosmtpd) and a local HTTP endpoint, both on 127.0.0.1 on
 free ports, started and stopped by the test in its own process.
 """
@@ -129,12 +129,12 @@ def test_the_end_of_night_message_reaches_mail_and_json_with_the_right_counts(tm
     golden = [json.loads(line) for line in (GOLDEN / "decisions.jsonl").read_text().splitlines()]
     tonight = [d for d in golden if d["night_id"] == 4]
     expected = Counter(d["disposition"] for d in tonight)
-    assert expected == {"released": 5, "held": 8}
+    assert expected == {"ready for release": 6, "pending": 1, "held": 8}
     assert len(mailbox.messages) == 1 and len(posts) == 1
     mail = mailbox.messages[0]
     body = mail.get_content().replace("\r\n", "\n")
-    assert mail["To"] == "qa-review@tarnwick.example" and "night 4 done — 13 lots" in mail["Subject"]
-    assert "released 5, ready for release 0, pending 0, held 8, rejected 0" in body
+    assert mail["To"] == "qa-review@tarnwick.example" and f"night 4 done — {len(tonight)} lots" in mail["Subject"]
+    assert "released 0, ready for release 6, pending 1, held 8, rejected 0" in body
     held_section = body.split("Held lots (8):")[1].split("\n\n")[0]
     for decision in tonight:
         if decision["disposition"] == "held":
@@ -179,5 +179,5 @@ def test_a_failing_night_sends_its_failure_message_and_the_next_run_completes_it
     assert "night 1 had been interrupted" in done.stdout
     decisions = store.decisions()
     assert len(mailbox.messages) == 2 and f"night 2 done — {len(decisions)} lots" in mailbox.messages[1]["Subject"]
-    assert len(decisions) == 5 and {d.disposition for d in decisions} == {"released"}  # each lot once
+    assert len(decisions) == 5 and {d.disposition for d in decisions} == {"ready for release"}  # each lot once
     _no_secret_anywhere(root, failed.stdout, failed.stderr, done.stdout, done.stderr)
