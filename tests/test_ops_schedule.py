@@ -23,8 +23,8 @@ pytestmark = pytest.mark.slow
 def _finished_nights(root):
     try:
         with sqlite3.connect(f"file:{root / 'lotgate.db'}?mode=ro", uri=True, timeout=1) as db:
-            return db.execute("select id, files_received, lots_decided from night_runs "
-                              "where finished_at_utc is not null").fetchall()
+            return db.execute("select night_id, files_received, lots_decided from night_closings "
+                              "where how = 'closed'").fetchall()
     except sqlite3.Error:
         return []
 
@@ -57,7 +57,7 @@ def test_a_one_minute_cron_runs_the_night_on_the_inbox(tmp_path):
     assert not any((root / "inbox").iterdir())
     with sqlite3.connect(root / "lotgate.db") as db:
         dispositions = [row[0] for row in db.execute("select disposition from decisions")]
-    assert dispositions == ["released"] * 5
+    assert dispositions == ["ready for release"] * 5  # release mode 'approval': a person approves
 
 
 def _not_zombie(pid: int) -> bool:

@@ -125,7 +125,7 @@ def test_server_pool_two_workers_two_sites_and_the_run_lock(tmp_path):
         decisions = Store(store_url).decisions()
         by_site = {name: {d.lot_id for d in decisions if d.record.input_files and _site_of(d, nights) == name}
                    for name in sites}
-        assert len(decisions) == 10 and {d.disposition for d in decisions} == {"released"}
+        assert len(decisions) == 10 and {d.disposition for d in decisions} == {"ready for release"}
         assert all(len(lots) == 5 for lots in by_site.values()), by_site
         for root in sites.values():
             assert not any((root / "inbox").iterdir())
