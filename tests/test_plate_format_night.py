@@ -45,7 +45,7 @@ def test_reads_of_an_undeclared_plate_format_are_quarantined_and_their_lots_held
     assert lipase_reads
     for name in lipase_reads:
         reason = (tmp_path / "quarantine" / f"{name}.reason.txt").read_text(encoding="utf-8")
-        assert "its plate map says 96-well plate, and method LIP-PNPB v1.2 declares settings for 384-well plates" \
+        assert "its plate map says 96-well plate, and method LIP-PNPB v1.3 declares settings for 384-well plates" \
             in reason
         assert not (tmp_path / "inbox" / name).exists()
     with sqlite3.connect(tmp_path / "lotgate.db") as db:
@@ -59,4 +59,4 @@ def test_reads_of_an_undeclared_plate_format_are_quarantined_and_their_lots_held
     assert all("declares settings for 384-well plates only" in reasons for _, _, reasons in lipase.values())
     # the protease plates are untouched (the single demo night also carries its deliberate OOS and bad LIMS file)
     assert protease and not any("kinread-" in reasons for _, _, reasons in protease.values())
-    assert sum(d[1] == "released" for d in protease.values()) >= 3
+    assert sum(d[1] == "ready for release" for d in protease.values()) >= 3
