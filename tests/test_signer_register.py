@@ -146,3 +146,22 @@ def test_the_systems_meanings_name_no_person_and_say_what_is_true():
     assert "no person reviewed" in automatic
     for meaning in (ready, automatic):
         assert " I " not in f" {meaning} " and "approve its release" not in meaning  # no first-person claim
+
+
+def test_a_long_plant_name_still_makes_the_demo_trust_set(tmp_path):
+    # RFC 5280 bounds a certificate's common and organisation names at 64 (ub-common-name,
+    # ub-organization-name); a plant name longer than that once stopped `lotgate deploy` with a
+    # traceback. The names are cut, marked with an ellipsis, and keep their DEMO mark.
+    from pipeline.records import signing
+    from pipeline.records.demo_trust import create_demo_trust
+    from pipeline.records.signer_check import is_system_certificate
+
+    plant = "Tarnwick Bioprocess, Plant 2 (demo) \u2014 granulation and liquid formulation site"
+    trust = create_demo_trust(tmp_path / "keys", plant)
+    system = signing.load_identity(trust.system_p12, passphrase_env="", passphrase_file=trust.system_passphrase)
+    assert len(system.signer_name.encode("utf-8")) <= 64 and system.signer_name.endswith("\u2026")
+    assert system.signer_name.startswith("lotgate system \u2014 Tarnwick Bioprocess")
+    assert is_system_certificate(system.signer.signing_cert)
+    p12, passphrase = trust.identity_of("mira.castellan")
+    person = signing.load_identity(p12, passphrase_env="", passphrase_file=passphrase)
+    assert person.signer_name == "Mira Castellan (DEMO)" and not is_system_certificate(person.signer.signing_cert)

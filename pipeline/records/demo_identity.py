@@ -46,9 +46,25 @@ class DemoIdentity:
         }
 
 
+NAME_LIMIT = 64  # RFC 5280 upper bounds: ub-common-name and ub-organization-name are 64 characters
+
+
+def fitted(text: str, limit: int = NAME_LIMIT) -> str:
+    """``text`` cut to ``limit`` (counted in UTF-8 bytes, as certificates count them) where a long plant
+    name makes it longer, keeping its end (the "(DEMO)" mark, the "Root CA" words) and marking the cut
+    with an ellipsis."""
+    if len(text.encode("utf-8")) <= limit:
+        return text
+    tail = next((t for t in (" (DEMO)", " DEMO Root CA") if text.endswith(t)), "")
+    head = text[: len(text) - len(tail)]
+    while head and len((head.rstrip() + "\u2026" + tail).encode("utf-8")) > limit:
+        head = head[:-1]
+    return head.rstrip() + "\u2026" + tail
+
+
 def _name(common_name: str, organisation: str, unit: str | None = None) -> x509.Name:
-    attributes = [x509.NameAttribute(NameOID.COMMON_NAME, common_name),
-                  x509.NameAttribute(NameOID.ORGANIZATION_NAME, organisation)]
+    attributes = [x509.NameAttribute(NameOID.COMMON_NAME, fitted(common_name)),
+                  x509.NameAttribute(NameOID.ORGANIZATION_NAME, fitted(organisation))]
     if unit is not None:
         attributes.append(x509.NameAttribute(NameOID.ORGANIZATIONAL_UNIT_NAME, unit))
     return x509.Name(attributes)
