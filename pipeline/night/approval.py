@@ -20,6 +20,7 @@ from pipeline.errors import InputError, NotFound, SigningError
 from pipeline.night.lot_documents import place_document, staging_folder
 from pipeline.night.seal import seal_after_act
 from pipeline.records import audit, ledger
+from pipeline.records.desk_queries import current_decisions
 from pipeline.records.signer_check import PersonCheck, authorise_person
 from pipeline.records.signer_register import register_in_force
 from pipeline.records.signing import SigningIdentity, sign_pdf, sign_record
@@ -46,8 +47,8 @@ def lots_ready(store: Store, *, night_id: int | None = None, lots: tuple[str, ..
     """The lots to approve: the named ones, else those ready for release of one night (of every night: None)."""
     if lots:
         return list(dict.fromkeys(lots))
-    current = [d for d in store.decisions() if d.superseded_by is None
-               and d.disposition == Disposition.READY_FOR_RELEASE and night_id in (None, d.record.night_id)]
+    current = [d for d in current_decisions(store)  # each lot's latest revision, found in the database
+               if d.disposition == Disposition.READY_FOR_RELEASE and night_id in (None, d.record.night_id)]
     return [d.lot_id for d in current]
 
 

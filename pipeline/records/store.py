@@ -17,6 +17,7 @@ from sqlalchemy.orm import Session, sessionmaker
 
 from pipeline.errors import StoreError
 from pipeline.records import clock, row_hashes
+from pipeline.records.current import is_latest_revision
 from pipeline.records.database import migrate, open_engine, safe_url
 from pipeline.records.lot_record_store import write_decision_rows
 from pipeline.records.stored import (
@@ -206,12 +207,6 @@ class Store:
                 following[(lot_id, revision - 1)] = decision_id
         return [decision_of(row, following.get((row.lot_id, row.revision))) for row in rows]
 
-    @staticmethod
-    def _is_latest() -> Any:
-        """Where-clause: the decision is its lot's latest revision (no later revision exists)."""
-        later = DecisionRow.__table__.alias("later")
-        return ~exists().where(later.c.lot_id == DecisionRow.lot_id, later.c.revision > DecisionRow.revision)
-
     def latest_decision(self, lot_id: str) -> StoredDecision | None:
         return self.previous_decisions([lot_id]).get(lot_id)
 
@@ -220,7 +215,7 @@ class Store:
         out: dict[str, StoredDecision] = {}
         with self.session() as s:
             for chunk in _chunks(lot_ids):
-                rows = s.scalars(select(DecisionRow).where(DecisionRow.lot_id.in_(chunk), self._is_latest()))
+                rows = s.scalars(select(DecisionRow).where(DecisionRow.lot_id.in_(chunk), is_latest_revision()))
                 out.update({row.lot_id: decision_of(row) for row in rows})
         return out
 
@@ -402,7 +397,7 @@ class Store:
                                                   ChartPoint.attribute == attribute)
         with self.session() as s:
             query = (select(DecisionRow).join(Lot, Lot.lot_id == DecisionRow.lot_id)
-                     .where(Lot.product_code == product_code, self._is_latest(),
+                     .where(Lot.product_code == product_code, is_latest_revision(),
                             DecisionRow.disposition != Disposition.RELEASED, DecisionRow.lot_id.not_in(charted)))
             if after_order is not None:
                 query = query.where(DecisionRow.id > after_order)
