@@ -168,6 +168,13 @@ class Rounding(StrEnum):
     HALF_EVEN = "half-even"  # halves to the even digit (ASTM E29)
 
 
+class ReplicateScatter(StrEnum):
+    """Whose scatter gives a protein result's replicate SE (a protein method's setting)."""
+
+    POOLED_PER_PLATE = "pooled-per-plate"  # the plate's lots pooled (ISO 5725-2 repeatability)
+    PER_LOT = "per-lot"  # each lot's own replicates only (n − 1 dof)
+
+
 class ResultQualifier(StrEnum):
     """What a LIMS result says besides (or instead of) a plain number."""
 

@@ -159,6 +159,8 @@ METHOD_CASES = [
     ("curve model a number", _set(ENDPOINT, "curve.model", 4), "'curve.model' must be linear, quadratic or 4pl"),
     ("curve weighting unknown", _set(ENDPOINT, "curve.weighting", "1/x3"), "curve weighting must be null, 1/x, 1/x2 or 1/y2"),
     ("replicate CV NaN", _set(ENDPOINT, "suitability.replicate_cv_max_pct", math.nan), "must be a finite number"),
+    ("replicate scatter unknown", _set(ENDPOINT, "suitability.replicate_scatter", "pooled"),
+     "'suitability.replicate_scatter'"),
     ("reader saturation infinite", _set(FLUORESCENCE, "reader_max_rfu", math.inf), "'reader_max_rfu' must be a finite"),
     ("unknown reader setting", _set(FLUORESCENCE, "gain", 100), "unknown field 'gain'"),
     ("method kind wrong", _set(FLUORESCENCE, "kind", "method"), "'kind' must be 'assay-method'"),

@@ -96,28 +96,39 @@ def test_inverse_prediction_se_of_a_line_matches_the_textbook_formula() -> None:
 
 
 @pytest.mark.slow
-def test_protein_interval_with_the_curve_share_covers() -> None:
-    # Simulated plates (known truth 0.6 mg/mL in the well, triplicates read with 0.004 AU scatter,
-    # standards with 0.01 AU): the replicates alone miss the curve's error shared by all three
-    # (89 % measured); replicate ⊕ curve (Welch–Satterthwaite) covers. Where the replicates'
-    # 2-dof SE dominates, Welch–Satterthwaite measures 92.6–93.0 % (docs/assay-rules.md).
-    from pipeline.assay.protein_plates import with_curve_uncertainty
-    from pipeline.science.measurement import Measurement
+@pytest.mark.parametrize(("read_sd_au", "standard_sd_au"), [(0.004, 0.01), (0.012, 0.01)],
+                         ids=["curve-share-matters", "replicates-matter"])
+def test_protein_interval_with_the_curve_share_covers(read_sd_au: float, standard_sd_au: float) -> None:
+    # Simulated plates (known truth 0.6 mg/mL in the well for four lots, each read in triplicate,
+    # invented scatter): the replicates alone miss the curve's error shared by all three (89 %
+    # measured where the curve's share matters); the plate's pooled repeatability ⊕ the curve
+    # (Welch–Satterthwaite) covers, also where the replicates' scatter matters as much (each lot's
+    # own 2-dof SD ⊕ the curve measured 92.7 % there: ν_eff is largest when that SD is small).
+    from pipeline.assay.plates import replicate_measurement
+    from pipeline.assay.protein_plates import with_curve_uncertainty, with_plate_scatter
     from pipeline.science.standard_curves import fit_standard_curve
+    from pipeline.vocabulary import ReplicateScatter
 
     rng = np.random.default_rng(31)
-    hits = hits_replicates_only = 0
-    trials = 2000
-    for _ in range(trials):
-        y = 0.05 + 0.8 * X + rng.normal(0, 0.01, X.size)
+    hits = hits_own = hits_replicates_only = lots = 0
+    for _ in range(1000):
+        y = 0.05 + 0.8 * X + rng.normal(0, standard_sd_au, X.size)
         curve = fit_standard_curve(X, y, "linear", min_r2=0.9)
-        reads = 0.05 + 0.8 * 0.6 + rng.normal(0, 0.004, 3)
-        values = (reads - curve.params[0]) / curve.params[1]
-        mean, se = values.mean(), values.std(ddof=1) / np.sqrt(3)
-        half = 4.303 * se  # t(0.975, 2), statistical tables
-        hits_replicates_only += abs(mean - 0.6) <= half
-        replicates = Measurement("protein", "mg/mL", mean, se=se, n=3, dof=2, ci95=(mean - half, mean + half))
-        low, high = with_curve_uncertainty(replicates, curve, mean).ci95
-        hits += low <= 0.6 <= high
-    assert 0.93 <= hits / trials <= 0.97
-    assert hits_replicates_only < hits
+        plate = {}
+        for lot in "ABCD":
+            reads = 0.05 + 0.8 * 0.6 + rng.normal(0, read_sd_au, 3)
+            plate[lot] = replicate_measurement("protein", "mg/mL", (reads - curve.params[0]) / curve.params[1],
+                                               100.0, f"lot {lot} protein")
+        pooled = with_plate_scatter(plate, ReplicateScatter.POOLED_PER_PLATE)
+        for lot, own in plate.items():
+            assert own.value is not None and own.ci95 is not None
+            lots += 1
+            hits_replicates_only += own.ci95[0] <= 0.6 <= own.ci95[1]
+            low, high = with_curve_uncertainty(own, curve, own.value).ci95
+            hits_own += low <= 0.6 <= high
+            low, high = with_curve_uncertainty(pooled[lot], curve, own.value).ci95
+            hits += low <= 0.6 <= high
+    print(f"coverage {hits / lots:.3f} (own SD ⊕ curve {hits_own / lots:.3f}, replicates only "
+          f"{hits_replicates_only / lots:.3f})")
+    assert 0.93 <= hits / lots <= 0.97
+    assert hits_replicates_only < hits if read_sd_au < standard_sd_au / 2 else hits_own < hits

@@ -27,6 +27,7 @@ from pipeline.controlled.strict import checked
 from pipeline.errors import SpecificationError
 from pipeline.science.measurement import Measurement
 from pipeline.science.plate_wells import listed_wells
+from pipeline.vocabulary import ReplicateScatter
 
 
 @dataclass(frozen=True)
@@ -49,6 +50,7 @@ class FluorescenceMethod:
     plate_formats: tuple[PlateFormatSettings, ...] = ()  # the volumes per well on each plate format
     min_calibrator_pct: float = 75.0  # standard-curve acceptance (docs/assay-rules.md, "Protein")
     min_curve_levels: int = 6
+    replicate_scatter: ReplicateScatter = ReplicateScatter.POOLED_PER_PLATE
     measurement: ClassVar[str] = "fluorescence-endpoint"
 
 

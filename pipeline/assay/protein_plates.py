@@ -6,7 +6,7 @@ protein result (mg/mL) or the reasons it has none; a failed curve invalidates th
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from typing import Any
 
 import numpy as np
@@ -21,6 +21,8 @@ from pipeline.science.combined_uncertainty import RelativeTerm, combined
 from pipeline.science.curve_acceptance import accept_standard_curve
 from pipeline.science.curve_uncertainty import inverse_prediction_se
 from pipeline.science.measurement import Measurement
+from pipeline.science.repeatability import pool_relative_repeatability
+from pipeline.vocabulary import ReplicateScatter
 
 
 @dataclass(frozen=True)
@@ -103,6 +105,7 @@ def evaluate_a280_plate(plate_id: str, merged: pd.DataFrame, method: ProteinMeth
         values = np.asarray(protein_readings.protein_from_a280(corrected, epsilon, path_length_cm, dilution),
                             dtype=float)
         result[lot] = replicate_measurement("protein", "mg/mL", values, method.replicate_cv_max_pct, f"lot {lot} protein")
+    result = with_plate_scatter(result, method.replicate_scatter)
     curve = {"model": "A280", "blank_au": blank, "linear_range_au": [low, high], "signal_label": ABSORBANCE.label, "signal_heading": ABSORBANCE.heading,
              "path_length_cm": path_length_cm, "plate_format": plate_format, "accepted": True, "reasons": []}
     return ProteinPlateResult(plate_id, method.method_id, version, True, (), result, curve, samples_out)
@@ -166,6 +169,7 @@ def evaluate_standard_curve_plate(plate_id: str, merged: pd.DataFrame, method: A
         return invalid_protein_plate(plate_id, method, lots, [f"plate {plate_id}: standard curve not accepted: {why}"],
                                      curve_dict)
     result: dict[str, Measurement] = {}
+    in_well: dict[str, float] = {}
     samples_out: dict[str, list[dict[str, Any]]] = {}
     for lot in lots:
         wells = merged[(merged["role"] == "sample") & (merged["lot_id"] == lot)]
@@ -182,10 +186,42 @@ def evaluate_standard_curve_plate(plate_id: str, merged: pd.DataFrame, method: A
                                       reasons=(f"{len(outside)} of {len(readings)} replicates {outside[0].reason}",))
             continue
         values = np.array([r.concentration_mg_per_ml for r in readings], dtype=float)
-        replicates = replicate_measurement("protein", "mg/mL", values, method.replicate_cv_max_pct, f"lot {lot} protein")
-        in_well = float(np.mean([r.in_well_mg_per_ml for r in readings]))
-        result[lot] = with_curve_uncertainty(replicates, curve, in_well)
+        result[lot] = replicate_measurement("protein", "mg/mL", values, method.replicate_cv_max_pct, f"lot {lot} protein")
+        in_well[lot] = float(np.mean([r.in_well_mg_per_ml for r in readings]))
+    result = with_plate_scatter(result, method.replicate_scatter)
+    result = {lot: with_curve_uncertainty(m, curve, in_well[lot]) if lot in in_well else m for lot, m in result.items()}
     return ProteinPlateResult(plate_id, method.method_id, version, True, (), result, curve_dict, samples_out)
+
+
+def with_plate_scatter(replicates: dict[str, Measurement], scatter: ReplicateScatter) -> dict[str, Measurement]:
+    """Each lot's replicate SE from the plate's pooled repeatability, where the method pools it.
+
+    Lots whose replicates met the method's CV limit are pooled (``pipeline.science.repeatability``);
+    a lot whose scatter is larger than the others' keeps its own SD and n − 1 dof, and says so.
+    """
+    if scatter is not ReplicateScatter.POOLED_PER_PLATE:
+        return replicates
+    usable = {lot: m.detail["replicates"] for lot, m in replicates.items()
+              if m.valid and m.value and m.se is not None and m.n >= 2}
+    pool = pool_relative_repeatability(usable)
+    if pool is None:
+        return replicates
+    out = dict(replicates)
+    for lot in pool.pooled_lots:
+        m = replicates[lot]
+        if m.value is None:  # never: pooled lots have a value (see ``usable``)
+            continue
+        relative_se = pool.relative_se(m.n)
+        note = {"pooled_cv_pct": 100.0 * pool.relative_sd, "dof": pool.dof, "lots": list(pool.pooled_lots),
+                "own_se": m.se}
+        out[lot] = replace(m, se=abs(m.value) * relative_se, dof=pool.dof,
+                           ci95=combined(m.value, [RelativeTerm(relative_se, pool.dof)]).ci95,
+                           detail={**m.detail, "repeatability": note})
+    for lot in pool.own_scatter_lots:
+        m = replicates[lot]
+        out[lot] = replace(m, detail={**m.detail, "repeatability": {
+            "own": "its replicates scatter more than the plate's other lots (Cochran's test at 5 %)"}})
+    return out
 
 
 def with_curve_uncertainty(replicates: Measurement, curve: Any, in_well_mg_per_ml: float) -> Measurement:

@@ -190,6 +190,8 @@ class KineticMethodFile(MethodHeader):
 
 class ProteinSuitability(Strict):
     replicate_cv_max_pct: float = Field(10.0, gt=0)
+    # docs/assay-rules.md, "Protein": the replicate SE from the plate's pooled scatter or the lot's own
+    replicate_scatter: Literal["pooled-per-plate", "per-lot"] = "pooled-per-plate"
 
 
 class Uv280MethodFile(MethodHeader):

@@ -29,7 +29,7 @@ from pipeline.controlled.file_models import (
 from pipeline.controlled.limit_precision import check_limit_precision, written_limit
 from pipeline.controlled.strict import checked
 from pipeline.errors import SpecificationError
-from pipeline.vocabulary import NelsonRule, ReleaseMode, Rounding
+from pipeline.vocabulary import NelsonRule, ReleaseMode, ReplicateScatter, Rounding
 
 COMPUTED_SOURCES = ("activity", "protein", "specific_activity", "km", "vmax", "kcat", "kcat_over_km")
 
@@ -228,6 +228,7 @@ class ProteinMethod:
     # standard-curve acceptance (docs/assay-rules.md, "Protein")
     min_calibrator_pct: float = 75.0
     min_curve_levels: int = 6
+    replicate_scatter: ReplicateScatter = ReplicateScatter.POOLED_PER_PLATE
 
     @property
     def measurement(self) -> str:
@@ -346,6 +347,7 @@ def parse_uv280_method(raw: dict[str, Any], where: str, sha256: str) -> ProteinM
         wavelength_nm=m.wavelength_nm, standard="", curve_model="none", curve_weighting=None,
         curve_min_r2=0.0, bias_limit_pct=0.0, lowest_bias_limit_pct=0.0,
         replicate_cv_max_pct=(m.suitability or ProteinSuitability()).replicate_cv_max_pct, kind="uv280",
+        replicate_scatter=ReplicateScatter((m.suitability or ProteinSuitability()).replicate_scatter),
         plate_formats=_formats(m.plate_formats), linear_min_au=low, linear_max_au=high)
 
 
@@ -362,6 +364,7 @@ def curve_fields(m: CurveMethodFile, where: str) -> dict[str, Any]:
                 lowest_bias_limit_pct=curve.lowest_bias_limit_pct,
                 min_calibrator_pct=curve.min_calibrator_pct, min_curve_levels=curve.min_levels,
                 replicate_cv_max_pct=(m.suitability or ProteinSuitability()).replicate_cv_max_pct,
+                replicate_scatter=ReplicateScatter((m.suitability or ProteinSuitability()).replicate_scatter),
                 plate_formats=_formats(m.plate_formats))
 
 

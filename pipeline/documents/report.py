@@ -186,6 +186,7 @@ def _plates(dossier: dict[str, Any]) -> list[Any]:
         out.append(grid_table(rows, [24 * mm, 28 * mm, 12 * mm, 52 * mm, CONTENT_W - 116 * mm],
                               col_styles={0: "cellb", 2: "cellb"}, extra=extra))
     out += _protein_curve(get(dossier, "protein_curve"))
+    out += _protein_scatter(get(get(get(get(dossier, "measurements", {}), "protein", {}), "detail", {}), "repeatability"))
     out += _windows(get(dossier, "wells"), get(dossier, "traces"))
     return out
 
@@ -230,6 +231,19 @@ def _protein_curve(curve: Any) -> list[Any]:
     pair.setStyle(TableStyle([("VALIGN", (0, 0), (-1, -1), "TOP"), ("LEFTPADDING", (0, 0), (-1, -1), 0),
                               ("RIGHTPADDING", (0, 0), (-1, -1), 0)]))
     return out + [Spacer(1, 3), pair]
+
+
+def _protein_scatter(note: Any) -> list[Any]:
+    """Whose scatter gave this lot's protein SE: the plate's pooled repeatability, or its own."""
+    if not isinstance(note, dict):
+        return []
+    if get(note, "own") is not None:
+        return [mpara("Protein replicate SE from this lot's own replicates, not the plate's pooled repeatability: "
+                      "{why}.", "body", why=get(note, "own"))]
+    return [mpara("Protein replicate SE from the plate's pooled repeatability: CV {cv} % with {dof} degrees of freedom "
+                  "over lots {lots} (this lot's own replicates alone: SE {own} mg/mL).", "body",
+                  cv=num(get(note, "pooled_cv_pct"), 3), dof=get(note, "dof"),
+                  lots=", ".join(str(x) for x in _items(get(note, "lots", []))), own=num(get(note, "own_se"), 3))]
 
 
 def _windows(wells: Any, traces: Any) -> list[Any]:
