@@ -14,7 +14,7 @@ from pypdf import PdfReader
 from reportlab.graphics.shapes import Drawing, Group, String
 
 from pipeline.documents import charts, render_batch_report, render_certificate
-from pipeline.documents.text import clean, escape, num, value_pm
+from pipeline.documents.text import clean, escape, fixed, num, value_pm
 from pipeline.errors import InputError
 from tests.dossiers import SIGNATURE
 
@@ -217,6 +217,9 @@ def test_number_formats() -> None:
     assert value_pm(0.06412, 0.008281) == "0.0641 ± 0.0083"
     assert value_pm(313136.0, 9921.0) == "(3.131 ± 0.099)×10⁵"
     assert num(0.4) == "0.4" and num(1158.351) == "1158" and num(None) == "—"
+    # A value that rounds to zero is shown without a sign (a blank's slope of −0.00001 AU/min).
+    assert fixed(-0.00001, 4) == "0.0000" and fixed(-0.00051, 3) == "-0.001" and fixed(-0.0, 1) == "0.0"
+    assert value_pm(-0.004, 0.2) == "0.00 ± 0.20"
 
 
 # ---------------------------------------------------------------- determinism

@@ -44,6 +44,7 @@ from pipeline.documents.text import (
     clean,
     draw_paragraph,
     escape,
+    fixed,
     get,
     interval,
     markup,
@@ -273,7 +274,7 @@ def _windows(wells: Any, traces: Any) -> list[Any]:
         rows.append([clean(get(w, "well"), 8), clean(role, 12), num(get(w, "substrate_mm"), 3), window,
                      clean(get(w, "n_points"), 4),
                      DASH if not isinstance(slope, float) else
-                     f"{slope:.4f} ± {se:.4f}" if isinstance(se, float) else f"{slope:.4f}",
+                     f"{fixed(slope, 4)} ± {se:.4f}" if isinstance(se, float) else fixed(slope, 4),
                      DASH if not isinstance(converted, float) else f"{converted:.1f}",
                      clean(f"{flag}: {note}" if flag else (note if "excluded" in note or shaped else "ok"), 160)])
     out.append(Paragraph("Each window starts at the first read and ends before the method's limit on substrate "

@@ -173,8 +173,14 @@ def num(x: Any, sig: int = 4, strip: bool = True) -> str:
         mant = v / 10**exp
         return f"{mant:.{max(sig - 1, 0)}f}×10{_sup(exp)}"  # mantissa keeps its digits
     decimals = max(0, sig - 1 - exp)
-    text = f"{v:.{decimals}f}"
+    text = fixed(v, decimals)
     return text.rstrip("0").rstrip(".") if strip and "." in text else text
+
+
+def fixed(x: float, decimals: int) -> str:
+    """``x`` to ``decimals`` places; a value that rounds to zero is "0.000", never "−0.000"."""
+    text = f"{x:.{decimals}f}"
+    return text[1:] if text.startswith("-") and not text.strip("-0.") else text
 
 
 _SUP = str.maketrans("-0123456789", "⁻⁰¹²³⁴⁵⁶⁷⁸⁹")
@@ -200,7 +206,7 @@ def value_pm(value: Any, se: Any) -> str:
         factor = scale
         v, s = v / 10**scale, s / 10**scale
     decimals = min(10, max(0, 1 - math.floor(math.log10(s))))
-    core = f"{v:.{decimals}f} ± {s:.{decimals}f}"
+    core = f"{fixed(v, decimals)} ± {fixed(s, decimals)}"
     return f"({core})×10{_sup(factor)}" if factor else core
 
 
