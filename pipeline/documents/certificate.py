@@ -51,7 +51,12 @@ from pipeline.documents.text import (
     styles,
 )
 from pipeline.errors import InputError
-from pipeline.release.signature import APPROVAL_FIELD, APPROVAL_SLOT_CAPTION, APPROVAL_SLOT_TITLE, SignatureSlot
+from pipeline.release.signature import (
+    APPROVAL_FIELD,
+    APPROVAL_SLOT_CAPTION,
+    APPROVAL_SLOT_TITLE,
+    SignatureSlot,
+)
 from pipeline.vocabulary import Disposition, Verdict
 
 KINETIC_CODES = ("km", "vmax", "kcat", "kcat_over_km")

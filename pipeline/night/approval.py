@@ -31,7 +31,12 @@ from pipeline.records.store import Store
 from pipeline.records.stored import DecisionWrite, StoredDecision
 from pipeline.records.workspace import Workspace, atomic_write
 from pipeline.release.records import CertificateFile, EarlierDecision
-from pipeline.release.signature import APPROVAL_FIELD, PERSON_APPROVAL_MEANING, approval_stamp_lines, checked_reason
+from pipeline.release.signature import (
+    APPROVAL_FIELD,
+    PERSON_APPROVAL_MEANING,
+    approval_stamp_lines,
+    checked_reason,
+)
 from pipeline.vocabulary import Disposition, SignerRole
 
 
