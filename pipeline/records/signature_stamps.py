@@ -33,15 +33,23 @@ _EMPTY_INK = (0.36, 0.40, 0.45)  # the certificate's muted grey
 _STAMP_INK = (0.11, 0.15, 0.20)  # the certificate's ink
 
 
+_PLAIN_LETTERS = str.maketrans({"Ł": "L", "ł": "l", "Đ": "D", "đ": "d", "Ħ": "H", "ħ": "h", "ı": "i", "Œ": "OE",
+                                "œ": "oe", "—": "-", "–": "-", "‘": "'", "’": "'", "“": '"', "”": '"', "…": "..."})
+
+
+def _latin1(char: str) -> bool:
+    return " " <= char <= "~" or "\xa0" <= char <= "\xff"
+
+
 def stamp_safe(text: str) -> str:
-    """``text`` in the characters Courier can show: accents dropped where needed, the rest as '?'."""
+    """``text`` in the characters Courier can show (Latin-1): other letters without their accents, else '?'."""
     shown = []
-    for char in text:
-        if char == "\n" or (" " <= char <= "~") or ("\xa0" <= char <= "\xff"):
+    for char in text.translate(_PLAIN_LETTERS):
+        if char == "\n" or _latin1(char):
             shown.append(char)
             continue
         base = "".join(c for c in unicodedata.normalize("NFKD", char) if not unicodedata.combining(c))
-        shown.append(base if base and all(" " <= c <= "~" or "\xa0" <= c <= "\xff" for c in base) else "?")
+        shown.append(base if base and all(_latin1(c) for c in base) else "?")
     return "".join(shown)
 
 
