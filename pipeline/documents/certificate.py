@@ -365,5 +365,6 @@ def render_certificate_with_slot(dossier: dict[str, Any],
         return buffer.getvalue(), None
     if slot.drawn_at is None:  # pragma: no cover - a flowable in the story is always drawn
         raise InputError(f"lot {clean(get(lot, 'lot_id', '?'), 60)}: the approval box was not laid out")
-    page, box = slot.drawn_at
-    return buffer.getvalue(), SignatureSlot(APPROVAL_FIELD, page, tuple(round(v, 2) for v in box))  # type: ignore[arg-type]
+    page, (left, bottom, right, top) = slot.drawn_at
+    box = (round(left, 2), round(bottom, 2), round(right, 2), round(top, 2))
+    return buffer.getvalue(), SignatureSlot(APPROVAL_FIELD, page, box)
