@@ -25,7 +25,7 @@ from pyhanko.pdf_utils import generic
 from pyhanko.pdf_utils.incremental_writer import IncrementalPdfFileWriter
 from pyhanko.sign import fields, signers
 
-from pipeline.documents.certificate import render_certificate
+from pipeline.documents.certificate import render_certificate_with_slot
 from pipeline.records import signing
 from pipeline.records.demo_trust import DemoTrust, create_demo_trust
 from pipeline.records.store import Store
@@ -85,8 +85,8 @@ def prepared_record(ws: Workspace, system: signing.SigningIdentity, lot: str) ->
     now = dt.datetime.now(dt.UTC).replace(microsecond=0)
     meaning = system_ready_meaning(ws.plant_name, "LLC-200", "3.1")
     block = signature_block(system.signer_name, system.fingerprint_sha256, now, ws.time_zone, meaning, system=True)
-    pdf = signing.sign_pdf(render_certificate(dossier, block), system, reason=meaning, location=ws.plant_name,
-                           signed_at=now)
+    unsigned, slot = render_certificate_with_slot(dossier, block)
+    pdf = signing.sign_pdf(unsigned, system, reason=meaning, location=ws.plant_name, signed_at=now, reserve=slot)
     name = f"{lot}_r1_certificate.pdf"
     (ws.certificates / name).write_bytes(pdf)
     decision = dossier["decision"]

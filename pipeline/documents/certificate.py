@@ -1,9 +1,10 @@
 """The certificate of analysis of a released lot, as PDF bytes (reportlab platypus, A4).
 
 Pure: a dossier and the signer's data in, bytes out; no file is read or written except the
-font files. The digital signature is added afterwards by :mod:`pipeline.signing`; the visible
-block drawn here shows what 21 CFR 11.50 asks a signed record to show: printed name, date
-and time, and the meaning of the signature.
+font files. The digital signature is added afterwards by :mod:`pipeline.records.signing`; the
+visible block drawn here shows what 21 CFR 11.50 asks a signed record to show: printed name,
+date and time, and the meaning of the signature. A certificate awaiting approval keeps an empty
+box for the approving person's stamp, which their signature draws there (nothing else is drawn in it).
 """
 
 from __future__ import annotations
@@ -19,6 +20,7 @@ from reportlab.pdfbase.pdfmetrics import stringWidth
 from reportlab.pdfgen.canvas import Canvas
 from reportlab.platypus import (
     BaseDocTemplate,
+    Flowable,
     Frame,
     KeepTogether,
     PageTemplate,
@@ -49,6 +51,12 @@ from pipeline.documents.text import (
     styles,
 )
 from pipeline.errors import InputError
+from pipeline.release.signature import (
+    APPROVAL_FIELD,
+    APPROVAL_SLOT_CAPTION,
+    APPROVAL_SLOT_TITLE,
+    SignatureSlot,
+)
 from pipeline.vocabulary import Disposition, Verdict
 
 KINETIC_CODES = ("km", "vmax", "kcat", "kcat_over_km")
@@ -56,6 +64,7 @@ SIGNATURE_KEYS = ("signer_name", "signed_at_local", "signed_at_utc", "meaning", 
 PAGE_W, PAGE_H = A4
 MARGIN_X = 18 * mm
 CONTENT_W = PAGE_W - 2 * MARGIN_X
+SLOT_HEIGHT = 35 * mm  # the box kept for an approval's stamp: seven lines of 8 pt Courier (10 pt apart) and margins
 
 
 def _check(dossier: dict[str, Any], signature: dict[str, Any]) -> None:
@@ -180,14 +189,44 @@ def key_value_table(rows: list[tuple[str, Any]], key_w: float, val_w: float, val
     return t
 
 
-def _signature_block(signature: dict[str, Any], awaiting_approval: bool) -> Table:
+class _SlotBox(Flowable):
+    """An empty framed box kept for a later signature's stamp; remembers where it was drawn.
+
+    Nothing but its frame is drawn inside it, so a stamp placed in it covers no text.
+    """
+
+    def __init__(self, width: float, height: float) -> None:
+        super().__init__()
+        self.width, self.height = width, height
+        self.drawn_at: tuple[int, tuple[float, float, float, float]] | None = None
+
+    def wrap(self, available_width: float, available_height: float) -> tuple[float, float]:
+        return self.width, self.height
+
+    def draw(self) -> None:
+        canvas = self.canv
+        canvas.saveState()
+        canvas.setStrokeColor(MUTED)
+        canvas.setLineWidth(0.6)
+        canvas.setDash(3, 2)
+        canvas.rect(0, 0, self.width, self.height, stroke=1, fill=0)
+        canvas.restoreState()
+        x, y = canvas.absolutePosition(0, 0)
+        self.drawn_at = (canvas.getPageNumber() - 1, (x, y, x + self.width, y + self.height))
+
+
+def _approval_rows(slot: _SlotBox) -> list[list[Any]]:
+    """The reserved approval: its heading, what it means for the certificate, and the empty box."""
+    st = styles()
+    return [[Spacer(1, 4)], [Paragraph(escape(APPROVAL_SLOT_TITLE), st["h3"])],
+            [Paragraph(f"<b>{escape(APPROVAL_SLOT_CAPTION)}</b>", st["cell"])], [slot]]
+
+
+def _signature_block(signature: dict[str, Any], slot: _SlotBox | None) -> Table:
     st = styles()
     system = signature.get("signer_kind") == "system"
     title = "Electronic signature of the lotgate system (not a person)" if system else \
         "Electronic signature (21 CFR 11.50)"
-    approval = ("Approval by an authorised person: NOT YET GIVEN. This lot is not released until an authorised "
-                "person adds their own digital signature to this file (lotgate approve); check it with lotgate "
-                "verify, which names every signature, its signer and its meaning.") if awaiting_approval else None
     inner = key_value_table([
         ("Signed by" if system else "Signed by (printed name)", para(signature["signer_name"], "cellb", 120)),
         ("Date and time", mpara("{local}<br/>{utc}", "cell", local=signature["signed_at_local"],
@@ -199,8 +238,8 @@ def _signature_block(signature: dict[str, Any], awaiting_approval: bool) -> Tabl
             [Paragraph("The digital signature embedded in this file (PAdES) carries the signer's certificate; "
                        "verify it with any PDF signature validator. A printed copy is not a signed record.",
                        st["note"])]]
-    if approval is not None:
-        rows.append([Paragraph(f"<b>{escape(approval)}</b>", st["cell"])])
+    if slot is not None:
+        rows += _approval_rows(slot)
     box = Table(rows, colWidths=[CONTENT_W])
     box.setStyle(TableStyle([("BOX", (0, 0), (-1, -1), 1.0, INK), ("LEFTPADDING", (0, 0), (-1, -1), 8),
                              ("RIGHTPADDING", (0, 0), (-1, -1), 8), ("TOPPADDING", (0, 0), (-1, -1), 3),
@@ -268,10 +307,19 @@ def header_flowables(dossier: dict[str, Any], title: str) -> list[Any]:
 def render_certificate(dossier: dict[str, Any], signature: dict[str, Any]) -> bytes:
     """The certificate of analysis of a lot released or ready for release, with its visible signature block.
 
-    A lot ready for release says, beside the system's signature, that it is not released until an
-    authorised person signs. Raises InputError for another disposition or incomplete signature data.
+    A lot ready for release says, beside the system's signature, that it is not valid for release
+    until an authorised person signs in the box kept for it (see ``render_certificate_with_slot``).
+    Raises InputError for another disposition or incomplete signature data.
     """
+    return render_certificate_with_slot(dossier, signature)[0]
+
+
+def render_certificate_with_slot(dossier: dict[str, Any],
+                                 signature: dict[str, Any]) -> tuple[bytes, SignatureSlot | None]:
+    """The certificate, and for a lot ready for release the box its approval's stamp goes in (else None)."""
     _check(dossier, signature)
+    awaiting = get(get(dossier, "decision", {}), "disposition") == Disposition.READY_FOR_RELEASE
+    slot = _SlotBox(CONTENT_W - 16, SLOT_HEIGHT) if awaiting else None
     st = styles()
     lot = get(dossier, "lot", {})
     decision = get(dossier, "decision", {})
@@ -309,9 +357,14 @@ def render_certificate(dossier: dict[str, Any], signature: dict[str, Any]) -> by
         ("Protein method", mpara("{t} ({m})", "cell", t=get(prot, "title"),
                                  m=method_label(dossier, get(prot, "method_id")))),
     ], 34 * mm, CONTENT_W - 34 * mm)]
-    story += [Spacer(1, 6), _caution_box(dossier), Spacer(1, 6), KeepTogether([_signature_block(
-        signature, get(decision, "disposition") == Disposition.READY_FOR_RELEASE)])]
+    story += [Spacer(1, 6), _caution_box(dossier), Spacer(1, 6), KeepTogether([_signature_block(signature, slot)])]
     buffer = io.BytesIO()
     doc = doc_template(buffer, dossier, "Certificate of analysis", 22 * mm)
     build_pdf(doc, story, _footer(dossier, "Certificate of analysis"))
-    return buffer.getvalue()
+    if slot is None:
+        return buffer.getvalue(), None
+    if slot.drawn_at is None:  # pragma: no cover - a flowable in the story is always drawn
+        raise InputError(f"lot {clean(get(lot, 'lot_id', '?'), 60)}: the approval box was not laid out")
+    page, (left, bottom, right, top) = slot.drawn_at
+    box = (round(left, 2), round(bottom, 2), round(right, 2), round(top, 2))
+    return buffer.getvalue(), SignatureSlot(APPROVAL_FIELD, page, box)

@@ -4,7 +4,10 @@ The night prepared the lot's certificate and signed it with the SYSTEM identity 
 criterion met; NOT released until approved"). Approval, by a person holding the role
 'release approval' in the register at the moment of signing, adds the person's own PAdES
 signature to that same certificate in an incremental update (the system's signature stays
-intact and covers its revision), and records the lot's next revision: released, decided by the
+intact and covers its revision) — visible: it fills the empty signature field the system left over
+the box the certificate keeps for it, with a stamp naming the person, the meaning, the plant's local
+time and the certificate's fingerprint (a certificate prepared before that box existed gets an
+invisible signature, as before) — and records the lot's next revision: released, decided by the
 person, the record itself signed with the person's identity. Nothing is written when any check
 fails: the identity, the register, the reason, the lot's current state or the certificate on disk.
 """
@@ -28,10 +31,13 @@ from pipeline.records.store import Store
 from pipeline.records.stored import DecisionWrite, StoredDecision
 from pipeline.records.workspace import Workspace, atomic_write
 from pipeline.release.records import CertificateFile, EarlierDecision
-from pipeline.release.signature import PERSON_APPROVAL_MEANING, checked_reason
+from pipeline.release.signature import (
+    APPROVAL_FIELD,
+    PERSON_APPROVAL_MEANING,
+    approval_stamp_lines,
+    checked_reason,
+)
 from pipeline.vocabulary import Disposition, SignerRole
-
-APPROVAL_FIELD = "QA-Approval"
 
 
 @dataclass(frozen=True)
@@ -88,8 +94,9 @@ def approve_lot(ws: Workspace, store: Store, lot_id: str, *, identity: SigningId
                            f"(SHA-256 differs); nothing approved: investigate before any release")
     revision = latest.revision + 1
     name = f"{lot_id}_r{revision}_certificate.pdf"
+    stamp = approval_stamp_lines(identity.signer_name, identity.fingerprint_sha256, signed_at, ws.time_zone)
     approved_pdf = sign_pdf(pdf, identity, reason=PERSON_APPROVAL_MEANING, location=ws.plant_name,
-                            signed_at=signed_at, field_name=APPROVAL_FIELD)
+                            signed_at=signed_at, field_name=APPROVAL_FIELD, stamp_lines=stamp)
     certificate = CertificateFile(name, hashlib.sha256(approved_pdf).hexdigest(), identity.signer_name,
                                   signed_at.isoformat(), PERSON_APPROVAL_MEANING, identity.fingerprint_sha256)
     record = dataclasses.replace(

@@ -53,16 +53,21 @@ def documents_named(record: DecisionRecord) -> dict[str, str | None]:
 
 def render_documents(dossier: dict[str, Any], signature: dict[str, str] | None, signer: CertificateSigner | None,
                      location: str) -> tuple[bytes, bytes | None]:
-    """Batch report, and for a signature block the certificate, rendered and signed (bytes only)."""
-    from pipeline.documents.certificate import render_certificate
+    """Batch report, and for a signature block the certificate, rendered and signed (bytes only).
+
+    A certificate awaiting approval is signed with the empty signature field over the box its
+    layout keeps for the approval's stamp.
+    """
+    from pipeline.documents.certificate import render_certificate_with_slot
     from pipeline.documents.report import render_batch_report
 
     report = render_batch_report(dossier)
     if signature is None or signer is None:
         return report, None
     signed_at = dt.datetime.fromisoformat(signature["signed_at_utc"])
-    certificate = signer.sign(render_certificate(dossier, signature), signed_at=signed_at,
-                              reason=signature["meaning"], location=location)
+    unsigned, approval_slot = render_certificate_with_slot(dossier, signature)
+    certificate = signer.sign(unsigned, signed_at=signed_at, reason=signature["meaning"], location=location,
+                              reserve=approval_slot)
     return report, certificate
 
 

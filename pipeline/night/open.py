@@ -11,13 +11,15 @@ from pipeline.errors import InputError, SigningError
 from pipeline.records.controlled_files import open_controlled_documents
 from pipeline.records.store import Store
 from pipeline.records.workspace import Workspace, open_workspace
+from pipeline.release.signature import SignatureSlot
 
 
 class CertificateSigner(Protocol):
     signer_name: str
     fingerprint_sha256: str
 
-    def sign(self, pdf: bytes, *, signed_at: dt.datetime, reason: str, location: str) -> bytes: ...
+    def sign(self, pdf: bytes, *, signed_at: dt.datetime, reason: str, location: str,
+             reserve: SignatureSlot | None = None) -> bytes: ...
 
 
 @dataclass(frozen=True)
@@ -41,10 +43,12 @@ class IdentitySigner:
     def fingerprint_sha256(self) -> str:
         return str(self.identity.fingerprint_sha256)
 
-    def sign(self, pdf: bytes, *, signed_at: dt.datetime, reason: str, location: str) -> bytes:
+    def sign(self, pdf: bytes, *, signed_at: dt.datetime, reason: str, location: str,
+             reserve: SignatureSlot | None = None) -> bytes:
+        """Sign ``pdf``; ``reserve``: also add, under this signature, the empty field a later approval fills."""
         from pipeline.records.signing import sign_pdf
 
-        return sign_pdf(pdf, self.identity, reason=reason, location=location, signed_at=signed_at)
+        return sign_pdf(pdf, self.identity, reason=reason, location=location, signed_at=signed_at, reserve=reserve)
 
     def __reduce__(self) -> tuple[Any, tuple[Any, ...]]:
         if self.p12 is None:

@@ -5,7 +5,8 @@ signed PDFs are checked by ``pipeline.records.pdf_verification``):
 
 * ``load_identity`` opens a PKCS#12 file and refuses anything unsafe or unusable: files readable
   by group or others, a wrong passphrase, a certificate outside its validity period.
-* ``sign_pdf`` adds an embedded PAdES signature (``/ETSI.CAdES.detached``, SHA-256) to PDF bytes.
+* ``sign_pdf`` adds an embedded PAdES signature (``/ETSI.CAdES.detached``, SHA-256) to PDF bytes,
+  with a visible stamp when it fills a reserved field (``pipeline.records.signature_stamps``).
 * ``sign_record`` and ``verify_record`` sign a decision record's canonical JSON.
 """
 
@@ -27,6 +28,8 @@ from pyhanko.sign import fields, signers
 from pyhanko.sign.signers.pdf_signer import PdfSigningSession
 
 from pipeline.errors import SigningError
+from pipeline.records.signature_stamps import approval_stamp, reserve_field
+from pipeline.release.signature import SignatureSlot
 
 P12_NAME = "signer.p12"
 PASSPHRASE_NAME = "signer.passphrase"
@@ -196,8 +199,9 @@ class _FixedTimePdfSigner(signers.PdfSigner):
         signature_meta: signers.PdfSignatureMetadata,
         signer: signers.Signer,
         signed_at: datetime,
+        stamp_style: Any = None,
     ) -> None:
-        super().__init__(signature_meta, signer)
+        super().__init__(signature_meta, signer, stamp_style=stamp_style)
         self._signed_at = signed_at
 
     def init_signing_session(
@@ -216,12 +220,19 @@ def sign_pdf(
     location: str,
     signed_at: datetime,
     field_name: str = "QA-Release",
+    reserve: SignatureSlot | None = None,
+    stamp_lines: tuple[str, ...] | None = None,
 ) -> bytes:
-    """Return ``pdf_bytes`` with an invisible embedded PAdES signature (SHA-256) appended.
+    """Return ``pdf_bytes`` with an embedded PAdES signature (SHA-256) appended in an incremental update.
 
     ``reason`` states the meaning of the signature (e.g. "Lot released for sale"); the
     signature's /Name is the signer's certificate name. ``signed_at`` must carry a time zone
     and lie inside the certificate's validity period.
+
+    The signature is invisible, except when ``field_name`` is an empty signature field the
+    document already holds with a box (one an earlier signer reserved): ``stamp_lines`` are then
+    drawn in that box as the signature's visible stamp. ``reserve`` adds, in the same update and
+    so under this signature, an empty field for a later signer (``signature_stamps.reserve_field``).
     """
     if not reason.strip():
         raise SigningError("a signature needs a reason stating what it means; received none")
@@ -241,11 +252,14 @@ def sign_pdf(
         subfilter=fields.SigSeedSubFilter.PADES,
         md_algorithm="sha256",
     )
+    style, text_params = approval_stamp(stamp_lines) if stamp_lines else (None, None)
     try:
         writer = IncrementalPdfFileWriter(BytesIO(pdf_bytes))
+        if reserve is not None:
+            reserve_field(writer, reserve)
         out = BytesIO()
-        _FixedTimePdfSigner(meta, identity.signer, signed_at).sign_pdf(
-            writer, bytes_reserved=SIGNATURE_BYTES_RESERVED, output=out
+        _FixedTimePdfSigner(meta, identity.signer, signed_at, style).sign_pdf(
+            writer, bytes_reserved=SIGNATURE_BYTES_RESERVED, output=out, appearance_text_params=text_params
         )
     except Exception as exc:
         raise SigningError(f"could not sign the PDF for {identity.signer_name}: {exc}") from exc

@@ -9,6 +9,8 @@ from __future__ import annotations
 
 import datetime as dt
 import re
+import textwrap
+from dataclasses import dataclass
 
 from pipeline.errors import InputError
 from pipeline.release.dossier import local_time_text
@@ -35,6 +37,47 @@ def system_automatic_meaning(plant_name: str, spec_code: str, spec_version: str,
     return (f"Released by exception by the lotgate system of {plant_name} under the plant's procedure {procedure}: "
             f"every release criterion of specification {spec_code} version {spec_version} met; no person reviewed "
             "this lot before release")
+
+
+APPROVAL_FIELD = "QA-Approval"  # the signature field a person's approval fills
+APPROVAL_SLOT_TITLE = "Approval for release by an authorised person"
+APPROVAL_SLOT_CAPTION = ("This certificate is not valid for release until an authorised person has signed in the box "
+                         "below (lotgate approve, or the reviewer's desk); lotgate verify names every signature, its signer "
+                         "and its meaning.")
+APPROVAL_SLOT_EMPTY = ("Approval for release: NOT YET GIVEN",
+                       "No authorised person has signed this certificate: the lot is not released.")
+STAMP_LINE_CHARACTERS = 88  # the longest line of a stamp: its box holds it in 8 pt Courier, unscaled
+
+
+@dataclass(frozen=True)
+class SignatureSlot:
+    """A box a certificate keeps free for a later signature's visible stamp.
+
+    ``page_index`` counts from 0; ``box_pt`` is (left, bottom, right, top) in PDF points from
+    the page's lower-left corner; ``empty_lines`` is what the box shows until it is signed.
+    """
+
+    field_name: str
+    page_index: int
+    box_pt: tuple[float, float, float, float]
+    empty_lines: tuple[str, ...] = APPROVAL_SLOT_EMPTY
+
+
+def approval_stamp_lines(signer_name: str, certificate_fingerprint: str, signed_at: dt.datetime,
+                         time_zone: str, meaning: str = PERSON_APPROVAL_MEANING) -> tuple[str, ...]:
+    """The lines of the visible stamp of a person's approval: who, what it means, when, which certificate.
+
+    The time is the plant's local time with its zone and UTC offset; the certificate is named
+    by the SHA-256 fingerprint the register of authorised signers lists.
+    """
+    if signed_at.tzinfo is None:
+        raise InputError(f"the approval time must carry a time zone; received {signed_at}")
+    meaning_lines = textwrap.wrap(f"Meaning: {meaning}", STAMP_LINE_CHARACTERS, subsequent_indent="  ")
+    return ("APPROVED FOR RELEASE by an authorised person",
+            f"Signed by: {signer_name}",
+            *meaning_lines,
+            f"Date and time: {local_time_text(signed_at, time_zone)}, plant time zone {time_zone}",
+            f"Certificate SHA-256: {certificate_fingerprint.lower()}")
 
 
 ROLE_OF_RELEASE = SignerRole.RELEASE_APPROVAL
