@@ -9,9 +9,10 @@ of files that contain a time (reports, certificates, LIMS files), the audit chai
 events carry times), the fingerprint of the demo signer's certificate (a new key per
 workspace), each night's workspace identity (a random id), and a person's signature over a
 record with its SHA-256 (the record carries its time; ECDSA signatures differ on every signing). Unrounded numbers in the store
-are compared to 10 significant digits: the fitting engine may take another path to the same
-minimum, which moves the 12th digit; every number a person reads (documents, LIMS files,
-reported values) is compared character for character.
+are compared to 10 significant digits, and the store's and LIMS files' unrounded numbers within
+1 part in 10⁸ (``same_but_last_digits``): the fitting engine, or a new numpy, may take another path
+to the same minimum, which moves the last digits; every number a person reads (documents, reported
+values) is compared character for character.
 """
 
 from __future__ import annotations
@@ -129,6 +130,26 @@ def capture(root: Path) -> dict[str, str]:
     for path in sorted((root / "quarantine").glob("*.reason.txt")):
         out[f"quarantine/{path.name}"] = _text(path.read_text(encoding="utf-8"), volatile)
     return out
+
+
+_NUMBER = re.compile(r"-?\d+\.\d+(?:[eE][-+]?\d+)?")
+_RELATIVE = 1e-8  # far below any digit a person reads; far above a library's last-digit drift
+
+
+def same_but_last_digits(expected: str, now: str) -> bool:
+    """True when two texts differ only in unrounded numbers, each by less than 1 part in 10⁸.
+
+    A numerical library's new release may move the 10th significant digit of a fitted value (another
+    path to the same minimum, another summation order); a reported value, rounded to the digits of
+    its limit, cannot move by so little without changing a digit, so it still has to match exactly.
+    """
+    if _NUMBER.sub("#", expected) != _NUMBER.sub("#", now):
+        return False
+    for a, b in zip(_NUMBER.findall(expected), _NUMBER.findall(now), strict=True):
+        x, y = float(a), float(b)
+        if a != b and abs(x - y) > _RELATIVE * max(abs(x), abs(y)):
+            return False
+    return True
 
 
 def write_golden(root: Path, target: Path = GOLDEN) -> int:
