@@ -68,8 +68,11 @@ def _next_step(lot_id: str, bars: tuple[BarredResult, ...]) -> str:
     if open_oos:
         steps.append(f"record the investigation outcome (lotgate investigate {lot_id} --test {open_oos[0]} "
                      "--outcome invalidated|confirmed --reference INV-… --reason …, or at the desk)")
-    if kinds & {ReleaseBar.INVALIDATED, ReleaseBar.UNDECIDED, ReleaseBar.NO_VALID_RESULT}:
-        steps.append("have the test done again (its valid result is decided with the lot's next night)")
+    if ReleaseBar.INVALIDATED in kinds:
+        steps.append("let the retest's result reach the lot through a night (the night that receives results of "
+                     "the lot decides it again)")
+    if kinds & {ReleaseBar.UNDECIDED, ReleaseBar.NO_VALID_RESULT}:
+        steps.append("have the test done again (the night that receives its result decides the lot again)")
     return f"{' and '.join(steps)}, or reject the lot ({reject})"
 
 
