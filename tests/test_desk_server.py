@@ -22,7 +22,6 @@ from tests.desk_fixtures import (
     HOSTILE_FILE,
     HOSTILE_LOT,
     HOSTILE_REASON,
-    OOS_LOT,
     PASSWORDS,
     login_name,
     make_workspace,
@@ -358,57 +357,3 @@ def test_an_investigator_records_a_signed_oos_outcome_at_the_desk(space):
         "password": PASSWORDS[DeskRole.REVIEWER]})
     assert refused.status_code == 403 and "does not allow" in refused.text
 
-
-def _workspace_files(space):
-    """Every file of the workspace but the keys, with its SHA-256: what 'nothing written' compares."""
-    import hashlib
-
-    return {str(p.relative_to(space.root)): hashlib.sha256(p.read_bytes()).hexdigest()
-            for p in sorted(space.root.rglob("*")) if p.is_file() and "keys" not in p.parts}
-
-
-def _a_barred_release_is_refused_and_writes_nothing(space):
-    # The lot's lead result 7.0 mg/kg is out of specification (LLC-200 3.1: lead ≤ 5.0 mg/kg) and no
-    # investigation outcome is recorded: the reviewer, with the right password, may not release it.
-    from html import escape
-
-    from pipeline.night.release_check import release_refusal
-
-    store = space.desk.store
-    reason = release_refusal(space.desk.ws, store, store.latest_decision(OOS_LOT))
-    assert reason is not None and f"lot {OOS_LOT} cannot be released" in reason
-    assert "Lead 7.0 mg/kg is out of specification (limit ≤ 5.0 mg/kg)" in reason
-    assert f"lotgate investigate {OOS_LOT} --test lead" in reason and f"lotgate decide {OOS_LOT} --reject" in reason
-    c = signed_in(space, DeskRole.REVIEWER)
-    page = c.get("/lot", params={"id": OOS_LOT}).text
-    assert 'id="release"' not in page and 'id="reject"' in page  # rejection stays possible
-    assert escape(reason) in page and 'id="release-barred"' in page
-    form = c.get("/lot/sign", params={"id": OOS_LOT, "act": "release"}).text
-    assert escape(reason) in form  # said before the password is typed
-    before = counts(space), _workspace_files(space)
-    user = accounts.user_by_login(store, "reviewer")
-    account_events = accounts.account_kinds(store, user.id)
-    response = c.post("/lot/sign", data={"csrf": csrf_of(form), "lot": OOS_LOT, "act": "release",
-                                         "reason": "batch record reviewed, release wanted",
-                                         "password": PASSWORDS[DeskRole.REVIEWER]})
-    assert response.status_code == 400 and 'id="refusal"' in response.text and escape(reason) in response.text
-    assert (counts(space), _workspace_files(space)) == before  # no record, no event, no certificate
-    assert accounts.account_kinds(store, user.id) == account_events  # no desk signature either
-    assert store.latest_decision(OOS_LOT).revision == 1
-
-
-def test_a_release_barred_by_an_oos_result_is_refused_at_the_desk_with_its_reason(space):
-    _a_barred_release_is_refused_and_writes_nothing(space)
-
-
-@pytest.mark.postgres
-def test_a_release_barred_by_an_oos_result_is_refused_at_the_desk_on_postgresql(tmp_path):
-    from tests.pg import fresh_database
-
-    url, drop = fresh_database()
-    try:
-        space = make_workspace(tmp_path / "ws", database_url=url)
-        _a_barred_release_is_refused_and_writes_nothing(space)
-        space.desk.store.engine.dispose()
-    finally:
-        drop()
