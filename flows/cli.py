@@ -2,7 +2,7 @@
 
 Holds are normal outcomes (exit 0). The exit codes (EXIT_CODES, also in ``lotgate --help``): 1 only
 when a verification fails, 2 for a set-up error (settings, controlled files, keys, store: one
-line naming the file and the field, no traceback), 3 when another night holds the run lock, 4
+line naming the file and the field, no traceback) or a person's act refused, 3 when another night holds the run lock, 4
 when what was asked for does not exist (an unknown lot, product or attribute), 5 for a defect
 (the details in a file named on standard error).
 """
@@ -22,7 +22,8 @@ EXIT_CODES = """exit codes:
   0  done (holds are normal outcomes)
   1  a verification failed (lotgate verify)
   2  set-up error: workspace, settings, specifications, methods, layouts, keys or store;
-     one line naming the file and the field, nothing written
+     one line naming the file and the field, nothing written; or a person's act refused
+     (a reason that says nothing, a signer not allowed, a release the lot's results bar)
   3  another night holds the workspace's run lock
   4  not found: an unknown lot, product or attribute, or a file to verify that does not exist
   5  a defect in lotgate: one line here, the details for the engineer in a file it names

@@ -139,7 +139,11 @@ def add_commands(sub: argparse._SubParsersAction) -> None:
                                         "with that person's own identity (PKCS#12 and its passphrase), who must hold "
                                         "the role 'release approval' (or 'rejection') in the register of authorised "
                                         "signers at that moment. A release re-issues the certificate under that "
-                                        "signature. Nothing is written when a check fails.")
+                                        "signature; it is refused while a result of the lot's current revision "
+                                        "is out of specification (with no investigation outcome, confirmed, or "
+                                        "invalidated before a night has decided its retest), undecided, missing "
+                                        "or invalid. A rejection is always possible. Nothing is written when a "
+                                        "check fails.")
     decide.add_argument("lot", metavar="LOT")
     choice = decide.add_mutually_exclusive_group(required=True)
     choice.add_argument("--release", action="store_true", help="release the lot")

@@ -73,6 +73,16 @@ class InvestigationOutcome(StrEnum):
     CONFIRMED_OOS = "confirmed OOS"
 
 
+class ReleaseBar(StrEnum):
+    """Why a person may not release a lot's current revision (``pipeline.release.release_bars``)."""
+
+    OPEN_OOS = "out of specification, no investigation outcome"
+    CONFIRMED_OOS = "out of specification, confirmed by its investigation"
+    INVALIDATED = "out-of-specification result invalidated, retest not yet decided"
+    UNDECIDED = "undecided result"  # a qualified result that does not show the limit is met
+    NO_VALID_RESULT = "no valid result"  # missing or invalid
+
+
 class Verdict(StrEnum):
     """The verdict on one attribute of one lot."""
 

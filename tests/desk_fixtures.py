@@ -40,18 +40,27 @@ class DeskWorkspace:
     desk: Desk
 
 
-def _record(lot: str, disposition: str, label: str, categories=(), reasons=(), value=200.0, night=1):
+OOS_LOT = "LLC-9000-106"  # its lead result 7.0 mg/kg (limit ≤ 5.0 mg/kg) stands with no investigation outcome
+
+
+def _record(lot: str, disposition: str, label: str, categories=(), reasons=(), value=200.0, night=1, more=()):
     return DecisionRecord(
         lot_id=lot, product="LLC-200", disposition=disposition, hold_categories=tuple(categories),
         reasons=tuple(reasons), spec_version="3.1", spec_sha256="0" * 64, fingerprint=f"fp-{lot}", label=label,
         night_id=night, decided_at_utc="2026-11-27T22:00:00+00:00",
-        results=(RecordedResult("specific_activity", value, f"{value:.0f}", "U/mg", "pass"),))
+        results=(RecordedResult("specific_activity", value, f"{value:.0f}", "U/mg", "pass"), *more))
 
 
-def make_workspace(root: Path) -> DeskWorkspace:
+def _lead(value: float, verdict: Verdict, lims_file: str) -> LotResult:
+    return LotResult("lead", ResultStatus.VALID, verdict, value, f"{value:.1f}", "mg/kg", None, "2026-11-26",
+                     "LIMS test PB", "LIMS test PB", {lims_file: "9" * 64})
+
+
+def make_workspace(root: Path, database_url: str | None = None) -> DeskWorkspace:
     trust = create_demo_trust(root / "keys", "Brackwater Enzymes (test)", tuple(REGISTERED.values()))
     write_settings(root, {"plant_name": "Brackwater Enzymes (test)", "time_zone": "Europe/Berlin",
-                          "trust": {"root_ca": "keys/root-ca.pem"}, "signer_register": "keys/signers.yaml"})
+                          "trust": {"root_ca": "keys/root-ca.pem"}, "signer_register": "keys/signers.yaml",
+                          **({"database_url": database_url} if database_url else {})})
     ws = open_workspace(root)
     ws.make_folders()
     store = Store(ws.database_url)
@@ -75,8 +84,12 @@ def make_workspace(root: Path) -> DeskWorkspace:
         # an out-of-specification lead result standing in the lot's record (for an investigation)
         DecisionWrite(_record("LLC-9000-105", "held", "held: out of specification", ["out of specification"],
                               ["Lead 7.0 mg/kg is above the limit ≤ 5.0 mg/kg"]), "nightly", night_id=night,
-                      lot_results=(LotResult("lead", ResultStatus.VALID, Verdict.FAIL, 7.0, "7.0", "mg/kg", None,
-                                             "2026-11-26", "LIMS test PB", "LIMS test PB", {"lims-9.csv": "9" * 64}),)),
+                      lot_results=(_lead(7.0, Verdict.FAIL, "lims-9.csv"),)),
+        # the same, shown by the revision itself as the night records it (for the release a person may not sign)
+        DecisionWrite(_record(OOS_LOT, "held", "held: out of specification", ["out of specification"],
+                              ["Lead 7.0 mg/kg is above the limit ≤ 5.0 mg/kg"],
+                              more=(RecordedResult("lead", 7.0, "7.0", "mg/kg", "fail"),)), "nightly", night_id=night,
+                      lot_results=(_lead(7.0, Verdict.FAIL, "lims-10.csv"),)),
     ]
     store.add_decisions(writes)
     store.finish_night(night, files_received=1, files_archived=0, files_quarantined=1, lots_decided=len(writes))

@@ -356,3 +356,4 @@ def test_an_investigator_records_a_signed_oos_outcome_at_the_desk(space):
         "reference": "INV-2026-091", "reason": "a second outcome on the same result", "retest_plan": "",
         "password": PASSWORDS[DeskRole.REVIEWER]})
     assert refused.status_code == 403 and "does not allow" in refused.text
+

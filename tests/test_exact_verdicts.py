@@ -283,16 +283,19 @@ def test_an_undecided_reason_without_a_unit_reads_cleanly():
         "lower limit; held for review (not out of specification)",)
 
 
-def test_a_person_may_release_after_reviewing_an_undecided_result_but_not_a_missing_one():
-    # An undecided qualified result is held for a person's review (like an OOS result, which a
-    # person may still release after investigation); a missing or invalid one leaves nothing to certify.
-    from pipeline.night.person_decision import _blocking_results
-    from pipeline.release.records import DecisionRecord, RecordedResult
+def test_a_person_may_release_neither_an_undecided_nor_a_missing_result():
+    # An undecided qualified result does not show the lot meets its limit, and no investigation
+    # outcome can be recorded against it (it is not OOS): a certificate cannot be issued on it by a
+    # person either; a retest whose range settles the limit supersedes it (tests/test_oos_release.py).
+    from pipeline.release.lot_record import LotHistory
+    from pipeline.release.records import RecordedResult
+    from pipeline.release.release_bars import release_bars
+    from pipeline.vocabulary import ReleaseBar
 
-    def record(verdict: str) -> DecisionRecord:
-        return DecisionRecord("L-1", "LLC-200", "held", ("undecided result",), (), "3.1", "0" * 64, "1" * 64,
-                              "held: undecided result",
-                              results=(RecordedResult("coliforms", "< 50", "< 50", "CFU/g", verdict),))
+    def bars(verdict: str, reported: str | None) -> list[tuple[str, ReleaseBar]]:
+        found = release_bars([RecordedResult("coliforms", reported, reported, "CFU/g", verdict)], LotHistory())
+        return [(b.attribute, b.bar) for b in found]
 
-    assert _blocking_results(record(Verdict.UNDECIDED)) == []
-    assert _blocking_results(record(Verdict.MISSING)) == ["coliforms"]
+    assert bars(Verdict.UNDECIDED, "< 50") == [("coliforms", ReleaseBar.UNDECIDED)]
+    assert bars(Verdict.MISSING, None) == [("coliforms", ReleaseBar.NO_VALID_RESULT)]
+    assert bars(Verdict.PASS, "12") == []

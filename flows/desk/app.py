@@ -28,7 +28,8 @@ from flows.desk.pages import render, stylesheet
 from flows.desk.roles import DeskAct, may
 from flows.desk.sessions import Session, SessionRegistry, same_token
 from flows.desk.views import document_path, lot_view, morning_view
-from pipeline.errors import LotgateError, NotFound
+from pipeline.errors import InputError, LotgateError, NotFound
+from pipeline.night.release_check import release_refusal
 from pipeline.records import audit
 from pipeline.records import desk_accounts as accounts
 from pipeline.records.desk_queries import trail_events
@@ -153,8 +154,10 @@ def create_app(desk: Desk, *, clock: Callable[[], float] | None = None) -> Starl
         product = view.latest.record.product
         charts = [chart_page_data(desk.ws, desk.store, product, code, highlight=lot_id)
                   for code in trended.get(product, ())]
-        return page("lot.html", session=session, view=view, charts=charts,
-                    may_approve=may(session.role, DeskAct.APPROVE), may_release=may(session.role, DeskAct.RELEASE),
+        may_release = may(session.role, DeskAct.RELEASE)
+        barred = release_refusal(desk.ws, desk.store, view.latest) if may_release else None
+        return page("lot.html", session=session, view=view, charts=charts, release_barred=barred,
+                    may_approve=may(session.role, DeskAct.APPROVE), may_release=may_release,
                     may_reject=may(session.role, DeskAct.REJECT), may_investigate=may(session.role, DeskAct.INVALIDATE),
                     investigation_meaning=acts.INVESTIGATION_MEANING)
 
@@ -179,7 +182,10 @@ def create_app(desk: Desk, *, clock: Callable[[], float] | None = None) -> Starl
         act = _act_of(request.query_params.get("act"))
         if not may(session.role, act):
             return refused(request, f"Your role ({session.role}) does not allow this ({act}).", 403, session)
-        return page("sign.html", **_sign_context(session, request.query_params.get("id", ""), act))
+        context = _sign_context(session, request.query_params.get("id", ""), act)
+        if act == DeskAct.RELEASE:  # said before the password is typed; the use case refuses it again
+            context["error"] = release_refusal(desk.ws, desk.store, context["lot"])
+        return page("sign.html", **context)
 
     def sign(request: Request, session: Session, form: FormData) -> Response:
         act = _act_of(form.get("act"))
@@ -193,6 +199,8 @@ def create_app(desk: Desk, *, clock: Callable[[], float] | None = None) -> Starl
                                     password=password)
         except acts.ActRefused as exc:
             return page("sign.html", 403, **{**_sign_context(session, lot_id, act), "error": str(exc)})
+        except InputError as exc:  # the use case refused the act (a release the lot's results bar): nothing written
+            return page("sign.html", 400, **{**_sign_context(session, lot_id, act), "error": str(exc)})
         return page("signed.html", session=session, shown=shown)
 
     def chart(request: Request, session: Session, form: FormData) -> Response:

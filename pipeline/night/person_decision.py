@@ -3,6 +3,9 @@
 The person's identity (PKCS#12 plus its passphrase: an ID and a secret, 21 CFR 11.200) signs
 the decision record itself, so the signature is linked to that record (§11.70); a release also
 re-issues the certificate, signed with the same identity. The nightly job never overrides it.
+A person may not release what the nightly job may not: a lot whose current revision holds an
+out-of-specification result stays unreleasable until its investigation outcome invalidates the
+result and the retest's revision shows a result in specification (``release_check``).
 """
 
 from __future__ import annotations
@@ -21,6 +24,7 @@ from pipeline.night.lot_documents import (
     write_documents,
 )
 from pipeline.night.open import IdentitySigner
+from pipeline.night.release_check import check_release
 from pipeline.night.seal import seal_after_act
 from pipeline.records import audit, ledger
 from pipeline.records.signer_check import authorise_person
@@ -37,7 +41,7 @@ from pipeline.release.signature import (
     checked_reason,
     signature_block,
 )
-from pipeline.vocabulary import Disposition, SignerRole, Verdict
+from pipeline.vocabulary import Disposition, SignerRole
 
 
 @dataclass(frozen=True)
@@ -47,13 +51,6 @@ class PersonOutcome:
     disposition: str
     certificate: str | None
     report: str | None
-
-
-def _blocking_results(record: DecisionRecord) -> list[str]:
-    """Results that leave nothing to certify: missing or invalid ones with a limit (an undecided
-    qualified result, like an OOS one, is there for the person to judge)."""
-    return [r.code for r in record.results
-            if r.verdict not in (Verdict.PASS, Verdict.FAIL, Verdict.REPORTED, Verdict.UNDECIDED)]
 
 
 def _reissue(ws: Workspace, record: DecisionRecord, earlier_revision: int, decided_at: dt.datetime,
@@ -80,18 +77,19 @@ def decide_lot(ws: Workspace, store: Store, lot_id: str, *, release: bool, reaso
                identity: SigningIdentity) -> PersonOutcome:
     """Record a person's release or rejection of a lot as its next revision, signed with their identity.
 
-    Refused before anything is written: a reason that says nothing, or an identity that the
-    register of authorised signers does not allow to release (or reject) at this moment.
+    Refused before anything is written: a reason that says nothing; a release while a result of the
+    lot's current revision does not show it meets its specification (an out-of-specification result
+    without an investigation outcome invalidating it and its retest decided, a confirmed one, an
+    undecided, missing or invalid result: ``release_check``; a rejection is always possible); or an
+    identity that the register of authorised signers does not allow to release (or reject) at this moment.
     """
     reason = checked_reason(reason, ws.reason_pattern)
     latest = store.latest_decision(lot_id)
     if latest is None:
         raise InputError(f"lot {lot_id} has no decision in the store at {ws.root}; nothing to review")
     base = latest.record
-    if release and _blocking_results(base):
-        missing = ", ".join(_blocking_results(base))
-        raise InputError(f"lot {lot_id} cannot be released: no valid result for {missing}; a certificate needs every "
-                         "result. Re-assay first, or reject the lot.")
+    if release:
+        check_release(ws, store, latest)
     decided_at = dt.datetime.now(dt.UTC).replace(microsecond=0)
     register, register_events = register_in_force(ws, store)
     check = authorise_person(identity, SignerRole.RELEASE_APPROVAL if release else SignerRole.REJECTION,
