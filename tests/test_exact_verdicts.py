@@ -168,8 +168,11 @@ def test_rounding_is_chosen_per_specification():
     # no number at all
     (COLI, "not detected", Verdict.UNDECIDED, "not detected"),
     (COLI, "too numerous to count", Verdict.UNDECIDED, "too numerous to count"),
-    (SALM, "not detected", Verdict.UNDECIDED, "not detected"),  # a word the specification does not use
-    (SALM, "< 1", Verdict.UNDECIDED, "< 1"),           # a bound where a word is expected: a person judges
+    # "not detected in 25 g" is a pathogen test's "absent in 25 g" (common practice; the unit matched)
+    (SALM, "not detected", Verdict.PASS, "not detected"),
+    (SALM, "ND", Verdict.PASS, "ND"),                 # shown as entered
+    (SALM, "too numerous to count", Verdict.FAIL, "too numerous to count"),  # growth is presence
+    (SALM, "< 1", Verdict.UNDECIDED, "< 1"),           # a bound where the test's word is expected
     (SALM, "0", Verdict.FAIL, "0"),                    # a plain number where a word is expected
     (SALM, "Absent", Verdict.PASS, "absent"),
     (SALM, "present", Verdict.FAIL, "present"),

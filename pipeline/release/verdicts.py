@@ -90,7 +90,9 @@ def judge_entered(attribute: Attribute, entered: EnteredResult) -> tuple[Verdict
 
     Returns (verdict, reported text, reason or None). A plain number is rounded to the attribute's
     digits and compared; a bound by its meaning (``_judge_bounded``); 'not detected' and 'too
-    numerous to count' carry no number, so against a numeric limit they are undecided.
+    numerous to count' carry no number, so against a numeric limit they are undecided; against a
+    presence/absence test's expected word they mean 'absent' and 'present' (common practice: a
+    pathogen test reports "not detected in 25 g" for the specification's "absent in 25 g").
     """
     if entered.word is not None:
         raise ValueError(f"'{entered.text}' is a word, not a number")
@@ -98,12 +100,14 @@ def judge_entered(attribute: Attribute, entered: EnteredResult) -> tuple[Verdict
         reported = entered.shown
         if not attribute.has_limit:
             return Verdict.REPORTED, reported, None
-        if attribute.expect is not None:
-            return Verdict.UNDECIDED, reported, (
-                f"{attribute.title}: '{reported}' was reported where '{attribute.expect}' is expected; a person must "
-                "judge whether it means the same; held for review (not out of specification)")
+        if attribute.expect is not None:  # a presence/absence test (its unit, e.g. per 25 g, already matched)
+            meaning = "absent" if entered.qualifier == ResultQualifier.NOT_DETECTED else "present"
+            if meaning == attribute.expect:
+                return Verdict.PASS, reported, None
+            return Verdict.FAIL, reported, f"{attribute.title}: {reported} (specification: {attribute.expect})"
         return _undecided(attribute, reported, f"'{reported}' gives no number (the method's detection or counting "
-                                               "range decides); a person must judge")
+                                               "range decides); retest with a range that settles the limit, or "
+                                               "reject the lot")
     if entered.qualifier is None:
         rounded = round_reported(entered.number, attribute.digits, attribute.rounding, attribute.scientific)
         reported = show_rounded(rounded, attribute.scientific)
@@ -111,10 +115,11 @@ def judge_entered(attribute: Attribute, entered: EnteredResult) -> tuple[Verdict
         reported = entered.shown
     if not attribute.has_limit:
         return Verdict.REPORTED, reported, None
-    if attribute.expect is not None and entered.qualifier is not None:  # '< 1' for 'absent': a person judges
+    if attribute.expect is not None and entered.qualifier is not None:  # '< 1' for 'absent': not the test's answer
         return Verdict.UNDECIDED, reported, (
-            f"{attribute.title}: {reported} was reported where '{attribute.expect}' is expected; a person must judge "
-            "whether it means the same; held for review (not out of specification)")
+            f"{attribute.title}: {reported} was reported where '{attribute.expect}' is expected; the LIMS must "
+            "report the test's own answer (absent or present): correct the entry or retest; held for review "
+            "(not out of specification)")
     if attribute.expect is not None:
         return Verdict.FAIL, reported, f"{attribute.title}: a number was reported where '{attribute.expect}' is expected"
     if entered.qualifier is not None:
