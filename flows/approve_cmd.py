@@ -5,21 +5,21 @@ from __future__ import annotations
 import argparse
 from pathlib import Path
 
+from flows.person_identity import add_identity_arguments
 from pipeline.errors import InputError
 
 
 def cmd_approve(args: argparse.Namespace) -> int:
-    from flows.records_cmd import _console, _passphrase
+    from flows.person_identity import load_person_identity
+    from flows.records_cmd import _console
     from pipeline.night.approval import approve_lots, lots_ready
     from pipeline.night.open import open_records
-    from pipeline.records import signing
     from pipeline.records.run_lock import run_lock
 
     if bool(args.lots) == (args.night is not None):
         raise InputError("name the lots to approve (LOT ...) or one night (--night N), not both and not neither")
     ws, store = open_records(Path(args.workspace))
-    identity = signing.load_identity(Path(args.identity), passphrase=_passphrase(args),
-                                     passphrase_file=Path(args.passphrase_file) if args.passphrase_file else None)
+    identity = load_person_identity(args)
     console = _console()
     with run_lock(ws.root, store):
         lots = lots_ready(store, night_id=args.night, lots=tuple(args.lots))
@@ -46,8 +46,6 @@ def add_commands(sub: argparse._SubParsersAction) -> None:
     approve.add_argument("--night", type=int, metavar="N", help="approve every lot of night N that is ready")
     approve.add_argument("--reason", required=True, metavar="TEXT",
                          help="what you reviewed (at least two words; the plant's reference when it sets a pattern)")
-    approve.add_argument("--identity", required=True, metavar="P12", help="your PKCS#12 signing identity")
-    approve.add_argument("--passphrase-file", metavar="FILE",
-                         help="file (mode 0600) holding the passphrase; else LOTGATE_SIGNING_PASSPHRASE or a prompt")
+    add_identity_arguments(approve)
     approve.add_argument("--workspace", required=True, metavar="DIR")
     approve.set_defaults(func=cmd_approve)

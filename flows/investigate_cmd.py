@@ -5,17 +5,18 @@ from __future__ import annotations
 import argparse
 from pathlib import Path
 
+from flows.person_identity import add_identity_arguments
+
 
 def cmd_investigate(args: argparse.Namespace) -> int:
-    from flows.records_cmd import _console, _passphrase
+    from flows.person_identity import load_person_identity
+    from flows.records_cmd import _console
     from pipeline.night.investigation import record_investigation
     from pipeline.night.open import open_records
-    from pipeline.records import signing
     from pipeline.records.run_lock import run_lock
 
     ws, store = open_records(Path(args.workspace))
-    identity = signing.load_identity(Path(args.identity), passphrase=_passphrase(args),
-                                     passphrase_file=Path(args.passphrase_file) if args.passphrase_file else None)
+    identity = load_person_identity(args)
     with run_lock(ws.root, store):
         done = record_investigation(ws, store, args.lot, test=args.test, outcome=args.outcome,
                                     reference=args.reference, reason=args.reason, retest_plan=args.retest_plan,
@@ -45,9 +46,7 @@ def add_commands(sub: argparse._SubParsersAction) -> None:
     p.add_argument("--reference", required=True, metavar="INV-…", help="the investigation's reference")
     p.add_argument("--reason", required=True, metavar="TEXT", help="the cause found, or why the result is confirmed")
     p.add_argument("--retest-plan", metavar="TEXT", help="the retest plan (required with --outcome invalidated)")
-    p.add_argument("--identity", required=True, metavar="P12", help="your PKCS#12 signing identity")
-    p.add_argument("--passphrase-file", metavar="FILE",
-                   help="file (mode 0600) holding the passphrase; else LOTGATE_SIGNING_PASSPHRASE or a prompt")
+    add_identity_arguments(p)
     p.add_argument("--workspace", required=True, metavar="DIR")
     p.set_defaults(func=cmd_investigate)
 

@@ -3,14 +3,13 @@
 from __future__ import annotations
 
 import argparse
-import getpass
-import os
 import sys
 from pathlib import Path
 
 from rich.console import Console
 from rich.table import Table
 
+from flows.person_identity import add_identity_arguments, load_person_identity
 from pipeline.errors import NotFound
 
 
@@ -72,25 +71,15 @@ def cmd_history(args: argparse.Namespace) -> int:
     return 0
 
 
-def _passphrase(args: argparse.Namespace) -> bytes | None:
-    if args.passphrase_file or os.environ.get("LOTGATE_SIGNING_PASSPHRASE"):
-        return None  # load_identity reads the environment variable, then the file
-    if sys.stdin.isatty():
-        return getpass.getpass("Passphrase of your signing identity: ").encode("utf-8")
-    return None
-
-
 def cmd_decide(args: argparse.Namespace) -> int:
     from pipeline.night.open import open_records
     from pipeline.night.person_decision import decide_lot
-    from pipeline.records import signing
     from pipeline.records.run_lock import run_lock
 
     ws, store = open_records(Path(args.workspace))
     if not store.decisions(args.lot):
         raise NotFound(f"lot {args.lot} has no decision in the store at {ws.root}; nothing to review")
-    identity = signing.load_identity(Path(args.identity), passphrase=_passphrase(args),
-                                     passphrase_file=Path(args.passphrase_file) if args.passphrase_file else None)
+    identity = load_person_identity(args)
     with run_lock(ws.root, store):
         outcome = decide_lot(ws, store, args.lot, release=args.release, reason=args.reason, identity=identity)
     console = _console()
@@ -150,8 +139,6 @@ def add_commands(sub: argparse._SubParsersAction) -> None:
     choice.add_argument("--reject", action="store_true", help="reject the lot")
     decide.add_argument("--reason", required=True, metavar="TEXT",
                         help="what was reviewed and why (at least two words; the plant's reference when it sets a pattern)")
-    decide.add_argument("--identity", required=True, metavar="P12", help="your PKCS#12 signing identity")
-    decide.add_argument("--passphrase-file", metavar="FILE",
-                        help="file (mode 0600) holding the passphrase; else LOTGATE_SIGNING_PASSPHRASE or a prompt")
+    add_identity_arguments(decide)
     decide.add_argument("--workspace", required=True, metavar="DIR")
     decide.set_defaults(func=cmd_decide)

@@ -13,6 +13,7 @@ import unicodedata
 from pathlib import Path
 from typing import Any
 
+from flows.person_identity import add_identity_arguments
 from pipeline.errors import InputError, LotgateError, NotFound, SpecificationError
 from pipeline.science.process_capability import Interval
 
@@ -206,10 +207,9 @@ def _side_by_side(old: Any, new: Any, d: int, unit: str) -> str:
 
 def cmd_rebaseline(args: argparse.Namespace) -> int:
     """Compute new limits from chosen released lots, store them as a new version, log it, print both."""
-    from flows.records_cmd import _passphrase
+    from flows.person_identity import load_person_identity
     from pipeline.night.open import open_records
     from pipeline.night.rebaseline import rebaseline
-    from pipeline.records import signing
 
     try:
         _, attribute = _attribute(args.product, args.attribute, args.workspace)
@@ -217,8 +217,7 @@ def cmd_rebaseline(args: argparse.Namespace) -> int:
         if not args.identity:
             raise InputError("a re-baseline is signed by the person who decides it: give your PKCS#12 (--identity "
                              "P12) and its passphrase; a typed name is not accepted")
-        identity = signing.load_identity(Path(args.identity), passphrase=_passphrase(args),
-                                         passphrase_file=Path(args.passphrase_file) if args.passphrase_file else None)
+        identity = load_person_identity(args)
         done = rebaseline(ws, store, args.product, attribute, identity=identity, reason=args.reason,
                           from_lot=args.from_lot, count=args.count)
     except (LotgateError, OSError) as exc:
@@ -268,10 +267,8 @@ def add_commands(subparsers: Any) -> None:
     rebase.add_argument("--workspace", required=True, metavar="DIR", help="workspace folder holding the store")
     rebase.add_argument("--reason", metavar="TEXT",
                         help="why the limits change, e.g. the change control that moved the process (required)")
-    rebase.add_argument("--identity", metavar="P12",
-                        help="your PKCS#12 signing identity (required; you must hold the role 're-baseline')")
-    rebase.add_argument("--passphrase-file", metavar="FILE",
-                        help="file (mode 0600) holding the passphrase; else LOTGATE_SIGNING_PASSPHRASE or a prompt")
+    add_identity_arguments(rebase, required=False,  # refused with its own message when missing
+                           identity_help="your PKCS#12 signing identity (required; you must hold the role 're-baseline')")
     rebase.add_argument("--from-lot", dest="from_lot", metavar="LOT",
                         help="first released lot of the new baseline (default: the last N released lots)")
     rebase.add_argument("--count", type=int, metavar="N",

@@ -152,6 +152,13 @@ def same_but_last_digits(expected: str, now: str) -> bool:
     return True
 
 
+def differs(name: str, expected: str, now: str | None) -> bool:
+    """Whether an artefact differs from its expected copy (the store and LIMS files within their last digits)."""
+    if now == expected:
+        return False
+    return not (now is not None and name.startswith(("store/", "lims/")) and same_but_last_digits(expected, now))
+
+
 def write_golden(root: Path, target: Path = GOLDEN) -> int:
     import shutil
 
