@@ -101,24 +101,48 @@ def _fixing_c(xtx: FloatArray, xty: FloatArray, flat: npt.NDArray[np.bool_]) -> 
     return xtx, xty
 
 
-def _linear_at(x: FloatArray, y: FloatArray, mask: FloatArray, tau: FloatArray,
-               slowing: bool = False) -> tuple[FloatArray, FloatArray]:
-    """a₀, v, c by least squares at each row's τ (R,), and the SSR; with ``slowing``, c ≤ 0.
+def _solve(xtx: FloatArray, xty: FloatArray, syy: FloatArray, slowing: bool) -> tuple[FloatArray, FloatArray]:
+    """a₀, v, c from the normal equations, and the SSR; with ``slowing``, c ≤ 0.
 
     Where the unconstrained c comes out positive, the constrained optimum has c = 0 (one linear
     inequality on a convex problem), so that row is solved again without c.
     """
-    theta = x[None, :] - tau[:, None] * (1.0 - np.exp(-x[None, :] / tau[:, None]))
-    basis = np.stack([np.ones_like(theta), theta, theta**2], axis=2)
-    xtx = np.einsum("rti,rtj,rt->rij", basis, basis, mask)
-    xty = np.einsum("rti,rt->ri", basis, y * mask)
     beta = np.linalg.solve(xtx, xty[..., None])[..., 0]
     positive = beta[:, 2] > 0
     if slowing and positive.any():
         a, b = _fixing_c(xtx, xty, positive)
         beta = np.where(positive[:, None], np.linalg.solve(a, b[..., None])[..., 0], beta)
-    ssr = np.einsum("rt,rt->r", mask, y * y) - np.einsum("ri,ri->r", beta, xty)
-    return beta, ssr
+    return beta, syy - np.einsum("ri,ri->r", beta, xty)
+
+
+def _linear_at(x: FloatArray, y: FloatArray, mask: FloatArray, tau: FloatArray) -> tuple[FloatArray, FloatArray]:
+    """a₀, v, c by least squares at each row's own τ (R,), and the SSR."""
+    theta = x[None, :] - tau[:, None] * (1.0 - np.exp(-x[None, :] / tau[:, None]))
+    basis = np.stack([np.ones_like(theta), theta, theta**2], axis=2)
+    xtx = np.einsum("rti,rtj,rt->rij", basis, basis, mask)
+    xty = np.einsum("rti,rt->ri", basis, y * mask)
+    return _solve(xtx, xty, np.einsum("rt,rt->r", mask, y * y), False)
+
+
+def _profiles(x: FloatArray, y: FloatArray, n: IntArray, grid: FloatArray) -> tuple[FloatArray, FloatArray]:
+    """SSR of every row at every grid τ, free and with c ≤ 0 (R, G) each.
+
+    At one τ the basis is the same for every row, so XᵀX over reads 0 … n − 1 is a running sum
+    indexed by n, and Xᵀy one product: O(reads) per row and grid point.
+    """
+    rows = y.shape[0]
+    syy = np.einsum("rt,rt->r", y, y)
+    free, slowing = np.empty((rows, grid.size)), np.empty((rows, grid.size))
+    for g, log_tau in enumerate(grid):
+        tau = np.exp(log_tau)
+        theta = x - tau * (1.0 - np.exp(-x / tau))
+        basis = np.stack([np.ones_like(theta), theta, theta**2], axis=1)  # (T, 3)
+        running = np.concatenate([np.zeros((1, 3, 3)), np.cumsum(basis[:, :, None] * basis[:, None, :], axis=0)])
+        xtx = running[n]
+        xty = y @ basis
+        free[:, g] = _solve(xtx, xty, syy, False)[1]
+        slowing[:, g] = _solve(xtx, xty, syy, True)[1]
+    return free, slowing
 
 
 def _refine(x: FloatArray, y: FloatArray, mask: FloatArray, p: FloatArray, ssr: FloatArray) -> tuple[FloatArray, FloatArray]:
@@ -183,11 +207,7 @@ def fit_lags(t_min: FloatArray, y: FloatArray, n: IntArray) -> LagFits:
     y = np.where(mask > 0, y, 0.0)
     step = float(np.min(np.diff(x))) if reads > 1 else 1.0
     grid = np.log(np.geomspace(step / 4.0, 2.0 * max(float(x[-1]), step), GRID_POINTS))
-    free, slowing = np.empty((rows, GRID_POINTS)), np.empty((rows, GRID_POINTS))
-    for g in range(GRID_POINTS):
-        tau_g = np.full(rows, np.exp(grid[g]))
-        free[:, g] = _linear_at(x, y, mask, tau_g)[1]
-        slowing[:, g] = _linear_at(x, y, mask, tau_g, slowing=True)[1]
+    free, slowing = _profiles(x, y, n, grid)
     log_tau = _profile_minimum(grid, free)
     beta, ssr = _linear_at(x, y, mask, np.exp(log_tau))
     p, ssr = _refine(x, y, mask, np.column_stack([beta, log_tau]), ssr)
