@@ -22,8 +22,9 @@ squares; Seber & Wild, Nonlinear Regression, 1989, ch. 5, from memory).
 The least-squares v is skewed upwards where τ is loosely fixed (a longer τ goes with a steeper
 asymptote), so it is corrected by Box's bias, −½σ̂²·(JᵀJ)⁻¹Jᵀd with d_t = tr((JᵀJ)⁻¹H_t) and H_t the
 model's second derivatives at read t (Box 1971, J. R. Stat. Soc. B 33:171; from memory). Measured
-(tests/test_rate_truth.py): the mean of v within ±0.2 % of the truth and its interval covering
-94–95 % where the window lasts 5 τ or more.
+where the window lasts 5 τ or more (tests/test_rate_truth.py, docs/assay-rules.md): the mean of v
+within ±0.1 % of the truth in substrate excess and within −0.8 … +0.1 % with depletion, its
+interval covering 93–96 %.
 
 The steady state counts as reached when the window lasts at least ``STEADY_STATE_TIME_CONSTANTS``
 time constants: the lag's residual rate at the window's end, e^(−(t_end − t₀)/τ), is then at most
