@@ -92,6 +92,15 @@ def _model(x: FloatArray, p: FloatArray) -> tuple[FloatArray, FloatArray]:
     return values, jac
 
 
+def _solved(a: FloatArray, b: FloatArray) -> FloatArray:
+    """x = a⁻¹b for stacked systems; a singular one (a flat well, say) by the pseudo-inverse, never an error."""
+    try:
+        return np.asarray(np.linalg.solve(a, b[..., None])[..., 0])
+    except np.linalg.LinAlgError:
+        with np.errstate(all="ignore"):
+            return np.asarray(np.einsum("rij,rj->ri", np.linalg.pinv(a), b))
+
+
 def _fixing_c(xtx: FloatArray, xty: FloatArray, flat: npt.NDArray[np.bool_]) -> tuple[FloatArray, FloatArray]:
     """Normal equations with c held at 0 in the ``flat`` rows (its row and column replaced by the unit)."""
     xtx, xty = xtx.copy(), xty.copy()
@@ -108,11 +117,11 @@ def _solve(xtx: FloatArray, xty: FloatArray, syy: FloatArray, slowing: bool) -> 
     Where the unconstrained c comes out positive, the constrained optimum has c = 0 (one linear
     inequality on a convex problem), so that row is solved again without c.
     """
-    beta = np.linalg.solve(xtx, xty[..., None])[..., 0]
+    beta = _solved(xtx, xty)
     positive = beta[:, 2] > 0
     if slowing and positive.any():
         a, b = _fixing_c(xtx, xty, positive)
-        beta = np.where(positive[:, None], np.linalg.solve(a, b[..., None])[..., 0], beta)
+        beta = np.where(positive[:, None], _solved(a, b), beta)
     return beta, syy - np.einsum("ri,ri->r", beta, xty)
 
 
@@ -155,7 +164,7 @@ def _refine(x: FloatArray, y: FloatArray, mask: FloatArray, p: FloatArray, ssr: 
         grad = np.einsum("rti,rt->ri", jac, (y - values) * mask)
         damped = jtj + damping[:, None, None] * np.einsum("ri,ij->rij", np.einsum("rii->ri", jtj), np.eye(PARAMETERS))
         with np.errstate(all="ignore"):
-            trial = p + np.linalg.solve(damped, grad[..., None])[..., 0]
+            trial = p + _solved(damped, grad)
             trial_ssr = np.sum(((y - _model(x, trial)[0]) * mask) ** 2, axis=1)
         accept = np.isfinite(trial_ssr) & (trial_ssr <= ssr) & np.all(np.isfinite(trial), axis=1)
         p = np.where(accept[:, None], trial, p)
