@@ -160,6 +160,7 @@ class ProblemCode(StrEnum):
     ROLE_FIELDS = "role-fields"
     PLATE_INCONSISTENT = "plate-inconsistent"
     TIME_ORDER = "time-order"
+    TOO_MANY_READS = "too-many-reads"  # a well with more reads than its layout's cap
     DATE_ORDER = "date-order"
     # a file against the controlled documents
     PLATE_FORMAT = "plate-format"  # a read of a plate format its method does not declare

@@ -325,6 +325,10 @@ def _single_file_cases() -> list[Case]:
     rows[2][2] = "30.0"
     add("repeated time within a well", q, "kinread-time-twice.csv", to_csv(KINETIC_HEADER, rows), ProblemCode.REPEATED_TIME,
         "at 30 s appears more than once", ())
+    rows = kinetic_rows("BADREADS-1") + [["BADREADS-1", "A03", 8 * k, "0.0600", 405, "30.0"] for k in range(10_001)]
+    add("more reads per well than the layout allows", q, "kinread-too-many-reads.csv", to_csv(KINETIC_HEADER, rows),
+        ProblemCode.TOO_MANY_READS, "well A03 of plate BADREADS-1 has 10,001 reads; the kinetic-read 1.2 layout allows "
+        "at most 10,000 reads per well", ())
     rows = kinetic_rows("BADREAD-WL")
     rows[0][4] = "405.0"
     add("wavelength not a whole number", q, "kinread-wavelength.csv", to_csv(KINETIC_HEADER, rows), ProblemCode.NOT_A_NUMBER,

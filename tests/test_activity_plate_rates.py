@@ -43,11 +43,3 @@ def test_wells_get_conversion_limited_windows_and_blanks_their_whole_read() -> N
     # Replicates (2 dof) with the shared mean blank (4 blanks, 3 dof): Welch–Satterthwaite dof ≥ 2.
     assert activity.ci95 is not None and activity.dof >= 2
     assert 0 < activity.detail["blank_se_u_per_ml"] and activity.se >= activity.detail["replicate_se"]
-
-
-def test_a_plate_with_too_many_reads_per_well_is_refused(monkeypatch) -> None:
-    plate_map, reads = _plate()
-    monkeypatch.setattr(plates, "MAX_READS_PER_WELL", 20)
-    result = plates.evaluate_activity_plate("AK-TEST", plate_map, reads, _method(), dt.date(2026, 11, 20))
-    assert not result.valid
-    assert "has 21 reads; a kinetic plate may have at most 20 reads per well" in result.reasons[0]

@@ -192,6 +192,38 @@ LAYOUT_CASES = [
 ]
 
 
+KINETIC_LAYOUT = _shipped(FOLDERS.layouts, "kinetic-read.yaml")
+CAP = "lotgate_export.max_reads_per_well"
+READS_CAP_CASES = [
+    ("reads cap missing", _set(KINETIC_LAYOUT, CAP, ...),
+     "a layout of reads over time must cap the reads per well: the field 'lotgate_export.max_reads_per_well' is missing"),
+    ("reads cap empty", _set(KINETIC_LAYOUT, CAP, None), "'lotgate_export.max_reads_per_well' is missing"),
+    ("reads cap as text", _set(KINETIC_LAYOUT, CAP, "10k"), "'lotgate_export.max_reads_per_well' must be a whole number"),
+    ("reads cap a fraction", _set(KINETIC_LAYOUT, CAP, 100.5), "'lotgate_export.max_reads_per_well' must be a whole number"),
+    ("reads cap true", _set(KINETIC_LAYOUT, CAP, True), "'lotgate_export.max_reads_per_well' must be a whole number"),
+    ("reads cap zero", _set(KINETIC_LAYOUT, CAP, 0), "'lotgate_export.max_reads_per_well' must be above zero, found 0"),
+    ("reads cap negative", _set(KINETIC_LAYOUT, CAP, -5), "'lotgate_export.max_reads_per_well' must be above zero"),
+    ("reads cap absurd", _set(KINETIC_LAYOUT, CAP, 10_000_000),
+     "'lotgate_export.max_reads_per_well' must be at most 86400, found 10000000"),
+]
+
+
+@pytest.mark.parametrize(("raw", "fragment"), [c[1:] for c in READS_CAP_CASES], ids=[c[0] for c in READS_CAP_CASES])
+def test_a_bad_reads_per_well_cap_is_refused(tmp_path, raw, fragment):
+    path = tmp_path / "kinetic-read.yaml"
+    path.write_text(yaml.safe_dump(raw, sort_keys=False), encoding="utf-8")
+    with pytest.raises(SpecificationError, match="^schemas/kinetic-read.yaml: ") as refused:
+        load_layout(path)
+    assert fragment in str(refused.value)
+
+
+def test_a_reads_cap_on_a_layout_without_reads_over_time_is_refused(tmp_path):
+    path = tmp_path / "lims-results.yaml"
+    path.write_text(yaml.safe_dump(_set(LAYOUT, CAP, 100), sort_keys=False), encoding="utf-8")
+    with pytest.raises(SpecificationError, match="caps reads over time; this layout has no plate_id, time_s, well"):
+        load_layout(path)
+
+
 @pytest.mark.parametrize(("raw", "fragment"), [c[1:] for c in LAYOUT_CASES], ids=[c[0] for c in LAYOUT_CASES])
 def test_a_bad_layout_header_is_refused(tmp_path, raw, fragment):
     path = tmp_path / "lims-results.yaml"

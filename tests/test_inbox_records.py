@@ -5,6 +5,7 @@ file), a 255-byte file name, named pipes, sockets and devices in the inbox, a re
 """
 
 import hashlib
+import json
 import os
 import signal
 import socket
@@ -194,3 +195,26 @@ def test_a_move_refused_after_the_record_leaves_no_copy_and_the_restart_finishes
     _night(ws, store)
     assert sorted(f.file_name for f in store.files()) == sorted(entries)
     assert list(ws.inbox.iterdir()) == []
+
+
+def _kinetic_read(plate, reads):
+    rows = "".join(f"{plate},A01,{8 * k},{0.06 + 0.0001 * k:.4f},405,30.0\n" for k in range(reads))
+    return ("plate_id,well,time_s,absorbance,wavelength_nm,temperature_c\n" + rows).encode()
+
+
+def test_a_read_over_its_layouts_reads_cap_is_quarantined_and_the_layout_is_recorded_with_its_sha256(tmp_path):
+    from pipeline.records.controlled_files import shipped_folders
+
+    over, within = _kinetic_read("CAP-OVER", 10_001), _kinetic_read("CAP-IN", 10_000)  # the shipped cap: 10,000
+    ws, store = _workspace(tmp_path / "w", {"kinread-CAP-OVER.csv": over, "kinread-CAP-IN.csv": within})
+    summary = _night(ws, store)
+    reasons = dict(summary.quarantine_reasons)
+    assert set(reasons) == {"kinread-CAP-OVER.csv"}
+    words = "well A01 of plate CAP-OVER has 10,001 reads; the kinetic-read 1.2 layout allows at most 10,000 reads per well"
+    assert words in reasons["kinread-CAP-OVER.csv"]
+    assert words in (ws.quarantine / "kinread-CAP-OVER.csv.reason.txt").read_text(encoding="utf-8")
+    layout_sha = _sha((shipped_folders().layouts / "kinetic-read.yaml").read_bytes())
+    received = [json.loads(e.body) for e in store.audit_events(after_seq=0, limit=1000)]
+    received = [e for e in received if e["kind"] == "file-received"]
+    assert [(e["file"], e["layout_version"], e["layout_sha256"]) for e in received] == \
+        [("kinread-CAP-IN.csv", "1.2", layout_sha)]

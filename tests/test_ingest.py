@@ -112,3 +112,50 @@ def test_problem_codes_stay_typed_across_worker_processes():
     assert back.codes == error.codes == {ProblemCode.NO_ROWS}
     assert all(type(code) is ProblemCode for code in back.codes)
     assert back.report() == error.report()
+
+
+# --------------------------------------------------------------------------- reads per well
+def _kinetic(plate: str, reads: int) -> bytes:
+    rows = [f"{plate},{well},{5 * k},{0.06 + 0.0001 * k:.4f},405,30.0" for well in ("A01", "A02") for k in range(reads)]
+    return ("plate_id,well,time_s,absorbance,wavelength_nm,temperature_c\n" + "\n".join(rows) + "\n").encode()
+
+
+def _layouts_capped(tmp_path: Path, cap: int) -> dict:
+    import yaml
+
+    schemas = tmp_path / "schemas"
+    schemas.mkdir()
+    for path in (Path(__file__).resolve().parents[1] / "schemas").glob("*.yaml"):
+        raw = yaml.safe_load(path.read_text(encoding="utf-8"))
+        if raw["lotgate_export"]["kind"] == "kinetic-read":
+            raw["lotgate_export"]["max_reads_per_well"] = cap
+        (schemas / path.name).write_text(yaml.safe_dump(raw, sort_keys=False), encoding="utf-8")
+    return load_layouts(schemas)
+
+
+def test_the_kinetic_layout_caps_the_reads_per_well():
+    assert LAYOUTS["kinetic-read"].max_reads_per_well == 10_000
+    assert all(layout.max_reads_per_well is None for kind, layout in LAYOUTS.items() if kind != "kinetic-read")
+
+
+def test_an_export_within_the_cap_is_read_and_one_beyond_it_is_rejected_with_the_reason(tmp_path):
+    layouts = _layouts_capped(tmp_path, 40)
+    parsed = parse_export("kinread-CAP-1.csv", _kinetic("CAP-1", 40), layouts)
+    assert len(parsed.frame) == 80
+    with pytest.raises(ExportRejected) as info:
+        parse_export("kinread-CAP-2.csv", _kinetic("CAP-2", 41), layouts)
+    problem, = info.value.problems
+    assert problem.code is ProblemCode.TOO_MANY_READS
+    # The first read beyond the cap: well A01's 41st read, the file's line 42 (the header is line 1).
+    assert (problem.line, problem.column) == (42, "time_s")
+    assert ("well A01 of plate CAP-2 has 41 reads (1 other well(s) too); the kinetic-read 1.2 layout allows at most "
+            "40 reads per well") in info.value.report()
+
+
+def test_the_shipped_cap_admits_a_read_every_10_s_for_a_day_and_no_more_than_its_figure():
+    day = _kinetic("CAP-DAY", 8_640)  # a read every 10 s for 24 h (stated in the layout)
+    assert len(parse_export("kinread-CAP-DAY.csv", day, LAYOUTS).frame) == 2 * 8_640
+    assert len(parse_export("kinread-CAP-MAX.csv", _kinetic("CAP-MAX", 10_000), LAYOUTS).frame) == 20_000
+    with pytest.raises(ExportRejected) as info:
+        parse_export("kinread-CAP-OVER.csv", _kinetic("CAP-OVER", 10_001), LAYOUTS)
+    assert info.value.codes == {ProblemCode.TOO_MANY_READS}

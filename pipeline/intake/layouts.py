@@ -5,6 +5,11 @@ Each ``schemas/<kind>.yaml`` has two sections: ``pandera`` (a DataFrameSchema th
 allowed values) and ``lotgate_export`` (the file-name prefix, version, the size, row and
 line-length limits, and a hint per column in the analyst's words). The ``lotgate_export`` header is
 checked against its declared schema (``LayoutHeader``): no unknown key, no wrong type.
+
+A layout of reads over time (columns ``plate_id``, ``well`` and ``time_s``: a kinetic read) must
+cap the reads per well, ``max_reads_per_well``, a whole number from 1 to ``READS_PER_WELL_LIMIT``
+(a read every second for the 24 h a read may last); intake quarantines an export whose well has
+more (``pipeline.intake.row_checks``), before any fit. Other layouts may not name the field.
 """
 
 from __future__ import annotations
@@ -23,6 +28,11 @@ from pydantic import Field
 from pipeline.controlled.strict import Strict, Text, checked
 from pipeline.errors import SpecificationError
 
+# The largest reads-per-well cap a layout may declare: a read every second for 24 h (86,400 s, the
+# longest read a kinetic layout's read times allow). A larger figure is taken for a typing error.
+READS_PER_WELL_LIMIT = 86_400
+SERIES_COLUMNS = frozenset({"plate_id", "well", "time_s"})  # a layout of reads over time
+
 
 @dataclass(frozen=True)
 class ExportLayout:
@@ -38,6 +48,7 @@ class ExportLayout:
     schema: pa.DataFrameSchema
     sha256: str
     hints: dict[str, str] = field(default_factory=dict)
+    max_reads_per_well: int | None = None  # layouts of reads over time only
 
 
 class LayoutHeader(Strict):
@@ -50,6 +61,8 @@ class LayoutHeader(Strict):
     max_bytes: int = Field(gt=0)
     max_rows: int = Field(gt=0)
     max_line_chars: int = Field(gt=0)
+    max_reads_per_well: int | None = Field(default=None, gt=0, le=READS_PER_WELL_LIMIT,
+                                           description="a whole number of reads per well")
     hints: dict[str, Text] = Field(default_factory=dict, description="a mapping of column names to hints")
 
 
@@ -77,12 +90,21 @@ def load_layout(path: Path) -> ExportLayout:
     if unknown:
         raise SpecificationError(f"{where}: 'lotgate_export.hints' names {', '.join(unknown)}, which the pandera "
                                  f"section does not declare; allowed: {', '.join(schema.columns)}")
+    series = SERIES_COLUMNS <= set(schema.columns)
+    if series and head.max_reads_per_well is None:
+        raise SpecificationError(f"{where}: a layout of reads over time must cap the reads per well: the field "
+                                 f"'lotgate_export.max_reads_per_well' is missing (a whole number from 1 to "
+                                 f"{READS_PER_WELL_LIMIT:,})")
+    if not series and head.max_reads_per_well is not None:
+        raise SpecificationError(f"{where}: 'lotgate_export.max_reads_per_well' caps reads over time; this layout has "
+                                 f"no {', '.join(sorted(SERIES_COLUMNS))} columns to count them by: remove the field")
     return ExportLayout(
         kind=head.kind, version=head.version, title=head.title or head.kind, file_prefix=head.file_prefix,
         max_bytes=head.max_bytes, max_rows=head.max_rows, max_line_chars=head.max_line_chars,
         columns=tuple(schema.columns),
         nullable=frozenset(name for name, col in schema.columns.items() if col.nullable),
         schema=schema, sha256=hashlib.sha256(data).hexdigest(), hints=dict(head.hints),
+        max_reads_per_well=head.max_reads_per_well,
     )
 
 

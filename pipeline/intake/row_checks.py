@@ -1,7 +1,7 @@
 """Stage 3 of reading an export: rows against each other, once every cell is valid (pure).
 
 Wells inside the plate format, one format and method per plate, the fields a well's role
-needs, read times that increase within a well, an assay date not before the manufacturing date,
+needs, read times that increase within a well, no more reads per well than the layout's cap, an assay date not before the manufacturing date,
 and no manufacturing, assay or test date in the future (a wrong clock on the instrument or a typing
 error; one day is allowed for time zones ahead of UTC).
 """
@@ -65,6 +65,22 @@ def _time_problems(frame: pd.DataFrame, lines: list[int]) -> list[Problem]:
     return problems
 
 
+def _reads_problems(frame: pd.DataFrame, lines: list[int], cap: int, layout: str) -> list[Problem]:
+    """Kinetic reads: no well with more reads than the layout's cap (one problem per plate)."""
+    counts = frame.groupby(["plate_id", "well"], sort=False).size()
+    over = counts[counts > cap]
+    problems: list[Problem] = []
+    for plate_id, wells in over.groupby(level=0, sort=True):
+        most = wells.droplevel(0)
+        well, reads = str(most.idxmax()), int(most.max())
+        first_beyond = frame.index[(frame["plate_id"] == plate_id) & (frame["well"] == well)][cap]
+        others = f" ({len(most) - 1} other well(s) too)" if len(most) > 1 else ""
+        problems.append(Problem(ProblemCode.TOO_MANY_READS, f"well {well} of plate {plate_id} has {reads:,} reads{others}; "
+                                f"the {layout} layout allows at most {cap:,} reads per well",
+                                line=lines[int(first_beyond)], column="time_s"))
+    return problems
+
+
 def _registry_problems(frame: pd.DataFrame, lines: list[int]) -> list[Problem]:
     """Lot registry: a lot cannot be assayed before it was manufactured."""
     problems = []
@@ -92,13 +108,20 @@ def _future_problems(frame: pd.DataFrame, columns: set[str], lines: list[int], t
     return problems
 
 
-def row_problems(frame: pd.DataFrame, columns: set[str], lines: list[int], today_utc: dt.date | None = None) -> list[Problem]:
-    """Every row problem; ``today_utc``: the date the future-date check compares with (default: the clock's)."""
+def row_problems(frame: pd.DataFrame, columns: set[str], lines: list[int], today_utc: dt.date | None = None,
+                 max_reads_per_well: int | None = None, layout: str = "export") -> list[Problem]:
+    """Every row problem; ``today_utc``: the date the future-date check compares with (default: the clock's).
+
+    ``max_reads_per_well`` is the layout's cap on reads per well (layouts of reads over time), ``layout``
+    its name and version as the message gives them.
+    """
     problems: list[Problem] = _future_problems(frame, columns, lines, today_utc or dt.datetime.now(dt.UTC).date())
     if {"plate_id", "plate_format", "well", "role"} <= columns:
         problems += _plate_problems(frame, lines)
     if {"plate_id", "well", "time_s"} <= columns:
         problems += _time_problems(frame, lines)
+        if max_reads_per_well is not None:
+            problems += _reads_problems(frame, lines, max_reads_per_well, layout)
     if {"lot_id", "manufactured_on", "assay_date"} <= columns:
         problems += _registry_problems(frame, lines)
     return problems

@@ -76,7 +76,8 @@ def _finish(prepared: _Prepared, validated: pd.DataFrame | None, errors: pa.erro
         raise ExportRejected(prepared.file_name, in_file_order(problems, layout.columns))
     assert validated is not None
     validated = validated.reset_index(drop=True)
-    problems = row_problems(validated, set(layout.columns), prepared.lines)
+    problems = row_problems(validated, set(layout.columns), prepared.lines, max_reads_per_well=layout.max_reads_per_well,
+                            layout=f"{layout.kind} {layout.version}")
     if problems:
         raise ExportRejected(prepared.file_name, in_file_order(problems, layout.columns))
     for column in validated.columns:

@@ -157,7 +157,8 @@ def receive(ws: Workspace, store: Store, layouts: dict[str, ExportLayout], night
                 intake.paths[path.name] = path
                 received.append(audit.event("file-received", time_zone=ws.time_zone, night_id=night_id,
                                             file=path.name, sha256=sha, export_kind=result.kind,
-                                            layout_version=result.layout_version, rows=len(result.frame),
+                                            layout_version=result.layout_version,
+                                            layout_sha256=result.layout_sha256, rows=len(result.frame),
                                             conversions=list(result.conversions)))
             one_more()
     store.add_events(received)

@@ -7,6 +7,7 @@ from typing import Any
 import numpy as np
 import numpy.typing as npt
 
+from pipeline.science.lag_fits import STEADY_STATE_TIME_CONSTANTS, LagFits
 from pipeline.science.rate_types import (
     RateFlag,
     RateShape,
@@ -21,7 +22,8 @@ FloatArray = npt.NDArray[np.float64]
 
 def well_result(name: str, i: int, t: FloatArray, a_well: FloatArray, sums: Any, settings: RateWindowSettings,
                  usable: int, cut: str | None, stop: int, blank: bool, limited: bool, quad: Any, line: Any, shape: RateShape,
-                 conversion: float, steady_row: int | None, steady_start: int, steady: Any) -> WellRate:
+                 conversion: float, steady_row: int | None, steady_start: int, steady: Any,
+                 lag: tuple[LagFits, int] | None = None) -> WellRate:
     """One well's rate, flag and analyst wording."""
     m = settings.min_points
     nan = float("nan")
@@ -60,6 +62,8 @@ def well_result(name: str, i: int, t: FloatArray, a_well: FloatArray, sums: Any,
                 f"{100 * float(shape.change[i]):+.0f} %, allowed {100 * settings.max_slope_change:g} %"
                 + ("" if shape.lag[i] else f" plus the {100 * conversion:.1f} % converted")
                 + f"; or the curve bends more sharply than its read noise allows; tested at {settings.curvature_alpha:g})")
+        if shape.lag[i] and lag is not None:
+            return _after_lag(name, t, float(sums.y0[i]), stop, conversion, shape, i, lag, what, cut_text, flagged)
         if settings.shape_action is ShapeAction.EXCLUDE or steady_row is None:
             why = "" if settings.shape_action is ShapeAction.EXCLUDE else "; no later stretch is free of it"
             return flagged(RateFlag(shape_name), f"{what}{why}; excluded as the method says",
@@ -94,3 +98,26 @@ def well_result(name: str, i: int, t: FloatArray, a_well: FloatArray, sums: Any,
     )
 
 
+def _after_lag(name: str, t: FloatArray, y0: float, stop: int, conversion: float, shape: RateShape, i: int,
+               lag: tuple[LagFits, int], what: str, cut_text: str, flagged: Any) -> WellRate:
+    """A lag well under ``steady-state``: the hysteretic model's steady-state rate, or flagged if not reached."""
+    fits, row = lag
+    tau = float(fits.tau_min[row])
+    shape_info = {"conversion_pct": 100 * conversion, "slope_change_pct": 100 * float(shape.change[i]),
+                  "shape": RateFlag.LAG.value}
+    if not bool(fits.reached[row]):
+        return flagged(RateFlag.LAG, f"{what}; the lag is too long for a steady state within the read: its time "
+                                     f"constant is {tau:.2g} min and the window {t[0]:g}–{t[stop - 1]:g} min lasts less "
+                                     f"than {STEADY_STATE_TIME_CONSTANTS:g} of them; read for longer", **shape_info)
+    n = int(fits.n[row])
+    span = (f"window {t[0]:g}–{t[n - 1]:g} min ({n} reads), {100 * conversion:.1f} % of the substrate converted"
+            if np.isfinite(conversion) else f"window {t[0]:g}–{t[n - 1]:g} min ({n} reads)")
+    return WellRate(
+        well=name, slope_au_per_min=float(fits.rate_au_per_min[row]),
+        slope_se_au_per_min=float(np.sqrt(fits.rate_var[row])),
+        intercept_au=y0 + float(fits.intercept_au[row] - fits.rate_au_per_min[row] * t[0]), r2=float(fits.r2()[row]),
+        window_start_min=float(t[0]), window_end_min=float(t[n - 1]), n_points=n, flag=None,
+        reason=(f"well {name}: {span}; {what}: steady-state slope after the lag (hysteretic curve fitted from "
+                f"{t[0]:g} min, time constant {tau:.2g} min), as the method says{cut_text}"),
+        slope_dof=int(fits.dof[row]), detectable_change_pct=100 * float(shape.detectable[i]),
+        slope_kind=SlopeKind.STEADY_STATE.value, **shape_info)

@@ -20,13 +20,17 @@ dA/dt at the first read, in AU/min (docs/assay-rules.md, "Initial rates"). With 
   never speeds a reaction up); a slowing that exceeds ``max_slope_change`` plus the window's
   conversion significantly is a burst. Its power is stated per well: the change found with 80 %
   probability, allowance + (t₁₋α + t₀.₈)·SE(r). The method says what a
-  lag or burst well does: ``exclude`` (flagged, with the reason) or ``steady-state`` (the slope at
-  the first later start from which the window no longer bends so, stated as such);
+  lag or burst well does: ``exclude`` (flagged, with the reason) or ``steady-state``, stated as
+  such: after a lag, the hysteretic progress curve fitted over the window from the first read
+  with its time constant τ, whose asymptotic slope at the starting substrate is the rate
+  (``pipeline.science.lag_fits``; a lag too long for the window to last 3 τ stays flagged with
+  that reason); after a burst, the slope at the first later start from which the window no
+  longer bends so;
 * blank wells (no enzyme) are fitted by a straight line over their whole usable read, or over the
   method's fixed ``blank_window_min``, so that no blank window is chosen from noise.
 
 Cost: running sums give every window's normal equations in O(1), so a plate costs O(reads) per
-well (``pipeline.science.progress_fits``).
+well (``pipeline.science.progress_fits``); a lag well's hysteretic fit is O(reads) too.
 """
 
 from __future__ import annotations
@@ -39,6 +43,7 @@ import numpy.typing as npt
 from scipy import stats
 
 from pipeline.errors import CalculationError, InputError
+from pipeline.science.lag_fits import fit_lags
 from pipeline.science.progress_fits import WindowFits, fit_windows, prefix_rises, running_sums
 from pipeline.science.rate_types import (
     POWER,
@@ -224,11 +229,15 @@ def initial_rates(
 
     steady_start = np.full(n_wells, -1)
     steady: WindowFits | None = None
-    shaped = np.flatnonzero((shape.lag | shape.burst) & ~is_blank & (stop >= m))
-    if settings.shape_action is ShapeAction.STEADY_STATE and shaped.size:
+    steady_state = settings.shape_action is ShapeAction.STEADY_STATE
+    shaped = np.flatnonzero(shape.burst & ~shape.lag & ~is_blank & (stop >= m))
+    if steady_state and shaped.size:
         first, steady = _steady_starts(sums, shaped, stop[shaped], conversion[shaped], settings,
                                        (noise[0][shaped], noise[1][shaped]))
         steady_start[shaped] = first
+    lagged = np.flatnonzero(shape.lag & ~is_blank & (stop >= m)) if steady_state else np.array([], dtype=np.int64)
+    lags = fit_lags(t, a[lagged] - sums.y0[lagged, None], stop[lagged]) if lagged.size else None
+    lag_rows = {int(w): k for k, w in enumerate(lagged)}
     steady_slope, steady_var = steady.start_slope() if steady is not None else (np.array([]), np.array([]))
     steady_rows = {int(w): k for k, w in enumerate(shaped[steady_start[shaped] >= 0])}
 
@@ -239,7 +248,8 @@ def initial_rates(
         results.append(well_result(name, i, t, a[i], sums, settings, usable, cut, int(stop[i]), bool(is_blank[i]), bool(limited[i]),
                                     (quad, q_slope, q_var), (line, l_slope, l_var), shape,
                                     float(conversion[i]), steady_rows.get(i), int(steady_start[i]),
-                                    (steady, steady_slope, steady_var)))
+                                    (steady, steady_slope, steady_var),
+                                    None if lags is None or i not in lag_rows else (lags, lag_rows[i])))
     return tuple(results)
 
 
