@@ -35,9 +35,10 @@ def test_migrations_bring_a_new_database_to_the_current_version(url):
     with store.engine.connect() as connection:
         version = connection.execute(text("select version_num from alembic_version")).scalar()
         tables = set(store.engine.dialect.get_table_names(connection))
-    assert version == "0007_more_record_tables"
+    assert version == "0008_desk_credentials"
     assert {"input_files", "lots", "decisions", "results", "control_limits", "audit_events", "night_runs",
-            "lot_results", "investigations", "document_status", "desk_users", "desk_account_events"} <= tables
+            "lot_results", "investigations", "document_status", "desk_users", "desk_account_events",
+            "desk_credentials"} <= tables
 
 
 def _database_at(url, revision):
