@@ -68,6 +68,11 @@ def _write_sealed(root: Path, login: str, version: int, key, cert, extra, desk_p
         raise SigningError(f"{target} exists already; a sealed identity is never replaced")
     atomic_write(target, data)  # a temporary file flushed to disk, then renamed: the whole file or none
     os.chmod(target, 0o600)
+    handle = os.open(folder, os.O_RDONLY)
+    try:  # the rename itself on disk before any record names the file (a power cut after the commit)
+        os.fsync(handle)
+    finally:
+        os.close(handle)
     return target, data
 
 
