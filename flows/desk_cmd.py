@@ -66,13 +66,16 @@ def cmd_users_add(args: argparse.Namespace) -> int:
 
 
 def cmd_users_list(args: argparse.Namespace) -> int:
+    from flows.desk.roles import DeskRole, signs
     from pipeline.records import desk_accounts as accounts
 
     desk = _open(args.workspace)
     for u in accounts.users(desk.store):
         standing = accounts.account_standing(desk.store, u.id)
         print(f"{u.login:<20} {u.role:<14} {u.printed_name:<32} "
-              f"{'locked' if standing.locked else 'open'} ({standing.failures_since_success} failed)")
+              f"{'locked' if standing.locked else 'open'} ({standing.failures_since_success} failed)"
+              + (", password set by the administrator" if standing.must_change_password else "")
+              + (", no signing key" if signs(DeskRole(u.role)) and u.key_file is None else ""))
     return 0
 
 

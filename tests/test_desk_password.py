@@ -244,6 +244,8 @@ def test_reset_password_without_the_pkcs12_leaves_no_signing_key_and_asks_for_a_
     user = reviewer(space)
     assert user.key_file is None and user.credentials_version == 1
     assert earlier.get("/", follow_redirects=False).headers["location"] == "/login"  # the reset ended it
+    listed = run_cli(["users", "list", "--workspace", space.root]).stdout
+    assert re.search(r"^reviewer .*password set by the administrator, no signing key$", listed, re.M)
     assert login(client(space), "reviewer", OLD).status_code == 401
     c = signed_in(space, password="set by the administrator 1")
     assert c.get("/", follow_redirects=False).headers["location"] == "/password"
