@@ -22,6 +22,18 @@ def _open(workspace: str):
     return Desk(ws, store, read_desk_settings(ws.root))
 
 
+def _p12_secret(p12: Path | None, passphrase_file: str | None) -> bytes | None:
+    """The PKCS#12's passphrase from LOTGATE_SIGNING_PASSPHRASE or a prompt (unless a file gives it)."""
+    from pipeline.records import signing
+
+    if p12 is None or passphrase_file:
+        return None
+    secret = signing.take_passphrase()
+    if secret is None and sys.stdin.isatty():
+        secret = getpass.getpass(f"Passphrase of {p12.name}: ").encode("utf-8")
+    return secret
+
+
 def _new_password(login: str) -> str:
     secret = os.environ.pop(PASSWORD_ENV, None)
     if secret:
@@ -37,16 +49,11 @@ def _new_password(login: str) -> str:
 def cmd_users_add(args: argparse.Namespace) -> int:
     from flows.desk.accounts import check_new_account, create_account
     from flows.desk.roles import DeskRole
-    from pipeline.records import signing
 
     desk = _open(args.workspace)
     p12 = Path(args.signer_p12).expanduser() if args.signer_p12 else None
     check_new_account(desk.store, args.name, DeskRole(args.role), p12)
-    p12_secret = None
-    if p12 is not None and not args.p12_passphrase_file:
-        p12_secret = signing.take_passphrase()
-        if p12_secret is None and sys.stdin.isatty():
-            p12_secret = getpass.getpass(f"Passphrase of {p12.name}: ").encode("utf-8")
+    p12_secret = _p12_secret(p12, args.p12_passphrase_file)
     password = _new_password(args.name)
     user = create_account(desk.ws, desk.store, args.name, DeskRole(args.role), password, p12=p12,
                           p12_passphrase=p12_secret,
@@ -59,13 +66,16 @@ def cmd_users_add(args: argparse.Namespace) -> int:
 
 
 def cmd_users_list(args: argparse.Namespace) -> int:
+    from flows.desk.roles import DeskRole, signs
     from pipeline.records import desk_accounts as accounts
 
     desk = _open(args.workspace)
     for u in accounts.users(desk.store):
         standing = accounts.account_standing(desk.store, u.id)
         print(f"{u.login:<20} {u.role:<14} {u.printed_name:<32} "
-              f"{'locked' if standing.locked else 'open'} ({standing.failures_since_success} failed)")
+              f"{'locked' if standing.locked else 'open'} ({standing.failures_since_success} failed)"
+              + (", password set by the administrator" if standing.must_change_password else "")
+              + (", no signing key" if signs(DeskRole(u.role)) and u.key_file is None else ""))
     return 0
 
 
@@ -75,6 +85,35 @@ def cmd_users_unlock(args: argparse.Namespace) -> int:
     desk = _open(args.workspace)
     unlock_account(desk, args.name, f"{getpass.getuser()} (command line)")
     print(f"Account {args.name} unlocked; recorded in the audit trail.")
+    return 0
+
+
+def cmd_users_reset_password(args: argparse.Namespace) -> int:
+    from flows.desk.passwords import check_reset, reset_password
+    from flows.desk.roles import DeskRole, signs
+    from pipeline.records import desk_accounts as accounts
+
+    desk = _open(args.workspace)
+    p12 = Path(args.signer_p12).expanduser() if args.signer_p12 else None
+    before = check_reset(desk, args.name, p12)
+    p12_secret = _p12_secret(p12, args.p12_passphrase_file)
+    password = _new_password(args.name)
+    user = reset_password(desk, args.name, password, by=f"{getpass.getuser()} (command line)", p12=p12,
+                          p12_passphrase=p12_secret,
+                          p12_passphrase_file=Path(args.p12_passphrase_file) if args.p12_passphrase_file else None)
+    print(f"Password of {user.login} reset; recorded in the audit trail. {user.printed_name} must choose their own "
+          "at the next sign-in; every session of theirs at the desk has ended.")
+    if user.key_file:
+        print(f"Signing identity imported again from {p12} and sealed under the new password: "
+              f"{desk.ws.root / user.key_file} (mode 0600).")
+    elif signs(DeskRole(user.role)):
+        print(f"{user.login} cannot sign at the desk now: "
+              + ("the signing key was sealed under the old password, which only the person knew, so it could not "
+                 "be opened and was removed. " if before.key_file else "")
+              + f"Import it again with the person's PKCS#12 and its passphrase: lotgate users reset-password "
+                f"{user.login} --signer-p12 FILE --workspace {args.workspace}")
+    if accounts.account_standing(desk.store, user.id).locked:
+        print(f"The account is still locked: lotgate users unlock {user.login} --workspace {args.workspace}")
     return 0
 
 
@@ -104,8 +143,8 @@ def add_commands(sub: argparse._SubParsersAction) -> None:
     desk.set_defaults(func=cmd_desk)
 
     users = sub.add_parser("users", help="desk accounts (administrator)",
-                           description="Add, list and unlock the desk's accounts. Accounts are never changed or "
-                                       "removed; every change is an audit event.")
+                           description="Add, list and unlock the desk's accounts and reset a password. Accounts "
+                                       "are never removed; every change is an audit event.")
     users_sub = users.add_subparsers(dest="users_command", required=True, metavar="ACTION")
     add = users_sub.add_parser("add", help="add an account",
                                description="Add a desk account. A reviewer, investigator or chart owner signs: give "
@@ -126,3 +165,16 @@ def add_commands(sub: argparse._SubParsersAction) -> None:
     unlock.add_argument("name", metavar="NAME")
     unlock.add_argument("--workspace", required=True, metavar="DIR")
     unlock.set_defaults(func=cmd_users_unlock)
+    reset = users_sub.add_parser(
+        "reset-password", help="set a new password for a person who lost theirs",
+        description="Set a new desk password (asked on the terminal, twice; or LOTGATE_DESK_PASSWORD). The "
+                    "person's signing key was sealed under the old password and cannot be opened without it: give "
+                    "their PKCS#12 (--signer-p12, with its passphrase) to seal it under the new password, or the "
+                    "account signs nothing until you do. The person must choose their own password at the next "
+                    "sign-in; their sessions end.")
+    reset.add_argument("name", metavar="NAME")
+    reset.add_argument("--signer-p12", metavar="FILE", help="the person's PKCS#12 signing identity, imported again")
+    reset.add_argument("--p12-passphrase-file", metavar="FILE",
+                       help="file (mode 0600) with the PKCS#12's passphrase; else LOTGATE_SIGNING_PASSPHRASE or a prompt")
+    reset.add_argument("--workspace", required=True, metavar="DIR")
+    reset.set_defaults(func=cmd_users_reset_password)

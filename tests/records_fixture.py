@@ -7,7 +7,13 @@ import hashlib
 
 from pipeline.records import audit
 from pipeline.records.demo_trust import create_demo_trust
-from pipeline.records.desk_accounts import NewUser, add_user, record_account_event
+from pipeline.records.desk_accounts import (
+    NewCredentials,
+    NewUser,
+    add_user,
+    record_account_event,
+    set_credentials,
+)
 from pipeline.records.lot_record_store import InvestigationWrite, add_investigation, load_histories
 from pipeline.records.store import Store
 from pipeline.records.stored import DecisionWrite, LimitsWrite
@@ -80,6 +86,8 @@ def filled_workspace(root, url):
                     [audit.event("desk-account-added", time_zone="UTC")])
     record_account_event(store, user.id, "login-failed", None,
                          [audit.event("desk-login-failed", time_zone="UTC")])
+    set_credentials(store, user.id, 0, NewCredentials("changed", "argon2-hash-2", None, None, None, "reviewer"),
+                    "password-changed", None, [audit.event("desk-password-changed", time_zone="UTC")])
     store.mark_exported([stored[0].id], "results-000001-000001", [audit.event("lims-results-written", time_zone="UTC")])
     store.finish_night(first, files_received=1, files_archived=1, files_quarantined=0, lots_decided=2)
     audit.sync_log(store, ws.log)

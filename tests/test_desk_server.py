@@ -83,7 +83,7 @@ def test_every_route_but_the_login_page_needs_a_session(space):
             else:
                 assert response.status_code == 401, path
             assert "LLC-9000" not in response.text
-    assert checked == 12  # every route of the desk but the sign-in page and its stylesheet
+    assert checked == 14  # every route of the desk but the sign-in page and its stylesheet
 
 
 def test_cookies_and_security_headers(space):

@@ -30,6 +30,7 @@ EDITS = {  # one column per table an insider would want to change, and the forge
     "night_closings": ("lots_decided", 99), "lims_exports": ("export_name", "forged"),
     "lot_results": ("value", 0.1), "investigations": ("outcome", "forged"), "document_status": ("status", "current"),
     "desk_users": ("role", "administrator"), "desk_account_events": ("kind", "login"),
+    "desk_credentials": ("password_hash", "a hash the insider knows the password of"),
 }
 UNIQUE = {  # what an inserted copy must change to satisfy the table's unique constraints
     "lots": {"lot_id": "LLC-9999"}, "decisions": {"fingerprint": "forged", "revision": 99},
@@ -68,7 +69,7 @@ def test_an_untouched_workspace_verifies(url, tmp_path, capsys):
     code, out = verify(ws.root, capsys)
     assert code == 0, out
     # every record table holds rows (checked below), each named by its transaction's audit event
-    assert re.search(r"VALID record rows: \d+ rows in 14 tables", out) and "INVALID" not in out
+    assert re.search(r"VALID record rows: \d+ rows in 15 tables", out) and "INVALID" not in out
     with store.engine.connect() as c:
         for model in RECORD_TABLES:  # every table holds rows, so every table's tampering can be tried
             assert c.execute(select(func.count()).select_from(model.__table__)).scalar() >= 1, model.__tablename__

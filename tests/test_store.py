@@ -4,8 +4,9 @@ import json
 
 import pytest
 from sqlalchemy import create_engine, text
+from sqlalchemy.exc import DBAPIError
 
-from pipeline.errors import StoreError
+from pipeline.errors import InputError, StoreError
 from pipeline.records import append_only, audit, ledger
 from pipeline.records.store import Store
 from pipeline.records.stored import DecisionWrite
@@ -35,9 +36,10 @@ def test_migrations_bring_a_new_database_to_the_current_version(url):
     with store.engine.connect() as connection:
         version = connection.execute(text("select version_num from alembic_version")).scalar()
         tables = set(store.engine.dialect.get_table_names(connection))
-    assert version == "0007_more_record_tables"
+    assert version == "0008_desk_credentials"
     assert {"input_files", "lots", "decisions", "results", "control_limits", "audit_events", "night_runs",
-            "lot_results", "investigations", "document_status", "desk_users", "desk_account_events"} <= tables
+            "lot_results", "investigations", "document_status", "desk_users", "desk_account_events",
+            "desk_credentials"} <= tables
 
 
 def _database_at(url, revision):
@@ -94,6 +96,32 @@ def test_a_database_of_the_previous_version_upgrades_with_its_data(url):
     assert json.loads(body)["rows"] == [{"table": "lots", "key": "LLC-0001",
                                          "row_sha256": json.loads(body)["rows"][0]["row_sha256"]}]
     assert audit.verify_store(store).valid
+
+
+def test_a_0007_database_upgrades_with_its_desk_accounts_and_their_passwords_stay_in_force(url):
+    # Migration 0008 adds desk_credentials: an account made before keeps its own password and key
+    # (credentials version 0) until its first change, which is a new row the database never lets change.
+    from pipeline.records import desk_accounts as accounts
+
+    engine = _database_at(url, "0007_more_record_tables")
+    with engine.begin() as connection:
+        connection.execute(text("insert into desk_users (login, printed_name, role, password_hash, key_file, "
+                                "key_sha256, signer_certificate_sha256, created_at_utc, created_by) values ('ines', "
+                                "'Ines Varga', 'reviewer', 'first-hash', 'keys/desk/ines.p12', 'k', 'c', "
+                                "CURRENT_TIMESTAMP, 'admin')"))
+    engine.dispose()
+    store = Store(url)
+    user = accounts.user_by_login(store, "ines")
+    assert (user.password_hash, user.key_file, user.credentials_version) == ("first-hash", "keys/desk/ines.p12", 0)
+    accounts.set_credentials(store, user.id, 0, accounts.NewCredentials("changed", "second-hash", None, None, None,
+                                                                        "ines"), "password-changed", None, [])
+    user = accounts.user_by_login(store, "ines")
+    assert (user.password_hash, user.key_file, user.credentials_version) == ("second-hash", None, 1)
+    with pytest.raises(InputError, match="changed meanwhile"):  # a change read at version 0 no longer holds
+        accounts.set_credentials(store, user.id, 0, accounts.NewCredentials("changed", "third-hash", None, None,
+                                                                            None, "ines"), "password-changed", None, [])
+    with store.engine.connect() as connection, pytest.raises(DBAPIError, match="desk_credentials is append-only"):
+        connection.execute(text("update desk_credentials set password_hash = 'forged'"))
 
 
 def test_revisions_supersede_and_stay_readable(url):

@@ -68,9 +68,14 @@ def desk_write(desk: Desk) -> Iterator[None]:
                            "Try again in a few minutes.") from exc
 
 
-def hash_password(password: str) -> str:
+def check_password_policy(password: str) -> None:
+    """The desk's one password rule (an account's first password, a change, a reset): at least 12 characters."""
     if len(password) < MIN_PASSWORD:
         raise InputError(f"a desk password needs at least {MIN_PASSWORD} characters, received {len(password)}")
+
+
+def hash_password(password: str) -> str:
+    check_password_policy(password)
     return _HASHER.hash(password)
 
 

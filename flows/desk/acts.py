@@ -80,7 +80,10 @@ def _signing(desk: Desk, session: Session, act: DeskAct, password: str, what: st
     with desk_write(desk):
         user = accounts.user_by_id(desk.store, session.user_id)
         if user is None or user.key_file is None or user.key_sha256 is None or user.signer_certificate_sha256 is None:
-            raise ActRefused("this account is not linked to a signing identity")
+            raise ActRefused("this account is not linked to a signing identity" + (
+                " since its password was reset; the administrator imports it again with your PKCS#12 "
+                "(lotgate users reset-password --signer-p12)" if user is not None and user.credentials_version
+                else ""))
         standing = accounts.account_standing(desk.store, user.id)
         if standing.locked:
             raise ActRefused("this account is locked; ask the administrator to unlock it")

@@ -3,6 +3,8 @@
 Handlers read through ``pipeline.records`` queries and ``views``; every signing act goes through
 ``acts``. Every page but the login page needs a live session; every form carries the session's
 CSRF token (the login form a pre-session token, double-submitted), checked on the server.
+A session ends when its account locks or gets a new password (changed at the desk or reset by the
+administrator); after a reset the person's only page is the password form until they choose their own.
 """
 
 from __future__ import annotations
@@ -25,6 +27,7 @@ from flows.desk import acts
 from flows.desk.accounts import Desk, DeskBusy, SignInRefused, sign_in, sign_out, unlock_account
 from flows.desk.charts import chart_page_data, trended_attributes
 from flows.desk.pages import render, stylesheet
+from flows.desk.passwords import PasswordNotChanged, change_password
 from flows.desk.roles import DeskAct, may
 from flows.desk.sessions import Session, SessionRegistry, same_token
 from flows.desk.views import document_path, lot_view, morning_view
@@ -72,23 +75,31 @@ def create_app(desk: Desk, *, clock: Callable[[], float] | None = None) -> Starl
     def client(request: Request) -> str:
         return request.client.host if request.client else "unknown"
 
-    def session_of(request: Request) -> Session | None:
-        """The live session of the request; a session of an account locked since it began is ended."""
+    def session_of(request: Request) -> tuple[Session | None, bool]:
+        """The live session of the request and whether its password must be changed first; a session of an
+        account locked, or given a new password, since it began is ended."""
         token = request.cookies.get(SESSION_COOKIE)
         session = registry.get(token)
-        if session is not None and accounts.account_standing(desk.store, session.user_id).locked:
+        if session is None:
+            return None, False
+        user = accounts.user_by_id(desk.store, session.user_id)
+        standing = accounts.account_standing(desk.store, session.user_id)
+        if user is None or standing.locked or user.credentials_version != session.credentials_version:
             registry.end(token)
-            return None
-        return session
+            return None, False
+        return session, standing.must_change_password
 
-    def guarded(handler: Callable[[Request, Session, FormData], Response], act: DeskAct | None = None):
+    def guarded(handler: Callable[[Request, Session, FormData], Response], act: DeskAct | None = None, *,
+                before_new_password: bool = False):
         """No session: GET goes to the login page, anything else is refused. A form needs the CSRF token.
+        A password the administrator set leaves only the pages ``before_new_password`` (the password
+        form, sign-out) until the person chooses their own.
 
         The handler runs in a worker thread: it blocks on the store, Argon2 and signing (whose
         library runs its own event loop), never on the server's loop.
         """
         async def endpoint(request: Request) -> Response:
-            session = await run_in_threadpool(session_of, request)
+            session, must_change = await run_in_threadpool(session_of, request)
             if session is None:
                 if request.method == "GET":
                     return RedirectResponse("/login", status_code=303)
@@ -97,6 +108,11 @@ def create_app(desk: Desk, *, clock: Callable[[], float] | None = None) -> Starl
             if request.method == "POST" and not same_token(session.csrf, form.get("csrf")):
                 return refused(request, "This form is out of date or did not come from the desk; "
                                         "open the page again.", 403, session)
+            if must_change and not before_new_password:
+                if request.method == "GET":
+                    return RedirectResponse("/password", status_code=303)
+                return refused(request, "Choose your own password first: the administrator set the one you "
+                                        "signed in with.", 403, session)
             if act is not None and not may(session.role, act):
                 return refused(request, f"Your role ({session.role}) does not allow this ({act}).", 403, session)
             try:
@@ -127,7 +143,7 @@ def create_app(desk: Desk, *, clock: Callable[[], float] | None = None) -> Starl
             response = page("login.html", 401 if isinstance(exc, SignInRefused) else 503, csrf=token, error=str(exc))
             response.set_cookie(PRE_COOKIE, token, httponly=True, secure=secure, samesite="strict", path="/login")
             return response
-        token, _ = registry.start(user.id, user.login, user.printed_name, user.role)
+        token, _ = registry.start(user.id, user.login, user.printed_name, user.role, user.credentials_version)
         response = RedirectResponse("/", status_code=303)
         response.set_cookie(SESSION_COOKIE, token, httponly=True, secure=secure, samesite="strict", path="/")
         response.delete_cookie(PRE_COOKIE, path="/login")
@@ -138,6 +154,27 @@ def create_app(desk: Desk, *, clock: Callable[[], float] | None = None) -> Starl
         sign_out(desk, session.user_id, session.login, "logout")
         response = RedirectResponse("/login", status_code=303)
         response.delete_cookie(SESSION_COOKIE, path="/")
+        return response
+
+    def password_form(request: Request, session: Session, form: FormData) -> Response:
+        must = accounts.account_standing(desk.store, session.user_id).must_change_password
+        return page("password.html", session=session, error=None, done=False, must_change=must)
+
+    def password_change(request: Request, session: Session, form: FormData) -> Response:
+        """The person's own new password; every session of theirs ends and this one starts afresh."""
+        try:
+            user = change_password(desk, session.user_id, current=str(form.get("current", "")),
+                                   new=str(form.get("new", "")), repeat=str(form.get("repeat", "")),
+                                   client=client(request))
+        except (PasswordNotChanged, InputError) as exc:
+            must = accounts.account_standing(desk.store, session.user_id).must_change_password
+            return page("password.html", 403 if isinstance(exc, PasswordNotChanged) else 400, session=session,
+                        error=str(exc), done=False, must_change=must)
+        registry.end_all_of(user.id)
+        token, fresh = registry.start(user.id, user.login, user.printed_name, user.role, user.credentials_version)
+        response = page("password.html", session=fresh, error=None, done=True, must_change=False,
+                        key_resealed=user.key_file is not None)
+        response.set_cookie(SESSION_COOKIE, token, httponly=True, secure=secure, samesite="strict", path="/")
         return response
 
     def morning(request: Request, session: Session, form: FormData) -> Response:
@@ -259,7 +296,9 @@ def create_app(desk: Desk, *, clock: Callable[[], float] | None = None) -> Starl
     routes = [
         Route("/login", login_page, methods=["GET"]),
         Route("/login", login, methods=["POST"]),
-        Route("/logout", guarded(logout), methods=["POST"]),
+        Route("/logout", guarded(logout, before_new_password=True), methods=["POST"]),
+        Route("/password", guarded(password_form, before_new_password=True), methods=["GET"]),
+        Route("/password", guarded(password_change, before_new_password=True), methods=["POST"]),
         Route("/", guarded(morning), methods=["GET"]),
         Route("/lot", guarded(lot), methods=["GET"]),
         Route("/lot/sign", guarded(sign_form), methods=["GET"]),

@@ -21,6 +21,7 @@ class Session:
     printed_name: str
     role: str
     csrf: str
+    credentials_version: int = 0  # the account's password when the session began; a new one ends the session
 
 
 def _key(token: str) -> str:
@@ -34,9 +35,10 @@ class SessionRegistry:
         self._sessions: dict[str, tuple[Session, float]] = {}
         self._lock = threading.Lock()
 
-    def start(self, user_id: int, login: str, printed_name: str, role: str) -> tuple[str, Session]:
+    def start(self, user_id: int, login: str, printed_name: str, role: str,
+              credentials_version: int = 0) -> tuple[str, Session]:
         token = secrets.token_urlsafe(32)
-        session = Session(user_id, login, printed_name, role, secrets.token_urlsafe(32))
+        session = Session(user_id, login, printed_name, role, secrets.token_urlsafe(32), credentials_version)
         with self._lock:
             self._sessions[_key(token)] = (session, self.clock())
         return token, session
@@ -65,6 +67,7 @@ class SessionRegistry:
         return None if found is None else found[0]
 
     def end_all_of(self, user_id: int) -> None:
+        """End every session of an account (a new password: the person signs in again elsewhere)."""
         with self._lock:
             for key in [k for k, (s, _) in self._sessions.items() if s.user_id == user_id]:
                 del self._sessions[key]

@@ -168,6 +168,28 @@ class DeskAccountEvent(Base):
     row_sha256: Mapped[str | None] = mapped_column(String(64), nullable=True)
 
 
+class DeskCredentials(Base):
+    """A desk account's password (Argon2 hash) and sealed signing identity from now on (migration 0008).
+
+    The person changed their own password (``changed``: the key re-sealed under the new one) or an
+    administrator set one (``reset``: the key cannot be opened without the old password, so it is
+    re-imported from the person's PKCS#12 or the account keeps none). The latest row of an account
+    is in force; with none, the account's own row is.
+    """
+
+    __tablename__ = "desk_credentials"
+    id: Mapped[int] = mapped_column(Integer, primary_key=True)
+    user_id: Mapped[int] = mapped_column(ForeignKey("desk_users.id"), index=True)
+    kind: Mapped[str] = mapped_column(String(20))
+    password_hash: Mapped[str] = mapped_column(String(200))
+    key_file: Mapped[str | None] = mapped_column(String(200), nullable=True)
+    key_sha256: Mapped[str | None] = mapped_column(String(64), nullable=True)
+    signer_certificate_sha256: Mapped[str | None] = mapped_column(String(64), nullable=True)
+    set_at_utc: Mapped[dt.datetime] = mapped_column(DateTime(timezone=True))
+    set_by: Mapped[str] = mapped_column(String(120))
+    row_sha256: Mapped[str | None] = mapped_column(String(64), nullable=True)
+
+
 # --- the lot record (migration 0005): results across nights, investigations, documents' status ---------------
 # Append-only: a result's new standing (superseded, invalidated) is a new row naming the row it
 # changes (``replaces``); an investigation outcome and a document's new status are rows of their own.
@@ -271,6 +293,7 @@ RECORD_TABLES: tuple[type[Base], ...] = (
     NightRun, InputFile, Lot, DecisionRow, ResultRow, ControlLimitRow, ChartPoint, NightClosing, LimsExport,
     LotResultRow, InvestigationRow, DocumentStatusRow,  # the lot record (migrations 0005, 0007)
     DeskUser, DeskAccountEvent,  # the desk's accounts and what happens to them (migrations 0006, 0007)
+    DeskCredentials,  # a desk account's password and sealed key after a change or a reset (migration 0008)
 )
 # The audit chain itself is append-only too (refused UPDATE/DELETE), but it is the chain, not a chained row.
 APPEND_ONLY_TABLES: tuple[str, ...] = (*(t.__tablename__ for t in RECORD_TABLES), AuditEvent.__tablename__)
