@@ -77,7 +77,8 @@ def _night(root, files):
     return {o.lot_id: (o.revision, o.label) for o in summary.outcomes}, ws, store
 
 
-def _scenario(root, person, database_url=None):
+def night_workspace(root, database_url=None):
+    """A workspace for the demo plant's nights (SQLite, or the database at ``database_url``)."""
     settings = {"plant_name": demo.PLANT_NAME, "time_zone": demo.PLANT_TIME_ZONE,
                 "signing": {"signer_name": demo.DEMO_SIGNER}}
     if database_url:
@@ -86,6 +87,11 @@ def _scenario(root, person, database_url=None):
     (root / "keys").mkdir(parents=True, exist_ok=True)
     (root / "keys" / "use-demo-identity").touch()
     (root / "inbox").mkdir(exist_ok=True)
+    return root
+
+
+def _scenario(root, person, database_url=None):
+    night_workspace(root, database_url)
     rng = np.random.default_rng(11)
     lipase, protease = _lots()
     l_ids, (p1, p2, p3, p4) = [lot.lot_id for lot in lipase], protease

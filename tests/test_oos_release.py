@@ -22,13 +22,12 @@ from sqlalchemy import inspect, text
 from flows import cli
 from pipeline.demo import plant as demo
 from pipeline.records.demo_trust import create_demo_trust
-from pipeline.records.workspace import write_settings
 from pipeline.release.lot_record import Investigation, LotHistory, LotResult
 from pipeline.release.records import RecordedResult
 from pipeline.release.release_bars import release_bars
 from pipeline.vocabulary import InvestigationOutcome, ReleaseBar, ResultStatus, Verdict
 from tests.pg import fresh_database
-from tests.test_lot_record_nights import DAY, _files, _night
+from tests.test_lot_record_nights import DAY, _files, _night, night_workspace
 
 PERSON = "mira.castellan"  # the demo register's reviewer: release, rejection, result invalidation
 
@@ -41,18 +40,6 @@ def database(request):
     url, drop = fresh_database()
     yield url
     drop()
-
-
-def _workspace(root, database_url):
-    settings = {"plant_name": demo.PLANT_NAME, "time_zone": demo.PLANT_TIME_ZONE,
-                "signing": {"signer_name": demo.DEMO_SIGNER}}
-    if database_url:
-        settings["database_url"] = database_url
-    write_settings(root, settings)
-    (root / "keys").mkdir(parents=True, exist_ok=True)
-    (root / "keys" / "use-demo-identity").touch()
-    (root / "inbox").mkdir(exist_ok=True)
-    return root
 
 
 def _protease(count=3, oos=(1, 2)):
@@ -112,7 +99,7 @@ def _oos_text(store, lot):
 
 
 def test_a_person_cannot_release_an_oos_lot_until_its_investigation_and_retest_allow_it(database, tmp_path, capsys):
-    root = _workspace(tmp_path / "w", database)
+    root = night_workspace(tmp_path / "w", database)
     rng = np.random.default_rng(11)
     lots = _protease()
     good, p2, p3 = (lot.lot_id for lot in lots)
@@ -165,7 +152,7 @@ def test_an_undecided_result_is_not_released_by_a_person(database, tmp_path, cap
     # "< 50 CFU/g" against ≤ 30 CFU/g: values below 50 include 12 and 45, so it neither meets the limit
     # nor proves a failure (docs/assay-rules.md, "Judging by meaning"). No investigation outcome can be
     # recorded against it (it is not OOS); a retest whose range settles the limit is the way on.
-    root = _workspace(tmp_path / "w", database)
+    root = night_workspace(tmp_path / "w", database)
     (lot,) = _protease(count=1, oos=())
     files = _files(DAY, [], [lot], np.random.default_rng(11))
     (name,) = [n for n in files if n.startswith(f"lims-{lot.lot_id}")]
