@@ -42,6 +42,7 @@ def _a_barred_release_is_refused_and_writes_nothing(space):
     page = c.get("/lot", params={"id": OOS_LOT}).text
     assert 'id="release"' not in page and 'id="reject"' in page  # rejection stays possible
     assert escape(reason) in page and 'id="release-barred"' in page
+    assert "Nothing was recorded" not in page  # said only when an act was refused
     form = c.get("/lot/sign", params={"id": OOS_LOT, "act": "release"}).text
     assert escape(reason) in form  # said before the password is typed
     before = counts(space), _workspace_files(space)
@@ -51,6 +52,7 @@ def _a_barred_release_is_refused_and_writes_nothing(space):
                                          "reason": "batch record reviewed, release wanted",
                                          "password": PASSWORDS[DeskRole.REVIEWER]})
     assert response.status_code == 400 and 'id="refusal"' in response.text and escape(reason) in response.text
+    assert "Nothing was recorded." in response.text
     assert (counts(space), _workspace_files(space)) == before  # no record, no event, no certificate
     assert accounts.account_kinds(store, user.id) == account_events  # no desk signature either
     assert store.latest_decision(OOS_LOT).revision == 1

@@ -187,7 +187,8 @@ def create_app(desk: Desk, *, clock: Callable[[], float] | None = None) -> Starl
         view = lot_view(desk.ws, desk.store, lot_id, ())
         if view is None:
             return page("message.html", 404, session=session, title="No such lot",
-                        message=f"No decision is stored for lot {lot_id}.")
+                        message=f"No decision is stored for lot {lot_id}." if lot_id else
+                        "No lot was named: open a lot from the morning view.")
         product = view.latest.record.product
         charts = [chart_page_data(desk.ws, desk.store, product, code, highlight=lot_id)
                   for code in trended.get(product, ())]

@@ -81,7 +81,7 @@ def refusal(lot_id: str, bars: tuple[BarredResult, ...], record: DecisionRecord,
     """The one line that refuses a person's release of ``lot_id`` for ``bars``."""
     results = "; ".join(_result_text(b, attributes.get(b.attribute), record) for b in bars)
     return (f"lot {lot_id} cannot be released: {results}. A certificate needs every result to show the lot meets "
-            f"its specification: {_next_step(lot_id, bars)}. Nothing was recorded.")
+            f"its specification: {_next_step(lot_id, bars)}.")
 
 
 def release_refusal(ws: Workspace, store: Store, latest: StoredDecision) -> str | None:
@@ -97,4 +97,4 @@ def check_release(ws: Workspace, store: Store, latest: StoredDecision) -> None:
     """Refuse, before anything is written, a person's release that ``release_refusal`` bars."""
     why = release_refusal(ws, store, latest)
     if why is not None:
-        raise InputError(why)
+        raise InputError(f"{why} Nothing was recorded.")
