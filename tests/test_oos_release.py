@@ -208,3 +208,31 @@ def test_each_kind_of_result_that_bars_a_release():
     # a later valid OOS after an invalidated one stands again (a failed retest needs its own outcome)
     twice = LotHistory((*invalidated.results, _stored("lead", Verdict.FAIL, 2)), invalidated.investigations)
     assert [b.bar for b in release_bars([_result("lead", "fail", "7.0")], twice)] == [ReleaseBar.OPEN_OOS]
+
+
+def test_an_outcome_recorded_after_the_retest_decides_the_lot_again_at_the_next_night(database, tmp_path, capsys):
+    # The retest is often run while the investigation is open (its second phase) and reaches lotgate
+    # before the outcome. The next night, with no data for the lot, decides it again from its record.
+    root = night_workspace(tmp_path / "w", database)
+    rng = np.random.default_rng(11)
+    lots = _protease()
+    _, p2, p3 = (lot.lot_id for lot in lots)
+    _night(root, _files(DAY, [], lots, rng))
+    retests = [replace(lot, vmax_u_per_mg=demo.PROTEASE.vmax_u_per_mg) for lot in lots[1:]]
+    got, ws, store = _night(root, _files(DAY + dt.timedelta(1), [], retests, rng, lims=False))
+    assert got[p2] == got[p3] == (2, "held: out of specification")  # the OOS results stand
+    _investigate(ws, p2, capsys, "invalidated", "INV-T-3")
+    _investigate(ws, p3, capsys, "confirmed", "INV-T-4")
+    other = demo._plan_lots(demo.PROTEASE, 3, DAY + dt.timedelta(2), 1, np.random.default_rng(5))
+    got, ws, store = _night(root, _files(DAY + dt.timedelta(2), [], other, rng))
+    assert got[p2] == (3, "ready for release")  # the invalidated result gives way to the retest on record
+    assert got[p3] == (3, "held: out of specification")  # a confirmed OOS result stands
+    decided = store.latest_decision(p2).record
+    assert {r.code: r.verdict for r in decided.results}["specific_activity"] == "pass"
+    assert (ws.certificates / decided.certificate.file).is_file()
+    got, ws, store = _night(root, _files(DAY + dt.timedelta(3), [], [], rng))
+    assert p2 not in got and p3 not in got  # decided once: a further night without news leaves them
+    code, err = _decide(ws, p2, capsys)
+    assert code == 0, err
+    if database:
+        store.engine.dispose()

@@ -16,7 +16,12 @@ from pipeline.records.chart_queries import (
     released_count,
     released_points,
 )
-from pipeline.records.lot_record_store import charted_lots, load_histories, pending_lots
+from pipeline.records.lot_record_store import (
+    charted_lots,
+    investigated_lots,
+    load_histories,
+    pending_lots,
+)
 from pipeline.records.store import Store
 from pipeline.release.chart_view import held_marks
 from pipeline.release.decision import (
@@ -30,7 +35,7 @@ from pipeline.release.decision import (
 )
 from pipeline.release.lot_evaluation import LotEvaluation
 from pipeline.release.lot_record import LotHistory
-from pipeline.release.pending import overdue_recheck
+from pipeline.release.pending import investigation_recheck, latest_assay_date, overdue_recheck
 from pipeline.vocabulary import Disposition, HoldCategory, NelsonRule
 
 BASELINE_REACHED = "lotgate (baseline reached)"  # who froze a chart's first limits: the nightly job
@@ -116,7 +121,8 @@ def earlier_decisions(store: Store, evaluations: list[LotEvaluation]) -> dict[st
 @dataclass(frozen=True)
 class NightRecords:
     """The night's lots' records before tonight, which of them are on a control chart already, and
-    the pending lots without data tonight whose awaited results have turned overdue."""
+    the lots without data tonight decided again from their record: pending lots whose awaited results
+    have turned overdue, and held lots whose record gained an investigation outcome since."""
 
     histories: dict[str, LotHistory]
     charted: frozenset[tuple[str, str, str]]
@@ -133,19 +139,26 @@ def night_date(evaluations: list[LotEvaluation], time_zone: str) -> str:
 def lot_records(store: Store, catalog: Catalog, evaluations: list[LotEvaluation],
                 time_zone: str = "UTC") -> NightRecords:
     """Each lot's record as it stood before tonight (what a stopped attempt of this night stored left out,
-    as ``load_charts`` does), and the pending lots to decide again because a result turned overdue."""
+    as ``load_charts`` does), and the lots to decide again without data: pending ones whose result turned
+    overdue, held ones whose record gained an investigation outcome after their decision."""
     fingerprints = [lot_fingerprint(e, catalog, __version__) for e in evaluations]
     attempt = {stored.id for stored in store.known_fingerprints(fingerprints).values()}
     lots = [e.lot_id for e in evaluations]
     tonight = set(lots)
     waiting = [(lot, product, made) for lot, product, made in pending_lots(store)
                if lot not in tonight and product in catalog.specifications and made]
-    histories = load_histories(store, [*lots, *(lot for lot, _, _ in waiting)], attempt)
+    investigated = [(lot, product, made) for lot, product, made in investigated_lots(store)
+                    if lot not in tonight and product in catalog.specifications and made]
+    again = [lot for lot, _, _ in investigated]
+    histories = load_histories(store, [*lots, *(lot for lot, _, _ in waiting), *again], attempt)
     as_of = night_date(evaluations, time_zone)
     rechecks = tuple(check for lot, product, made in waiting if (check := overdue_recheck(
         catalog.specification_for_lot(product, made, as_of), lot, made, as_of,
         histories.get(lot, LotHistory()))) is not None)
-    return NightRecords(histories, charted_lots(store, lots, attempt), rechecks)
+    for lot, product, made in investigated:
+        assayed = latest_assay_date(histories.get(lot, LotHistory()), as_of)
+        rechecks += (investigation_recheck(catalog.specification_for_lot(product, made, assayed), lot, made, assayed),)
+    return NightRecords(histories, charted_lots(store, [*lots, *again], attempt), rechecks)
 
 
 def decide(evaluations: list[LotEvaluation], catalog: Catalog, charts: dict[ChartKey, ChartState],

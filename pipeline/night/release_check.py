@@ -69,8 +69,8 @@ def _next_step(lot_id: str, bars: tuple[BarredResult, ...]) -> str:
         steps.append(f"record the investigation outcome (lotgate investigate {lot_id} --test {open_oos[0]} "
                      "--outcome invalidated|confirmed --reference INV-… --reason …, or at the desk)")
     if ReleaseBar.INVALIDATED in kinds:
-        steps.append("let the retest's result reach the lot through a night (the night that receives results of "
-                     "the lot decides it again)")
+        steps.append("let the next night decide the lot again from its record (with the retest's result, once "
+                     "it has arrived)")
     if kinds & {ReleaseBar.UNDECIDED, ReleaseBar.NO_VALID_RESULT}:
         steps.append("have the test done again (the night that receives its result decides the lot again)")
     return f"{' and '.join(steps)}, or reject the lot ({reject})"

@@ -114,6 +114,21 @@ def charted_lots(store: Any, lot_ids: list[str], exclude_decisions: set[int] | N
     return frozenset(out)
 
 
+def investigated_lots(store: Any) -> list[tuple[str, str, str]]:
+    """(lot, product, manufactured on) of every lot the nightly job holds whose record gained a signed
+    investigation outcome after that decision: its record now reads otherwise, so it is decided again."""
+    later = (select(InvestigationRow.id).where(InvestigationRow.lot_id == DecisionRow.lot_id,
+                                               InvestigationRow.recorded_at_utc > DecisionRow.decided_at_utc)
+             .exists())
+    with store.session() as s:
+        rows = s.execute(select(DecisionRow.lot_id, Lot.product_code, Lot.manufactured_on)
+                         .join(Lot, Lot.lot_id == DecisionRow.lot_id)
+                         .where(is_latest_revision(), DecisionRow.disposition == "held",
+                                DecisionRow.decided_by.startswith("lotgate"), later)
+                         .order_by(DecisionRow.lot_id)).all()
+    return [(lot, product, made or "") for lot, product, made in rows]
+
+
 def pending_lots(store: Any) -> list[tuple[str, str, str]]:
     """(lot, product, manufactured on) of every lot whose latest decision is the nightly job's "pending"."""
     with store.session() as s:

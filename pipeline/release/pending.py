@@ -22,7 +22,7 @@ from pipeline.release.lot_record import (
     apply_record,
     result_of,
 )
-from pipeline.release.records import TrendFinding
+from pipeline.release.records import AttributeVerdict, TrendFinding
 from pipeline.release.verdicts import disposition, judge_lims, judge_measurement
 from pipeline.vocabulary import Disposition, HoldCategory
 
@@ -71,12 +71,30 @@ def record_disposition(evaluation: LotEvaluation, trend: Iterable[TrendFinding],
     return state, categories, (*reasons, *extra)
 
 
+def _nothing_tonight(spec: Specification) -> tuple[AttributeVerdict, ...]:
+    return tuple(judge_lims(a, None, None) if a.source == "lims" else judge_measurement(a, None, None)
+                 for a in spec.attributes)
+
+
+def latest_assay_date(history: LotHistory, as_of: str) -> str:
+    """The date of the lot's latest recorded result (``as_of`` when it has none)."""
+    return max((r.tested_on for r in history.results if r.tested_on), default=as_of)
+
+
+def investigation_recheck(spec: Specification, lot_id: str, manufactured_on: str, assay_date: str) -> LotEvaluation:
+    """A held lot with no data tonight whose record gained an investigation outcome: decided again from
+    its record as a night with its latest results (of ``assay_date``) would decide it, verdicts and
+    trend from the record, so a retest that came in before the outcome counts."""
+    return LotEvaluation(lot_id=lot_id, product_code=spec.product_code, manufactured_on=manufactured_on,
+                         assay_date=assay_date, measurements={}, verdicts=_nothing_tonight(spec), incomplete=(),
+                         kinetics=None, plates=(), input_files={})
+
+
 def overdue_recheck(spec: Specification, lot_id: str, manufactured_on: str, as_of: str,
                     history: LotHistory) -> LotEvaluation | None:
     """A pending lot with no data tonight, to be decided again from its record alone when one of its
     awaited results has turned overdue by ``as_of``; None while it is still only pending."""
-    verdicts = tuple(judge_lims(a, None, None) if a.source == "lims" else judge_measurement(a, None, None)
-                     for a in spec.attributes)
+    verdicts = _nothing_tonight(spec)
     evaluation = LotEvaluation(lot_id=lot_id, product_code=spec.product_code, manufactured_on=manufactured_on,
                                assay_date=as_of, measurements={}, verdicts=verdicts, incomplete=(), kinetics=None,
                                plates=(), input_files={}, record_only=True)
