@@ -333,7 +333,11 @@ def render_certificate_with_slot(dossier: dict[str, Any],
         ("Manufactured on", para(get(lot, "manufactured_on"), "cell", 60)),
         ("Assay date", para(get(lot, "assay_date"), "cell", 60)),
         ("Disposition", mpara("<b>{d}</b>, decided {t}", "cell", d=get(decision, "label", Disposition.RELEASED),
-                              t=get(decision, "decided_at_local"))),
+                              t=get(decision, "decided_at_local"))
+                        if not awaiting else
+                        mpara("<b>{d}</b>, decided {t}; released only by the authorised person's signature in the "
+                              "approval box at the end of this certificate", "cell",
+                              d=get(decision, "label"), t=get(decision, "decided_at_local"))),
     ], 34 * mm, CONTENT_W - 34 * mm))
     story += [Paragraph("Results", st["h2"]),
               grid_table(rows, [50 * mm, 30 * mm, 30 * mm, 36 * mm, CONTENT_W - 146 * mm], zebra=True,
