@@ -146,8 +146,9 @@ def _stages(ws: Workspace, store: Store, signer: CertificateSigner, step: dict,
     assembly = timed("assemble", intake, catalog)
     evaluations, _plates = timed("evaluate", assembly, catalog)
     charts = timed("load_charts", store, catalog, evaluations)
-    decided = timed("decide", evaluations, catalog, charts, earlier_decisions(store, evaluations),
-                    lot_records(store, catalog, evaluations, ws.time_zone))
+    records = lot_records(store, catalog, evaluations, ws.time_zone)  # with the lots decided again from them
+    decided = timed("decide", evaluations, catalog, charts, earlier_decisions(store, [*evaluations, *records.rechecks]),
+                    records)
     fan_out = None
     if orchestrated and ws.fan_out_deployment is not None:
         from flows.fanout import renderers_for
