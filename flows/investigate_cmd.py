@@ -27,7 +27,7 @@ def cmd_investigate(args: argparse.Namespace) -> int:
                   f"{done.result.tested_on}); signed with your identity and chained in the audit trail.")
     if args.outcome == "invalidated":
         console.print("The result is invalidated; the next valid result of the test counts (a retest is needed "
-                      "if none has arrived; the lot's next revision comes with its next results).")
+                      "if none has arrived). The next night decides the lot again from its record.")
     else:
         console.print("The result stands: the lot stays held until an authorised person rejects it (lotgate decide --reject).")
     return 0

@@ -161,7 +161,10 @@ def _plates(dossier: dict[str, Any]) -> list[Any]:
     out: list[Any] = [Paragraph("Assay validity", st["h2"])]
     plates = [p for p in _items(get(dossier, "plates", [])) if isinstance(p, dict)]
     if not plates:
-        out.append(Paragraph("No plate results in this dossier.", st["body"]))
+        out.append(Paragraph("No plate of this lot was read for this revision: its results are taken from the lot "
+                             "record (below, with the plates and files each came from)."
+                             if _items(get(get(dossier, "record", {}), "attributes", [])) else
+                             "No plate results in this dossier.", st["body"]))
     known = {"plate_id", "method", "valid", "reasons", "reference_recovery_pct", "blank_rate_au_per_min",
              "curve_accepted", "curve_r2", "method_version"}
     rows: list[list[Any]] = [["Plate", "Method", "Valid", "Criteria", "Reasons"]]

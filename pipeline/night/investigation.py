@@ -6,8 +6,9 @@ it. "Assignable laboratory cause: result invalidated" gives the OOS result the s
 test counts; "confirmed OOS" leaves the result standing and the lot held until an authorised
 person rejects it (``lotgate decide --reject``). The outcome, the reason and the retest plan are
 signed with the person's identity (PKCS#12 and passphrase, as ``lotgate decide``) and chained in
-the audit trail. The lot's next revision comes with its next results (a retest) or a person's
-decision; the outcome itself does not decide the lot.
+the audit trail. The outcome itself does not decide the lot: the next night decides it again from
+its record, with or without data for it that night (``pipeline.night.decide.lot_records``), or a
+person decides it.
 """
 
 from __future__ import annotations
