@@ -27,9 +27,7 @@ def _attributes(ws: Workspace, record: DecisionRecord) -> dict[str, Attribute]:
         catalog = load_catalog(controlled_folders(ws), ws.specification_date)
     except LotgateError:  # the limits are then named by the specification's version only
         return {}
-    versions = catalog.specification_versions.get(record.product) or (
-        (catalog.specifications[record.product],) if record.product in catalog.specifications else ())
-    chosen = [s for s in versions if s.document.version == record.spec_version]
+    chosen = [s for s in catalog.all_specifications(record.product) if s.document.version == record.spec_version]
     exact = [s for s in chosen if s.document.sha256 == record.spec_sha256]
     spec = (exact or chosen or [None])[0]
     return {} if spec is None else {a.code: a for a in spec.attributes}
