@@ -22,7 +22,7 @@ def cmd_approve(args: argparse.Namespace) -> int:
     identity = load_person_identity(args)
     console = _console()
     with run_lock(ws.root, store):
-        lots = lots_ready(store, night_id=args.night, lots=tuple(args.lots))
+        lots = lots_ready(store, night_id=args.night, lots=tuple(args.lots), site_id=ws.site_id())
         if not lots:
             console.print(f"No lot of night {args.night} is ready for release; nothing approved.")
             return 0

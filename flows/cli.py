@@ -201,7 +201,7 @@ def _demo_approvals(root: Path, console) -> None:
     p12, passphrase = create_demo_trust(ws.keys, ws.plant_name).identity_of(DEMO_APPROVER)
     identity = signing.load_identity(p12, passphrase_env="", passphrase_file=passphrase)
     with run_lock(ws.root, store):
-        lots = lots_ready(store)
+        lots = lots_ready(store, site_id=ws.site_id())
         done = approve_lots(ws, store, lots, identity=identity, reason=DEMO_APPROVAL_REASON) if lots else []
     console.rule(f"Approval by {identity.signer_name} (demo reviewer, in the demo register of authorised signers)")
     if not done:

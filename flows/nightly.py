@@ -146,7 +146,7 @@ def _stages(ws: Workspace, store: Store, signer: CertificateSigner, step: dict,
     assembly = timed("assemble", intake, catalog)
     evaluations, _plates = timed("evaluate", assembly, catalog)
     charts = timed("load_charts", store, catalog, evaluations)
-    records = lot_records(store, catalog, evaluations, ws.time_zone)  # with the lots decided again from them
+    records = lot_records(store, catalog, evaluations, ws.time_zone, ws.site_id())  # with the lots decided again from them
     decided = timed("decide", evaluations, catalog, charts, earlier_decisions(store, [*evaluations, *records.rechecks]),
                     records)
     fan_out = None

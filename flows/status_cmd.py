@@ -75,7 +75,7 @@ def gather(root: Path):
     if sqlite_file is not None and not sqlite_file.exists():
         store = StoreStatus(True, None, None, schema_head(), (), ())
     else:
-        store = store_status(ws.database_url, workspace_id(ws.root))
+        store = store_status(ws.database_url, workspace_id(ws.root), shared=ws.store_shared)
     last_scheduled = upcoming = None
     if ws.schedule_cron:
         from zoneinfo import ZoneInfo

@@ -119,7 +119,8 @@ def test_server_pool_two_workers_two_sites_and_the_run_lock(tmp_path):
             # both sites at once, on the two workers
             runs = {name: run_deployment(f"lotgate-night/night-{name}", timeout=0) for name in sites}
             states = {name: _final_state(client, run.id, 400, started) for name, run in runs.items()}
-            assert all(s.is_completed() for s in states.values()), states
+            assert all(s.is_completed() for s in states.values()), (
+                f"{states}\n" + "\n".join(f"--- {w.name} ---\n{w.output()[-6000:]}" for w in workers))
             ran_on = {client.read_flow_run(run.id).work_queue_name for run in runs.values()}
             assert ran_on == {"site-a", "site-b"}
         decisions = Store(store_url).decisions()

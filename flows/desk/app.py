@@ -33,6 +33,7 @@ from flows.desk.sessions import Session, SessionRegistry, same_token
 from flows.desk.views import document_path, lot_view, morning_view
 from pipeline.errors import InputError, LotgateError, NotFound
 from pipeline.night.release_check import release_refusal
+from pipeline.night.site_lots import latest_of_site
 from pipeline.records import audit
 from pipeline.records import desk_accounts as accounts
 from pipeline.records.desk_queries import trail_events
@@ -211,7 +212,7 @@ def create_app(desk: Desk, *, clock: Callable[[], float] | None = None) -> Starl
         return {"approve": DeskAct.APPROVE, "release": DeskAct.RELEASE}.get(str(word), DeskAct.REJECT)
 
     def _sign_context(session: Session, lot_id: str, act: DeskAct) -> dict[str, Any]:
-        latest = desk.store.latest_decision(lot_id)
+        latest = latest_of_site(desk.ws, desk.store, lot_id)
         if latest is None:
             raise acts.ActRefused(f"no decision is stored for lot {lot_id}")
         return dict(session=session, lot=latest, act=str(act), meaning=acts.meaning_of(act), error=None)

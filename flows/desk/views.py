@@ -13,6 +13,7 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
+from pipeline.night.site_lots import latest_of_site
 from pipeline.records.desk_queries import (
     NightCounts,
     current_decisions,
@@ -123,11 +124,12 @@ def reconcile(store: Store, night: NightCounts) -> Reconciliation:
 def morning_view(ws: Workspace, store: Store, *, night_id: int | None = None) -> MorningView:
     """The morning view of the workspace now; ``night_id``: with that night as the latest (its static page,
     written as the night ends). Settled lots (released, rejected) are counted in the database, not read."""
-    nights = latest_nights(store, 5 if night_id is None else 10_000)
+    site = ws.site_id()
+    nights = latest_nights(store, 5 if night_id is None else 10_000, site)
     if night_id is not None:
         nights = [n for n in nights if n.id <= night_id][:5]
-    groups, others = group_lots(current_decisions(store, except_dispositions=SETTLED), ws.time_zone)
-    settled = current_disposition_counts(store)
+    groups, others = group_lots(current_decisions(store, except_dispositions=SETTLED, site_id=site), ws.time_zone)
+    settled = current_disposition_counts(store, site)
     others = tuple(sorted({**dict(others), **{d: n for d, n in settled.items() if d in SETTLED}}.items()))
     latest = nights[0] if nights else None
     quarantined = tuple(set_aside_files(store, [n.id for n in nights]))
@@ -167,6 +169,8 @@ def _dossier(ws: Workspace, decision: StoredDecision) -> dict[str, Any]:
 
 
 def lot_view(ws: Workspace, store: Store, lot_id: str, trended: tuple[str, ...]) -> LotView | None:
+    if latest_of_site(ws, store, lot_id) is None:
+        return None
     history = tuple(store.decisions(lot_id))
     if not history:
         return None

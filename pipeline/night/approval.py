@@ -22,6 +22,7 @@ from dataclasses import dataclass
 from pipeline.errors import InputError, NotFound, SigningError
 from pipeline.night.lot_documents import place_document, staging_folder
 from pipeline.night.seal import seal_after_act
+from pipeline.night.site_lots import latest_of_site
 from pipeline.records import audit, ledger
 from pipeline.records.desk_queries import current_decisions
 from pipeline.records.signer_check import PersonCheck, authorise_person
@@ -49,17 +50,19 @@ class Approved:
     signed_at_utc: str
 
 
-def lots_ready(store: Store, *, night_id: int | None = None, lots: tuple[str, ...] = ()) -> list[str]:
-    """The lots to approve: the named ones, else those ready for release of one night (of every night: None)."""
+def lots_ready(store: Store, *, night_id: int | None = None, lots: tuple[str, ...] = (),
+               site_id: str | None = None) -> list[str]:
+    """The lots to approve: the named ones, else those of the site ``site_id`` (None: every lot) ready for
+    release of one night (of every night: None)."""
     if lots:
         return list(dict.fromkeys(lots))
-    current = [d for d in current_decisions(store)  # each lot's latest revision, found in the database
+    current = [d for d in current_decisions(store, site_id=site_id)  # each lot's latest revision, found in the database
                if d.disposition == Disposition.READY_FOR_RELEASE and night_id in (None, d.record.night_id)]
     return [d.lot_id for d in current]
 
 
-def _current(store: Store, lot_id: str) -> StoredDecision:
-    latest = store.latest_decision(lot_id)
+def _current(ws: Workspace, store: Store, lot_id: str) -> StoredDecision:
+    latest = latest_of_site(ws, store, lot_id)
     if latest is None:
         raise NotFound(f"lot {lot_id} has no decision in the store; nothing to approve")
     if latest.disposition != Disposition.READY_FOR_RELEASE:
@@ -75,7 +78,7 @@ def approve_lot(ws: Workspace, store: Store, lot_id: str, *, identity: SigningId
                 at: dt.datetime | None = None) -> Approved:
     """Approve one ready lot: the person's signature on its certificate, and the released revision."""
     reason = checked_reason(reason, ws.reason_pattern)
-    latest = _current(store, lot_id)
+    latest = _current(ws, store, lot_id)
     signed_at = (at or dt.datetime.now(dt.UTC)).replace(microsecond=0)
     register, register_events = register_in_force(ws, store)
     check: PersonCheck = authorise_person(identity, SignerRole.RELEASE_APPROVAL, anchor_path=ws.trust_root,
@@ -132,7 +135,7 @@ def approve_lots(ws: Workspace, store: Store, lot_ids: list[str], *, identity: S
     register, _ = register_in_force(ws, store)
     authorise_person(identity, SignerRole.RELEASE_APPROVAL, anchor_path=ws.trust_root, register=register)
     for lot_id in lot_ids:
-        _current(store, lot_id)
+        _current(ws, store, lot_id)
     done = [approve_lot(ws, store, lot_id, identity=identity, reason=reason) for lot_id in lot_ids]
     if done:
         seal_after_act(ws, store, f"release-approved {', '.join(a.lot_id for a in done)}")  # one checkpoint

@@ -25,12 +25,13 @@ LIMS_READ_DECISIONS = 500  # decision records read at a time: a large night's wo
 
 
 def write_lims_results(ws: Workspace, store: Store) -> list[Path]:
-    """Every decision not yet exported, as CSV and JSON plus a SHA-256 manifest (atomic writes).
+    """Every decision not yet exported, as CSV and JSON plus a SHA-256 manifest (atomic writes): of this
+    site's lots only, when sites share the store (each site's LIMS takes its own lots' results).
 
     The file names come from the first and last decision exported, so a night re-run after a
     crash writes the same bytes to the same names, and a night with nothing new writes nothing.
     """
-    pending = store.unexported_decision_ids()
+    pending = store.unexported_decision_ids(ws.site_id())
     if not pending:
         return []
     rows = []

@@ -137,17 +137,18 @@ def night_date(evaluations: list[LotEvaluation], time_zone: str) -> str:
 
 
 def lot_records(store: Store, catalog: Catalog, evaluations: list[LotEvaluation],
-                time_zone: str = "UTC") -> NightRecords:
+                time_zone: str = "UTC", site_id: str | None = None) -> NightRecords:
     """Each lot's record as it stood before tonight (what a stopped attempt of this night stored left out,
     as ``load_charts`` does), and the lots to decide again without data: pending ones whose result turned
-    overdue, held ones whose record gained an investigation outcome after their decision."""
+    overdue, held ones whose record gained an investigation outcome after their decision (of the site
+    ``site_id`` only, when sites share the store: another site's lots are its own nights' work)."""
     fingerprints = [lot_fingerprint(e, catalog, __version__) for e in evaluations]
     attempt = {stored.id for stored in store.known_fingerprints(fingerprints).values()}
     lots = [e.lot_id for e in evaluations]
     tonight = set(lots)
-    waiting = [(lot, product, made) for lot, product, made in pending_lots(store)
+    waiting = [(lot, product, made) for lot, product, made in pending_lots(store, site_id)
                if lot not in tonight and product in catalog.specifications and made]
-    investigated = [(lot, product, made) for lot, product, made in investigated_lots(store)
+    investigated = [(lot, product, made) for lot, product, made in investigated_lots(store, site_id)
                     if lot not in tonight and product in catalog.specifications and made]
     again = [lot for lot, _, _ in investigated]
     histories = load_histories(store, [*lots, *(lot for lot, _, _ in waiting), *again], attempt)

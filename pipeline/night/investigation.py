@@ -20,6 +20,7 @@ from dataclasses import dataclass
 
 from pipeline.errors import InputError, NotFound
 from pipeline.night.seal import seal_after_act
+from pipeline.night.site_lots import latest_of_site
 from pipeline.records import audit, ledger
 from pipeline.records.lot_record_store import InvestigationWrite, add_investigation, load_histories
 from pipeline.records.signer_check import authorise_person
@@ -82,7 +83,7 @@ def record_investigation(ws: Workspace, store: Store, lot_id: str, *, test: str,
     reason = checked_reason(_clean(reason, "a reason (--reason TEXT)"), ws.reason_pattern)
     plan = _clean(retest_plan, "a retest plan (--retest-plan TEXT)") if chosen == InvestigationOutcome.RESULT_INVALIDATED \
         else _clean(retest_plan or "no retest: the result is confirmed", "a retest plan")
-    if store.latest_decision(lot_id) is None:
+    if latest_of_site(ws, store, lot_id) is None:
         raise NotFound(f"lot {lot_id} has no decision in the store at {ws.root}")
     history = load_histories(store, [lot_id]).get(lot_id)
     result = standing_oos(history.results if history else (), test)

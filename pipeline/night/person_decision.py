@@ -26,6 +26,7 @@ from pipeline.night.lot_documents import (
 from pipeline.night.open import IdentitySigner
 from pipeline.night.release_check import check_release
 from pipeline.night.seal import seal_after_act
+from pipeline.night.site_lots import latest_of_site
 from pipeline.records import audit, ledger
 from pipeline.records.signer_check import authorise_person
 from pipeline.records.signer_register import register_in_force
@@ -84,7 +85,7 @@ def decide_lot(ws: Workspace, store: Store, lot_id: str, *, release: bool, reaso
     identity that the register of authorised signers does not allow to release (or reject) at this moment.
     """
     reason = checked_reason(reason, ws.reason_pattern)
-    latest = store.latest_decision(lot_id)
+    latest = latest_of_site(ws, store, lot_id)
     if latest is None:
         raise InputError(f"lot {lot_id} has no decision in the store at {ws.root}; nothing to review")
     base = latest.record

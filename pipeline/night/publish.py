@@ -82,7 +82,8 @@ def _limits_to_store(ws: Workspace, store: Store, newly_frozen: dict[ChartKey, F
                                BASELINE_REACHED, reason, (audit.event(
                                    "limits-frozen", time_zone=ws.time_zone, product=chart, attribute=attribute,
                                    center=frozen.center, sigma=frozen.sigma, mr_bar=frozen.mr_bar,
-                                   baseline_lots=list(frozen.baseline_lots), by=BASELINE_REACHED, reason=reason),)))
+                                   baseline_lots=list(frozen.baseline_lots), by=BASELINE_REACHED, reason=reason),),
+                               first_only=True))
     return tuple(out)
 
 

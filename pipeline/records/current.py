@@ -9,10 +9,10 @@ from __future__ import annotations
 
 from typing import Any
 
-from sqlalchemy import exists, select
+from sqlalchemy import exists, or_, select, true
 from sqlalchemy.orm import Session
 
-from pipeline.records.tables import DecisionRow, NightClosing
+from pipeline.records.tables import DecisionRow, NightClosing, NightRun
 
 
 def is_latest_revision() -> Any:
@@ -34,3 +34,18 @@ def counts_of(closing: NightClosing | None) -> tuple[Any, int, int, int, int]:
         return None, 0, 0, 0, 0
     return (closing.closed_at_utc, closing.files_received or 0, closing.files_archived or 0,
             closing.files_quarantined or 0, closing.lots_decided or 0)
+
+
+def of_site(lot_id: Any, site_id: str | None) -> Any:
+    """Where-clause: the lot ``lot_id`` (a column) belongs to the workspace ``site_id`` of a shared store.
+
+    A lot belongs to the site whose nights decided it: some decision of it was stored by a night of
+    that workspace. A lot decided only by nights from before workspaces had identities belongs to
+    every site. ``site_id`` None (a store of one workspace): every lot.
+    """
+    if site_id is None:
+        return true()
+    decisions, nights = DecisionRow.__table__.alias("site_decisions"), NightRun.__table__.alias("site_nights")
+    decided_by = exists().where(decisions.c.lot_id == lot_id, decisions.c.night_id == nights.c.id)
+    return or_(decided_by.where(nights.c.workspace_id == site_id),
+               ~decided_by.where(nights.c.workspace_id.is_not(None)))

@@ -12,7 +12,7 @@ from typing import Any
 
 from sqlalchemy import func, select
 
-from pipeline.records.current import closings, counts_of, is_latest_revision
+from pipeline.records.current import closings, counts_of, is_latest_revision, of_site
 from pipeline.records.store import Store
 from pipeline.records.stored import StoredDecision, StoredFile, decision_of, file_of, utc
 from pipeline.records.tables import AuditEvent, DecisionRow, InputFile, NightRun
@@ -42,10 +42,13 @@ class TrailEvent:
     body: dict[str, Any]
 
 
-def latest_nights(store: Store, limit: int = 5) -> list[NightCounts]:
-    """The last ``limit`` nights, newest first."""
+def latest_nights(store: Store, limit: int = 5, site_id: str | None = None) -> list[NightCounts]:
+    """The last ``limit`` nights (of the site ``site_id`` and those from before identities), newest first."""
+    query = select(NightRun).order_by(NightRun.id.desc()).limit(limit)
+    if site_id is not None:
+        query = query.where((NightRun.workspace_id == site_id) | NightRun.workspace_id.is_(None))
     with store.session() as s:
-        rows = list(s.scalars(select(NightRun).order_by(NightRun.id.desc()).limit(limit)))
+        rows = list(s.scalars(query))
         ended = closings(s, [r.id for r in rows])
         out = []
         for r in rows:
@@ -55,20 +58,23 @@ def latest_nights(store: Store, limit: int = 5) -> list[NightCounts]:
         return out
 
 
-def current_decisions(store: Store, *, except_dispositions: tuple[str, ...] = ()) -> list[StoredDecision]:
-    """The latest revision of every lot (but those of ``except_dispositions``), in the order decided."""
-    query = select(DecisionRow).where(is_latest_revision()).order_by(DecisionRow.id)
+def current_decisions(store: Store, *, except_dispositions: tuple[str, ...] = (),
+                      site_id: str | None = None) -> list[StoredDecision]:
+    """The latest revision of every lot of the site ``site_id`` (None: of every lot), but those of
+    ``except_dispositions``, in the order decided."""
+    query = select(DecisionRow).where(is_latest_revision(), of_site(DecisionRow.lot_id, site_id)).order_by(DecisionRow.id)
     if except_dispositions:
         query = query.where(DecisionRow.disposition.not_in(except_dispositions))
     with store.session() as s:
         return [decision_of(r) for r in s.scalars(query)]
 
 
-def current_disposition_counts(store: Store) -> dict[str, int]:
-    """How many lots stand at each disposition (their latest revision), counted in the database."""
+def current_disposition_counts(store: Store, site_id: str | None = None) -> dict[str, int]:
+    """How many lots (of the site ``site_id``) stand at each disposition, counted in the database."""
     with store.session() as s:
         return {str(d): int(n) for d, n in s.execute(
-            select(DecisionRow.disposition, func.count(DecisionRow.id)).where(is_latest_revision())
+            select(DecisionRow.disposition, func.count(DecisionRow.id))
+            .where(is_latest_revision(), of_site(DecisionRow.lot_id, site_id))
             .group_by(DecisionRow.disposition))}
 
 

@@ -13,11 +13,11 @@ from collections import defaultdict
 from dataclasses import dataclass
 from typing import Any
 
-from sqlalchemy import select
+from sqlalchemy import exists, select
 from sqlalchemy.orm import Session
 
 from pipeline.records import row_hashes
-from pipeline.records.current import is_latest_revision
+from pipeline.records.current import is_latest_revision, of_site
 from pipeline.records.stored import DecisionWrite, utc
 from pipeline.records.tables import (
     ChartPoint,
@@ -114,9 +114,10 @@ def charted_lots(store: Any, lot_ids: list[str], exclude_decisions: set[int] | N
     return frozenset(out)
 
 
-def investigated_lots(store: Any) -> list[tuple[str, str, str]]:
+def investigated_lots(store: Any, site_id: str | None = None) -> list[tuple[str, str, str]]:
     """(lot, product, manufactured on) of every lot the nightly job holds whose record gained a signed
-    investigation outcome after that decision: its record now reads otherwise, so it is decided again."""
+    investigation outcome after that decision: its record now reads otherwise, so it is decided again.
+    Only the lots of the site ``site_id`` when sites share the store (None: every lot)."""
     later = (select(InvestigationRow.id).where(InvestigationRow.lot_id == DecisionRow.lot_id,
                                                InvestigationRow.recorded_at_utc > DecisionRow.decided_at_utc)
              .exists())
@@ -124,18 +125,20 @@ def investigated_lots(store: Any) -> list[tuple[str, str, str]]:
         rows = s.execute(select(DecisionRow.lot_id, Lot.product_code, Lot.manufactured_on)
                          .join(Lot, Lot.lot_id == DecisionRow.lot_id)
                          .where(is_latest_revision(), DecisionRow.disposition == "held",
-                                DecisionRow.decided_by.startswith("lotgate"), later)
+                                DecisionRow.decided_by.startswith("lotgate"), later,
+                                of_site(DecisionRow.lot_id, site_id))
                          .order_by(DecisionRow.lot_id)).all()
     return [(lot, product, made or "") for lot, product, made in rows]
 
 
-def pending_lots(store: Any) -> list[tuple[str, str, str]]:
-    """(lot, product, manufactured on) of every lot whose latest decision is the nightly job's "pending"."""
+def pending_lots(store: Any, site_id: str | None = None) -> list[tuple[str, str, str]]:
+    """(lot, product, manufactured on) of every lot whose latest decision is the nightly job's "pending"
+    (of the site ``site_id`` only, when sites share the store)."""
     with store.session() as s:
         rows = s.execute(select(DecisionRow.lot_id, Lot.product_code, Lot.manufactured_on)
                          .join(Lot, Lot.lot_id == DecisionRow.lot_id)
                          .where(is_latest_revision(), DecisionRow.disposition == "pending",
-                                DecisionRow.decided_by.startswith("lotgate"))
+                                DecisionRow.decided_by.startswith("lotgate"), of_site(DecisionRow.lot_id, site_id))
                          .order_by(DecisionRow.lot_id)).all()
     return [(lot, product, made or "") for lot, product, made in rows]
 
@@ -197,3 +200,13 @@ def certificate_status(store: Any, file: str) -> CertificateStatus | None:
             if certificate and certificate.get("file") == name:
                 return CertificateStatus(name, row.lot_id, row.revision, certificate["sha256"], "current")
     return None
+
+
+def of_other_site(store: Any, lot_id: str, site_id: str | None) -> bool:
+    """Whether the store holds decisions of ``lot_id`` but the lot belongs to another site sharing it."""
+    if site_id is None:
+        return False
+    with store.session() as s:
+        known = s.scalar(select(exists().where(DecisionRow.lot_id == lot_id)))
+        mine = s.scalar(select(exists().where(DecisionRow.lot_id == lot_id, of_site(DecisionRow.lot_id, site_id))))
+    return bool(known) and not mine

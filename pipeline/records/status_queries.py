@@ -14,7 +14,7 @@ from sqlalchemy import Engine, select, text
 from sqlalchemy.exc import SQLAlchemyError
 from sqlalchemy.orm import Session
 
-from pipeline.records.current import closings, counts_of, is_latest_revision
+from pipeline.records.current import closings, counts_of, is_latest_revision, of_site
 from pipeline.records.database import MIGRATIONS, open_engine, safe_url
 from pipeline.records.stored import utc
 from pipeline.records.tables import AuditEvent, DecisionRow, NightRun
@@ -107,16 +107,17 @@ def _nights(s: Session, workspace_id: str, count: int) -> tuple[NightRow, ...]:
     return tuple(out)
 
 
-def _open_lots(s: Session) -> tuple[OpenLot, ...]:
-    """Each lot's latest decision that still needs a person: anything but released or rejected."""
+def _open_lots(s: Session, site_id: str | None) -> tuple[OpenLot, ...]:
+    """Each lot's latest decision that still needs a person: anything but released or rejected (of the
+    site ``site_id`` when sites share the store)."""
     final = (Disposition.RELEASED.value, Disposition.REJECTED.value)
-    rows = s.scalars(select(DecisionRow).where(is_latest_revision(),
-                                               DecisionRow.disposition.not_in(final)).order_by(DecisionRow.id))
+    rows = s.scalars(select(DecisionRow).where(is_latest_revision(), DecisionRow.disposition.not_in(final),
+                                               of_site(DecisionRow.lot_id, site_id)).order_by(DecisionRow.id))
     return tuple(OpenLot(r.lot_id, str((r.record or {}).get("product", "")), r.disposition,
                          tuple(r.hold_categories or ()), tuple(r.reasons or ()), utc(r.decided_at_utc)) for r in rows)
 
 
-def store_status(url: str, workspace_id: str, nights: int = 5) -> StoreStatus:
+def store_status(url: str, workspace_id: str, nights: int = 5, *, shared: bool = False) -> StoreStatus:
     """What the store says, or why it could not be read (unreachable, not migrated), without changing it."""
     head = schema_head()
     try:
@@ -129,7 +130,8 @@ def store_status(url: str, workspace_id: str, nights: int = 5) -> StoreStatus:
             return StoreStatus(True, f"{safe_url(url)} holds no lotgate tables yet (no night has run)", None, head,
                                (), ())
         with Session(engine) as s:
-            return StoreStatus(True, None, version, head, _nights(s, workspace_id, nights), _open_lots(s))
+            return StoreStatus(True, None, version, head, _nights(s, workspace_id, nights),
+                               _open_lots(s, workspace_id if shared else None))
     except SQLAlchemyError as exc:
         first = str(exc).splitlines()[0][:200]
         return StoreStatus(False, f"{safe_url(url)} did not answer ({exc.__class__.__name__}: {first})", None, head,

@@ -11,13 +11,13 @@ from collections.abc import Callable, Iterator
 from contextlib import contextmanager
 from typing import Any, ClassVar
 
-from sqlalchemy import exists, func, insert, select
+from sqlalchemy import exists, func, insert, select, text
 from sqlalchemy.exc import SQLAlchemyError
 from sqlalchemy.orm import Session, sessionmaker
 
 from pipeline.errors import StoreError
 from pipeline.records import clock, row_hashes
-from pipeline.records.current import is_latest_revision
+from pipeline.records.current import is_latest_revision, of_site
 from pipeline.records.database import migrate, open_engine, safe_url
 from pipeline.records.lot_record_store import write_decision_rows
 from pipeline.records.stored import (
@@ -49,6 +49,7 @@ from pipeline.vocabulary import Disposition
 
 NIGHTS_LOCK_KEY = 472_901_002  # held while a night is started: one workspace claims the store at a time
 AUDIT_LOCK_KEY = 472_901_003
+CHART_LOCK_CLASS = 472_902  # first key of a chart's two-key lock while its limits are frozen; the second its name's hash
 CLOCK_TOLERANCE_MINUTES = 5.0  # an event may be this much earlier than the chain's head (clocks drift)
 CHUNK = 500  # values per IN (...) query
 
@@ -240,10 +241,12 @@ class Store:
             rows = {row.id: row for row in s.scalars(select(DecisionRow).where(DecisionRow.id.in_(decision_ids)))}
             return [decision_of(rows[i]) for i in decision_ids]
 
-    def unexported_decision_ids(self) -> list[int]:
+    def unexported_decision_ids(self, site_id: str | None = None) -> list[int]:
+        """Decisions not yet in a LIMS file, of the lots of the site ``site_id`` (None: of every lot)."""
         with self.session() as s:
             exported = exists().where(LimsExport.decision_id == DecisionRow.id)
-            return list(s.scalars(select(DecisionRow.id).where(~exported).order_by(DecisionRow.id)))
+            return list(s.scalars(select(DecisionRow.id).where(~exported, of_site(DecisionRow.lot_id, site_id))
+                                  .order_by(DecisionRow.id)))
 
     def mark_exported(self, decision_ids: list[int], export_name: str, events: list[dict[str, Any]]) -> None:
         """One new lims_exports row per decision written into the LIMS file ``export_name``."""
@@ -329,12 +332,21 @@ class Store:
                       events: list[dict[str, Any]] | None = None) -> StoredLimits:
         """A new version of a chart's limits (the highest version is the active one), with its audit events."""
         with self.session() as s:
-            return self._freeze(s, LimitsWrite(product_code, attribute, center, sigma, mr_bar, tuple(baseline_lots),
-                                               frozen_by, reason, tuple(events or ())))
+            stored = self._freeze(s, LimitsWrite(product_code, attribute, center, sigma, mr_bar, tuple(baseline_lots),
+                                                 frozen_by, reason, tuple(events or ())))
+            assert stored is not None  # only a chart's first limits (first_only) are ever left unstored
+            return stored
 
-    def _freeze(self, s: Session, w: LimitsWrite) -> StoredLimits:
+    def _freeze(self, s: Session, w: LimitsWrite) -> StoredLimits | None:
+        """The chart's next version of limits; None when ``w`` is a chart's first limits and another site
+        sharing the store froze that chart's limits meanwhile (its nights judged with the same rule)."""
         where = (ControlLimitRow.product_code == w.product_code, ControlLimitRow.attribute == w.attribute)
+        if self.is_postgresql:  # one freeze of a chart at a time, whichever site it comes from
+            s.connection().execute(text("SELECT pg_advisory_xact_lock(:first, hashtext(:chart))"),
+                                   {"first": CHART_LOCK_CLASS, "chart": f"{w.product_code}/{w.attribute}"})
         current = s.scalar(select(func.max(ControlLimitRow.version)).where(*where)) or 0
+        if w.first_only and current:
+            return None
         row = ControlLimitRow(product_code=w.product_code, attribute=w.attribute, version=current + 1,
                               center=w.center, sigma=w.sigma, mr_bar=w.mr_bar, baseline_n=len(w.baseline_lots),
                               baseline_lots=list(w.baseline_lots), frozen_at_utc=utcnow(), frozen_by=w.frozen_by,

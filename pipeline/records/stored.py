@@ -89,6 +89,8 @@ class LimitsWrite:
     frozen_by: str
     reason: str
     events: tuple[dict[str, Any], ...] = ()
+    # True: the chart's first limits (a night's baseline reached); stored only if the chart still has none
+    first_only: bool = False
 
 
 def utc(when: dt.datetime) -> dt.datetime:

@@ -17,6 +17,7 @@ from pydantic import Field, field_validator
 from pipeline.controlled.strict import Strict, Text, checked
 from pipeline.errors import SpecificationError
 from pipeline.records.database import check_url
+from pipeline.records.workspace_id import workspace_id
 from pipeline.vocabulary import ReleaseMode, SpecificationDate
 
 DEFAULT_TIME_ZONE = "Europe/Berlin"
@@ -56,6 +57,10 @@ class Workspace:
     checkpoint_copy: Path | None = None      # a second folder for sealed checkpoints (on another host)
     timestamp_url: str | None = None         # an RFC 3161 time-stamping authority for checkpoints
     clock_tolerance_minutes: float = 5.0     # how far an event may be dated before the chain's head
+
+    def site_id(self) -> str | None:
+        """The workspace identity when sites share the store (whose lots are this site's), else None: every lot."""
+        return workspace_id(self.root) if self.store_shared else None
 
     @property
     def checkpoints(self) -> Path:
