@@ -29,6 +29,7 @@ from pipeline.night.open import CertificateSigner, open_night
 from pipeline.night.read_formats import set_aside_undeclared_formats
 from pipeline.night.receive import assemble_intake, check_folders_writable
 from pipeline.night.release_modes import with_release_modes
+from pipeline.night.reread import reread_plates
 from pipeline.night.retryable import (
     close_unless_recorded,
     open_night_records,
@@ -76,12 +77,13 @@ _COMPUTE = dict(cache_policy=NONE, persist_result=False)
 open_records = task(open_night_records, name="recover earlier nights, open tonight's", **_IO)
 receive = task(receive_unless_recorded, name="receive exports", **_IO)
 assemble = task(assemble_intake, name="assemble lots", **_COMPUTE)
+reread = task(reread_plates, name="re-read plates on record", **_IO)
 evaluate = task(evaluate_lots, name="compute results", **_COMPUTE)
 load_charts = task(read_charts, name="read control charts", **_IO)
 decide = task(decide_lots, name="trend and disposition", **_COMPUTE)
 publish = task(publish_settled, name="reports, certificates, store, log", **_IO)
 close = task(close_unless_recorded, name="archive and LIMS results", **_IO)
-STAGES = ("open_records", "receive", "assemble", "evaluate", "load_charts", "decide", "publish", "close")
+STAGES = ("open_records", "receive", "assemble", "reread", "evaluate", "load_charts", "decide", "publish", "close")
 
 
 def run_stages(ws: Workspace, store: Store, signer: CertificateSigner, *, orchestrated: bool = True,
@@ -144,7 +146,8 @@ def _stages(ws: Workspace, store: Store, signer: CertificateSigner, step: dict,
     intake = timed("receive", ws, store, layouts, night_id, _progress, recovered.quarantined)
     set_aside_undeclared_formats(ws, store, intake, catalog)
     assembly = timed("assemble", intake, catalog)
-    evaluations, _plates = timed("evaluate", assembly, catalog)
+    earlier_plates = timed("reread", ws, store, catalog, layouts, assembly)  # a lot's other plate, from its record
+    evaluations, _plates = timed("evaluate", assembly, catalog, earlier_plates)
     charts = timed("load_charts", store, catalog, evaluations)
     records = lot_records(store, catalog, evaluations, ws.time_zone, ws.site_id())  # with the lots decided again from them
     decided = timed("decide", evaluations, catalog, charts, earlier_decisions(store, [*evaluations, *records.rechecks]),

@@ -21,6 +21,7 @@ from pipeline.controlled.catalog import Catalog
 from pipeline.controlled.specs import KineticMethod, Specification
 from pipeline.errors import CalculationError
 from pipeline.plain_data import to_plain
+from pipeline.release.carried import OWN_SOURCES, CarriedPlate
 from pipeline.release.records import AttributeVerdict
 from pipeline.release.verdicts import judge_lims, judge_measurement
 from pipeline.science.combined_uncertainty import RelativeTerm, combined, fit_ratio_term
@@ -59,6 +60,7 @@ class LotInputs:
     lims: dict[str, LimsEntry]
     input_files: dict[str, str]
     problems: tuple[str, ...] = ()  # reasons the lot's data are incomplete (e.g. quarantined file)
+    carried: tuple[CarriedPlate, ...] = ()  # a plate of the lot's record used in place of one not assayed tonight
 
 
 @dataclass(frozen=True)
@@ -303,7 +305,8 @@ def evaluate_lots(lots: list[LotInputs], catalog: Catalog) -> list[LotEvaluation
                 verdict = AttributeVerdict(attribute.code, attribute.title, attribute.unit, None, "not determined",
                                            None, attribute.limit_text, Verdict.REPORTED, measurement.reasons, method_label)
             verdicts.append(verdict)
-        plates = tuple(p.summary() for p in (plate, lot.protein_plate) if p is not None)
+        plates = tuple({**p.summary(), **_carried_from(lot, p.plate_id)} for p in (plate, lot.protein_plate)
+                       if p is not None)
         provenance = _provenance(lot, spec)
         report = {
             "traces": plate.traces.get(lot.lot_id) if plate else None,
@@ -348,4 +351,19 @@ def _provenance(lot: LotInputs, spec: Specification) -> dict[str, dict[str, Any]
         out[attribute.code] = {"source": f"plate {' and '.join(plates)}" if plates else "no plate",
                                "tested_on": lot.assay_date, "files": plate_files(*plates) if plates else {},
                                "plate_id": plates[0] if plates else None, "analyst": None}
+    for carried in lot.carried:  # its own results are on record already: not recorded again
+        for attribute in spec.attributes:
+            if attribute.source in OWN_SOURCES[carried.measures]:
+                out[attribute.code] = {"source": f"plate {carried.plate_id} (on record, night {carried.night_id})",
+                                       "tested_on": carried.tested_on, "files": dict(carried.files),
+                                       "plate_id": carried.plate_id, "analyst": None, "carried": True}
     return out
+
+
+def _carried_from(lot: LotInputs, plate_id: str) -> dict[str, Any]:
+    """The summary's note that a plate is the lot's record's, read again (empty for a plate of tonight)."""
+    for carried in lot.carried:
+        if carried.plate_id == plate_id:
+            return {"from_the_lot_record": f"night {carried.night_id} (assayed {carried.tested_on}), read again "
+                                           "from the archive"}
+    return {}

@@ -32,6 +32,8 @@ def tonight_results(evaluation: LotEvaluation) -> dict[str, LotResult]:
     out: dict[str, LotResult] = {}
     for verdict in evaluation.verdicts:
         where = evaluation.provenance.get(verdict.code, {})
+        if where.get("carried"):  # from a plate of the record, read again: that result is on record already
+            continue
         result = result_of(verdict, tested_on=str(where.get("tested_on") or evaluation.assay_date),
                            source=str(where.get("source") or ""), files=where.get("files") or {},
                            plate_id=where.get("plate_id"), analyst=where.get("analyst"))
