@@ -15,7 +15,8 @@ nights the lot record shows itself: two lots of the third night await their micr
 never gets its microbiology (pending, then held overdue on the fifth night, when its lead result
 arrives from the contract lab); after the fourth night an authorised person records an
 investigation of one OOS lot ("assignable laboratory cause: result invalidated",
-``Night.investigations``); on the fifth night the invalid plate's lots are re-assayed (released),
+``Night.investigations``); on the fifth night the invalid plate's lots get their activity plate
+repeated alone, their protein standing on record from the fourth night (released),
 and both OOS lots are retested within specification: the investigated one is released, the
 other stays held (no testing into compliance).
 
@@ -354,7 +355,8 @@ def build_scenario(seed: int = DEMO_SEED, first_night: dt.date = dt.date(2026, 1
 
 
 def _follow_up_night(earlier: list[Night], date: dt.date, seed: int) -> Night:
-    """The last night of the full demo: the invalid plate's lots re-assayed, the OOS lots retested, and
+    """The last night of the full demo: the invalid plate's lots on a new activity plate (their protein is on
+    record), the OOS lots retested on both plates, and
     the first night's pending protease lot getting its lead result only (its microbiology is overdue)."""
     # A stream of its own, chosen so that the re-assayed lots' read noise keeps them in trend: with
     # some other streams their Km continues a run below the chart's centre (a genuine Nelson rule 2
@@ -373,7 +375,9 @@ def _follow_up_night(earlier: list[Night], date: dt.date, seed: int) -> Night:
     for product, mine, tag in ((LIPASE, reassayed, "L"), (PROTEASE, retested, "P")):
         for plate_no, start in enumerate(range(0, len(mine), 4), start=1):
             files.update(_activity_plate(f"AK-{date:%y%m%d}-R{tag}{plate_no}", product, mine[start:start + 4], rng, 1.0))
-    files.update(_protein_plate(f"PR-{date:%y%m%d}-R1", [*reassayed, *retested], rng))
+    # The lab repeats only the assay that failed: the invalid plate's lots get a new activity plate, and
+    # their protein (valid on the fourth night) stands on record; the retested OOS lots get both again.
+    files.update(_protein_plate(f"PR-{date:%y%m%d}-R1", [*retested], rng))
     name, data = _lims_file(overdue, date, rng, only=("PB",))
     files[name.replace(".csv", f"-{date:%Y%m%d}.csv")] = data
     return Night(assay_date=date, files=files, lots=(*reassayed, *retested, overdue))
