@@ -15,13 +15,14 @@ from typing import Any
 
 import numpy as np
 
+from pipeline.assay.method_kinds import Measures
 from pipeline.assay.plates import ActivityPlateResult, KineticSeries
 from pipeline.assay.protein_plates import ProteinPlateResult
 from pipeline.controlled.catalog import Catalog
 from pipeline.controlled.specs import KineticMethod, Specification
 from pipeline.errors import CalculationError
 from pipeline.plain_data import to_plain
-from pipeline.release.carried import OWN_SOURCES, CarriedPlate
+from pipeline.release.carried import DERIVED_SOURCES, OWN_SOURCES, CarriedPlate
 from pipeline.release.records import AttributeVerdict
 from pipeline.release.verdicts import judge_lims, judge_measurement
 from pipeline.science.combined_uncertainty import RelativeTerm, combined, fit_ratio_term
@@ -324,10 +325,6 @@ def evaluate_lots(lots: list[LotInputs], catalog: Catalog) -> list[LotEvaluation
     return evaluations
 
 
-_ON_PROTEIN = ("protein",)
-_ON_BOTH = ("specific_activity", "vmax", "kcat", "kcat_over_km")
-
-
 def _provenance(lot: LotInputs, spec: Specification) -> dict[str, dict[str, Any]]:
     """Where each attribute's result of tonight came from: source, files (with SHA-256), plate, analyst, date."""
     def plate_files(*plate_ids: str) -> dict[str, str]:
@@ -345,8 +342,8 @@ def _provenance(lot: LotInputs, spec: Specification) -> dict[str, dict[str, Any]
                     "source": f"LIMS test {attribute.test_code}", "tested_on": entry.tested_on or lot.assay_date,
                     "files": {entry.file_name: lot.input_files.get(entry.file_name, "")}, "analyst": entry.analyst}
             continue
-        used = ([protein] if attribute.source in _ON_PROTEIN else
-                [activity, protein] if attribute.source in _ON_BOTH else [activity])
+        used = ([protein] if attribute.source in OWN_SOURCES[Measures.PROTEIN] else
+                [activity, protein] if attribute.source in DERIVED_SOURCES else [activity])
         plates = [p for p in used if p]
         out[attribute.code] = {"source": f"plate {' and '.join(plates)}" if plates else "no plate",
                                "tested_on": lot.assay_date, "files": plate_files(*plates) if plates else {},
