@@ -21,7 +21,7 @@ import time
 from pathlib import Path
 from typing import Any
 
-STAGES = ("receive", "assemble", "evaluate", "load_charts", "decide", "publish", "close")
+STAGES = ("receive", "assemble", "reread", "evaluate", "load_charts", "decide", "publish", "close")
 
 
 def _peak_rss_mb() -> float:

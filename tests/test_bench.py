@@ -19,7 +19,7 @@ def test_bench_prints_its_figures_as_one_json_line(tmp_path):
     # The keys the benchmark promises, and counts that must hold whatever the machine's speed.
     assert {"lots", "wall_s", "lots_per_s", "peak_rss_mb", "stage_s"} <= set(figures)
     assert figures["lots"] == 30 and figures["decided"] == 30
-    assert set(figures["stage_s"]) == {"open_records", "receive", "assemble", "evaluate", "load_charts", "decide", "publish",
+    assert set(figures["stage_s"]) == {"open_records", "receive", "assemble", "reread", "evaluate", "load_charts", "decide", "publish",
                                          "close"}
     assert all(value >= 0 for value in figures["stage_s"].values())
     assert figures["peak_tree_mb"] >= figures["peak_rss_mb"] > 0

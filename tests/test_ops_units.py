@@ -193,7 +193,7 @@ def test_computation_tasks_have_no_retries_and_io_tasks_back_off():
 
     for name in ("assemble", "evaluate", "decide"):
         assert getattr(nightly, name).retries == 0, name
-    for name in ("open_records", "receive", "load_charts", "publish", "close"):
+    for name in ("open_records", "receive", "reread", "load_charts", "publish", "close"):
         io_task = getattr(nightly, name)
         assert io_task.retries == nightly.RETRIES and io_task.retry_condition_fn is not None, name
         delays = io_task.retry_delay_seconds
