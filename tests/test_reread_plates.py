@@ -108,6 +108,31 @@ def test_the_report_names_the_plate_read_again(two_nights):
     assert '"from_the_lot_record": "night 1 (assayed 2026-11-24), read again from the archive"' in dossier
 
 
+def test_the_desk_says_which_plate_came_from_the_lot_record(two_nights):
+    import re
+    import warnings
+
+    from flows.desk.accounts import Desk, create_account
+    from flows.desk.app import create_app
+    from flows.desk.roles import DeskRole
+    from flows.desk.settings import DeskSettings
+    from pipeline.records.workspace import open_workspace
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        from starlette.testclient import TestClient
+
+    root, store = two_nights
+    ws = open_workspace(root)
+    create_account(ws, store, "viewer", DeskRole.VIEWER, "viewer password 2026", by="test administrator")
+    client = TestClient(create_app(Desk(ws, store, DeskSettings())), base_url="https://testserver")
+    token = re.search(r'name="csrf" value="([^"]+)"', client.get("/login").text).group(1)
+    client.post("/login", data={"csrf": token, "name": "viewer", "password": "viewer password 2026"})
+    page = client.get(f"/lot?id={INVALID[0]}").text
+    assert "PR-261124-1" in page
+    assert "from the lot record: night 1 (assayed 2026-11-24), read again from the archive" in page
+
+
 def test_an_archived_file_changed_since_it_was_received_is_not_used(tmp_path):
     root = _workspace(tmp_path / "plant")
     _night(root, FIRST.files)
