@@ -52,3 +52,14 @@ def fresh_database() -> tuple[str, callable]:
         admin.dispose()
 
     return f"postgresql+psycopg://postgres@127.0.0.1:5432/{name}", drop
+
+
+def database_of(kind: str, sqlite_url: str | None):
+    """For a fixture parametrised over both stores: ``sqlite_url`` when ``kind`` is "sqlite", else a
+    fresh PostgreSQL database, dropped when the test is done."""
+    if kind == "sqlite":
+        yield sqlite_url
+        return
+    url, drop = fresh_database()
+    yield url
+    drop()

@@ -23,18 +23,13 @@ from pipeline.records import append_only, audit, checkpoints, ledger, row_hashes
 from pipeline.records.demo_identity import create_demo_identity
 from pipeline.records.tables import APPEND_ONLY_TABLES, AuditEvent, DecisionRow
 from pipeline.records.workspace import open_workspace, write_settings
-from tests.pg import fresh_database
+from tests.pg import database_of
 from tests.records_fixture import filled_workspace, settings_of
 
 
 @pytest.fixture(params=["sqlite", pytest.param("postgresql", marks=pytest.mark.slow)])
 def url(request, tmp_path):
-    if request.param == "sqlite":
-        yield f"sqlite:///{tmp_path / 'ws' / 'lotgate.db'}"
-        return
-    database, drop = fresh_database()
-    yield database
-    drop()
+    yield from database_of(request.param, f"sqlite:///{tmp_path / 'ws' / 'lotgate.db'}")
 
 
 @pytest.fixture(scope="module")

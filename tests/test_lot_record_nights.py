@@ -34,7 +34,7 @@ from pipeline.records.demo_trust import create_demo_trust
 from pipeline.records.lot_record_store import certificate_status, load_histories
 from pipeline.records.workspace import atomic_write, write_settings
 from pipeline.vocabulary import ResultStatus
-from tests.pg import fresh_database
+from tests.pg import database_of
 
 pytestmark = pytest.mark.slow
 
@@ -126,12 +126,7 @@ def person():
 
 @pytest.fixture(params=["sqlite", "postgresql"])
 def database(request):
-    if request.param == "sqlite":
-        yield None
-        return
-    url, drop = fresh_database()
-    yield url
-    drop()
+    yield from database_of(request.param, None)
 
 
 def test_each_night_of_the_lot_record(database, person, tmp_path):

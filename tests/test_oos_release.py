@@ -26,7 +26,7 @@ from pipeline.release.lot_record import Investigation, LotHistory, LotResult
 from pipeline.release.records import RecordedResult
 from pipeline.release.release_bars import release_bars
 from pipeline.vocabulary import InvestigationOutcome, ReleaseBar, ResultStatus, Verdict
-from tests.pg import fresh_database
+from tests.pg import database_of
 from tests.test_lot_record_nights import DAY, _files, _night, night_workspace
 
 PERSON = "mira.castellan"  # the demo register's reviewer: release, rejection, result invalidation
@@ -34,12 +34,7 @@ PERSON = "mira.castellan"  # the demo register's reviewer: release, rejection, r
 
 @pytest.fixture(params=["sqlite", pytest.param("postgresql", marks=pytest.mark.postgres)])
 def database(request):
-    if request.param == "sqlite":
-        yield None
-        return
-    url, drop = fresh_database()
-    yield url
-    drop()
+    yield from database_of(request.param, None)
 
 
 def _protease(count=3, oos=(1, 2)):

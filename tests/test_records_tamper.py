@@ -19,7 +19,7 @@ from sqlalchemy.exc import DBAPIError
 from flows.cli import build_parser
 from pipeline.records import append_only, row_hashes
 from pipeline.records.tables import APPEND_ONLY_TABLES, RECORD_TABLES
-from tests.pg import fresh_database
+from tests.pg import database_of
 from tests.records_fixture import filled_workspace
 
 TABLES = {model.__tablename__: model for model in RECORD_TABLES}
@@ -40,12 +40,7 @@ UNIQUE = {  # what an inserted copy must change to satisfy the table's unique co
 
 @pytest.fixture(params=["sqlite", pytest.param("postgresql", marks=pytest.mark.slow)])  # ~3 s each: a database made
 def url(request, tmp_path):
-    if request.param == "sqlite":
-        yield f"sqlite:///{tmp_path / 'ws' / 'lotgate.db'}"
-        return
-    database, drop = fresh_database()
-    yield database
-    drop()
+    yield from database_of(request.param, f"sqlite:///{tmp_path / 'ws' / 'lotgate.db'}")
 
 
 def verify(root, capsys, *extra) -> tuple[int, str]:

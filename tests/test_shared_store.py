@@ -29,19 +29,14 @@ from pipeline.records.tables import ControlLimitRow, DecisionRow, LimsExport
 from pipeline.records.workspace import atomic_write, open_workspace, write_settings
 from pipeline.records.workspace_id import workspace_id
 from tests.cli import run_cli
-from tests.pg import fresh_database
+from tests.pg import database_of, fresh_database
 
 NIGHTS = demo.build_scenario(nights=3, lipase_per_night=3, protease_per_night=2)
 
 
 @pytest.fixture(params=["sqlite", "postgresql"])
 def url(request, tmp_path):
-    if request.param == "sqlite":
-        yield f"sqlite:///{tmp_path / 'shared.db'}"
-        return
-    database, drop = fresh_database()
-    yield database
-    drop()
+    yield from database_of(request.param, f"sqlite:///{tmp_path / 'shared.db'}")
 
 
 def _site(root: Path, url: str, night) -> Path:

@@ -12,17 +12,12 @@ from pipeline.records.store import Store
 from pipeline.records.stored import DecisionWrite
 from pipeline.records.tables import APPEND_ONLY_TABLES
 from pipeline.release.records import DecisionRecord, RecordedResult
-from tests.pg import fresh_database
+from tests.pg import database_of
 
 
 @pytest.fixture(params=["sqlite", "postgresql"])
 def url(request, tmp_path):
-    if request.param == "sqlite":
-        yield f"sqlite:///{tmp_path / 'store.db'}"
-        return
-    database, drop = fresh_database()
-    yield database
-    drop()
+    yield from database_of(request.param, f"sqlite:///{tmp_path / 'store.db'}")
 
 
 def _decision(lot, fingerprint, disposition="released"):

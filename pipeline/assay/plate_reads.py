@@ -8,6 +8,8 @@ from dataclasses import dataclass, field
 
 import pandas as pd
 
+LOT_ROLES = ("sample", "kinetic")  # the plate map's roles of the wells that hold a lot
+
 
 @dataclass(frozen=True)
 class PlateReads:

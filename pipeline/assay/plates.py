@@ -15,6 +15,7 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
+from pipeline.assay.plate_reads import LOT_ROLES
 from pipeline.controlled.specs import (
     KineticMethod,
     PlateFormatSettings,
@@ -148,7 +149,7 @@ def evaluate_activity_plate(plate_id: str, plate_map: pd.DataFrame, reads: pd.Da
     standard lot valid on the plate's assay date.
     """
     used = plate_map[plate_map["role"] != "empty"].reset_index(drop=True)
-    lots = sorted({str(x) for x in used.loc[used["role"].isin(["sample", "kinetic"]), "lot_id"].dropna()})
+    lots = sorted({str(x) for x in used.loc[used["role"].isin(LOT_ROLES), "lot_id"].dropna()})
     plate_format = int(plate_map["plate_format"].iloc[0])
     well_settings = format_settings(method, plate_format)
     if well_settings is None:

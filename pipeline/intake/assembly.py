@@ -31,7 +31,7 @@ from typing import Any
 import pandas as pd
 
 from pipeline.assay.method_kinds import Measures, kind_of, read_kinds, read_label
-from pipeline.assay.plate_reads import PlateReads
+from pipeline.assay.plate_reads import LOT_ROLES, PlateReads
 from pipeline.controlled.catalog import Catalog
 from pipeline.controlled.specs import KineticMethod
 from pipeline.intake.plate_methods import plate_method
@@ -255,7 +255,7 @@ def assemble(parsed_exports: list[ParsedExport], quarantined: list[QuarantinedFi
 
     plate_lots: dict[str, set[str]] = defaultdict(set)
     for plate_id, (frame, _files) in maps.items():
-        for lot in frame.loc[frame["role"].isin(["sample", "kinetic"]), "lot_id"].dropna().unique():
+        for lot in frame.loc[frame["role"].isin(LOT_ROLES), "lot_id"].dropna().unique():
             plate_lots[str(lot)].add(plate_id)
     references = {r.lot for m in catalog.every_method() if isinstance(m, KineticMethod) for r in m.reference_lots}
     mentioned = set(plate_lots) | set(lims)

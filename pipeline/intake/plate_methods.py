@@ -16,6 +16,7 @@ from typing import Any
 import pandas as pd
 
 from pipeline.assay.method_kinds import kind_of, read_kinds
+from pipeline.assay.plate_reads import LOT_ROLES
 from pipeline.controlled.catalog import Catalog
 from pipeline.controlled.specs import declared_formats
 from pipeline.intake.problems import ExportRejected, Problem
@@ -23,13 +24,12 @@ from pipeline.intake.validation import ParsedExport
 from pipeline.vocabulary import ProblemCode
 
 REGISTRY, PLATE_MAP = "lot-registry", "plate-map"
-_LOT_ROLES = ("sample", "kinetic")
 
 
 def plate_assay_date(plate_id: str, frame: pd.DataFrame,
                      registry: Mapping[str, Mapping[str, Any]]) -> tuple[dt.date | None, str | None]:
     """The registered assay date of the plate's lots (None without registered lots), or why there is none."""
-    lots = {str(x) for x in frame.loc[frame["role"].isin(_LOT_ROLES), "lot_id"].dropna()}
+    lots = {str(x) for x in frame.loc[frame["role"].isin(LOT_ROLES), "lot_id"].dropna()}
     dates = sorted({str(registry[lot]["assay_date"]) for lot in lots if lot in registry})
     if len(dates) > 1:
         return None, (f"plate {plate_id} holds lots registered as assayed on different days ({', '.join(dates)}); "

@@ -18,7 +18,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 
 from pipeline.assay.method_kinds import Measures, kind_of
-from pipeline.assay.plate_reads import PlateReads
+from pipeline.assay.plate_reads import LOT_ROLES, PlateReads
 from pipeline.controlled.catalog import Catalog
 from pipeline.intake.assembly import PLATE_MAP, REGISTRY, Assembly, assemble
 from pipeline.intake.layouts import ExportLayout
@@ -28,8 +28,6 @@ from pipeline.records.lot_record_store import load_histories
 from pipeline.records.store import Store
 from pipeline.records.workspace import Workspace
 from pipeline.release.carried import CarriedPlate, needs_other_plate, plate_to_carry
-
-_LOT_ROLES = ("sample", "kinetic")
 
 
 @dataclass(frozen=True)
@@ -56,7 +54,7 @@ def kinds_tonight(assembly: Assembly) -> dict[str, set[Measures]]:
     for measures, plates in ((Measures.ACTIVITY, assembly.activity_plates), (Measures.PROTEIN, assembly.protein_plates)):
         for reads in plates.values():
             frame = reads.plate_map
-            for lot in frame.loc[frame["role"].isin(_LOT_ROLES), "lot_id"].dropna().unique():
+            for lot in frame.loc[frame["role"].isin(LOT_ROLES), "lot_id"].dropna().unique():
                 out[str(lot)].add(measures)
     return out
 
